@@ -1,0 +1,386 @@
+"""Read and write C3D marker trials.
+
+Reading gives a frozen :class:`MarkerTrial` in hamstride's internal lab frame: right-handed, x forward along the
+direction of travel, y to the athlete's left, z up, metres, invalid points as NaN. The lab's vertical axis and the
+direction of travel are detected from the marker cloud and recorded, so Z-up and Y-up labs, and runs in either
+direction, give the same internal coordinates.
+
+C3D facts used here come from the c3d.org user guide: POINT:LABELS holds at most 255 labels and continues in
+LABELS2, LABELS3, ...; POINT:UNITS documents the unit (default mm); a negative residual marks an invalid point;
+EVENT:TIMES holds (minutes, seconds) pairs.
+"""
+from __future__ import annotations
+
+import os
+import re
+import struct
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterable, Mapping, Sequence
+
+import numpy as np
+
+from .errors import FileFormatError
+
+UNIT_TO_METRES = {"mm": 1e-3, "cm": 1e-2, "m": 1.0, "millimeters": 1e-3, "millimetres": 1e-3, "meters": 1.0, "metres": 1.0}
+
+_FOOT_STRIKE_WORDS = ("foot strike", "footstrike", "foot_strike", "initial contact", "foot contact", "heel strike",
+                      "touchdown", "touch down")
+_TOE_OFF_WORDS = ("foot off", "footoff", "foot_off", "toe off", "toeoff", "toe_off", "final contact", "take off",
+                  "takeoff")
+
+
+@dataclass(frozen=True)
+class C3DEvent:
+    """One event from the file: ``kind`` is 'foot_strike', 'toe_off' or the file's own label (lower case)."""
+
+    kind: str
+    side: str  # 'left', 'right' or 'general'
+    time_s: float  # from the first frame = 0 s
+    label: str = ""
+
+
+@dataclass(frozen=True)
+class LabFrame:
+    """How the file's axes were mapped to the internal lab frame (x forward, y left, z up)."""
+
+    file_to_lab: np.ndarray  # 3x3 rotation: lab = file_to_lab @ file
+    vertical_axis: str  # e.g. '+z' or '+y' in file axes
+    travel_axis: str  # e.g. '+x' or '-x' in file axes
+    overground: bool  # the marker cloud travels (False on a treadmill)
+
+
+@dataclass(frozen=True)
+class MarkerTrial:
+    """A marker trial in the internal lab frame, metres, NaN where the file marks a point invalid."""
+
+    path: str
+    labels: tuple[str, ...]
+    xyz: np.ndarray  # [frame, marker, 3]
+    rate_hz: float
+    first_frame: int  # 1-based frame number of the first frame in the original capture
+    events: tuple[C3DEvent, ...]
+    meta: Mapping[str, object] = field(default_factory=dict)
+    units_in_file: str = "mm"
+    lab: LabFrame | None = None
+
+    @property
+    def name(self) -> str:
+        return Path(self.path).stem
+
+    @property
+    def n_frames(self) -> int:
+        return int(self.xyz.shape[0])
+
+    @property
+    def first_frame_time_s(self) -> float:
+        return (self.first_frame - 1) / self.rate_hz
+
+    @property
+    def time_s(self) -> np.ndarray:
+        return np.arange(self.n_frames) / self.rate_hz
+
+    def marker(self, label: str) -> np.ndarray:
+        return self.xyz[:, self.labels.index(label), :]
+
+
+# --------------------------------------------------------------------------------------------------- reading
+
+def check_c3d_header(path: str | Path) -> None:
+    """Cheap structural checks of a C3D file in our own code, before the native reader sees it.
+
+    Header layout (c3d.org): byte 0 = first parameter block (1-based), byte 1 = 0x50; words 2..: number of points,
+    analog measurements per frame, first and last frame, max gap, scale (float), data start block, analog samples per
+    frame, frame rate (float). Raises FileFormatError with a one-line reason.
+    """
+    path = Path(path)
+    name = path.name
+    try:
+        size = path.stat().st_size
+    except OSError as exc:
+        raise FileFormatError(f"cannot open the file ({exc.strerror})", trial=name, code="unreadable") from None
+    if size == 0:
+        raise FileFormatError("the file is empty (0 bytes); re-export it from the capture software", trial=name,
+                              code="empty_file")
+    if size < 1024:
+        raise FileFormatError(f"the file is only {size} bytes, too short for a C3D (header and parameters need at "
+                              "least 1024); it is probably truncated", trial=name, code="truncated")
+    with open(path, "rb") as fh:
+        head = fh.read(512)
+        fh.seek(512 * (head[0] - 1) if head[0] >= 1 else 0)
+        param_head = fh.read(4)
+    if head[1] != 0x50:
+        raise FileFormatError("not a C3D file (the header's key byte is not 0x50); check the file type", trial=name,
+                              code="not_c3d")
+    if head[0] < 2 or 512 * head[0] > size:
+        raise FileFormatError(f"the header points to a parameter section at block {head[0]} that is outside the "
+                              "file; the file is corrupt or truncated", trial=name, code="bad_header")
+    processor = param_head[3] if len(param_head) == 4 else 0
+    if processor not in (84, 85, 86):
+        raise FileFormatError(f"unknown processor type {processor} in the parameter section (expected 84/85/86); "
+                              "the file is corrupt", trial=name, code="bad_header")
+    endian = ">" if processor == 86 else "<"
+    n_points, n_analog, first, last = struct.unpack(endian + "4H", head[2:10])
+    data_start = struct.unpack(endian + "H", head[16:18])[0]
+    if processor == 85:  # DEC floats: read the exponent loosely, only sign checks below
+        rate = 1.0
+        scale = -1.0
+    else:
+        scale = struct.unpack(endian + "f", head[12:16])[0]
+        rate = struct.unpack(endian + "f", head[20:24])[0]
+    if not np.isfinite(rate) or rate <= 0:
+        raise FileFormatError(f"the header frame rate is {rate!r}; it must be a positive number", trial=name,
+                              code="bad_rate")
+    if n_points == 0:
+        raise FileFormatError("the file holds no marker points", trial=name, code="no_markers")
+    n_frames = int(last) - int(first) + 1
+    if n_frames <= 0:
+        raise FileFormatError(f"the header says first frame {first} and last frame {last}: no frames", trial=name,
+                              code="no_frames")
+    if data_start < 2 or 512 * (data_start - 1) > size:
+        raise FileFormatError("the data section starts beyond the end of the file; the file is truncated", trial=name,
+                              code="truncated")
+    bytes_per_value = 4 if (np.isfinite(scale) and scale < 0) else 2
+    frame_bytes = (4 * n_points + n_analog) * bytes_per_value
+    needed = 512 * (data_start - 1) + n_frames * frame_bytes
+    if needed > size:
+        have = max(0, size - 512 * (data_start - 1)) // max(frame_bytes, 1)
+        raise FileFormatError(f"the header promises {n_frames} frames but the file holds data for only {have}; "
+                              "it was cut short (full disk or interrupted copy?)", trial=name, code="truncated")
+
+
+def read_c3d(path: str | Path) -> MarkerTrial:
+    """Read a C3D file into a :class:`MarkerTrial` (metres, internal lab frame, invalid points NaN)."""
+    import ezc3d
+
+    path = Path(path)
+    check_c3d_header(path)
+    try:
+        c = ezc3d.c3d(str(path), extract_forceplat_data=False)
+    except Exception as exc:  # ezc3d raises RuntimeError/IOError with C++ messages
+        raise FileFormatError(f"the C3D reader could not parse the file ({str(exc).strip()[:120]})", trial=path.name,
+                              code="bad_file") from None
+    params = c["parameters"]
+    point = params["POINT"]
+    raw = np.asarray(c["data"]["points"], dtype=float)  # [4, marker, frame]
+    n_markers = raw.shape[1]
+    labels = tuple(_continued_strings(point, "LABELS")[:n_markers])
+    if len(labels) < n_markers:
+        labels = labels + tuple(f"unlabelled_{i + 1}" for i in range(len(labels), n_markers))
+    units = str(_first(point.get("UNITS", {}).get("value", ["mm"]), "mm")).strip().lower() or "mm"
+    if units not in UNIT_TO_METRES:
+        raise FileFormatError(f"POINT:UNITS is '{units}'; expected mm, cm or m", trial=path.name, code="bad_units")
+    rate = float(_first(point.get("RATE", {}).get("value", [0.0]), 0.0) or c["header"]["points"]["frame_rate"])
+    if not np.isfinite(rate) or rate <= 0:
+        raise FileFormatError(f"POINT:RATE is {rate}; it must be positive", trial=path.name, code="bad_rate")
+
+    xyz = raw[:3].transpose(2, 1, 0) * UNIT_TO_METRES[units]  # [frame, marker, 3]
+    residuals = np.asarray(c["data"]["meta_points"]["residuals"], dtype=float)[0].T  # [frame, marker]
+    invalid = (residuals < 0) | np.all(raw[:3].transpose(2, 1, 0) == 0.0, axis=2) | ~np.all(np.isfinite(xyz), axis=2)
+    xyz[invalid] = np.nan
+
+    first_frame = int(c["header"]["points"]["first_frame"]) + 1  # ezc3d reports it 0-based
+    lab = detect_lab_frame(xyz)
+    xyz = xyz @ lab.file_to_lab.T
+    events = _read_events(c, first_frame, rate)
+    meta = _read_subject(params)
+    return MarkerTrial(path=str(path), labels=labels, xyz=xyz, rate_hz=rate, first_frame=first_frame,
+                       events=events, meta=meta, units_in_file=units, lab=lab)
+
+
+def _first(values, default):
+    try:
+        return values[0] if len(values) else default
+    except TypeError:
+        return values
+
+
+def _continued_strings(group: Mapping, name: str) -> list[str]:
+    """NAME, NAME2, NAME3, ... read as one list (c3d.org: more than 255 labels continue in LABELS2, ...)."""
+    out: list[str] = []
+    key, k = name, 1
+    while key in group:
+        out.extend(str(v).strip() for v in group[key]["value"])
+        k += 1
+        key = f"{name}{k}"
+    return out
+
+
+def _event_kind(label: str) -> str:
+    text = label.strip().lower().replace("-", " ")
+    if any(w in text for w in _FOOT_STRIKE_WORDS):
+        return "foot_strike"
+    if any(w in text for w in _TOE_OFF_WORDS):
+        return "toe_off"
+    return text
+
+
+def _event_side(context: str) -> str:
+    text = context.strip().lower()
+    if text.startswith("r"):
+        return "right"
+    if text.startswith("l"):
+        return "left"
+    return "general"
+
+
+def _read_events(c, first_frame: int, rate: float) -> tuple[C3DEvent, ...]:
+    """Events from the EVENT group (preferred) and the header's event table; times relative to the first frame."""
+    offset = (first_frame - 1) / rate
+    events: list[C3DEvent] = []
+    group = c["parameters"].get("EVENT")
+    if group and "TIMES" in group and int(_first(group.get("USED", {}).get("value", [0]), 0)) > 0:
+        times = np.asarray(group["TIMES"]["value"], dtype=np.float64)
+        used = int(_first(group["USED"]["value"], 0))
+        if times.ndim == 2 and times.shape[0] == 2:
+            seconds = times[0, :used] * 60.0 + times[1, :used]
+        else:
+            seconds = times.reshape(-1)[:used]
+        labels = list(group.get("LABELS", {}).get("value", [])) + [""] * used
+        contexts = list(group.get("CONTEXTS", {}).get("value", [])) + [""] * used
+        for i in range(used):
+            events.append(C3DEvent(_event_kind(labels[i]), _event_side(contexts[i]), float(seconds[i] - offset),
+                                   labels[i].strip()))
+    header = c["header"].get("events", {})
+    if not events:
+        for t, label in zip(header.get("events_time", ()), header.get("events_label", ())):
+            if label.strip():
+                side = _event_side(label) if label.strip().lower()[:1] in "lr" and " " in label else "general"
+                events.append(C3DEvent(_event_kind(label), side, float(t - offset), label.strip()))
+    return tuple(sorted(events, key=lambda e: e.time_s))
+
+
+def _read_subject(params: Mapping) -> dict[str, object]:
+    meta: dict[str, object] = {}
+    subjects = params.get("SUBJECTS")
+    if subjects and "NAMES" in subjects:
+        names = [str(n).strip() for n in subjects["NAMES"]["value"] if str(n).strip()]
+        if names:
+            meta["subject"] = names[0]
+    for group_name in ("SUBJECTS", "PROCESSING", "SUBJECT"):
+        group = params.get(group_name) or {}
+        for key, entry in group.items():
+            if key.startswith("__") or not isinstance(entry, Mapping):
+                continue
+            low = key.lower()
+            if "mass" in low or "weight" in low:
+                try:
+                    value = float(_first(entry["value"], np.nan))
+                except (TypeError, ValueError):
+                    continue
+                if np.isfinite(value) and value > 0:
+                    meta.setdefault("body_mass_kg", value)
+            elif "height" in low:
+                try:
+                    value = float(_first(entry["value"], np.nan))
+                except (TypeError, ValueError):
+                    continue
+                if np.isfinite(value) and value > 0:
+                    meta.setdefault("height_m", value / 1000.0 if value > 3.0 else value)
+    return meta
+
+
+# --------------------------------------------------------------------------------------------------- lab frame
+
+def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
+    """Find the file's vertical axis and direction of travel from the marker cloud.
+
+    Vertical: of the file's y and z axes (the two conventions labs use), the one along which the marker cloud is
+    tallest in a typical frame (feet to pelvis, about 1 m, against about 0.4 m across the hips). Up is the direction
+    in which the cloud is thin (most markers sit low on the legs and feet). Travel: the horizontal axis along which the
+    cloud's centre moves furthest (overground); on a treadmill, the direction opposite to the lowest (stance) marker's
+    motion.
+    """
+    finite_frames = np.isfinite(xyz).all(axis=2)
+    if not finite_frames.any():
+        return LabFrame(np.eye(3), "+z", "+x", True)
+    with np.errstate(all="ignore"):
+        lo = np.nanmin(xyz, axis=1)  # [frame, 3]
+        hi = np.nanmax(xyz, axis=1)
+        med = np.nanmedian(xyz, axis=1)
+    spread = np.nanmedian(hi - lo, axis=0)
+    vertical = 2 if spread[2] >= spread[1] else 1
+    below = np.nanmedian(med[:, vertical] - lo[:, vertical])
+    above = np.nanmedian(hi[:, vertical] - med[:, vertical])
+    up_sign = 1.0 if below <= above else -1.0
+
+    centre = np.nanmean(xyz, axis=1)  # [frame, 3]
+    valid = np.isfinite(centre).all(axis=1)
+    horizontal = [a for a in range(3) if a != vertical]
+    centre_v = centre[valid]
+    travel_range = {a: (np.nanmax(centre_v[:, a]) - np.nanmin(centre_v[:, a])) if len(centre_v) else 0.0
+                    for a in horizontal}
+    travel = max(horizontal, key=lambda a: travel_range[a])
+    overground = travel_range[travel] > 0.5
+    if overground:
+        sign = 1.0 if centre_v[-1, travel] >= centre_v[0, travel] else -1.0
+    else:
+        lateral_spread = {a: spread[a] for a in horizontal}
+        travel = max(horizontal, key=lambda a: lateral_spread[a])
+        heights = np.where(np.isfinite(xyz[:, :, vertical]), up_sign * xyz[:, :, vertical], np.inf)
+        lowest = np.argmin(heights, axis=1)
+        low_track = xyz[np.arange(len(xyz)), lowest, travel]
+        step = np.diff(low_track)
+        same = lowest[1:] == lowest[:-1]
+        motion = np.nanmedian(step[same & np.isfinite(step)]) if np.any(same & np.isfinite(step)) else 0.0
+        sign = -1.0 if motion > 0 else 1.0
+    ez = np.zeros(3)
+    ez[vertical] = up_sign
+    ex = np.zeros(3)
+    ex[travel] = sign
+    ey = np.cross(ez, ex)
+    rot = np.vstack([ex, ey, ez])
+    names = "xyz"
+    return LabFrame(rot, f"{'+' if up_sign > 0 else '-'}{names[vertical]}", f"{'+' if sign > 0 else '-'}{names[travel]}",
+                    bool(overground))
+
+
+# --------------------------------------------------------------------------------------------------- writing
+
+def write_c3d(path: str | Path, labels: Sequence[str], xyz: np.ndarray, rate_hz: float, *, units: str = "mm",
+              events: Iterable[tuple[str, str, float]] = (), subject: Mapping[str, object] | None = None) -> Path:
+    """Write markers to a C3D file atomically (temporary file, then rename).
+
+    ``xyz`` is [frame, marker, 3] in ``units`` in the file's own axes; NaN points are written as invalid (residual -1).
+    ``events`` are (label, context, time_s) with time from the first frame = 0 s. ``subject`` may hold ``name``,
+    ``body_mass_kg`` and ``height_m``.
+    """
+    import ezc3d
+
+    path = Path(path)
+    xyz = np.asarray(xyz, dtype=float)
+    if xyz.ndim != 3 or xyz.shape[2] != 3 or xyz.shape[1] != len(labels):
+        raise ValueError("xyz must be [frame, marker, 3] with one marker per label")
+    c = ezc3d.c3d()
+    c["parameters"]["POINT"]["RATE"]["value"] = [float(rate_hz)]
+    c["parameters"]["POINT"]["LABELS"]["value"] = tuple(labels)
+    c["parameters"]["POINT"]["UNITS"]["value"] = [units]
+    pts = np.ones((4, xyz.shape[1], xyz.shape[0]))
+    pts[:3] = xyz.transpose(2, 1, 0)
+    c["data"]["points"] = pts
+    for label, context, time_s in events:
+        c.add_event(time=[0, float(time_s)], context=str(context), label=str(label))
+    if subject:
+        if subject.get("name"):
+            c.add_parameter("SUBJECTS", "NAMES", [str(subject["name"])])
+        if subject.get("body_mass_kg"):
+            c.add_parameter("SUBJECTS", "BODY_MASS_KG", [float(subject["body_mass_kg"])])
+        if subject.get("height_m"):
+            c.add_parameter("SUBJECTS", "HEIGHT_M", [float(subject["height_m"])])
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".partial.c3d", dir=path.parent)
+    os.close(fd)
+    try:
+        c.write(tmp)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    return path
+
+
+def safe_name(text: str) -> str:
+    """A file-system-safe version of an athlete/session/trial name (no path separators, no dot-dot)."""
+    cleaned = re.sub(r"[^A-Za-z0-9_.-]+", "_", str(text)).strip("._")
+    return cleaned or "unnamed"

@@ -1,0 +1,172 @@
+"""Resolve anatomical landmarks from C3D labels.
+
+A marker map (TOML) names the C3D label of each landmark; without one, hamstride's own default labels are used
+(``r.asis``, ``l.knee.lat``, ...). The result is a frozen :class:`Landmarks` with NaN for missing frames, plus a
+per-landmark report (label used, percent of valid frames) that ``hamstride landmarks`` prints.
+"""
+from __future__ import annotations
+
+import difflib
+import tomllib
+from dataclasses import dataclass, field, replace as dc_replace
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+
+from .errors import ConfigError, LandmarkError
+from .io import MarkerTrial
+
+SIDES = ("left", "right")
+REQUIRED_SITES = ("asis", "psis", "lateral_epicondyle", "medial_epicondyle", "lateral_malleolus", "medial_malleolus",
+                  "heel", "first_metatarsal", "fifth_metatarsal")
+OPTIONAL_SITES = ("toe_tip",)
+CLUSTER_SEGMENTS = ("thigh", "shank")
+
+# hamstride's own default labels: lower case, dotted, side letter first.
+_DEFAULT_SITE_LABELS = {
+    "asis": "asis", "psis": "psis", "lateral_epicondyle": "knee.lat", "medial_epicondyle": "knee.med",
+    "lateral_malleolus": "ankle.lat", "medial_malleolus": "ankle.med", "heel": "heel", "first_metatarsal": "met1",
+    "fifth_metatarsal": "met5", "toe_tip": "toe",
+}
+DEFAULT_LABELS: dict[str, str] = {f"{side}_{site}": f"{side[0]}.{label}" for side in SIDES
+                                  for site, label in _DEFAULT_SITE_LABELS.items()}
+DEFAULT_CLUSTERS: dict[str, tuple[str, ...]] = {f"{side}_{seg}_cluster": tuple(f"{side[0]}.{seg}.{k}" for k in "abc")
+                                                for side in SIDES for seg in CLUSTER_SEGMENTS}
+REQUIRED_LANDMARKS = tuple(f"{side}_{site}" for side in SIDES for site in REQUIRED_SITES)
+# Medial markers may come from a static trial instead (rigid-fit reconstruction in the segments stage).
+STATIC_RECOVERABLE = tuple(f"{side}_{site}" for side in SIDES for site in ("medial_epicondyle", "medial_malleolus"))
+
+
+def plain_name(landmark: str) -> str:
+    """'right_lateral_epicondyle' -> 'right lateral epicondyle' (for messages)."""
+    return landmark.replace("_", " ")
+
+
+@dataclass(frozen=True)
+class MarkerMap:
+    """Landmark name -> C3D label, and cluster name -> labels."""
+
+    landmarks: Mapping[str, str] = field(default_factory=lambda: dict(DEFAULT_LABELS))
+    clusters: Mapping[str, tuple[str, ...]] = field(default_factory=lambda: dict(DEFAULT_CLUSTERS))
+    source: str = "default labels"
+
+
+def load_marker_map(path: str | Path | None) -> MarkerMap:
+    """Read a TOML marker map; landmarks it does not name keep their default labels."""
+    if path is None:
+        return MarkerMap()
+    path = Path(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ConfigError(f"marker map {path} not found") from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"marker map {path} is not valid TOML: {exc}") from None
+    landmarks = dict(DEFAULT_LABELS)
+    known = set(DEFAULT_LABELS)
+    for key, label in (data.get("landmarks") or {}).items():
+        if key not in known:
+            close = difflib.get_close_matches(key, known, n=1)
+            hint = f" (did you mean '{close[0]}'?)" if close else ""
+            raise ConfigError(f"marker map {path.name}: unknown landmark '{key}'{hint}")
+        if not isinstance(label, str) or not label.strip():
+            raise ConfigError(f"marker map {path.name}: landmark '{key}' needs a label string")
+        landmarks[key] = label.strip()
+    clusters = dict(DEFAULT_CLUSTERS)
+    for key, labels in (data.get("clusters") or {}).items():
+        if key not in DEFAULT_CLUSTERS:
+            raise ConfigError(f"marker map {path.name}: unknown cluster '{key}' (use e.g. right_thigh_cluster)")
+        if not isinstance(labels, list) or not all(isinstance(x, str) for x in labels) or len(labels) < 3:
+            raise ConfigError(f"marker map {path.name}: cluster '{key}' needs a list of at least 3 labels")
+        clusters[key] = tuple(labels)
+    return MarkerMap(landmarks, clusters, source=str(path))
+
+
+@dataclass(frozen=True)
+class LandmarkReport:
+    """How one landmark resolved."""
+
+    landmark: str
+    label: str | None
+    valid_pct: float
+    required: bool
+    note: str = ""
+
+
+@dataclass(frozen=True)
+class Landmarks:
+    """Named anatomical points in the internal lab frame (metres, NaN = missing)."""
+
+    trial: str
+    rate_hz: float
+    points: Mapping[str, np.ndarray]  # name -> [F, 3]
+    clusters: Mapping[str, np.ndarray] = field(default_factory=dict)  # name -> [F, k, 3]
+    labels_used: Mapping[str, str] = field(default_factory=dict)
+    report: tuple[LandmarkReport, ...] = ()
+
+    @property
+    def n_frames(self) -> int:
+        return int(next(iter(self.points.values())).shape[0]) if self.points else 0
+
+    def has(self, name: str) -> bool:
+        return name in self.points
+
+    def point(self, name: str) -> np.ndarray:
+        try:
+            return self.points[name]
+        except KeyError:
+            raise LandmarkError(f"landmark {plain_name(name)} is not available; map it in markers.toml",
+                                trial=self.trial, code="landmark_missing") from None
+
+    def replace(self, **changes) -> "Landmarks":
+        return dc_replace(self, **changes)
+
+
+def _suggest(label: str, labels: tuple[str, ...]) -> str:
+    close = difflib.get_close_matches(label, labels, n=3, cutoff=0.4)
+    lowered = {lab.lower(): lab for lab in labels}
+    close += [lowered[c] for c in difflib.get_close_matches(label.lower(), list(lowered), n=3, cutoff=0.4)
+              if lowered[c] not in close]
+    return f"; labels in the file that look close: {', '.join(close[:3])}" if close else ""
+
+
+def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *,
+                      allow_missing: tuple[str, ...] = ()) -> Landmarks:
+    """Pick each landmark's marker from the trial. Raises LandmarkError naming every required landmark not found.
+
+    ``allow_missing`` lists required landmarks that may be absent (e.g. medial markers recoverable from a static
+    trial); they are reported but not fatal.
+    """
+    marker_map = marker_map or MarkerMap()
+    index = {label: i for i, label in enumerate(trial.labels)}
+    index_ci = {label.lower(): i for i, label in enumerate(trial.labels)}
+    points: dict[str, np.ndarray] = {}
+    used: dict[str, str] = {}
+    report: list[LandmarkReport] = []
+    missing: list[str] = []
+    n = max(trial.n_frames, 1)
+    for name, label in marker_map.landmarks.items():
+        required = name in REQUIRED_LANDMARKS
+        i = index.get(label, index_ci.get(label.lower()))
+        if i is None:
+            report.append(LandmarkReport(name, None, 0.0, required, f"label '{label}' not in file"))
+            if required and name not in allow_missing:
+                missing.append(f"{plain_name(name)} (label '{label}'{_suggest(label, trial.labels)})")
+            continue
+        xyz = trial.xyz[:, i, :]
+        points[name] = xyz
+        used[name] = trial.labels[i]
+        valid = 100.0 * np.isfinite(xyz).all(axis=1).sum() / n
+        report.append(LandmarkReport(name, trial.labels[i], float(valid), required))
+    clusters: dict[str, np.ndarray] = {}
+    for name, labels in marker_map.clusters.items():
+        idx = [index.get(lab, index_ci.get(lab.lower())) for lab in labels]
+        if all(i is not None for i in idx):
+            clusters[name] = trial.xyz[:, idx, :]
+    if missing:
+        raise LandmarkError("required landmark(s) not found: " + "; ".join(missing)
+                            + f". Map them in a markers.toml ([landmarks] section) — using {marker_map.source}",
+                            trial=trial.name, code="landmark_missing")
+    return Landmarks(trial=trial.name, rate_hz=trial.rate_hz, points=points, clusters=clusters, labels_used=used,
+                     report=tuple(report))

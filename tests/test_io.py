@@ -1,0 +1,142 @@
+"""C3D reading and writing, cross-checked against the independent pure-Python `c3d` reader and ezc3d round trips.
+
+C3D facts (c3d.org user guide): >255 labels continue in POINT:LABELS2; a negative residual marks an invalid point;
+POINT:UNITS documents mm/cm/m; EVENT:TIMES are (minutes, seconds) pairs.
+"""
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+
+from hamstride.errors import FileFormatError
+from hamstride.io import check_c3d_header, read_c3d, write_c3d
+
+c3d = pytest.importorskip("c3d")
+
+
+def _walker(n_frames=200, rate=200.0, speed=8.0, n_extra=0, seed=0):
+    """A small marker cloud moving forward along +x (Z-up, mm): pelvis high, feet low, like a runner."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n_frames) / rate
+    base = np.array([[0.0, 130.0, 1000.0], [0.0, -130.0, 1000.0], [-150.0, 50.0, 1020.0], [-150.0, -50.0, 1020.0],
+                     [20.0, 60.0, 500.0], [20.0, -60.0, 500.0], [-40.0, 80.0, 60.0], [-40.0, -80.0, 60.0],
+                     [120.0, 90.0, 30.0], [120.0, -90.0, 30.0], [100.0, 60.0, 30.0], [100.0, -60.0, 30.0]])
+    extra = rng.uniform([-100, -150, 20], [100, 150, 1100], size=(n_extra, 3))
+    cloud = np.vstack([base, extra])
+    xyz = np.repeat(cloud[None], n_frames, axis=0).astype(float)
+    xyz[:, :, 0] += speed * 1000.0 * t[:, None]
+    xyz += rng.normal(0, 0.5, xyz.shape)
+    labels = [f"mk{i:03d}" for i in range(cloud.shape[0])]
+    return labels, xyz
+
+
+def _independent_read(path):
+    """Read with the `c3d` package: labels (LABELS + LABELS2...), rate, frames and point arrays."""
+    with open(path, "rb") as fh, warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        reader = c3d.Reader(fh)
+        group = reader.get("POINT")
+        labels = []
+        for name in ["LABELS"] + [f"LABELS{k}" for k in range(2, 10)]:
+            param = group.get(name)
+            if param is None:
+                break
+            labels.extend(s.strip() for s in param.string_array)
+        frames = [points.copy() for _, points, _ in reader.read_frames()]
+        return labels, reader.point_rate, np.stack(frames)
+
+
+def test_round_trip_matches_independent_reader(tmp_path):
+    labels, xyz = _walker()
+    xyz[10:14, 3, :] = np.nan  # a short gap, written as invalid
+    path = write_c3d(tmp_path / "t.c3d", labels, xyz, 200.0)
+    ind_labels, ind_rate, ind_points = _independent_read(path)
+    assert ind_labels == labels
+    assert ind_rate == pytest.approx(200.0)
+    assert ind_points.shape[0] == xyz.shape[0]
+    valid = ind_points[:, :, 3] >= 0
+    # c3d.org: residual -1 marks invalid points
+    assert not valid[10:14, 3].any() and valid[:10, 3].all()
+    assert np.allclose(ind_points[valid][:, :3], xyz[valid], atol=1e-3)  # float storage: within 1e-3 mm
+
+    trial = read_c3d(path)
+    assert trial.labels == tuple(labels)
+    assert trial.rate_hz == 200.0 and trial.n_frames == xyz.shape[0]
+    assert np.isnan(trial.xyz[10:14, 3]).all()
+    assert np.allclose(trial.xyz[valid], xyz[valid] / 1000.0, atol=1e-6)  # Z-up, +x travel: identity mapping
+    assert trial.lab.vertical_axis == "+z" and trial.lab.travel_axis == "+x" and trial.lab.overground
+
+
+def test_more_than_255_labels_read_from_labels2(tmp_path):
+    labels, xyz = _walker(n_frames=20, n_extra=288)
+    assert len(labels) == 300
+    path = write_c3d(tmp_path / "many.c3d", labels, xyz, 200.0)
+    ind_labels, _, _ = _independent_read(path)
+    assert len(ind_labels) == 300  # independent reader sees LABELS + LABELS2 too
+    assert read_c3d(path).labels == tuple(labels)
+
+
+@pytest.mark.parametrize("unit,factor", [("mm", 1.0), ("cm", 0.1), ("m", 0.001)])
+def test_units_give_same_metres(tmp_path, unit, factor):
+    labels, xyz = _walker()
+    ref = read_c3d(write_c3d(tmp_path / "mm.c3d", labels, xyz, 200.0)).xyz
+    other = read_c3d(write_c3d(tmp_path / f"{unit}.c3d", labels, xyz * factor, 200.0, units=unit)).xyz
+    assert np.allclose(other, ref, atol=1e-6)
+
+
+@pytest.mark.parametrize("mapping", ["yup", "yup_reverse", "zup_reverse"])
+def test_axes_and_travel_direction_give_same_internal_frame(tmp_path, mapping):
+    labels, xyz = _walker()
+    ref = read_c3d(write_c3d(tmp_path / "ref.c3d", labels, xyz, 200.0)).xyz
+    x, y, z = xyz[..., 0], xyz[..., 1], xyz[..., 2]
+    if mapping == "yup":  # right-handed Y-up lab: file x = forward, file y = up, file z = right
+        file_xyz = np.stack([x, z, -y], axis=-1)
+    elif mapping == "yup_reverse":  # Y-up, running toward file -x
+        file_xyz = np.stack([-x, z, y], axis=-1)
+    else:  # Z-up, running toward file -x
+        file_xyz = np.stack([-x, -y, z], axis=-1)
+    got = read_c3d(write_c3d(tmp_path / f"{mapping}.c3d", labels, file_xyz, 200.0))
+    assert np.allclose(np.linalg.det(got.lab.file_to_lab), 1.0)
+    # Same internal coordinates up to where the origin sits along travel (a reflected x origin).
+    shift = np.nanmean(got.xyz - ref, axis=(0, 1))
+    assert np.allclose(shift[1:], 0.0, atol=1e-6)
+    assert np.allclose(got.xyz - shift, ref, atol=1e-6)
+
+
+def test_events_and_subject_read(tmp_path):
+    labels, xyz = _walker()
+    events = [("Foot Strike", "Right", 0.104), ("Foot Off", "Right", 0.212), ("Initial Contact", "Left", 0.31),
+              ("toe-off", "left", 0.41), ("Custom mark", "General", 0.5)]
+    path = write_c3d(tmp_path / "ev.c3d", labels, xyz, 200.0, events=events,
+                     subject={"name": "XX01", "body_mass_kg": 72.5})
+    trial = read_c3d(path)
+    kinds = [(e.kind, e.side) for e in trial.events]
+    assert kinds == [("foot_strike", "right"), ("toe_off", "right"), ("foot_strike", "left"), ("toe_off", "left"),
+                     ("custom mark", "general")]
+    assert [e.time_s for e in trial.events] == pytest.approx([0.104, 0.212, 0.31, 0.41, 0.5], abs=1e-6)
+    assert trial.meta["subject"] == "XX01"
+    assert trial.meta["body_mass_kg"] == pytest.approx(72.5)
+
+
+@pytest.mark.parametrize("content,code", [(b"", "empty_file"), (b"hello world" * 10, "truncated"),
+                                          (b"\x02\x00" + bytes(2000), "not_c3d")])
+def test_bad_files_raise_one_line_errors(tmp_path, content, code):
+    path = tmp_path / "bad.c3d"
+    path.write_bytes(content)
+    with pytest.raises(FileFormatError) as info:
+        read_c3d(path)
+    assert info.value.code == code
+    assert "bad.c3d" in str(info.value) and "\n" not in str(info.value)
+
+
+def test_truncated_file_detected_before_native_reader(tmp_path):
+    labels, xyz = _walker()
+    path = write_c3d(tmp_path / "full.c3d", labels, xyz, 200.0)
+    data = path.read_bytes()
+    cut = tmp_path / "cut.c3d"
+    cut.write_bytes(data[: len(data) - 4000])
+    with pytest.raises(FileFormatError) as info:
+        check_c3d_header(cut)
+    assert info.value.code == "truncated" and "cut short" in info.value.message
