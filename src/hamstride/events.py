@@ -1,0 +1,491 @@
+"""Foot strikes and toe-offs from marker kinematics (no force plates), running speed, treadmill detection.
+
+Primary rule, after Handsaker et al. 2016 (J Biomech, doi 10.1016/j.jbiomech.2016.10.013):
+foot strike at the peak upward vertical acceleration of the heel or first-metatarsal marker, whichever
+comes first, inside a search window; toe-off at the peak vertical jerk of the toe marker.
+Fallback and consistency check, after Fellin et al. 2010 (J Sci Med Sport 13:646): foot strike at the
+minimum height of the lowest foot landmark (vertical velocity sign change), toe-off at peak knee
+extension (or, without knee angles, when the toe landmark leaves its floor level).
+
+Search windows come from a vertical-only contact estimate that works the same overground and on a
+treadmill: a foot is "low" when its lowest landmark is within a few centimetres of the height that
+landmark has when the foot is flat on the floor (a low percentile of its height over the trial).
+Derivatives are taken with a symmetric Savitzky-Golay kernel, so peaks are not shifted in time by
+the differentiation itself (zero phase).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Iterable, Mapping
+
+import numpy as np
+from scipy.signal import savgol_filter
+
+from .errors import EventError, LandmarkError
+
+if TYPE_CHECKING:  # pragma: no cover - typing only
+    from .landmarks import Landmarks
+
+SIDES = ("left", "right")
+STRIKE_MARKERS = ("heel", "first_metatarsal")  # Handsaker et al. 2016: heel or first metatarsal
+FOOT_MARKERS = ("heel", "first_metatarsal", "fifth_metatarsal", "toe_tip")
+PELVIS_MARKERS = ("left_asis", "right_asis", "left_psis", "right_psis")
+
+# Tuning constants (common practice unless stated).
+FLOOR_PERCENTILE = 2.0          # a foot is flat on the floor ~20 % of a sprint; 2nd percentile = floor level
+LOW_FOOT_THRESHOLD_M = 0.025    # foot "low" when its lowest landmark is < 25 mm above that landmark's floor level
+MIN_CONTACT_S = 0.03            # shorter low runs are noise / foot skimming the floor
+MERGE_GAP_S = 0.02              # low runs separated by less than this are one contact
+DERIVATIVE_WINDOW_S = 0.028     # Savitzky-Golay window for acceleration / jerk (about 7 frames at 250 Hz)
+STRIKE_SEARCH_S = (0.03, 0.06)  # search window around the start of the low run (before, after)
+TOE_OFF_SEARCH_S = (0.07, 0.02) # search window around the end of the low run (before, after)
+RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
+C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2 frames apart
+TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which the trial is on a treadmill (common practice)
+
+
+@dataclass(frozen=True)
+class GaitEvents:
+    """Foot strikes and toe-offs per side (s from the first frame, sorted)."""
+
+    foot_strikes_s: dict[str, np.ndarray]
+    toe_offs_s: dict[str, np.ndarray]
+    method: str  # 'markers' or 'c3d'
+    disagreements: tuple[str, ...] = ()
+    warnings: tuple[str, ...] = ()
+    fallback_foot_strikes_s: dict[str, np.ndarray] = field(default_factory=dict)
+    fallback_toe_offs_s: dict[str, np.ndarray] = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------------------------
+# small numerical helpers (vectorised over frames)
+# --------------------------------------------------------------------------------------------
+def _fill_nan(x: np.ndarray) -> np.ndarray:
+    """Linear interpolation over NaN gaps (ends held); the signal stage normally fills gaps already."""
+    x = np.asarray(x, dtype=float)
+    ok = np.isfinite(x)
+    if ok.all():
+        return x
+    if ok.sum() < 2:
+        raise LandmarkError("a foot landmark is missing in almost every frame; events need heel and first metatarsal")
+    idx = np.arange(x.size)
+    return np.interp(idx, idx[ok], x[ok])
+
+
+def _derivative(x: np.ndarray, order: int, rate_hz: float) -> np.ndarray:
+    """Zero-phase derivative by a symmetric Savitzky-Golay kernel (Savitzky & Golay 1964)."""
+    window = int(round(DERIVATIVE_WINDOW_S * rate_hz)) | 1
+    window = max(window, 5 if order < 3 else 7)
+    poly = 3 if order < 3 else 4
+    poly = min(poly, window - 1)
+    return savgol_filter(x, window, poly, deriv=order, delta=1.0 / rate_hz, mode="interp")
+
+
+def _runs(mask: np.ndarray) -> np.ndarray:
+    """Start (inclusive) and end (exclusive) frame of every run of True, shape [n, 2]."""
+    padded = np.concatenate(([False], mask, [False])).astype(np.int8)
+    edges = np.flatnonzero(np.diff(padded))
+    return edges.reshape(-1, 2)
+
+
+def _parabolic_peak(y: np.ndarray, i: int) -> float:
+    """Sub-frame position of a discrete peak at i by a parabola through three samples."""
+    if i <= 0 or i >= y.size - 1:
+        return float(i)
+    a, b, c = y[i - 1], y[i], y[i + 1]
+    denom = a - 2.0 * b + c
+    if denom == 0 or not np.isfinite(denom):
+        return float(i)
+    return float(i + 0.5 * (a - c) / denom)
+
+
+def _first_crossing_up(y: np.ndarray, level: float, start: int, stop: int) -> float | None:
+    """First sub-frame index in [start, stop) where y rises through level (linear interpolation)."""
+    seg = y[start:stop]
+    above = seg >= level
+    hits = np.flatnonzero(~above[:-1] & above[1:])
+    if hits.size == 0:
+        return None
+    k = hits[0]
+    y0, y1 = seg[k], seg[k + 1]
+    return float(start + k + (level - y0) / (y1 - y0))
+
+
+# --------------------------------------------------------------------------------------------
+# landmark access
+# --------------------------------------------------------------------------------------------
+def _foot_heights(lm: "Landmarks", side: str) -> dict[str, np.ndarray]:
+    """Vertical coordinate of each available foot landmark of one side, gaps filled."""
+    points = lm.points
+    missing = [m for m in STRIKE_MARKERS if f"{side}_{m}" not in points]
+    if missing:
+        raise LandmarkError(
+            f"{side} foot: landmark(s) {', '.join(side + '_' + m for m in missing)} not found; foot strikes "
+            "need the heel and first-metatarsal markers. Check the marker map.",
+            trial=getattr(lm, "trial", None),
+        )
+    return {m: _fill_nan(np.asarray(points[f"{side}_{m}"], float)[:, 2]) for m in FOOT_MARKERS if f"{side}_{m}" in points}
+
+
+def _toe_name(heights: Mapping[str, np.ndarray]) -> str:
+    return "toe_tip" if "toe_tip" in heights else "first_metatarsal"
+
+
+def _low_foot_mask(heights: Mapping[str, np.ndarray], rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """Frames where the foot is near the floor, and the lowest landmark's height above its own floor level."""
+    rel = np.stack([z - np.percentile(z, FLOOR_PERCENTILE) for z in heights.values()])
+    lowest = rel.min(axis=0)
+    mask = lowest < LOW_FOOT_THRESHOLD_M
+    # close short gaps, then drop short runs
+    runs = _runs(~mask)
+    short_gap = (runs[:, 1] - runs[:, 0]) < MERGE_GAP_S * rate_hz
+    inner = (runs[:, 0] > 0) & (runs[:, 1] < mask.size)
+    for s, e in runs[short_gap & inner]:
+        mask[s:e] = True
+    runs = _runs(mask)
+    for s, e in runs[(runs[:, 1] - runs[:, 0]) < MIN_CONTACT_S * rate_hz]:
+        mask[s:e] = False
+    return mask, lowest
+
+
+# --------------------------------------------------------------------------------------------
+# detection per side
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class _SideEvents:
+    strikes: np.ndarray   # frames (fractional), primary rule
+    toe_offs: np.ndarray
+    strikes_fallback: np.ndarray
+    toe_offs_fallback: np.ndarray
+    n_fallback_used: int
+
+
+def _strike_primary(acc: Mapping[str, np.ndarray], lo: int, hi: int) -> float | None:
+    """Earliest significant upward-acceleration peak of heel or first metatarsal in [lo, hi)."""
+    candidates = []
+    peak_heights = []
+    for name, a in acc.items():
+        seg = a[lo:hi]
+        if seg.size < 3:
+            continue
+        inner = (seg[1:-1] > seg[:-2]) & (seg[1:-1] >= seg[2:]) & (seg[1:-1] > 0)
+        peaks = np.flatnonzero(inner) + 1
+        if peaks.size == 0:
+            continue
+        best = peaks[np.argmax(seg[peaks])]
+        candidates.append((lo + best, name, seg[best]))
+        peak_heights.append(seg[best])
+    if not candidates:
+        return None
+    largest = max(peak_heights)
+    significant = [c for c in candidates if c[2] >= 0.5 * largest]
+    frame, name, _ = min(significant)
+    return _parabolic_peak(acc[name], frame)
+
+
+def _window_peak(y: np.ndarray, lo: int, hi: int) -> float | None:
+    seg = y[lo:hi]
+    if seg.size < 3:
+        return None
+    inner = (seg[1:-1] > seg[:-2]) & (seg[1:-1] >= seg[2:])
+    peaks = np.flatnonzero(inner) + 1
+    if peaks.size == 0:
+        return None
+    best = peaks[np.argmax(seg[peaks])]
+    return _parabolic_peak(y, lo + best)
+
+
+def _detect_side(
+    heights: Mapping[str, np.ndarray], rate_hz: float, knee_flexion: np.ndarray | None
+) -> tuple[_SideEvents, np.ndarray]:
+    n = next(iter(heights.values())).size
+    mask, lowest = _low_foot_mask(heights, rate_hz)
+    contacts = _runs(mask)
+    acc = {m: _derivative(heights[m], 2, rate_hz) for m in STRIKE_MARKERS}
+    toe = _toe_name(heights)
+    toe_z = heights[toe]
+    toe_jerk = _derivative(toe_z, 3, rate_hz)
+    toe_rel = toe_z - np.percentile(toe_z, FLOOR_PERCENTILE)
+    lowest_vz = _derivative(lowest, 1, rate_hz)
+
+    before_fs, after_fs = (int(round(s * rate_hz)) for s in STRIKE_SEARCH_S)
+    before_to, after_to = (int(round(s * rate_hz)) for s in TOE_OFF_SEARCH_S)
+    margin = max(before_fs, 2)
+
+    strikes, toe_offs, strikes_fb, toe_offs_fb = [], [], [], []
+    n_fallback = 0
+    for start, end in contacts:
+        # foot strike: only when the contact starts inside the trial with room for the search window
+        if start >= margin:
+            lo, hi = start - before_fs, min(start + after_fs, end, n)
+            fb = _strike_fallback(lowest, lowest_vz, lo, hi)
+            fs = _strike_primary(acc, lo, hi)
+            if fs is None:
+                fs, n_fallback = fb, n_fallback + 1
+            if fs is not None:
+                strikes.append(fs)
+                strikes_fb.append(np.nan if fb is None else fb)
+        # toe-off: only when the contact ends inside the trial
+        if end <= n - max(after_to, 2):
+            lo, hi = max(end - before_to, start + 1), min(end + after_to, n)
+            fb = _toe_off_fallback(toe_rel, knee_flexion, lo, hi, start, end)
+            to = _window_peak(toe_jerk, lo, hi)
+            if to is None:
+                to, n_fallback = fb, n_fallback + 1
+            if to is not None:
+                toe_offs.append(to)
+                toe_offs_fb.append(np.nan if fb is None else fb)
+    side = _SideEvents(
+        np.asarray(strikes, float), np.asarray(toe_offs, float),
+        np.asarray(strikes_fb, float), np.asarray(toe_offs_fb, float), n_fallback,
+    )
+    return side, mask
+
+
+def _strike_fallback(lowest: np.ndarray, lowest_vz: np.ndarray, lo: int, hi: int) -> float | None:
+    """Fellin et al. 2010 style: first frame the lowest landmark stops descending (vertical velocity sign change)."""
+    seg = lowest_vz[lo:hi]
+    hits = np.flatnonzero((seg[:-1] < 0) & (seg[1:] >= 0))
+    if hits.size == 0:
+        return None
+    k = hits[0]
+    v0, v1 = seg[k], seg[k + 1]
+    return float(lo + k + (-v0) / (v1 - v0))
+
+
+def _toe_off_fallback(
+    toe_rel: np.ndarray, knee_flexion: np.ndarray | None, lo: int, hi: int, start: int, end: int
+) -> float | None:
+    """Fellin et al. 2010: toe-off at peak knee extension; without knee angles, the toe leaving its floor level."""
+    if knee_flexion is not None:
+        k = np.asarray(knee_flexion, float)
+        # peak knee extension in the second half of the contact and just after it
+        a = start + (end - start) // 2
+        seg = k[a:hi]
+        if seg.size >= 3 and np.isfinite(seg).all():
+            i = int(np.argmin(seg))
+            return _parabolic_peak(-k, a + i)
+    return _first_crossing_up(toe_rel, 0.005, lo, hi)
+
+
+# --------------------------------------------------------------------------------------------
+# public API
+# --------------------------------------------------------------------------------------------
+def is_treadmill(lm: "Landmarks") -> bool:
+    """True when the pelvis barely moves forward (net speed < 1 m/s, common practice): a treadmill trial."""
+    pelvis = _pelvis_centre(lm)
+    ok = np.isfinite(pelvis[:, 0])
+    idx = np.flatnonzero(ok)
+    if idx.size < 2:
+        raise LandmarkError("pelvis landmarks (ASIS/PSIS) missing; cannot tell treadmill from overground",
+                            trial=getattr(lm, "trial", None))
+    duration = (idx[-1] - idx[0]) / lm.rate_hz
+    net = np.linalg.norm(pelvis[idx[-1], :2] - pelvis[idx[0], :2])
+    return bool(net / max(duration, 1e-9) < TREADMILL_MAX_PELVIS_SPEED)
+
+
+def _pelvis_centre(lm: "Landmarks") -> np.ndarray:
+    available = [np.asarray(lm.points[m], float) for m in PELVIS_MARKERS if m in lm.points]
+    if not available:
+        raise LandmarkError("no pelvis landmark (ASIS/PSIS) found; speed needs the pelvis",
+                            trial=getattr(lm, "trial", None))
+    with np.errstate(invalid="ignore"):
+        return np.nanmean(np.stack(available), axis=0) if len(available) > 1 else available[0]
+
+
+def running_speed(lm: "Landmarks", events: GaitEvents, treadmill: bool) -> float:
+    """Running speed in m/s.
+
+    Overground: horizontal displacement of the pelvis centre (mean of ASIS and PSIS) between the first and
+    last foot strike of the same leg (whole strides, so the within-stride speed fluctuation cancels).
+    Treadmill: belt speed = median horizontal speed of the stance foot (heel and first metatarsal) over the
+    middle half of each contact, where the foot moves with the belt.
+    """
+    rate = lm.rate_hz
+    if not treadmill:
+        pelvis = _pelvis_centre(lm)
+        spans = []
+        for side in SIDES:
+            fs = np.sort(np.asarray(events.foot_strikes_s.get(side, ()), float))
+            if fs.size >= 2:
+                spans.append((fs[0], fs[-1]))
+        if spans:
+            t0, t1 = max(spans, key=lambda s: s[1] - s[0])
+        else:
+            t0, t1 = 0.0, (pelvis.shape[0] - 1) / rate
+        frames = np.arange(pelvis.shape[0]) / rate
+        p0 = np.array([np.interp(t0, frames[np.isfinite(pelvis[:, k])], pelvis[np.isfinite(pelvis[:, k]), k]) for k in range(2)])
+        p1 = np.array([np.interp(t1, frames[np.isfinite(pelvis[:, k])], pelvis[np.isfinite(pelvis[:, k]), k]) for k in range(2)])
+        return float(np.linalg.norm(p1 - p0) / max(t1 - t0, 1e-9))
+    speeds = []
+    for side in SIDES:
+        names = [f"{side}_{m}" for m in STRIKE_MARKERS if f"{side}_{m}" in lm.points]
+        if not names:
+            continue
+        foot = np.mean([np.asarray(lm.points[m], float)[:, :2] for m in names], axis=0)
+        vel = np.stack([_derivative(_fill_nan(foot[:, k]), 1, rate) for k in range(2)], axis=1)
+        horizontal = np.linalg.norm(vel, axis=1)
+        fs = np.asarray(events.foot_strikes_s.get(side, ()), float)
+        to = np.asarray(events.toe_offs_s.get(side, ()), float)
+        for t_fs in fs:
+            later = to[to > t_fs]
+            if later.size == 0:
+                continue
+            a, b = t_fs * rate, later[0] * rate
+            lo, hi = int(np.ceil(a + 0.25 * (b - a))), int(np.floor(a + 0.75 * (b - a)))
+            if hi > lo:
+                speeds.append(horizontal[lo:hi + 1])
+    if not speeds:
+        raise EventError("no complete foot contact found, so the treadmill belt speed is unknown",
+                         trial=getattr(lm, "trial", None), code="few_strides")
+    return float(np.median(np.concatenate(speeds)))
+
+
+def _pair_contacts(fs: np.ndarray, to: np.ndarray) -> np.ndarray:
+    """[n, 2] (foot strike, toe-off) per contact; toe-off NaN when none falls before the next foot strike."""
+    nxt = np.append(fs[1:], np.inf)
+    j = np.searchsorted(to, fs, side="right")
+    cand = np.where(j < to.size, to[np.minimum(j, max(to.size - 1, 0))] if to.size else np.nan, np.nan)
+    cand = np.where(cand < nxt, cand, np.nan)
+    return np.stack([fs, cand], axis=1) if fs.size else np.empty((0, 2))
+
+
+def _flight_times(foot_strikes: Mapping[str, np.ndarray], toe_offs: Mapping[str, np.ndarray]) -> np.ndarray:
+    """Time from each toe-off to the other foot's next strike (s); negative = double support (no flight)."""
+    flights = []
+    for side, other in (("left", "right"), ("right", "left")):
+        contacts = _pair_contacts(np.sort(foot_strikes[other]), np.sort(toe_offs[other]))
+        for t in np.sort(foot_strikes[side]):
+            prev = contacts[contacts[:, 0] < t]
+            if prev.shape[0] and np.isfinite(prev[-1, 1]):
+                flights.append(t - prev[-1, 1])
+    return np.asarray(flights, float)
+
+
+def _check_strides(foot_strikes: Mapping[str, np.ndarray], toe_offs: Mapping[str, np.ndarray], rate_hz: float,
+                   duration_s: float, trial: str | None, min_strides: int) -> None:
+    for side in SIDES:
+        n_fs = foot_strikes[side].size
+        if n_fs - 1 < min_strides:
+            raise EventError(
+                f"too few strides: the {side} foot has {n_fs} foot strike(s) in {duration_s:.2f} s of data, so "
+                f"{max(n_fs - 1, 0)} complete stride(s) (foot strike to next foot strike); at least {min_strides} "
+                "needed per leg. Record a longer trial (capture volume covering at least two strides per leg) "
+                "or check that both feet are labelled.",
+                trial=trial, code="few_strides",
+            )
+    flights = _flight_times(foot_strikes, toe_offs)
+    if flights.size and np.median(flights) < 1.0 / rate_hz:
+        raise EventError(
+            f"no flight phase: one foot lands before or as the other leaves the ground (median "
+            f"{1000 * np.median(flights):.0f} ms from toe-off to the other foot's strike). This looks like a jog or "
+            "walk, not a sprint; the analysis needs running with a flight phase between steps.",
+            trial=trial, code="no_flight",
+        )
+
+
+def _c3d_events(c3d_events: Iterable) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    fs = {s: [] for s in SIDES}
+    to = {s: [] for s in SIDES}
+    for ev in c3d_events:
+        side = str(getattr(ev, "side", "")).lower()
+        kind = str(getattr(ev, "kind", "")).lower()
+        if side not in SIDES:
+            continue
+        if kind == "foot_strike":
+            fs[side].append(float(ev.time_s))
+        elif kind == "toe_off":
+            to[side].append(float(ev.time_s))
+    return ({s: np.unique(np.asarray(v, float)) for s, v in fs.items()},
+            {s: np.unique(np.asarray(v, float)) for s, v in to.items()})
+
+
+def _compare(label: str, side: str, reference: np.ndarray, markers: np.ndarray, rate_hz: float) -> list[str]:
+    """C3D event vs nearest marker event of the same kind and side; report > 2 frames apart."""
+    out = []
+    for t in reference:
+        if markers.size == 0:
+            out.append(f"{side} {label} at {t:.3f} s in the C3D file has no marker-detected counterpart")
+            continue
+        nearest = markers[np.argmin(np.abs(markers - t))]
+        frames = (nearest - t) * rate_hz
+        if abs(frames) > C3D_DISAGREEMENT_FRAMES:
+            out.append(
+                f"{side} {label} at {t:.3f} s (C3D) vs {nearest:.3f} s (markers): {frames:+.1f} frames "
+                f"({1000 * (nearest - t):+.0f} ms); check the C3D event labelling"
+            )
+    return out
+
+
+def detect_events(
+    lm: "Landmarks",
+    *,
+    c3d_events: Iterable = (),
+    treadmill: bool | None = None,
+    knee_flexion: Mapping[str, np.ndarray] | None = None,
+    min_strides: int = 1,
+) -> GaitEvents:
+    """Foot strikes and toe-offs of both feet.
+
+    Uses the C3D events when the file has foot strikes and toe-offs for both sides (marker events are still
+    computed and any C3D event more than 2 frames from its marker counterpart is listed in `disagreements`);
+    otherwise the marker rules (Handsaker et al. 2016 primary, Fellin et al. 2010 fallback/consistency).
+    The vertical-only rules serve overground and treadmill trials alike; `treadmill` is only reported.
+    Raises EventError 'few_strides' when a leg has fewer than `min_strides` complete strides and
+    'no_flight' when there is no flight phase between steps.
+    """
+    rate = float(lm.rate_hz)
+    trial = getattr(lm, "trial", None)
+    knee_flexion = knee_flexion or {}
+    warnings: list[str] = []
+    marker_fs: dict[str, np.ndarray] = {}
+    marker_to: dict[str, np.ndarray] = {}
+    fallback_fs: dict[str, np.ndarray] = {}
+    fallback_to: dict[str, np.ndarray] = {}
+    n_frames = 0
+    for side in SIDES:
+        heights = _foot_heights(lm, side)
+        n_frames = next(iter(heights.values())).size
+        side_events, _ = _detect_side(heights, rate, knee_flexion.get(side))
+        marker_fs[side] = side_events.strikes / rate
+        marker_to[side] = side_events.toe_offs / rate
+        fallback_fs[side] = side_events.strikes_fallback / rate
+        fallback_to[side] = side_events.toe_offs_fallback / rate
+        if side_events.n_fallback_used:
+            warnings.append(f"{side}: {side_events.n_fallback_used} event(s) found only by the fallback rule")
+        for label, prim, fb in (("foot strike", marker_fs[side], fallback_fs[side]),
+                                ("toe-off", marker_to[side], fallback_to[side])):
+            diff = np.abs(prim - fb)
+            diff = diff[np.isfinite(diff)]
+            if diff.size and np.mean(diff > RULE_DISAGREEMENT_S) > 0.25:
+                warnings.append(
+                    f"{side} {label}: the two marker rules disagree by more than {1000 * RULE_DISAGREEMENT_S:.0f} ms "
+                    f"in {np.mean(diff > RULE_DISAGREEMENT_S):.0%} of events (median {1000 * np.median(diff):.0f} ms); "
+                    "check the foot markers"
+                )
+    duration = (n_frames - 1) / rate
+
+    c3d_fs, c3d_to = _c3d_events(c3d_events)
+    use_c3d = all(c3d_fs[s].size and c3d_to[s].size for s in SIDES)
+    disagreements: list[str] = []
+    if use_c3d:
+        for side in SIDES:
+            disagreements += _compare("foot strike", side, c3d_fs[side], marker_fs[side], rate)
+            disagreements += _compare("toe-off", side, c3d_to[side], marker_to[side], rate)
+        foot_strikes, toe_offs, method = c3d_fs, c3d_to, "c3d"
+    else:
+        if any(c3d_fs[s].size or c3d_to[s].size for s in SIDES):
+            warnings.append("the C3D file has only some foot strike/toe-off events; marker events used instead")
+        foot_strikes, toe_offs, method = marker_fs, marker_to, "markers"
+    if treadmill is not None:
+        warnings = warnings  # treadmill flag does not change the vertical rules
+    _check_strides(foot_strikes, toe_offs, rate, duration, trial, min_strides)
+    return GaitEvents(
+        foot_strikes_s={s: np.sort(foot_strikes[s]) for s in SIDES},
+        toe_offs_s={s: np.sort(toe_offs[s]) for s in SIDES},
+        method=method,
+        disagreements=tuple(disagreements),
+        warnings=tuple(warnings),
+        fallback_foot_strikes_s=fallback_fs,
+        fallback_toe_offs_s=fallback_to,
+    )

@@ -1,0 +1,138 @@
+"""Strides: foot strike to the next foot strike of the same leg, time-normalised to 0..100 % (101 points).
+
+Gait-cycle convention (design.md): 0 % = foot strike, 100 % = next foot strike of the same leg; late swing
+runs from the swing-phase peak knee flexion to the next foot strike.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Mapping
+
+import numpy as np
+from scipy.interpolate import CubicSpline
+
+from .events import SIDES, GaitEvents
+
+DEFAULT_STRIDE_TIME_RANGE_S = (0.3, 0.8)  # issue 3, common practice for sprinting
+DEFAULT_CONTACT_RANGE_S = (0.06, 0.3)     # issue 3, common practice for sprinting
+
+
+@dataclass(frozen=True)
+class Stride:
+    """One stride of one leg. Times in s from the first frame; percentages of the stride (0..100)."""
+
+    side: str
+    index: int                 # 0-based, per side, in time order (invalid strides keep their index)
+    foot_strike_s: float
+    toe_off_s: float           # NaN when no toe-off was found inside the stride
+    next_foot_strike_s: float
+    start_frame: int           # first frame at or after the foot strike
+    end_frame: int             # last frame at or before the next foot strike
+    stride_time_s: float
+    contact_time_s: float
+    toe_off_pct: float
+    late_swing_start_pct: float  # swing-phase peak knee flexion; NaN without knee angles
+    valid: bool
+    reason: str                # empty when valid
+
+
+def _peak_index(y: np.ndarray, lo: int, hi: int) -> float:
+    """Sub-frame index of the maximum of y in [lo, hi] (parabolic refinement)."""
+    seg = y[lo:hi + 1]
+    if seg.size == 0 or not np.isfinite(seg).any():
+        return np.nan
+    i = lo + int(np.nanargmax(seg))
+    if lo < i < hi and np.isfinite(y[i - 1:i + 2]).all():
+        a, b, c = y[i - 1], y[i], y[i + 1]
+        denom = a - 2 * b + c
+        if denom < 0:
+            return i + 0.5 * (a - c) / denom
+    return float(i)
+
+
+def cut_strides(
+    events: GaitEvents,
+    rate_hz: float,
+    n_frames: int,
+    knee_flexion: Mapping[str, np.ndarray] | None,
+    *,
+    stride_time_range: tuple[float, float] = DEFAULT_STRIDE_TIME_RANGE_S,
+    contact_range: tuple[float, float] = DEFAULT_CONTACT_RANGE_S,
+) -> tuple[Stride, ...]:
+    """Cut every complete stride (foot strike to next foot strike of the same leg, both inside the trial).
+
+    Partial strides before the first or after the last foot strike are dropped. A stride whose stride time
+    or contact time falls outside the ranges (defaults: issue 3, common practice), or without a toe-off,
+    is kept with valid=False and a reason. Late swing starts at the peak knee flexion between toe-off and
+    the next foot strike (design.md).
+    """
+    last_time = (n_frames - 1) / rate_hz
+    knee_flexion = knee_flexion or {}
+    strides: list[Stride] = []
+    for side in SIDES:
+        fs = np.sort(np.asarray(events.foot_strikes_s.get(side, ()), float))
+        fs = fs[(fs >= 0) & (fs <= last_time)]
+        to = np.sort(np.asarray(events.toe_offs_s.get(side, ()), float))
+        knee = knee_flexion.get(side)
+        for i in range(fs.size - 1):
+            t0, t1 = fs[i], fs[i + 1]
+            inside = to[(to > t0) & (to < t1)]
+            t_to = inside[0] if inside.size else np.nan
+            stride_time = t1 - t0
+            contact = t_to - t0
+            toe_pct = 100.0 * contact / stride_time
+            late_pct = np.nan
+            if knee is not None and np.isfinite(t_to):
+                k = np.asarray(knee, float)
+                peak = _peak_index(k, int(np.ceil(t_to * rate_hz)), int(np.floor(t1 * rate_hz)))
+                late_pct = 100.0 * (peak / rate_hz - t0) / stride_time
+            reasons = []
+            if not stride_time_range[0] <= stride_time <= stride_time_range[1]:
+                reasons.append(
+                    f"stride time {stride_time:.3f} s outside {stride_time_range[0]:.2f}-{stride_time_range[1]:.2f} s"
+                    " (a missed or extra foot strike?)"
+                )
+            if not np.isfinite(t_to):
+                reasons.append("no toe-off found between the foot strikes")
+            elif len(inside) > 1:
+                reasons.append(f"{len(inside)} toe-offs between the foot strikes (an extra event?)")
+            elif not contact_range[0] <= contact <= contact_range[1]:
+                reasons.append(
+                    f"contact time {contact:.3f} s outside {contact_range[0]:.2f}-{contact_range[1]:.2f} s"
+                )
+            strides.append(Stride(
+                side=side, index=i, foot_strike_s=float(t0), toe_off_s=float(t_to), next_foot_strike_s=float(t1),
+                start_frame=int(np.ceil(t0 * rate_hz - 1e-9)), end_frame=int(np.floor(t1 * rate_hz + 1e-9)),
+                stride_time_s=float(stride_time), contact_time_s=float(contact), toe_off_pct=float(toe_pct),
+                late_swing_start_pct=float(late_pct), valid=not reasons, reason="; ".join(reasons),
+            ))
+    return tuple(strides)
+
+
+def normalise(signal: np.ndarray, stride: Stride, rate_hz: float, n_points: int = 101) -> np.ndarray:
+    """Time-normalise `signal` [F, ...] from foot strike (0 %) to next foot strike (100 %) -> [n_points, ...].
+
+    Samples at the fractional event times by a cubic spline through the stride's frames (plus two frames of
+    margin each side); columns containing NaN in that window fall back to linear interpolation.
+    """
+    x = np.asarray(signal, float)
+    n = x.shape[0]
+    t_query = np.linspace(stride.foot_strike_s, stride.next_foot_strike_s, n_points) * rate_hz  # in frames
+    if t_query[0] < 0 or t_query[-1] > n - 1:
+        raise ValueError("stride extends beyond the signal")
+    lo = max(int(np.floor(t_query[0])) - 2, 0)
+    hi = min(int(np.ceil(t_query[-1])) + 2, n - 1)
+    frames = np.arange(lo, hi + 1, dtype=float)
+    window = x[lo:hi + 1].reshape(hi - lo + 1, -1)
+    out = np.empty((n_points, window.shape[1]))
+    finite = np.isfinite(window).all(axis=0)
+    if finite.any() and window.shape[0] >= 4:
+        out[:, finite] = CubicSpline(frames, window[:, finite], axis=0)(t_query)
+    else:
+        finite[:] = False
+    if (~finite).any():
+        i0 = np.clip(np.floor(t_query).astype(int), lo, hi - 1) - lo
+        frac = (t_query - lo - i0)[:, None]
+        cols = window[:, ~finite]
+        out[:, ~finite] = cols[i0] * (1 - frac) + cols[i0 + 1] * frac
+    return out.reshape((n_points,) + x.shape[1:])
