@@ -1,0 +1,320 @@
+"""Gap filling and zero-lag low-pass filtering of marker trajectories.
+
+* Short interior gaps are bridged with a cubic spline (cubic splines suit short gaps; Howarth & Callaghan 2010).
+  The default limit of 10 frames is common practice; longer gaps and gaps at the ends stay NaN and are reported.
+* Low-pass: 2nd-order Butterworth run forward and backward (zero lag) with the dual-pass cutoff correction of
+  Robertson & Dowling 2003 (J Electromyogr Kinesiol 13:569), so the -3 dB point of the two passes is the requested
+  cutoff.
+* Cutoff: fixed, or chosen per trial by Winter's residual analysis (Winter 2009, Biomechanics and Motor Control of
+  Human Movement, sec. 3.4.4.3). One cutoff is used for every marker of a trial so that kinematics feeding inverse
+  dynamics are filtered alike (Bezodis et al., ISBS).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+from scipy.interpolate import CubicSpline
+from scipy.signal import butter, filtfilt
+
+from .errors import ConfigError
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .landmarks import Landmarks
+
+DEFAULT_MAX_GAP_FRAMES = 10  # common practice (references.md, Filtering)
+FILTER_ORDER = 2
+
+
+# --------------------------------------------------------------------------- Butterworth
+def dual_pass_correction(n_passes: int = 2, order: int = 2) -> float:
+    """Cutoff correction C for ``n_passes`` passes of an ``order``-th order Butterworth filter.
+
+    Robertson & Dowling 2003: C = (2**(1/n) - 1)**(1/4) for a 2nd-order filter (n = 2 gives 0.802); in general the
+    exponent is 1/(2*order). Design each pass at (warped) fc / C so the cascade is -3 dB at fc.
+    """
+    if n_passes < 1 or order < 1:
+        raise ValueError("n_passes and order must be at least 1")
+    return float((2.0 ** (1.0 / n_passes) - 1.0) ** (1.0 / (2 * order)))
+
+
+def design_cutoff_hz(rate_hz: float, cutoff_hz: float, n_passes: int = 2, order: int = FILTER_ORDER) -> float:
+    """Single-pass design frequency giving a cascade -3 dB point exactly at ``cutoff_hz``.
+
+    The correction is applied to the pre-warped frequency, tan(pi fc / fs) / C (Robertson & Dowling 2003), and
+    mapped back to a digital frequency for scipy's bilinear design.
+    """
+    _check_cutoff(rate_hz, cutoff_hz)
+    warped = math.tan(math.pi * cutoff_hz / rate_hz) / dual_pass_correction(n_passes, order)
+    return rate_hz / math.pi * math.atan(warped)
+
+
+def _check_cutoff(rate_hz: float, cutoff_hz: float) -> None:
+    if not (rate_hz > 0 and 0 < cutoff_hz < rate_hz / 2):
+        raise ConfigError(
+            f"low-pass cutoff {cutoff_hz:g} Hz is not between 0 and half the capture rate ({rate_hz / 2:g} Hz); "
+            "choose a smaller --cutoff"
+        )
+
+
+def _coefficients(rate_hz: float, cutoff_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    b, a = butter(FILTER_ORDER, design_cutoff_hz(rate_hz, cutoff_hz), btype="low", fs=rate_hz)
+    return b, a
+
+
+def _padlen(n_frames: int, rate_hz: float, cutoff_hz: float) -> int:
+    # Odd extension of about one cutoff period (at least scipy's default of 9 samples) limits end transients:
+    # common practice.
+    return int(min(n_frames - 1, max(3 * (FILTER_ORDER + 1), math.ceil(rate_hz / cutoff_hz))))
+
+
+def _filter_columns(x2: np.ndarray, b: np.ndarray, a: np.ndarray, rate_hz: float, cutoff_hz: float) -> np.ndarray:
+    """filtfilt of a finite [F, C] block along frames (all columns at once)."""
+    n = x2.shape[0]
+    if n < 2:
+        return x2.copy()
+    return filtfilt(b, a, x2, axis=0, padtype="odd", padlen=_padlen(n, rate_hz, cutoff_hz))
+
+
+def _runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Runs of True along axis 0 of a [F, C] mask: (column, start, stop) arrays sorted by column then start."""
+    n_frames, n_cols = mask.shape
+    padded = np.zeros((n_frames + 2, n_cols), dtype=np.int8)
+    padded[1:-1] = mask
+    edges = np.diff(padded, axis=0).T  # [C, F+1]
+    col_s, start = np.nonzero(edges == 1)
+    _, stop = np.nonzero(edges == -1)
+    return col_s, start, stop
+
+
+def _group_by_mask(mask: np.ndarray, cols: np.ndarray) -> list[np.ndarray]:
+    """Columns with identical frame masks (e.g. x, y, z of one marker) grouped so they are processed together."""
+    groups: dict[bytes, list[int]] = {}
+    for c in cols:
+        groups.setdefault(np.packbits(mask[:, c]).tobytes(), []).append(int(c))
+    return [np.asarray(g) for g in groups.values()]
+
+
+def lowpass(x: np.ndarray, rate_hz: float, cutoff_hz: float, axis: int = 0) -> np.ndarray:
+    """Zero-lag 2nd-order Butterworth low-pass (two passes, Robertson & Dowling 2003 correction) along ``axis``.
+
+    All columns are filtered in one call. NaN samples stay NaN; each finite stretch of a column containing NaN is
+    filtered on its own (stretches shorter than 3 frames are left unfiltered).
+    """
+    _check_cutoff(rate_hz, cutoff_hz)
+    arr = np.moveaxis(np.asarray(x, dtype=float), axis, 0)
+    shape = arr.shape
+    x2 = arr.reshape(shape[0], -1)
+    b, a = _coefficients(rate_hz, cutoff_hz)
+    finite = np.isfinite(x2)
+    out = np.full_like(x2, np.nan)
+    whole = finite.all(axis=0)
+    if whole.any():
+        out[:, whole] = _filter_columns(x2[:, whole], b, a, rate_hz, cutoff_hz)
+    partial = np.nonzero(~whole & finite.any(axis=0))[0]
+    for group in _group_by_mask(finite, partial):
+        _, starts, stops = _runs(finite[:, group[:1]])
+        for s, e in zip(starts, stops):
+            block = x2[s:e, group]
+            out[s:e, group] = _filter_columns(block, b, a, rate_hz, cutoff_hz) if e - s >= 3 else block
+    return np.moveaxis(out.reshape(shape), 0, axis)
+
+
+# --------------------------------------------------------------------------- gaps
+@dataclass(frozen=True)
+class Gap:
+    """A run of missing frames in one column (flat index over the trailing dimensions)."""
+
+    column: int
+    start: int  # first missing frame
+    n_frames: int
+    at_edge: bool  # touches the first or last frame (never filled: no data on one side)
+
+
+@dataclass(frozen=True)
+class GapReport:
+    filled: tuple[Gap, ...]
+    unfilled: tuple[Gap, ...]
+
+
+def find_gaps(x: np.ndarray) -> tuple[Gap, ...]:
+    """All NaN runs along axis 0 of ``x`` (any trailing shape), column = flat index of the trailing dimensions."""
+    x2 = np.asarray(x, dtype=float).reshape(len(x), -1)
+    cols, starts, stops = _runs(~np.isfinite(x2))
+    n = x2.shape[0]
+    return tuple(
+        Gap(int(c), int(s), int(e - s), bool(s == 0 or e == n)) for c, s, e in zip(cols, starts, stops)
+    )
+
+
+def fill_gaps(x: np.ndarray, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES) -> tuple[np.ndarray, GapReport]:
+    """Fill interior NaN runs of at most ``max_gap_frames`` frames with a cubic spline along axis 0.
+
+    The spline passes through every finite sample of the column (not-a-knot ends); columns with the same missing
+    frames are fitted together. Longer gaps and gaps touching the first/last frame are left NaN and reported.
+    """
+    arr = np.asarray(x, dtype=float)
+    x2 = arr.reshape(arr.shape[0], -1).copy()
+    gaps = find_gaps(x2)
+    short = [g for g in gaps if not g.at_edge and g.n_frames <= max_gap_frames]
+    long_ = [g for g in gaps if g.at_edge or g.n_frames > max_gap_frames]
+    finite = np.isfinite(x2)
+    frames = np.arange(x2.shape[0], dtype=float)
+    short_cols = np.unique([g.column for g in short]).astype(int)
+    for group in _group_by_mask(finite, short_cols):
+        ok = finite[:, group[0]]
+        to_fill = np.concatenate(
+            [np.arange(g.start, g.start + g.n_frames) for g in short if g.column == group[0]]
+        )
+        if ok.sum() < 4:  # a cubic needs four samples; leave it and report below
+            long_.extend(g for g in short if g.column in set(group.tolist()))
+            continue
+        spline = CubicSpline(frames[ok], x2[ok][:, group], axis=0)
+        x2[np.ix_(to_fill, group)] = spline(frames[to_fill])
+    filled = tuple(g for g in short if g not in set(long_))
+    return x2.reshape(arr.shape), GapReport(filled=filled, unfilled=tuple(sorted(long_, key=lambda g: (g.column, g.start))))
+
+
+# --------------------------------------------------------------------------- residual analysis
+def residuals(x: np.ndarray, rate_hz: float, cutoffs_hz: np.ndarray) -> np.ndarray:
+    """Winter's residual R(fc) = sqrt(mean((x - x_filtered)**2)) for each cutoff and column: shape [n_cutoffs, C].
+
+    Only columns without NaN are used (the rest are NaN in the result).
+    """
+    x2 = np.asarray(x, dtype=float).reshape(len(x), -1)
+    whole = np.isfinite(x2).all(axis=0)
+    out = np.full((len(cutoffs_hz), x2.shape[1]), np.nan)
+    if not whole.any():
+        return out
+    data = x2[:, whole]
+    for i, fc in enumerate(cutoffs_hz):
+        b, a = _coefficients(rate_hz, float(fc))
+        out[i, whole] = np.sqrt(np.mean((data - _filter_columns(data, b, a, rate_hz, float(fc))) ** 2, axis=0))
+    return out
+
+
+def residual_cutoff(
+    x: np.ndarray,
+    rate_hz: float,
+    fc_range: tuple[float, float] | None = None,
+    step_hz: float = 0.5,
+    fit_from_hz: float | None = None,
+) -> float:
+    """Cutoff by Winter's residual analysis (Winter 2009, sec. 3.4.4.3), one value for all columns of ``x``.
+
+    For every column: residual R(fc) over ``fc_range`` (default 2 Hz to a quarter of the capture rate), a straight
+    line fitted to the high-frequency part (default: the upper half of the range, from ``fit_from_hz``), its
+    intercept at 0 Hz taken as the noise level, and the cutoff where R first falls to that level (linear
+    interpolation between grid points). The trial's cutoff is the median over columns, so a few markers with odd
+    content cannot drag it. Columns with NaN or no variation are ignored; if none remain, the lower bound is returned.
+    """
+    lo, hi = fc_range if fc_range is not None else (2.0, 0.25 * rate_hz)
+    hi = min(hi, 0.49 * rate_hz)
+    if not 0 < lo < hi:
+        raise ConfigError(f"residual analysis range {lo:g}-{hi:g} Hz is empty at {rate_hz:g} Hz")
+    cutoffs = np.arange(lo, hi + 1e-9, step_hz)
+    x2 = np.asarray(x, dtype=float).reshape(len(x), -1)
+    usable = np.isfinite(x2).all(axis=0) & (np.ptp(np.nan_to_num(x2), axis=0) > 0)
+    if not usable.any() or x2.shape[0] < 8:
+        return float(lo)
+    res = residuals(x2[:, usable], rate_hz, cutoffs)  # [K, C]
+    fit_from = fit_from_hz if fit_from_hz is not None else 0.5 * (lo + hi)
+    in_fit = cutoffs >= fit_from
+    if in_fit.sum() < 2:
+        raise ConfigError("residual analysis needs at least two cutoffs in the fitted high-frequency range")
+    _, intercept = np.polyfit(cutoffs[in_fit], res[in_fit], 1)  # per column
+    below = res <= intercept[None, :]
+    has = below.any(axis=0)
+    first = np.argmax(below, axis=0)
+    chosen = np.full(res.shape[1], hi)
+    cols = np.nonzero(has)[0]
+    k = first[cols]
+    chosen[cols] = cutoffs[k]
+    interp = cols[k > 0]
+    if interp.size:
+        k1 = first[interp]
+        r0, r1 = res[k1 - 1, interp], res[k1, interp]
+        frac = (r0 - intercept[interp]) / np.where(r0 > r1, r0 - r1, 1.0)
+        chosen[interp] = cutoffs[k1 - 1] + np.clip(frac, 0.0, 1.0) * step_hz
+    return float(np.median(chosen))
+
+
+# --------------------------------------------------------------------------- landmarks
+@dataclass(frozen=True)
+class FilterInfo:
+    """What smoothing did to a trial, recorded with its outputs."""
+
+    cutoff_hz: float
+    method: str  # "residual" (Winter's residual analysis) or "fixed"
+    gaps_filled: int  # number of marker gaps bridged by the spline
+    long_gaps: tuple[str, ...]  # human-readable notes for gaps left missing
+    max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES
+
+
+def _stack(lm: Landmarks) -> tuple[np.ndarray, list[tuple[str, str, int, int]]]:
+    """All points and cluster markers of a trial as one [F, M, 3] array with an index of where each came from."""
+    blocks, index, m = [], [], 0
+    for name, p in lm.points.items():
+        blocks.append(np.asarray(p, dtype=float)[:, None, :])
+        index.append(("point", name, m, m + 1))
+        m += 1
+    for name, c in lm.clusters.items():
+        c = np.asarray(c, dtype=float)
+        blocks.append(c)
+        index.append(("cluster", name, m, m + c.shape[1]))
+        m += c.shape[1]
+    n_frames = blocks[0].shape[0] if blocks else 0
+    return (np.concatenate(blocks, axis=1) if blocks else np.zeros((n_frames, 0, 3))), index
+
+
+def _describe(gaps: tuple[Gap, ...], index, rate_hz: float, max_gap_frames: int) -> tuple[str, ...]:
+    seen, notes = set(), []
+    for g in gaps:
+        marker = g.column // 3
+        key = (marker, g.start, g.n_frames)
+        if key in seen:
+            continue
+        seen.add(key)
+        kind, name, m0, m1 = next(entry for entry in index if entry[2] <= marker < entry[3])
+        label = name if kind == "point" else f"{name} marker {marker - m0 + 1}"
+        why = "at the start or end of the trial" if g.at_edge else f"longer than {max_gap_frames} frames"
+        notes.append(
+            f"{label}: frames {g.start}-{g.start + g.n_frames - 1} ({g.n_frames} frames, "
+            f"{g.n_frames / rate_hz:.3f} s) left missing, {why}"
+        )
+    return tuple(notes)
+
+
+def smooth_landmarks(
+    lm: Landmarks, cutoff_hz: float | None = None, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES
+) -> tuple[Landmarks, FilterInfo]:
+    """Fill short gaps, then low-pass every point and cluster marker of a trial with one cutoff.
+
+    ``cutoff_hz=None`` chooses it by Winter's residual analysis over all marker coordinates (median of the
+    per-coordinate cutoffs, see ``residual_cutoff``); the same cutoff is applied to every marker.
+    """
+    stacked, index = _stack(lm)
+    filled, report = fill_gaps(stacked, max_gap_frames)
+    if cutoff_hz is None:
+        cutoff, method = residual_cutoff(filled, lm.rate_hz), "residual"
+    else:
+        _check_cutoff(lm.rate_hz, float(cutoff_hz))
+        cutoff, method = float(cutoff_hz), "fixed"
+    smooth = lowpass(filled, lm.rate_hz, cutoff, axis=0) if stacked.shape[1] else filled
+    points, clusters = {}, {}
+    for kind, name, m0, m1 in index:
+        if kind == "point":
+            points[name] = smooth[:, m0]
+        else:
+            clusters[name] = smooth[:, m0:m1]
+    n_filled = len({(g.column // 3, g.start) for g in report.filled})
+    info = FilterInfo(
+        cutoff_hz=cutoff,
+        method=method,
+        gaps_filled=n_filled,
+        long_gaps=_describe(report.unfilled, index, lm.rate_hz, max_gap_frames),
+        max_gap_frames=max_gap_frames,
+    )
+    return lm.replace(points=points, clusters=clusters), info

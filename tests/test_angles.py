@@ -1,0 +1,165 @@
+"""JCS angles against scipy.spatial.transform and anatomical sign checks on hand-built landmarks."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.spatial.transform import Rotation
+
+from hamstride.angles import ANGLE_NAMES, jcs_angles, joint_angles
+from hamstride.landmarks import Landmarks
+from hamstride.segments import build_body, hip_joint_centre, pelvis_frames
+
+
+def _wrap(a):
+    return (a + np.pi) % (2 * np.pi) - np.pi
+
+
+def test_jcs_matches_scipy_intrinsic_zxy_for_1000_random_rotations():
+    # Reference: scipy Rotation.as_euler("ZXY") (upper case = intrinsic), the Grood & Suntay JCS sequence
+    # e1 = proximal Z, e2 floating X, e3 = distal Y (references.md, Joint coordinate systems).
+    prox = Rotation.random(1000, random_state=11).as_matrix()
+    dist = Rotation.random(1000, random_state=12).as_matrix()
+    a_z, a_x, a_y = jcs_angles(prox, dist)
+    relative = np.einsum("fji,fjk->fik", prox, dist)
+    ref = Rotation.from_matrix(relative).as_euler("ZXY")
+    ours = np.stack([a_z, a_x, a_y], axis=1)
+    assert np.max(np.abs(_wrap(ours - ref))) < 1e-9  # issue 3 acceptance: within 1e-9 rad
+
+
+def test_jcs_recovers_known_cardan_angles():
+    # Compose R = Rz(a) Rx(b) Ry(c) with scipy and recover (a, b, c).
+    rng = np.random.default_rng(3)
+    angles = np.column_stack([rng.uniform(-3, 3, 200), rng.uniform(-1.5, 1.5, 200), rng.uniform(-3, 3, 200)])
+    dist = Rotation.from_euler("ZXY", angles).as_matrix()
+    prox = np.broadcast_to(np.eye(3), dist.shape)
+    got = np.stack(jcs_angles(prox, dist), axis=1)
+    assert np.allclose(got, angles, atol=1e-12)
+
+
+# ---------------------------------------------------------------------- hand-built standing athlete
+F = 5
+PELVIS = {  # lab: x forward, y left, z up (DEVELOPERS.md); metres, invented standing posture
+    "right_asis": (0.0, -0.125, 1.0), "left_asis": (0.0, 0.125, 1.0),
+    "right_psis": (-0.16, -0.05, 1.0), "left_psis": (-0.16, 0.05, 1.0),
+}
+
+
+def _hip_centre(side):
+    p = {k: np.array([v], float) for k, v in PELVIS.items()}
+    pelvis = pelvis_frames(p["left_asis"], p["right_asis"], p["left_psis"], p["right_psis"])
+    return hip_joint_centre(pelvis, 0.25, 0.16, side)[0]  # PW 0.25 m, PD 0.16 m from PELVIS above
+
+
+def _standing_limb(side: str) -> dict[str, np.ndarray]:
+    """Knee 0.45 m and ankle 0.85 m straight below the hip centre, foot flat pointing forward (pelvis level)."""
+    lat = 1 if side == "left" else -1  # lateral is +y on the left, -y on the right
+    hjc = _hip_centre(side)
+    return {
+        "knee": hjc - np.array([0.0, 0.0, 0.45]), "ankle": hjc - np.array([0.0, 0.0, 0.85]),
+        "lat_dir": np.array([0.0, lat, 0.0]),
+    }
+
+
+def _landmarks(limb_override: dict | None = None) -> Landmarks:
+    points = {k: np.tile(np.array(v, float), (F, 1)) for k, v in PELVIS.items()}
+    for side in ("left", "right"):
+        limb = _standing_limb(side)
+        if limb_override and side in limb_override:
+            limb.update(limb_override[side])
+        knee, ankle, lat = limb["knee"], limb["ankle"], limb["lat_dir"]
+        knee_lat = limb.get("knee_lat_dir", lat)
+        points[f"{side}_lateral_epicondyle"] = knee + 0.05 * knee_lat
+        points[f"{side}_medial_epicondyle"] = knee - 0.05 * knee_lat
+        points[f"{side}_lateral_malleolus"] = ankle + 0.035 * lat
+        points[f"{side}_medial_malleolus"] = ankle - 0.035 * lat
+        foot_fwd = limb.get("foot_fwd", np.array([1.0, 0.0, 0.0]))
+        heel = ankle + np.array([-0.05, 0.0, -0.05])
+        points[f"{side}_heel"] = heel
+        points[f"{side}_first_metatarsal"] = heel + 0.18 * foot_fwd - 0.03 * lat
+        points[f"{side}_fifth_metatarsal"] = heel + 0.18 * foot_fwd + 0.03 * lat
+        for k in list(points):
+            if k.startswith(side) and points[k].ndim == 1:
+                points[k] = np.tile(points[k], (F, 1))
+    return Landmarks(trial="hand-built", rate_hz=200.0, points=points)
+
+
+def _angles(override=None):
+    return joint_angles(build_body(_landmarks(override)))
+
+
+@pytest.mark.parametrize("side", ["left", "right"])
+def test_pure_hip_flexion_is_positive_on_both_sides(side):
+    # Anatomy: hip flexion moves the knee forward (+x); sign convention hip flexion + (references.md, ISB).
+    hjc = _hip_centre(side)
+    theta = np.radians(30)
+    knee = hjc + 0.45 * np.array([np.sin(theta), 0.0, -np.cos(theta)])
+    lat = _standing_limb(side)["lat_dir"]
+    ang = _angles({side: {"knee": knee, "ankle": knee + 0.4 * np.array([np.sin(theta), 0, -np.cos(theta)]),
+                          "lat_dir": lat}})[side]
+    assert np.allclose(ang["hip_flexion"], theta, atol=1e-9)
+    assert np.allclose(ang["hip_adduction"], 0.0, atol=1e-9)
+    assert np.allclose(ang["hip_rotation"], 0.0, atol=1e-9)
+    assert np.allclose(ang["knee_flexion"], 0.0, atol=1e-9)
+
+
+@pytest.mark.parametrize("side", ["left", "right"])
+def test_pure_hip_adduction_is_positive_on_both_sides(side):
+    # Anatomy: adduction moves the knee toward the midline: +y for the right leg, -y for the left (y = athlete's left).
+    hjc = _hip_centre(side)
+    theta = np.radians(10)
+    medial = 1.0 if side == "right" else -1.0
+    down = np.array([0.0, medial * np.sin(theta), -np.cos(theta)])
+    lat_dir = np.array([0.0, -medial * np.cos(theta), -medial * np.sin(theta)])
+    knee = hjc + 0.45 * down
+    ang = _angles({side: {"knee": knee, "ankle": knee + 0.4 * down, "lat_dir": lat_dir}})[side]
+    assert np.allclose(ang["hip_adduction"], theta, atol=1e-9)
+    assert np.allclose(ang["hip_flexion"], 0.0, atol=1e-9)
+    assert np.allclose(ang["hip_rotation"], 0.0, atol=1e-9)
+
+
+@pytest.mark.parametrize("side", ["left", "right"])
+def test_pure_hip_internal_rotation_is_positive_on_both_sides(side):
+    # Anatomy: internal rotation turns the front of the thigh (and the whole leg) toward the midline, so the
+    # lateral epicondyle moves forward on both sides.
+    theta = np.radians(15)
+    lat0 = _standing_limb(side)["lat_dir"]
+    lat = np.cos(theta) * lat0 + np.sin(theta) * np.array([1.0, 0.0, 0.0])
+    fwd = np.cos(theta) * np.array([1.0, 0.0, 0.0]) - np.sin(theta) * lat0
+    ang = _angles({side: {"lat_dir": lat, "foot_fwd": fwd}})[side]
+    assert np.allclose(ang["hip_rotation"], theta, atol=1e-9)
+    assert np.allclose(ang["hip_flexion"], 0.0, atol=1e-9)
+    assert np.allclose(ang["hip_adduction"], 0.0, atol=1e-9)
+    assert np.allclose(ang["knee_rotation"], 0.0, atol=1e-9)
+
+
+@pytest.mark.parametrize("side", ["left", "right"])
+def test_pure_knee_flexion_is_positive_on_both_sides(side):
+    # Anatomy: knee flexion moves the ankle behind the knee (-x); sign convention knee flexion + (references.md).
+    limb = _standing_limb(side)
+    theta = np.radians(60)
+    ankle = limb["knee"] + 0.4 * np.array([-np.sin(theta), 0.0, -np.cos(theta)])
+    ang = _angles({side: {"ankle": ankle}})[side]
+    assert np.allclose(ang["knee_flexion"], theta, atol=1e-9)
+    assert np.allclose(ang["hip_flexion"], 0.0, atol=1e-9)
+    assert np.allclose(ang["knee_adduction"], 0.0, atol=1e-9)
+    assert np.allclose(ang["knee_rotation"], 0.0, atol=1e-9)
+
+
+@pytest.mark.parametrize("side", ["left", "right"])
+def test_ankle_dorsiflexion_is_positive_when_the_toes_rise(side):
+    # Anatomy: dorsiflexion lifts the forefoot; sign convention ankle dorsiflexion + (references.md).
+    theta = np.radians(20)
+    neutral = _angles()[side]["ankle_dorsiflexion"]
+    fwd = np.array([np.cos(theta), 0.0, np.sin(theta)])
+    raised = _angles({side: {"foot_fwd": fwd}})[side]["ankle_dorsiflexion"]
+    assert np.allclose(raised - neutral, theta, atol=1e-9)
+    assert np.allclose(neutral, 0.0, atol=1e-9)  # plantar line horizontal, shank vertical
+
+
+def test_standing_posture_gives_zero_angles_and_all_names():
+    ang = _angles()
+    for side in ("left", "right"):
+        assert set(ang[side]) == set(ANGLE_NAMES)
+        for name in ANGLE_NAMES:
+            assert np.allclose(ang.angle(side, name), 0.0, atol=1e-9), (side, name)
+            assert ang[side][name].shape == (F,)
