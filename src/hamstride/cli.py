@@ -117,6 +117,131 @@ def muscles_cmd(
         console.print(f"wrote {plot_moment_arms(plot, dims)}")
 
 
+@app.command("analyze")
+def analyze_cmd(
+    trial: Path = typer.Argument(..., help="A C3D sprint trial."),
+    markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
+    body_mass: Optional[float] = typer.Option(None, "--body-mass", help="Body mass in kg (needed for forces and work)."),
+    sex: str = typer.Option("male", "--sex", help="male or female (segment inertia, de Leva 1996)."),
+    static: Optional[Path] = typer.Option(None, "--static", help="Static standing trial for calibration."),
+    cutoff: Optional[float] = typer.Option(None, "--cutoff", help="Low-pass cutoff in Hz (default: residual analysis)."),
+    out: Path = typer.Option(Path("reports/trial"), "--out", help="Output folder."),
+) -> None:
+    """Analyse one trial and write its strides.csv and curves.csv.
+
+    Example: `hamstride analyze demo_trials/KT07/2026-03-02_week0/sprint_01.c3d --body-mass 74 --out reports/one`
+    """
+    from .batch import table_csv, atomic_write_text
+    from .pipeline import AnalysisOptions, AthleteInfo, analyse_trial
+
+    info = AthleteInfo(athlete=trial.parent.parent.name, session=trial.parent.name, body_mass_kg=body_mass,
+                       sex="female" if sex.lower().startswith("f") else "male")
+    try:
+        result = analyse_trial(trial, AnalysisOptions(cutoff_hz=cutoff), athlete=info, static_path=static,
+                               markers=markers)
+    except HamstrideError as exc:
+        _fail(exc)
+    atomic_write_text(out / "strides.csv", table_csv(result.strides))
+    atomic_write_text(out / "curves.csv", table_csv(result.curves))
+    n = result.info.get("n_strides", {})
+    console.print(f"{trial.name}: {n.get('left', 0)} left and {n.get('right', 0)} right strides, "
+                  f"speed {result.info['speed_m_s']:.2f} m/s, cutoff {result.info['cutoff_hz']:.1f} Hz "
+                  f"({result.info['cutoff_method']}); wrote {out}/strides.csv and curves.csv")
+    for warning in result.info.get("warnings", []):
+        console.print(f"[yellow]note[/] {warning}", highlight=False)
+
+
+@app.command("squad")
+def squad_cmd(
+    root: Path = typer.Argument(..., help="Squad folder: athletes.csv and <athlete>/<session>/*.c3d."),
+    out: Path = typer.Option(Path("reports"), "--out", help="Output folder for tables and reports."),
+    jobs: Optional[int] = typer.Option(None, "--jobs", min=1, help="Worker processes (default: all cores)."),
+    markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
+    config: Optional[Path] = typer.Option(None, "--config", help="TOML config; see `hamstride config`."),
+    no_report: bool = typer.Option(False, "--no-report", help="Write tables only, no HTML/PDF reports."),
+) -> None:
+    """Analyse a whole squad: tables, flags, manifest and reports (the main job).
+
+    Example: `hamstride squad demo_trials --out reports/`
+
+    Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors.
+    """
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+    from .batch import load_config, run_squad
+
+    try:
+        cfg = load_config(config)
+    except HamstrideError as exc:
+        _fail(exc, 2)
+    with Progress(TextColumn("[bold]trials"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.fields[failed]}"),
+                  TimeElapsedColumn(), console=err_console, transient=False) as bar:
+        task = bar.add_task("trials", total=None, failed="")
+
+        def progress(done: int, total: int, failed: int) -> None:
+            bar.update(task, completed=done, total=total, failed=f"{failed} failed" if failed else "")
+
+        try:
+            run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=not no_report,
+                            progress=progress)
+        except HamstrideError as exc:
+            _fail(exc, 2)
+    counts = run.manifest["counts"]
+    console.print(f"{counts['trials']} trials ({run.analysed} analysed, {run.cached} from cache), "
+                  f"{counts['ok']} ok, {counts['failed']} failed; {counts['strides']} strides; "
+                  f"{counts['flags']} flags. Tables in {out}/" + (f", report {out}/index.html" if not no_report else ""))
+    if run.failed:
+        console.print("[bold red]failed trials:[/]")
+        for rec in run.failed:
+            console.print(f"  {rec['file']}: [{rec.get('code', 'error')}] {rec['reason']}", highlight=False)
+        raise typer.Exit(1)
+
+
+@app.command("timeline")
+def timeline_cmd(
+    root: Path = typer.Argument(..., help="Squad folder (as for `squad`)."),
+    athlete: str = typer.Option(..., "--athlete", help="Athlete code, e.g. RB12."),
+    out: Path = typer.Option(Path("reports"), "--out", help="Output folder (shares the squad cache)."),
+    markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map."),
+    config: Optional[Path] = typer.Option(None, "--config", help="TOML config; see `hamstride config`."),
+    jobs: Optional[int] = typer.Option(None, "--jobs", min=1, help="Worker processes (default: all cores)."),
+) -> None:
+    """Return-to-run timeline of one athlete across sessions (CSV, PNG and HTML).
+
+    Example: `hamstride timeline demo_trials --athlete RB12 --out reports/`
+    """
+    from .batch import build_timeline, load_config, run_squad, table_csv, atomic_write_text
+    from .report import render_timeline, safe_component
+
+    try:
+        cfg = load_config(config)
+        run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=False, athlete_filter=athlete)
+    except HamstrideError as exc:
+        _fail(exc, 2)
+    timeline = build_timeline(run, athlete)
+    if timeline.empty:
+        err_console.print(f"no analysed sessions for athlete {athlete!r} under {root}", highlight=False)
+        raise typer.Exit(1)
+    row = run.athletes[run.athletes["athlete"] == athlete]
+    info = row.iloc[0].to_dict() if not row.empty else None
+    paths = render_timeline(out, timeline, athlete, info, {"configuration": cfg.as_dict()})
+    console.print(f"timeline of {athlete}: {timeline['session'].nunique()} sessions; wrote "
+                  + ", ".join(str(p) for p in paths))
+    if run.failed:
+        raise typer.Exit(1)
+
+
+@app.command("config")
+def config_cmd() -> None:
+    """Print the default configuration (TOML) with a note on every setting.
+
+    Example: `hamstride config > my_config.toml`, edit, then `hamstride squad ROOT --config my_config.toml`
+    """
+    from .batch import default_config_toml
+
+    typer.echo(default_config_toml())
+
+
 def main() -> None:  # pragma: no cover - console entry point helper
     app()
 

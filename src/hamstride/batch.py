@@ -1,0 +1,467 @@
+"""Squad runs: discover the folder layout, analyse every trial in a process pool, cache, export, flag.
+
+Folder layout (design.md): ROOT/athletes.csv; ROOT/<athlete>/<session>/*.c3d (sessions sort by a YYYY-MM-DD prefix);
+an optional static*.c3d per session. A failing trial never stops the run: it is recorded with its code and reason.
+Results are cached per trial by file hash + configuration + software version, so a rerun only analyses what changed.
+Every output file is written atomically (temporary file in the same folder, then rename).
+"""
+from __future__ import annotations
+
+import concurrent.futures as cf
+import datetime as dt
+import hashlib
+import io as _io
+import json
+import math
+import os
+import re
+import tempfile
+import tomllib
+from dataclasses import asdict, dataclass, field, fields, replace
+from pathlib import Path
+from typing import Callable, Iterable, Mapping
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .errors import ConfigError, HamstrideError
+from .metrics import FlagConfig, compute_flags, flag_config_toml, summarise
+from .pipeline import CURVE_COLUMNS, STRIDE_COLUMNS, AnalysisOptions, AthleteInfo, analyse_trial
+
+ATHLETE_COLUMNS = ["athlete", "body_mass_kg", "height_m", "sex", "involved_side", "injury_date"]
+CACHE_DIR = ".hamstride-cache"
+DATE_PREFIX = re.compile(r"^(\d{4}-\d{2}-\d{2})")
+
+
+# --------------------------------------------------------------------------------------------- atomic files
+
+def atomic_write_bytes(path: Path, data: bytes) -> Path:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and an atomic rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    return path
+
+
+def atomic_write_text(path: Path, text: str) -> Path:
+    return atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def table_csv(df: pd.DataFrame) -> str:
+    """CSV text of a table: one header row, UTF-8, fixed float format so reruns are byte-identical."""
+    return df.to_csv(index=False, lineterminator="\n", float_format="%.6g")
+
+
+def write_table(out: Path, name: str, df: pd.DataFrame) -> list[Path]:
+    paths = [atomic_write_text(out / f"{name}.csv", table_csv(df))]
+    try:
+        import pyarrow  # noqa: F401
+    except ImportError:
+        return paths
+    buffer = _io.BytesIO()
+    df.to_parquet(buffer, index=False)
+    paths.append(atomic_write_bytes(out / f"{name}.parquet", buffer.getvalue()))
+    return paths
+
+
+# --------------------------------------------------------------------------------------------- configuration
+
+@dataclass(frozen=True)
+class RunConfig:
+    analysis: AnalysisOptions = AnalysisOptions()
+    flags: FlagConfig = FlagConfig()
+
+    def as_dict(self) -> dict:
+        return {"analysis": _jsonable(asdict(self.analysis)), "flags": _jsonable(asdict(self.flags))}
+
+
+def _jsonable(value):
+    if isinstance(value, float) and math.isnan(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    return value
+
+
+def load_config(path: str | Path | None, **overrides) -> RunConfig:
+    """Read a TOML config ([analysis] and [flags] sections); unknown keys are an error."""
+    data: dict = {}
+    if path is not None:
+        try:
+            data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise ConfigError(f"config file {path} not found") from None
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
+    analysis_data = dict(data.get("analysis") or {})
+    known = {f.name for f in fields(AnalysisOptions)}
+    unknown = set(analysis_data) - known
+    if unknown:
+        raise ConfigError(f"unknown analysis setting(s): {', '.join(sorted(unknown))}; known: {', '.join(sorted(known))}")
+    for key, value in list(analysis_data.items()):
+        if isinstance(value, list):
+            analysis_data[key] = tuple(value)
+        if key == "cutoff_hz" and isinstance(value, str) and value.lower() in ("auto", "residual"):
+            analysis_data[key] = None
+    analysis_data.update({k: v for k, v in overrides.items() if v is not None})
+    flags_data = dict(data.get("flags") or {})
+    if isinstance(flags_data.get("high_stretch_limit_lopt"), str):
+        flags_data["high_stretch_limit_lopt"] = float(flags_data["high_stretch_limit_lopt"])
+    return RunConfig(AnalysisOptions(**analysis_data), FlagConfig.from_mapping(flags_data))
+
+
+def default_config_toml() -> str:
+    a = AnalysisOptions()
+    return (
+        "# hamstride configuration (use with --config FILE). Values shown are the defaults.\n"
+        "[analysis]\n"
+        "# low-pass cutoff in Hz for all markers; \"auto\" = Winter's residual analysis per trial\n"
+        "cutoff_hz = \"auto\"\n"
+        f"# longest marker gap (frames) filled by a cubic spline (common practice: about 10)\n"
+        f"max_gap_frames = {a.max_gap_frames}\n"
+        "# hip joint centre: \"harrington\" (Harrington et al. 2007) or \"bell\" (Bell et al. 1990)\n"
+        f"hip_method = \"{a.hip_method}\"\n"
+        "# plausible stride time and foot contact time in s (common practice); others are rejected with a reason\n"
+        f"stride_time_range_s = [{a.stride_time_range_s[0]}, {a.stride_time_range_s[1]}]\n"
+        f"contact_range_s = [{a.contact_range_s[0]}, {a.contact_range_s[1]}]\n"
+        "# Monte Carlo samples of model geometry and architecture for the uncertainty band (0 = off)\n"
+        f"monte_carlo_samples = {a.monte_carlo_samples}\n"
+        "# scale hamstring maximum forces to body mass (athletes are stronger than the cadaver data)\n"
+        f"scale_force_to_mass = {'true' if a.scale_force_to_mass else 'false'}\n\n"
+        + flag_config_toml()
+    )
+
+
+# --------------------------------------------------------------------------------------------- discovery
+
+@dataclass(frozen=True)
+class TrialJob:
+    path: str
+    athlete: str
+    session: str
+    static_path: str | None
+    info: AthleteInfo
+    markers: str | None = None
+
+
+def session_date(session: str) -> dt.date | None:
+    match = DATE_PREFIX.match(session)
+    if not match:
+        return None
+    try:
+        return dt.date.fromisoformat(match.group(1))
+    except ValueError:
+        return None
+
+
+def read_athletes(root: Path) -> pd.DataFrame:
+    path = Path(root) / "athletes.csv"
+    if not path.exists():
+        return pd.DataFrame(columns=ATHLETE_COLUMNS)
+    try:
+        df = pd.read_csv(path, dtype={"athlete": str})
+    except Exception as exc:
+        raise ConfigError(f"athletes.csv could not be read: {exc}") from None
+    missing = [c for c in ("athlete",) if c not in df.columns]
+    if missing:
+        raise ConfigError(f"athletes.csv needs the columns {', '.join(ATHLETE_COLUMNS)}; missing: {', '.join(missing)}")
+    for col in ATHLETE_COLUMNS:
+        if col not in df.columns:
+            df[col] = np.nan
+    df["athlete"] = df["athlete"].astype(str).str.strip()
+    df["involved_side"] = df["involved_side"].fillna("none").astype(str).str.strip().str.lower()
+    df["sex"] = df["sex"].fillna("").astype(str).str.strip().str.lower()
+    return df[ATHLETE_COLUMNS + [c for c in df.columns if c not in ATHLETE_COLUMNS]]
+
+
+def _sex(value) -> str:
+    text = str(value).strip().lower()
+    return "female" if text.startswith("f") else "male"
+
+
+def discover_squad(root: str | Path, markers: str | Path | None = None) -> tuple[pd.DataFrame, list[TrialJob]]:
+    """athletes.csv and every sprint trial under ROOT/<athlete>/<session>/ (static*.c3d are calibration trials)."""
+    root = Path(root)
+    if not root.is_dir():
+        raise ConfigError(f"squad folder {root} does not exist")
+    athletes = read_athletes(root)
+    by_code = {r["athlete"]: r for _, r in athletes.iterrows()}
+    jobs: list[TrialJob] = []
+    for athlete_dir in sorted(p for p in root.iterdir() if p.is_dir() and not p.name.startswith(".")):
+        sessions = sorted((p for p in athlete_dir.iterdir() if p.is_dir() and not p.name.startswith(".")),
+                          key=lambda p: (session_date(p.name) or dt.date.max, p.name))
+        for session_dir in sessions:
+            files = sorted(p for p in session_dir.iterdir() if p.is_file() and p.suffix.lower() == ".c3d")
+            statics = [p for p in files if p.name.lower().startswith("static")]
+            row = by_code.get(athlete_dir.name)
+            mass = _float(row["body_mass_kg"]) if row is not None else None
+            height = _float(row["height_m"]) if row is not None else None
+            info = AthleteInfo(athlete=athlete_dir.name, session=session_dir.name, body_mass_kg=mass,
+                               height_m=height, sex=_sex(row["sex"]) if row is not None else "male")
+            for trial in files:
+                if trial in statics:
+                    continue
+                jobs.append(TrialJob(str(trial), athlete_dir.name, session_dir.name,
+                                     str(statics[0]) if statics else None, info, str(markers) if markers else None))
+    return athletes, jobs
+
+
+def _float(value) -> float | None:
+    try:
+        f = float(value)
+    except (TypeError, ValueError):
+        return None
+    return f if np.isfinite(f) and f > 0 else None
+
+
+# --------------------------------------------------------------------------------------------- running
+
+def file_sha256(path: str | Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _cache_key(job: TrialJob, config: RunConfig, sha: str, static_sha: str | None, markers_sha: str | None) -> str:
+    payload = json.dumps({"sha": sha, "static": static_sha, "markers": markers_sha, "version": __version__,
+                          "analysis": _jsonable(asdict(config.analysis)), "athlete": _jsonable(asdict(job.info))},
+                         sort_keys=True)
+    return hashlib.sha256(payload.encode()).hexdigest()[:32]
+
+
+def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
+    """Worker: analyse one trial; never raises (errors become a failure record)."""
+    try:
+        result = analyse_trial(job.path, options, athlete=job.info, static_path=job.static_path, markers=job.markers)
+        return {"status": "ok", "strides": table_csv(result.strides), "curves": table_csv(result.curves),
+                "info": _jsonable(dict(result.info))}
+    except HamstrideError as exc:
+        return {"status": "failed", "code": exc.code, "reason": exc.message}
+    except Exception as exc:  # an unexpected bug must not stop the squad; record it plainly
+        return {"status": "failed", "code": "internal_error",
+                "reason": f"trial {Path(job.path).name}: unexpected {type(exc).__name__}: {exc}"}
+
+
+@dataclass
+class SquadRun:
+    out: Path
+    manifest: dict
+    strides: pd.DataFrame
+    summary: pd.DataFrame
+    flags: pd.DataFrame
+    athletes: pd.DataFrame
+    failed: list[dict] = field(default_factory=list)
+    analysed: int = 0
+    cached: int = 0
+    report_paths: list[Path] = field(default_factory=list)
+
+
+def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
+              on_done: Callable[[TrialJob, str, dict], None]) -> None:
+    """Run jobs in a process pool; a worker that dies (native crash) becomes a failed-trial record."""
+    if not todo:
+        return
+    if jobs <= 1:
+        for job, key in todo:
+            on_done(job, key, _analyse_job(job, options))
+        return
+    pending = list(todo)
+    while pending:
+        crashed: list[tuple[TrialJob, str]] = []
+        with cf.ProcessPoolExecutor(max_workers=min(jobs, len(pending))) as pool:
+            futures = {pool.submit(_analyse_job, job, options): (job, key) for job, key in pending}
+            for future in cf.as_completed(futures):
+                job, key = futures[future]
+                try:
+                    on_done(job, key, future.result())
+                except cf.process.BrokenProcessPool:
+                    crashed.append((job, key))
+        if not crashed:
+            break
+        # Retry the trials caught in a crashed pool one at a time, so only the real culprit fails.
+        pending = []
+        for job, key in crashed:
+            with cf.ProcessPoolExecutor(max_workers=1) as single:
+                try:
+                    on_done(job, key, single.submit(_analyse_job, job, options).result())
+                except cf.process.BrokenProcessPool:
+                    on_done(job, key, {"status": "failed", "code": "reader_crash",
+                                       "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
+                                                 "it is probably corrupt; re-export it from the capture software"})
+
+
+def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, markers: str | Path | None = None,
+              config: RunConfig = RunConfig(), report: bool = True, athlete_filter: str | None = None,
+              progress: Callable[[int, int, int], None] | None = None) -> SquadRun:
+    """Analyse a whole squad folder and write the tables, manifest and (optionally) reports under ``out``."""
+    root, out = Path(root), Path(out)
+    athletes, all_jobs = discover_squad(root, markers)
+    if athlete_filter is not None:
+        all_jobs = [j for j in all_jobs if j.athlete == athlete_filter]
+    jobs = jobs or os.cpu_count() or 1
+    cache = out / CACHE_DIR
+    cache.mkdir(parents=True, exist_ok=True)
+    markers_sha = file_sha256(markers) if markers else None
+    records: dict[str, dict] = {}
+    todo: list[tuple[TrialJob, str]] = []
+    static_shas: dict[str, str] = {}
+    n_cached = 0
+    for job in all_jobs:
+        sha = file_sha256(job.path)
+        static_sha = None
+        if job.static_path:
+            static_sha = static_shas.setdefault(job.static_path, file_sha256(job.static_path))
+        key = _cache_key(job, config, sha, static_sha, markers_sha)
+        records[job.path] = {"file": _rel(job.path, root), "athlete": job.athlete, "session": job.session,
+                             "sha256": sha, "static_file": _rel(job.static_path, root) if job.static_path else None,
+                             "cache_key": key}
+        if (cache / f"{key}.json").exists():
+            n_cached += 1
+        else:
+            todo.append((job, key))
+    done = [n_cached]
+    failures = [0]
+    total = len(all_jobs)
+    if progress:
+        progress(done[0], total, failures[0])
+
+    def on_done(job: TrialJob, key: str, result: dict) -> None:
+        if result["status"] == "ok":
+            atomic_write_text(cache / f"{key}.strides.csv", result["strides"])
+            atomic_write_text(cache / f"{key}.curves.csv", result["curves"])
+        else:
+            failures[0] += 1
+        meta = {k: v for k, v in result.items() if k not in ("strides", "curves")}
+        atomic_write_text(cache / f"{key}.json", json.dumps(meta, sort_keys=True, indent=1))
+        done[0] += 1
+        if progress:
+            progress(done[0], total, failures[0])
+
+    _run_pool(todo, config.analysis, jobs, on_done)
+
+    stride_tables, failed = [], []
+    curve_files: list[Path] = []
+    for job in all_jobs:
+        rec = records[job.path]
+        meta = json.loads((cache / f"{rec['cache_key']}.json").read_text(encoding="utf-8"))
+        rec["status"] = meta["status"]
+        if meta["status"] == "ok":
+            rec["reason"] = ""
+            rec["warnings"] = meta.get("info", {}).get("warnings", [])
+            rec["cutoff_hz"] = meta.get("info", {}).get("cutoff_hz")
+            rec["speed_m_s"] = meta.get("info", {}).get("speed_m_s")
+            rec["n_strides"] = meta.get("info", {}).get("n_strides")
+            stride_tables.append(pd.read_csv(cache / f"{rec['cache_key']}.strides.csv", dtype={"athlete": str,
+                                                                                               "session": str,
+                                                                                               "trial": str}))
+            curve_files.append(cache / f"{rec['cache_key']}.curves.csv")
+        else:
+            rec["code"] = meta.get("code", "error")
+            rec["reason"] = meta.get("reason", "")
+            failed.append(rec)
+    strides = pd.concat(stride_tables, ignore_index=True) if stride_tables else pd.DataFrame(columns=STRIDE_COLUMNS)
+    strides = strides.sort_values(["athlete", "session", "trial", "side", "stride", "muscle"], kind="stable")
+    summary = summarise(strides, athletes)
+    flags = compute_flags(summary, athletes, config.flags)
+
+    out.mkdir(parents=True, exist_ok=True)
+    write_table(out, "strides", strides)
+    _stream_curves(out / "curves.csv", curve_files)
+    write_table(out, "summary", summary)
+    write_table(out, "flags", flags)
+    manifest = {
+        "software": "hamstride", "version": __version__, "squad": str(root),
+        "configuration": config.as_dict(), "markers": str(markers) if markers else None,
+        "athletes_csv_sha256": file_sha256(root / "athletes.csv") if (root / "athletes.csv").exists() else None,
+        "counts": {"trials": total, "ok": total - len(failed), "failed": len(failed),
+                   "strides": int(strides.drop_duplicates(["athlete", "session", "trial", "side", "stride"]).shape[0])
+                   if not strides.empty else 0, "flags": int(len(flags))},
+        "inputs": [records[j.path] for j in all_jobs],
+    }
+    atomic_write_text(out / "manifest.json", json.dumps(_jsonable(manifest), indent=1, sort_keys=False))
+    run = SquadRun(out, manifest, strides, summary, flags, athletes, failed, analysed=len(todo), cached=n_cached)
+    if report:
+        from .report import render_squad
+        run_info = {"version": __version__, "configuration": config.as_dict(), "failed": failed,
+                    "tendon_note": _tendon_note()}
+        run.report_paths = render_squad(out, strides, _read_curves(curve_files), flags, summary, athletes, run_info)
+    return run
+
+
+def _tendon_note() -> str:
+    try:
+        from .muscles import TENDON_SLACK_NOTE
+        return TENDON_SLACK_NOTE
+    except ImportError:
+        return ("Fibre length relative to optimal length (l/l_opt) depends on the model's assumed tendon slack "
+                "length; compare within an athlete and squad rather than as an absolute.")
+
+
+def _rel(path: str | None, root: Path) -> str | None:
+    if path is None:
+        return None
+    try:
+        return str(Path(path).relative_to(root))
+    except ValueError:
+        return str(path)
+
+
+def _stream_curves(target: Path, files: list[Path]) -> None:
+    """Concatenate per-trial curve CSVs into one file without holding them in memory, atomically."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".partial", dir=target.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write((",".join(CURVE_COLUMNS) + "\n").encode())
+            for path in files:
+                with open(path, "rb") as src:
+                    src.readline()
+                    for chunk in iter(lambda: src.read(1 << 20), b""):
+                        fh.write(chunk)
+        os.replace(tmp, target)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def _read_curves(files: list[Path]) -> pd.DataFrame:
+    frames = [pd.read_csv(p, dtype={"athlete": str, "session": str, "trial": str}) for p in files]
+    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=CURVE_COLUMNS)
+
+
+# --------------------------------------------------------------------------------------------- timeline
+
+def build_timeline(run: SquadRun, athlete: str) -> pd.DataFrame:
+    """Sessions of one athlete in date order: speed, peak strain, l/l_opt, negative work per side, LSI, days since injury."""
+    summary = run.summary[run.summary["athlete"] == athlete].copy()
+    if summary.empty:
+        return summary
+    summary["date"] = [str(session_date(s) or "") for s in summary["session"]]
+    injury = None
+    row = run.athletes[run.athletes["athlete"] == athlete]
+    if not row.empty and isinstance(row.iloc[0].get("injury_date"), str):
+        try:
+            injury = dt.date.fromisoformat(row.iloc[0]["injury_date"].strip())
+        except ValueError:
+            injury = None
+    summary["days_since_injury"] = [((session_date(s) - injury).days if injury and session_date(s) else np.nan)
+                                    for s in summary["session"]]
+    cols = ["athlete", "session", "date", "days_since_injury", "side", "muscle", "n_strides", "speed_m_s",
+            "peak_strain_pct_mean", "peak_strain_pct_sd", "peak_fibre_length_lopt_mean", "negative_work_j_mean",
+            "peak_strain_symmetry_index_pct", "peak_strain_lsi_pct", "negative_work_lsi_pct"]
+    summary = summary.sort_values(["date", "session", "muscle", "side"], kind="stable")
+    return summary[[c for c in cols if c in summary.columns]].reset_index(drop=True)

@@ -1,0 +1,261 @@
+"""Per-stride peaks, per-side summaries, left/right symmetry and flags.
+
+Symmetry index (Robinson et al. 1987, from memory): SI = (R - L) / (0.5 (R + L)) x 100 %, zero when symmetric.
+Limb symmetry index: LSI = involved / uninvolved x 100 %; 90 % is the common return-to-sport line (a side-to-side
+difference under 10 %, MSSE 2019;51:1091). Bourne et al. 2015 (Am J Sports Med 43:2663) found eccentric knee-flexor
+imbalances of 15 % and 20 % raised hamstring strain risk 2.4- and 3.4-fold.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, fields
+from typing import Iterable, Mapping
+
+import numpy as np
+import pandas as pd
+
+SUMMARY_METRICS = ("peak_strain_pct", "peak_fibre_length_lopt", "peak_lengthening_velocity_lopt_per_s",
+                   "negative_work_j", "peak_force_n")
+SYMMETRY_METRICS = {"peak_strain": "peak_strain_pct", "peak_fibre_length": "peak_fibre_length_lopt",
+                    "negative_work": "negative_work_j"}
+LSI_METRICS = {"peak_strain": "peak_strain_pct", "negative_work": "negative_work_j"}
+FLAG_COLUMNS = ["athlete", "session", "side", "muscle", "flag", "value", "threshold", "message"]
+MUSCLE_NAMES = {"bflh": "biceps femoris long head", "st": "semitendinosus", "sm": "semimembranosus",
+                "bfsh": "biceps femoris short head"}
+
+
+@dataclass(frozen=True)
+class FlagConfig:
+    """Flag thresholds. Defaults are documented in `hamstride config`."""
+
+    asymmetry_pct: float = 10.0  # |SI| above this: side_asymmetry (common practice from strength testing, MSSE 2019)
+    asymmetry_confidence_z: float = 2.0  # the left/right difference must also exceed z standard errors of stride noise
+    guarding_lsi_pct: float = 90.0  # involved-side peak stretch below this % of the other side: involved_side_guarding
+    high_stretch_limit_lopt: float = float("nan")  # fixed limit on peak l/l_opt; NaN = use the squad distribution
+    high_stretch_squad_z: float = 2.0  # above squad mean + z SD (per muscle) when no fixed limit is set
+    high_stretch_min_athletes: int = 4  # squad distribution needs at least this many athletes
+    min_strides: int = 3  # fewer valid strides on a side: few_strides
+    speed_low_fraction: float = 0.9  # session speed below this fraction of the athlete's best: speed_low
+    muscles: tuple[str, ...] = ("bflh", "st", "sm")  # muscles the stretch flags look at
+
+    @classmethod
+    def from_mapping(cls, data: Mapping[str, object]) -> "FlagConfig":
+        known = {f.name for f in fields(cls)}
+        unknown = set(data) - known
+        if unknown:
+            from .errors import ConfigError
+            raise ConfigError(f"unknown flag setting(s): {', '.join(sorted(unknown))}; known: {', '.join(sorted(known))}")
+        values = {k: (tuple(v) if isinstance(v, list) else v) for k, v in data.items()}
+        return cls(**values)
+
+
+def symmetry_index(right: float, left: float) -> float:
+    """SI = (R - L) / (0.5 (R + L)) x 100 (Robinson et al. 1987, from memory); NaN when undefined."""
+    denom = 0.5 * (right + left)
+    if not np.isfinite(denom) or denom == 0:
+        return float("nan")
+    return float((right - left) / denom * 100.0)
+
+
+def limb_symmetry_index(involved: float, uninvolved: float) -> float:
+    """LSI = involved / uninvolved x 100 %."""
+    if not np.isfinite(uninvolved) or uninvolved == 0 or not np.isfinite(involved):
+        return float("nan")
+    return float(involved / uninvolved * 100.0)
+
+
+def peak_in_window(values: np.ndarray, start: int, stop: int) -> tuple[float, int]:
+    """Maximum of ``values[start:stop+1]`` and its index (NaN, -1 when the window holds no finite value)."""
+    window = values[start:stop + 1]
+    if window.size == 0 or not np.isfinite(window).any():
+        return float("nan"), -1
+    i = int(np.nanargmax(window))
+    return float(window[i]), start + i
+
+
+def _cv(sd: float, mean: float) -> float:
+    return float(sd / abs(mean) * 100.0) if np.isfinite(mean) and mean != 0 and np.isfinite(sd) else float("nan")
+
+
+def summarise(strides: pd.DataFrame, athletes: pd.DataFrame | None = None) -> pd.DataFrame:
+    """One row per athlete/session/side/muscle: n, speed, mean/SD/CV of each metric, SI and LSI."""
+    keys = ["athlete", "session", "side", "muscle"]
+    if strides.empty:
+        return pd.DataFrame(columns=keys + ["n_strides", "speed_m_s"])
+    rows = []
+    for key, group in strides.groupby(keys, sort=True):
+        row = dict(zip(keys, key))
+        row["n_strides"] = int(len(group))
+        row["n_trials"] = int(group["trial"].nunique())
+        row["speed_m_s"] = float(group["speed_m_s"].mean())
+        for metric in SUMMARY_METRICS:
+            vals = group[metric].to_numpy(dtype=float) if metric in group else np.array([np.nan])
+            finite = vals[np.isfinite(vals)]
+            mean = float(finite.mean()) if finite.size else float("nan")
+            sd = float(finite.std(ddof=1)) if finite.size > 1 else float("nan")
+            row[f"{metric}_mean"] = mean
+            row[f"{metric}_sd"] = sd
+            row[f"{metric}_cv_pct"] = _cv(sd, mean)
+        for band in ("peak_strain_p5_pct", "peak_strain_p95_pct", "peak_fibre_length_lopt_p5",
+                     "peak_fibre_length_lopt_p95"):
+            row[f"{band}_mean"] = float(group[band].mean()) if band in group else float("nan")
+        rows.append(row)
+    summary = pd.DataFrame(rows)
+    involved = {}
+    if athletes is not None and not athletes.empty and "involved_side" in athletes:
+        involved = {str(a): str(s).strip().lower() for a, s in zip(athletes["athlete"], athletes["involved_side"])}
+    for name, metric in SYMMETRY_METRICS.items():
+        summary[f"{name}_symmetry_index_pct"] = float("nan")
+    for name in LSI_METRICS:
+        summary[f"{name}_lsi_pct"] = float("nan")
+    for (athlete, session, muscle), group in summary.groupby(["athlete", "session", "muscle"], sort=False):
+        by_side = {r.side: r for r in group.itertuples()}
+        if "left" not in by_side or "right" not in by_side:
+            continue
+        for name, metric in SYMMETRY_METRICS.items():
+            si = symmetry_index(getattr(by_side["right"], f"{metric}_mean"), getattr(by_side["left"], f"{metric}_mean"))
+            summary.loc[group.index, f"{name}_symmetry_index_pct"] = si
+        side = involved.get(str(athlete), "none")
+        if side in ("left", "right"):
+            other = "left" if side == "right" else "right"
+            for name, metric in LSI_METRICS.items():
+                lsi = limb_symmetry_index(getattr(by_side[side], f"{metric}_mean"),
+                                          getattr(by_side[other], f"{metric}_mean"))
+                summary.loc[group.index, f"{name}_lsi_pct"] = lsi
+    return summary.reset_index(drop=True)
+
+
+def _real_difference(a: pd.Series, b: pd.Series, z: float) -> tuple[bool, float]:
+    """Is mean(a) - mean(b) larger than z standard errors of stride-to-stride noise (Welch)? Returns (real, SE)."""
+    sa, sb = a.get("sd", np.nan), b.get("sd", np.nan)
+    na, nb = max(int(a.get("n", 1)), 1), max(int(b.get("n", 1)), 1)
+    sa = 0.0 if not np.isfinite(sa) else sa
+    sb = 0.0 if not np.isfinite(sb) else sb
+    se = math.sqrt(sa * sa / na + sb * sb / nb)
+    diff = abs(a["mean"] - b["mean"])
+    return bool(diff > z * se), se
+
+
+def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: FlagConfig = FlagConfig()
+                  ) -> pd.DataFrame:
+    """Flags with value, threshold and a plain-language message (one row each)."""
+    rows: list[dict] = []
+    if summary.empty:
+        return pd.DataFrame(columns=FLAG_COLUMNS)
+    involved = {}
+    if athletes is not None and not athletes.empty and "involved_side" in athletes:
+        involved = {str(a): str(s).strip().lower() for a, s in zip(athletes["athlete"], athletes["involved_side"])}
+
+    def add(athlete, session, side, muscle, flag, value, threshold, message):
+        rows.append(dict(athlete=athlete, session=session, side=side, muscle=muscle, flag=flag,
+                         value=round(float(value), 3), threshold=round(float(threshold), 3), message=message))
+
+    # few_strides: per side (reported once per athlete/session/side).
+    for (athlete, session, side), group in summary.groupby(["athlete", "session", "side"], sort=True):
+        n = int(group["n_strides"].min())
+        if n < config.min_strides:
+            add(athlete, session, side, "", "few_strides", n, config.min_strides,
+                f"only {n} valid stride(s) on the {side} side (at least {config.min_strides} wanted): results for this "
+                "side are weak; record more sprint trials or check the foot markers.")
+
+    # speed_low: session speed against the athlete's best session.
+    speeds = summary.groupby(["athlete", "session"], sort=True)["speed_m_s"].mean()
+    for athlete, per_session in speeds.groupby(level=0, sort=True):
+        best = per_session.max()
+        for (_, session), speed in per_session.items():
+            if np.isfinite(speed) and np.isfinite(best) and speed < config.speed_low_fraction * best:
+                add(athlete, session, "", "", "speed_low", speed, config.speed_low_fraction * best,
+                    f"running speed {speed:.1f} m/s is below {config.speed_low_fraction:.0%} of this athlete's best "
+                    f"({best:.1f} m/s): hamstring stretch rises with speed, so comparisons with faster sessions are weak.")
+
+    stretch = summary[summary["muscle"].isin(config.muscles)]
+    for (athlete, session, muscle), group in stretch.groupby(["athlete", "session", "muscle"], sort=True):
+        by_side = {r["side"]: r for _, r in group.iterrows()}
+        if "left" not in by_side or "right" not in by_side:
+            continue
+        right, left = by_side["right"], by_side["left"]
+        mname = MUSCLE_NAMES.get(muscle, muscle)
+        for label, metric, what in (("peak stretch", "peak_strain_pct", "late-swing peak strain"),
+                                    ("negative work", "negative_work_j", "lengthening (negative) work")):
+            r = {"mean": right[f"{metric}_mean"], "sd": right[f"{metric}_sd"], "n": right["n_strides"]}
+            l_ = {"mean": left[f"{metric}_mean"], "sd": left[f"{metric}_sd"], "n": left["n_strides"]}
+            if not (np.isfinite(r["mean"]) and np.isfinite(l_["mean"])):
+                continue
+            si = symmetry_index(r["mean"], l_["mean"])
+            real, se = _real_difference(r, l_, config.asymmetry_confidence_z)
+            if np.isfinite(si) and abs(si) > config.asymmetry_pct and real:
+                lower = "right" if si < 0 else "left"
+                add(athlete, session, lower, muscle, "side_asymmetry", si, config.asymmetry_pct,
+                    f"{mname}: {what} differs between legs by {abs(si):.0f}% (symmetry index; right "
+                    f"{r['mean']:.3g} vs left {l_['mean']:.3g}), lower on the {lower} side; beyond the "
+                    f"{config.asymmetry_pct:.0f}% line and beyond stride-to-stride variation "
+                    f"(difference > {config.asymmetry_confidence_z:g} standard errors).")
+        side = involved.get(str(athlete), "none")
+        if side in ("left", "right"):
+            other = "left" if side == "right" else "right"
+            inv = {"mean": by_side[side]["peak_strain_pct_mean"], "sd": by_side[side]["peak_strain_pct_sd"],
+                   "n": by_side[side]["n_strides"]}
+            uni = {"mean": by_side[other]["peak_strain_pct_mean"], "sd": by_side[other]["peak_strain_pct_sd"],
+                   "n": by_side[other]["n_strides"]}
+            lsi = limb_symmetry_index(inv["mean"], uni["mean"])
+            real, _ = _real_difference(inv, uni, config.asymmetry_confidence_z)
+            if np.isfinite(lsi) and lsi < config.guarding_lsi_pct and real:
+                add(athlete, session, side, muscle, "involved_side_guarding", lsi, config.guarding_lsi_pct,
+                    f"{mname}: the involved ({side}) side stretches to only {lsi:.0f}% of the other side in late swing "
+                    f"(limb symmetry index; {config.guarding_lsi_pct:.0f}% is the usual return-to-run line). A "
+                    "protective pattern is common while returning from a strain; review with the clinician.")
+
+    # high_stretch: fixed limit, or above the squad distribution of athlete means (per muscle).
+    per_athlete = stretch.groupby(["athlete", "session", "side", "muscle"], sort=True)["peak_fibre_length_lopt_mean"].mean()
+    for muscle in config.muscles:
+        if muscle not in per_athlete.index.get_level_values("muscle"):
+            continue
+        values = per_athlete.xs(muscle, level="muscle")
+        if np.isfinite(config.high_stretch_limit_lopt):
+            limit, how = config.high_stretch_limit_lopt, "the configured limit"
+        else:
+            athlete_means = values.groupby(level="athlete").mean()
+            if athlete_means.notna().sum() < config.high_stretch_min_athletes:
+                continue
+            limit = float(athlete_means.mean() + config.high_stretch_squad_z * athlete_means.std(ddof=1))
+            how = f"the squad mean + {config.high_stretch_squad_z:g} SD"
+        for (athlete, session, side), value in values.items():
+            if np.isfinite(value) and value > limit:
+                add(athlete, session, side, muscle, "high_stretch", value, limit,
+                    f"{MUSCLE_NAMES.get(muscle, muscle)}: late-swing peak fibre length reaches {value:.2f} of optimal "
+                    f"length, above {how} ({limit:.2f}). Fibre length relative to optimal depends on the model's "
+                    "assumed tendon slack length; compare within the athlete and squad rather than as an absolute.")
+    flags = pd.DataFrame(rows, columns=FLAG_COLUMNS)
+    return flags.sort_values(["athlete", "session", "flag", "side", "muscle"], kind="stable").reset_index(drop=True)
+
+
+def flag_config_toml(config: FlagConfig = FlagConfig()) -> str:
+    """The flag defaults as a commented TOML section (printed by `hamstride config`)."""
+    notes = {
+        "asymmetry_pct": "side_asymmetry when |symmetry index| of peak strain or negative work exceeds this (%). "
+                         "Common practice from strength testing: <10% difference for return to sport (MSSE 2019); "
+                         "imbalances >=15% raised strain risk 2.4x (Bourne et al. 2015)",
+        "asymmetry_confidence_z": "...and the left/right difference exceeds this many standard errors of "
+                                  "stride-to-stride variation (so ordinary variation does not fire the flag)",
+        "guarding_lsi_pct": "involved_side_guarding when the involved side's peak strain is below this % of the "
+                            "other side (limb symmetry index)",
+        "high_stretch_limit_lopt": "high_stretch above this peak fibre length / optimal length; nan = use the squad "
+                                   "distribution instead",
+        "high_stretch_squad_z": "high_stretch above the squad mean + this many SD (per muscle)",
+        "high_stretch_min_athletes": "the squad distribution needs at least this many athletes",
+        "min_strides": "few_strides below this many valid strides on a side",
+        "speed_low_fraction": "speed_low when session speed is below this fraction of the athlete's best",
+        "muscles": "muscles the stretch flags look at",
+    }
+    lines = ["[flags]"]
+    for f in fields(config):
+        value = getattr(config, f.name)
+        if isinstance(value, tuple):
+            text = "[" + ", ".join(f'"{v}"' for v in value) + "]"
+        elif isinstance(value, float) and math.isnan(value):
+            text = "nan"
+        else:
+            text = repr(value)
+        lines.append(f"# {notes.get(f.name, '')}")
+        lines.append(f"{f.name} = {text}")
+    return "\n".join(lines) + "\n"

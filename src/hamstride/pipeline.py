@@ -1,0 +1,234 @@
+"""One trial through every stage: C3D -> landmarks -> filtered -> segments -> angles -> events -> strides ->
+muscles -> dynamics -> per-stride metrics, returned as tidy tables (the export contract of design.md).
+
+The same function serves the CLI, the squad batch and a notebook.
+"""
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .errors import HamstrideError, PlausibilityError
+
+STRIDE_COLUMNS = [
+    "athlete", "session", "trial", "side", "stride", "muscle", "foot_strike_s", "toe_off_s", "next_foot_strike_s",
+    "stride_time_s", "toe_off_pct", "late_swing_start_pct", "speed_m_s", "peak_hip_flexion_deg",
+    "peak_knee_flexion_deg", "peak_strain_pct", "peak_strain_time_pct", "peak_strain_p5_pct", "peak_strain_p95_pct",
+    "peak_fibre_length_lopt", "peak_fibre_length_lopt_p5", "peak_fibre_length_lopt_p95",
+    "peak_lengthening_velocity_lopt_per_s", "peak_force_n", "negative_work_j", "positive_work_j",
+]
+CURVE_COLUMNS = [
+    "athlete", "session", "trial", "side", "stride", "muscle", "pct", "hip_flexion_deg", "hip_adduction_deg",
+    "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w",
+    "hip_moment_nm_per_kg", "knee_moment_nm_per_kg",
+]
+SIDES = ("left", "right")
+
+
+@dataclass(frozen=True)
+class AnalysisOptions:
+    """Settings that change results (they are part of the cache key and recorded in manifest.json)."""
+
+    cutoff_hz: float | None = None  # None: Winter's residual analysis per trial
+    max_gap_frames: int = 10  # common practice
+    hip_method: str = "harrington"
+    stride_time_range_s: tuple[float, float] = (0.3, 0.8)  # common practice
+    contact_range_s: tuple[float, float] = (0.06, 0.3)  # common practice
+    monte_carlo_samples: int = 200
+    scale_force_to_mass: bool = False
+    min_strides: int = 1
+
+    def key(self) -> dict:
+        return asdict(self)
+
+
+@dataclass(frozen=True)
+class AthleteInfo:
+    athlete: str = ""
+    session: str = ""
+    body_mass_kg: float | None = None
+    height_m: float | None = None
+    sex: str = "male"
+    leg_length_m: float | None = None
+
+
+@dataclass(frozen=True)
+class TrialResult:
+    trial: str
+    strides: pd.DataFrame
+    curves: pd.DataFrame
+    info: Mapping[str, object] = field(default_factory=dict)
+
+
+def _deg(x):
+    return np.degrees(x)
+
+
+def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
+                  static_path: str | Path | None = None, markers: str | Path | None = None) -> TrialResult:
+    """Run one trial through the whole pipeline and return its stride and curve tables."""
+    from .angles import joint_angles
+    from .events import detect_events, is_treadmill, running_speed
+    from .io import read_c3d
+    from .landmarks import STATIC_RECOVERABLE, load_marker_map, resolve_landmarks
+    from .segments import build_body, calibrate, reconstruct_missing
+    from .signal import smooth_landmarks
+    from .strides import cut_strides
+
+    path = Path(path)
+    marker_map = load_marker_map(markers)
+    trial = read_c3d(path)
+    warnings: list[str] = []
+    calibration = None
+    if static_path is not None:
+        static = read_c3d(static_path)
+        static_lm = resolve_landmarks(static, marker_map)
+        static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
+        calibration = calibrate(static_lm)
+    lm = resolve_landmarks(trial, marker_map, allow_missing=STATIC_RECOVERABLE if calibration is not None else ())
+    if calibration is not None:
+        lm = reconstruct_missing(lm, calibration)
+    lm, filter_info = smooth_landmarks(lm, cutoff_hz=options.cutoff_hz, max_gap_frames=options.max_gap_frames)
+    warnings.extend(filter_info.long_gaps)
+    leg_length = athlete.leg_length_m or getattr(calibration, "leg_length_m", None)
+    body = build_body(lm, hip_method=options.hip_method, leg_length_m=leg_length)
+    angles = joint_angles(body)
+    knee = {side: angles[side]["knee_flexion"] for side in SIDES}
+    events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee, min_strides=options.min_strides)
+    warnings.extend(events.warnings)
+    warnings.extend(events.disagreements)
+    treadmill = is_treadmill(lm)
+    speed = float(running_speed(lm, events, treadmill))
+    strides = cut_strides(events, trial.rate_hz, lm.n_frames, knee, stride_time_range=options.stride_time_range_s,
+                          contact_range=options.contact_range_s)
+    rejected = [f"{s.side} stride {s.index + 1}: {s.reason}" for s in strides if not s.valid]
+    warnings.extend(rejected)
+    valid = [s for s in strides if s.valid]
+    if not valid:
+        raise PlausibilityError("no valid stride in the trial (" + "; ".join(rejected[:3]) + ")", trial=trial.name,
+                                code="few_strides")
+    body_mass = athlete.body_mass_kg or trial.meta.get("body_mass_kg")
+    info = {
+        "trial": trial.name, "rate_hz": trial.rate_hz, "n_frames": trial.n_frames, "cutoff_hz": filter_info.cutoff_hz,
+        "cutoff_method": filter_info.method, "vertical_axis": trial.lab.vertical_axis,
+        "travel_axis": trial.lab.travel_axis, "treadmill": bool(treadmill), "speed_m_s": speed,
+        "event_method": events.method, "n_strides": {s: sum(1 for v in valid if v.side == s) for s in SIDES},
+        "body_mass_kg": body_mass, "warnings": warnings, "software_version": __version__,
+        "hip_method": body.hip_method if hasattr(body, "hip_method") else options.hip_method,
+    }
+    stride_rows, curve_frames = _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info)
+    strides_df = pd.DataFrame(stride_rows, columns=STRIDE_COLUMNS)
+    curves_df = pd.concat(curve_frames, ignore_index=True)[CURVE_COLUMNS] if curve_frames else pd.DataFrame(
+        columns=CURVE_COLUMNS)
+    return TrialResult(trial.name, strides_df, curves_df, info)
+
+
+def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
+    from .dynamics import leg_inertia, muscle_forces, negative_positive_work, swing_inverse_dynamics
+    from .metrics import peak_in_window
+    from .muscles import MUSCLES, MuscleDims, monte_carlo_lengths, muscle_states
+    from .strides import normalise
+
+    rate = trial.rate_hz
+    n_frames = trial.n_frames
+    stride_rows: list[dict] = []
+    curve_frames: list[pd.DataFrame] = []
+    pct = np.linspace(0.0, 100.0, 101)
+    dims_body = body.dims
+    unmet_total = 0
+    for side in SIDES:
+        side_strides = [s for s in valid if s.side == side]
+        if not side_strides:
+            continue
+        a = angles[side]
+        joint = {k: a[k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
+        dims = MuscleDims(pelvis_width_m=dims_body.pelvis_width_m, pelvis_depth_m=dims_body.pelvis_depth_m,
+                          thigh_length_m=dims_body.thigh_length_m[side], shank_length_m=dims_body.shank_length_m[side])
+        states = muscle_states(joint, rate, dims, body_mass_kg=body_mass,
+                               scale_force_to_mass=options.scale_force_to_mass)
+        bands = monte_carlo_lengths(joint, dims, n_samples=options.monte_carlo_samples, seed=0) \
+            if options.monte_carlo_samples > 0 else {}
+        forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
+        hip_moment = np.full(n_frames, np.nan)
+        knee_moment = np.full(n_frames, np.nan)
+        if body_mass:
+            swing = np.zeros(n_frames, dtype=bool)
+            for s in side_strides:
+                lo = int(np.ceil(s.toe_off_s * rate))
+                hi = int(np.floor(s.next_foot_strike_s * rate))
+                swing[max(lo, 0):min(hi, n_frames - 1) + 1] = True
+            inertia = leg_inertia(body_mass, athlete.sex, dims_body.thigh_length_m[side],
+                                  dims_body.shank_length_m[side], dims_body.foot_length_m[side])
+            moments = swing_inverse_dynamics(body.thigh[side], body.shank[side], body.foot[side],
+                                             body.hip_centre[side], body.knee_centre[side], body.ankle_centre[side],
+                                             body.heel[side], body.toe[side], rate, inertia, swing_mask=swing)
+            hip_moment = moments.hip_flexion_nm / body_mass
+            knee_moment = moments.knee_flexion_nm / body_mass
+            forces_side, unmet = muscle_forces(moments, states, joint, rate)
+            unmet_total += int(np.sum(unmet))
+            for m in MUSCLES:
+                if m in forces_side:
+                    forces[m] = np.where(swing, forces_side[m], np.nan)
+        for s in side_strides:
+            start = s.start_frame
+            stop = s.end_frame
+            late = int(round(s.foot_strike_s * rate + s.late_swing_start_pct / 100.0 * s.stride_time_s * rate)) \
+                if np.isfinite(s.late_swing_start_pct) else int(round(s.toe_off_s * rate))
+            late = min(max(late, start), stop)
+            swing_lo = min(max(int(np.ceil(s.toe_off_s * rate)), start), stop)
+            hip_deg = _deg(a["hip_flexion"])
+            knee_deg = _deg(a["knee_flexion"])
+            base = {"athlete": athlete.athlete, "session": athlete.session, "trial": trial.name, "side": side,
+                    "stride": s.index + 1, "foot_strike_s": s.foot_strike_s, "toe_off_s": s.toe_off_s,
+                    "next_foot_strike_s": s.next_foot_strike_s, "stride_time_s": s.stride_time_s,
+                    "toe_off_pct": s.toe_off_pct, "late_swing_start_pct": s.late_swing_start_pct,
+                    "speed_m_s": speed,
+                    "peak_hip_flexion_deg": float(np.nanmax(hip_deg[start:stop + 1])),
+                    "peak_knee_flexion_deg": float(np.nanmax(knee_deg[swing_lo:stop + 1]))}
+            norm_angles = normalise(np.column_stack([hip_deg, _deg(a["hip_adduction"]), knee_deg, hip_moment,
+                                                     knee_moment]), s, rate)
+            for m in MUSCLES:
+                st = states[m]
+                strain_pct = 100.0 * st.strain
+                peak_strain, i_peak = peak_in_window(strain_pct, late, stop)
+                peak_lopt, _ = peak_in_window(st.fibre_length_lopt, late, stop)
+                peak_vel, _ = peak_in_window(st.velocity_lopt_per_s, swing_lo, stop)
+                row = dict(base, muscle=m, peak_strain_pct=peak_strain,
+                           peak_strain_time_pct=100.0 * (i_peak / rate - s.foot_strike_s) / s.stride_time_s
+                           if i_peak >= 0 else np.nan,
+                           peak_fibre_length_lopt=peak_lopt, peak_lengthening_velocity_lopt_per_s=peak_vel)
+                if m in bands:
+                    strain_s, lopt_s = bands[m]
+                    ps = np.nanmax(strain_s[:, late:stop + 1], axis=1) * 100.0
+                    pl = np.nanmax(lopt_s[:, late:stop + 1], axis=1)
+                    row.update(peak_strain_p5_pct=float(np.percentile(ps, 5)),
+                               peak_strain_p95_pct=float(np.percentile(ps, 95)),
+                               peak_fibre_length_lopt_p5=float(np.percentile(pl, 5)),
+                               peak_fibre_length_lopt_p95=float(np.percentile(pl, 95)))
+                force = forces[m]
+                power = -force * st.velocity_m_per_s  # power delivered by the muscle; negative while absorbing
+                if body_mass:
+                    neg, posw = negative_positive_work(np.nan_to_num(force), st.velocity_m_per_s, rate, swing_lo, stop)
+                    row.update(peak_force_n=float(np.nanmax(force[swing_lo:stop + 1])), negative_work_j=float(neg),
+                               positive_work_j=float(posw))
+                stride_rows.append(row)
+                curves = normalise(np.column_stack([st.length_m, strain_pct, st.fibre_length_lopt,
+                                                    st.velocity_lopt_per_s, force, power]), s, rate)
+                frame = pd.DataFrame({
+                    "athlete": athlete.athlete, "session": athlete.session, "trial": trial.name, "side": side,
+                    "stride": s.index + 1, "muscle": m, "pct": pct,
+                    "hip_flexion_deg": norm_angles[:, 0], "hip_adduction_deg": norm_angles[:, 1],
+                    "knee_flexion_deg": norm_angles[:, 2], "length_m": curves[:, 0], "strain_pct": curves[:, 1],
+                    "fibre_length_lopt": curves[:, 2], "velocity_lopt_per_s": curves[:, 3], "force_n": curves[:, 4],
+                    "power_w": curves[:, 5], "hip_moment_nm_per_kg": norm_angles[:, 3],
+                    "knee_moment_nm_per_kg": norm_angles[:, 4]})
+                curve_frames.append(frame)
+    info["frames_moments_not_met"] = unmet_total
+    if not body_mass:
+        info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
+    return stride_rows, curve_frames
