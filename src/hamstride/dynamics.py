@@ -1,0 +1,642 @@
+"""Swing-phase dynamics: net hip and knee moments, muscle forces, muscle power and lengthening work.
+
+While the foot is off the ground no external force acts on the leg but gravity, so the net joint moments follow
+from the leg's own motion (Newton-Euler from the foot up; Winter 2009, Biomechanics and Motor Control of Human
+Movement, ch. 5, in its 3D form). Segment masses and inertias come from de Leva 1996 (J Biomech 29:1223, Table 4).
+The sagittal hip and knee moments are shared among the muscles by static optimisation, minimising the sum of
+squared activations (Crowninshield & Brand 1981, J Biomech 14:793). Power and work follow the sign conventions of
+DEVELOPERS.md: power delivered by a muscle = -F*v (v = dL/dt, lengthening positive); negative work = the energy a
+muscle absorbs while it lengthens under force, reported as a positive number of joules.
+
+Everything is vectorised over frames; moments are NaN outside the swing phases.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Callable, Mapping
+
+import numpy as np
+
+from .errors import HamstrideError
+
+if TYPE_CHECKING:  # pragma: no cover - type hints only, no runtime coupling to earlier stages
+    from .muscles import MuscleState
+    from .segments import Frames
+
+GRAVITY_M_PER_S2 = 9.81
+SEGMENTS = ("thigh", "shank", "foot")
+SEXES = ("male", "female")
+
+
+class BodyMassMissing(HamstrideError):
+    """Inverse dynamics and muscle forces need the athlete's body mass."""
+
+    code = "body_mass_missing"
+
+
+BODY_MASS_MISSING_MESSAGE = (
+    "no body mass for this athlete: joint moments, muscle forces, power and work need it and are left empty "
+    "(lengths, strain and lengthening velocity do not need it and are reported). Add body_mass_kg to "
+    "athletes.csv or pass --body-mass"
+)
+
+
+# --------------------------------------------------------------------------- segment inertia (de Leva 1996)
+@dataclass(frozen=True)
+class SegmentParams:
+    """One row of de Leva 1996, Table 4: fractions of body mass and of segment length.
+
+    ``com_fraction`` is measured from the proximal endpoint (thigh: hip centre, shank: knee centre, foot: heel).
+    Radii of gyration about the segment's sagittal (antero-posterior), transverse (medio-lateral) and longitudinal
+    axes, as fractions of segment length.
+    """
+
+    mass_fraction: float
+    com_fraction: float
+    r_sagittal: float
+    r_transverse: float
+    r_longitudinal: float
+
+
+# de Leva P. (1996) Adjustments to Zatsiorsky-Seluyanov's segment inertia parameters. J Biomech 29:1223-1230,
+# Table 4 (values transcribed in references.md, status [V]).
+DE_LEVA_1996: dict[tuple[str, str], SegmentParams] = {
+    ("thigh", "male"): SegmentParams(0.1416, 0.4095, 0.329, 0.329, 0.149),
+    ("thigh", "female"): SegmentParams(0.1478, 0.3612, 0.369, 0.364, 0.162),
+    ("shank", "male"): SegmentParams(0.0433, 0.4459, 0.255, 0.249, 0.103),
+    ("shank", "female"): SegmentParams(0.0481, 0.4416, 0.271, 0.267, 0.093),
+    ("foot", "male"): SegmentParams(0.0137, 0.4415, 0.257, 0.245, 0.124),
+    ("foot", "female"): SegmentParams(0.0129, 0.4014, 0.299, 0.279, 0.139),
+}
+
+# de Leva's segment endpoints as we measure them. The shank ends at the lateral malleolus in de Leva; we use the
+# ankle centre (mid-malleoli), a few millimetres away along the same line: the difference in length is well inside
+# the spread of the table itself.
+SEGMENT_ENDPOINTS = {
+    "thigh": ("hip centre", "knee centre"),
+    "shank": ("knee centre", "ankle centre (de Leva: lateral malleolus)"),
+    "foot": ("heel", "toe tip"),
+}
+
+
+@dataclass(frozen=True)
+class SegmentInertia:
+    """Mass, centre-of-mass position and central inertia tensor of one segment.
+
+    ``inertia_local`` is about the centre of mass in the segment axes (X anterior, Y proximal, Z right; kg m^2).
+    Thigh and shank: longitudinal = Y, sagittal (antero-posterior) = X, transverse (medio-lateral) = Z.
+    Foot: longitudinal = X (heel to toe), transverse = Z, sagittal radius used about the remaining axis Y.
+    """
+
+    segment: str
+    mass_kg: float
+    length_m: float
+    com_fraction: float
+    inertia_local: np.ndarray = field(repr=False)
+
+
+def _normalise_sex(sex: str | None) -> str:
+    s = (sex or "male").strip().lower()
+    if s in ("m", "male", "man"):
+        return "male"
+    if s in ("f", "female", "woman"):
+        return "female"
+    raise HamstrideError(
+        f"sex {sex!r} is not one of male/female (M/F); de Leva's tables need one of the two", code="config"
+    )
+
+
+def leg_inertia(
+    body_mass_kg: float | None,
+    sex: str | None,
+    thigh_length_m: float,
+    shank_length_m: float,
+    foot_length_m: float,
+) -> dict[str, SegmentInertia]:
+    """Thigh, shank and foot inertia scaled to body mass and measured segment lengths (de Leva 1996, Table 4).
+
+    m = mass_fraction * body mass; I = m * (r * L)^2 about the centre of mass. ``sex`` None defaults to male.
+    Raises ``BodyMassMissing`` when body mass is absent or not positive.
+    """
+    if body_mass_kg is None or not np.isfinite(body_mass_kg) or body_mass_kg <= 0:
+        raise BodyMassMissing(BODY_MASS_MISSING_MESSAGE)
+    s = _normalise_sex(sex)
+    lengths = {"thigh": thigh_length_m, "shank": shank_length_m, "foot": foot_length_m}
+    out = {}
+    for seg in SEGMENTS:
+        p = DE_LEVA_1996[(seg, s)]
+        length = float(lengths[seg])
+        if not np.isfinite(length) or length <= 0:
+            raise HamstrideError(
+                f"{seg} length {length!r} m is not positive; check the {SEGMENT_ENDPOINTS[seg][0]} and "
+                f"{SEGMENT_ENDPOINTS[seg][1]} landmarks",
+                code="implausible",
+            )
+        mass = p.mass_fraction * float(body_mass_kg)
+        i_sag, i_trans, i_long = (mass * (r * length) ** 2 for r in (p.r_sagittal, p.r_transverse, p.r_longitudinal))
+        diag = (i_long, i_sag, i_trans) if seg == "foot" else (i_sag, i_long, i_trans)
+        out[seg] = SegmentInertia(seg, mass, length, p.com_fraction, np.diag(diag))
+    return out
+
+
+# --------------------------------------------------------------------------- rigid-body kinematics
+def _derivative(x: np.ndarray, rate_hz: float) -> np.ndarray:
+    """Central differences along frames (second order, also at the ends)."""
+    if x.shape[0] < 3:
+        return np.full_like(x, np.nan, dtype=float)
+    return np.gradient(x, 1.0 / rate_hz, axis=0, edge_order=2)
+
+
+def angular_velocity(axes: np.ndarray, rate_hz: float) -> np.ndarray:
+    """Angular velocity in the lab [F,3] from rotation matrices [F,3,3] (segment -> lab).
+
+    The skew part of dR/dt R^T is the angular-velocity tensor (Zatsiorsky 1998, Kinematics of Human Motion, ch. 2);
+    taking its skew part removes the non-orthogonal error of numerical differentiation.
+    """
+    r_dot = _derivative(axes, rate_hz)
+    w = np.einsum("fij,fkj->fik", r_dot, axes)
+    w = 0.5 * (w - np.swapaxes(w, 1, 2))
+    return np.stack([w[:, 2, 1], w[:, 0, 2], w[:, 1, 0]], axis=1)
+
+
+# --------------------------------------------------------------------------- inverse dynamics
+@dataclass(frozen=True)
+class JointMoments:
+    """Net joint moments (N m) during swing, exerted by the proximal on the distal segment.
+
+    ``hip``, ``knee``, ``ankle`` [F,3] are expressed in the proximal segment's axes with anatomical signs:
+    component 0 = flexion (hip flexion, knee flexion, ankle dorsiflexion positive; the knee's is minus the moment
+    about the thigh Z axis because knee flexion is a -Z rotation), component 1 = adduction (+X on the right, -X on
+    the left), component 2 = internal rotation (+Y on the right, -Y on the left).
+    ``*_lab`` hold the same moments and the joint reaction forces (N, on the distal segment) in the lab frame.
+    ``valid`` marks swing frames with finite results; everything else is NaN.
+    """
+
+    hip: np.ndarray
+    knee: np.ndarray
+    ankle: np.ndarray
+    hip_lab: np.ndarray
+    knee_lab: np.ndarray
+    ankle_lab: np.ndarray
+    hip_force_lab: np.ndarray
+    knee_force_lab: np.ndarray
+    ankle_force_lab: np.ndarray
+    valid: np.ndarray
+    rate_hz: float
+
+    @property
+    def hip_flexion_nm(self) -> np.ndarray:
+        return self.hip[:, 0]
+
+    @property
+    def knee_flexion_nm(self) -> np.ndarray:
+        return self.knee[:, 0]
+
+    @property
+    def ankle_dorsiflexion_nm(self) -> np.ndarray:
+        return self.ankle[:, 0]
+
+    def per_kg(self, body_mass_kg: float) -> dict[str, np.ndarray]:
+        """Flexion moments normalised to body mass (N m/kg), as exported in curves.csv."""
+        return {
+            "hip_flexion_moment_nm_per_kg": self.hip_flexion_nm / body_mass_kg,
+            "knee_flexion_moment_nm_per_kg": self.knee_flexion_nm / body_mass_kg,
+        }
+
+
+def _segment_step(
+    axes: np.ndarray,
+    com: np.ndarray,
+    proximal: np.ndarray,
+    distal: np.ndarray | None,
+    inertia: SegmentInertia,
+    rate_hz: float,
+    gravity_vec: np.ndarray,
+    distal_force: np.ndarray | None,
+    distal_moment: np.ndarray | None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Newton-Euler for one segment: force and moment the proximal neighbour exerts on it (lab, about ``proximal``).
+
+    m a = F_p - F_d + m g;  I w' + w x I w = M_p - M_d + (P - C) x F_p - (D - C) x F_d, where F_d, M_d are what
+    this segment exerts on its distal neighbour (Winter 2009, ch. 5; the Euler equations in the lab frame).
+    """
+    acc = _derivative(_derivative(com, rate_hz), rate_hz)
+    omega = angular_velocity(axes, rate_hz)
+    alpha = _derivative(omega, rate_hz)
+    i_lab = np.einsum("fij,jk,flk->fil", axes, inertia.inertia_local, axes)
+    h_dot = np.einsum("fij,fj->fi", i_lab, alpha) + np.cross(omega, np.einsum("fij,fj->fi", i_lab, omega))
+    force = inertia.mass_kg * (acc - gravity_vec)
+    moment = h_dot - np.cross(proximal - com, force)
+    if distal_force is not None:
+        force = force + distal_force
+        moment = moment - np.cross(proximal - com, distal_force) + distal_moment + np.cross(distal - com, distal_force)
+    return force, moment
+
+
+def _side_sign(side: str) -> float:
+    if side not in ("left", "right"):
+        raise HamstrideError(f"side must be 'left' or 'right', not {side!r}", code="config")
+    return 1.0 if side == "right" else -1.0
+
+
+def _anatomical(moment_lab: np.ndarray, prox_axes: np.ndarray, side: str, flexion_sign: float) -> np.ndarray:
+    local = np.einsum("fji,fj->fi", prox_axes, moment_lab)  # components along the proximal segment's X, Y, Z
+    s = _side_sign(side)
+    return np.stack([flexion_sign * local[:, 2], s * local[:, 0], s * local[:, 1]], axis=1)
+
+
+def swing_inverse_dynamics(
+    thigh: Frames,
+    shank: Frames,
+    foot: Frames,
+    hip_centre: np.ndarray,
+    knee_centre: np.ndarray,
+    ankle_centre: np.ndarray,
+    heel: np.ndarray,
+    toe: np.ndarray,
+    rate_hz: float,
+    inertia: Mapping[str, SegmentInertia],
+    swing_mask: np.ndarray | None = None,
+    gravity: float = GRAVITY_M_PER_S2,
+    pelvis: Frames | None = None,
+    side: str = "right",
+) -> JointMoments:
+    """Net ankle, knee and hip moments of a swinging leg, in 3D, from the foot up (no external force but gravity).
+
+    Segment centres of mass lie on de Leva's endpoint lines (thigh hip->knee centre, shank knee->ankle centre,
+    foot heel->toe). Linear accelerations are second central differences of the centre-of-mass paths; angular
+    velocity is the skew part of dR/dt R^T and angular acceleration its derivative, so the kinematics must already
+    be low-pass filtered (one cutoff for all markers, see ``signal``). Hip moments are expressed in the pelvis axes
+    when ``pelvis`` is given, otherwise in the thigh axes; knee moments in the thigh axes; ankle in the shank axes.
+    Frames outside ``swing_mask`` (default: all frames) are NaN.
+    """
+    g = np.array([0.0, 0.0, -gravity])
+    hip_centre, knee_centre, ankle_centre, heel, toe = (
+        np.asarray(a, dtype=float) for a in (hip_centre, knee_centre, ankle_centre, heel, toe)
+    )
+    com = {
+        "thigh": hip_centre + inertia["thigh"].com_fraction * (knee_centre - hip_centre),
+        "shank": knee_centre + inertia["shank"].com_fraction * (ankle_centre - knee_centre),
+        "foot": heel + inertia["foot"].com_fraction * (toe - heel),
+    }
+    f_ankle, m_ankle = _segment_step(foot.axes, com["foot"], ankle_centre, None, inertia["foot"], rate_hz, g, None, None)
+    f_knee, m_knee = _segment_step(
+        shank.axes, com["shank"], knee_centre, ankle_centre, inertia["shank"], rate_hz, g, f_ankle, m_ankle
+    )
+    f_hip, m_hip = _segment_step(
+        thigh.axes, com["thigh"], hip_centre, knee_centre, inertia["thigh"], rate_hz, g, f_knee, m_knee
+    )
+    n = hip_centre.shape[0]
+    mask = np.ones(n, dtype=bool) if swing_mask is None else np.asarray(swing_mask, dtype=bool)
+    hip_axes = pelvis.axes if pelvis is not None else thigh.axes
+    hip = _anatomical(m_hip, hip_axes, side, 1.0)
+    knee = _anatomical(m_knee, thigh.axes, side, -1.0)
+    ankle = _anatomical(m_ankle, shank.axes, side, 1.0)
+    valid = mask & np.isfinite(hip).all(axis=1) & np.isfinite(knee).all(axis=1) & np.isfinite(ankle).all(axis=1)
+    out = [hip, knee, ankle, m_hip, m_knee, m_ankle, f_hip, f_knee, f_ankle]
+    for a in out:
+        a[~valid] = np.nan
+    return JointMoments(*out, valid=valid, rate_hz=float(rate_hz))
+
+
+def swing_mask_from_events(
+    n_frames: int, rate_hz: float, toe_off_s: np.ndarray, foot_strike_s: np.ndarray
+) -> np.ndarray:
+    """Frames from each toe-off to the next foot strike of the same leg (inclusive), as a boolean mask."""
+    t = np.arange(n_frames) / rate_hz
+    to = np.sort(np.asarray(toe_off_s, dtype=float))
+    fs = np.sort(np.asarray(foot_strike_s, dtype=float))
+    mask = np.zeros(n_frames, dtype=bool)
+    if to.size == 0 or fs.size == 0:
+        return mask
+    nxt = np.searchsorted(fs, to, side="right")
+    ok = nxt < fs.size
+    starts, stops = to[ok], fs[nxt[ok]]
+    # frame is in swing if some toe-off <= t <= its next foot strike; vectorised over frames x swings
+    inside = (t[:, None] >= starts[None, :] - 0.5 / rate_hz) & (t[:, None] <= stops[None, :] + 0.5 / rate_hz)
+    return inside.any(axis=1)
+
+
+# --------------------------------------------------------------------------- static optimisation
+def _dual_value(lam, a_mat, b):
+    s = np.einsum("fjm,fj->fm", a_mat, lam)
+    phi = np.where(s <= 0, 0.0, np.where(s >= 1, s - 0.5, 0.5 * s * s))
+    return np.einsum("fj,fj->f", lam, b) - phi.sum(axis=1)
+
+
+def share_forces(
+    moment_arms: np.ndarray,
+    max_force: np.ndarray,
+    target: np.ndarray,
+    max_iter: int = 60,
+    tol_nm: float = 1e-6,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Static optimisation per frame: min sum(a^2) s.t. sum_m r_mj a_m Fmax_m = M_j (j = hip, knee), 0 <= a <= 1.
+
+    Minimum squared activation is the Crowninshield & Brand 1981 (J Biomech 14:793) criterion with exponent 2.
+    Solved through its dual for all frames at once: the KKT conditions give a = clip(A^T lambda, 0, 1) with
+    A_jm = r_mj Fmax_m, so lambda solves the 2-equation piecewise-linear system A clip(A^T lambda) = M. We start
+    from the closed-form solution without bounds (lambda = (A A^T)^-1 M) and take semi-smooth Newton steps on the
+    concave dual with backtracking. Frames whose moments cannot be met by any admissible activations keep the dual
+    diverging; they are returned with ``met = False`` and the activations of the last iterate (the muscles able to
+    help saturated).
+
+    moment_arms [F,m,2] (m), max_force [F,m] (N, >= 0; NaN treated as 0), target [F,2] (N m).
+    Returns forces [F,m] = a * max_force and met [F].
+    """
+    r = np.asarray(moment_arms, dtype=float)
+    cap = np.nan_to_num(np.asarray(max_force, dtype=float), nan=0.0).clip(min=0.0)
+    b = np.asarray(target, dtype=float)
+    n = b.shape[0]
+    usable = np.isfinite(b).all(axis=1) & np.isfinite(r).all(axis=(1, 2))
+    r = np.where(np.isfinite(r), r, 0.0)
+    bb = np.where(usable[:, None], b, 0.0)
+    a_mat = np.swapaxes(r * cap[:, :, None], 1, 2)  # [F, 2, m]
+    eye = np.eye(2)
+    gram = np.einsum("fjm,fkm->fjk", a_mat, a_mat)
+    scale = np.einsum("fjj->f", gram)[:, None, None] + 1e-300
+    lam = np.linalg.solve(gram + 1e-12 * scale * eye, bb[:, :, None])[:, :, 0]
+    tol = tol_nm * (1.0 + np.abs(bb).max(axis=1))
+    steps = 0.5 ** np.arange(0, 30)
+    for _ in range(max_iter):
+        s = np.einsum("fjm,fj->fm", a_mat, lam)
+        act = np.clip(s, 0.0, 1.0)
+        grad = bb - np.einsum("fjm,fm->fj", a_mat, act)
+        todo = np.abs(grad).max(axis=1) > tol
+        if not todo.any():
+            break
+        free = ((s > 0) & (s < 1)).astype(float)
+        hess = np.einsum("fjm,fkm,fm->fjk", a_mat, a_mat, free) + 1e-10 * scale * eye
+        direction = np.linalg.solve(hess[todo], grad[todo][:, :, None])[:, :, 0]
+        lam_t, a_t, b_t = lam[todo], a_mat[todo], bb[todo]
+        q0 = _dual_value(lam_t, a_t, b_t)
+        slope = np.einsum("fj,fj->f", grad[todo], direction)
+        best = np.zeros(len(lam_t))
+        found = np.zeros(len(lam_t), dtype=bool)
+        for t in steps:  # backtracking (Armijo) on the concave dual, vectorised over frames
+            q = _dual_value(lam_t + t * direction, a_t, b_t)
+            ok = ~found & (q >= q0 + 1e-4 * t * slope)
+            best[ok] = t
+            found |= ok
+            if found.all():
+                break
+        lam[todo] = lam_t + best[:, None] * direction
+    s = np.einsum("fjm,fj->fm", a_mat, lam)
+    act = np.clip(s, 0.0, 1.0)
+    resid = bb - np.einsum("fjm,fm->fj", a_mat, act)
+    met = usable & (np.abs(resid).max(axis=1) <= 10 * tol)
+    forces = act * cap
+    forces[~usable] = np.nan
+    return forces, met
+
+
+# --------------------------------------------------------------------------- the other muscles
+@dataclass(frozen=True)
+class OtherMuscle:
+    """A non-hamstring muscle in the sharing problem: sagittal moment arms (r = -dL/dtheta) and strength.
+
+    ``pcsa_cm2`` times the specific tension gives the maximum isometric force before athlete scaling.
+    Moment arms are functions of the hip and knee flexion angles (rad) returning metres.
+    """
+
+    code: str
+    name: str
+    pcsa_cm2: float
+    optimal_fibre_length_m: float
+    hip_moment_arm: Callable[[np.ndarray], np.ndarray]
+    knee_moment_arm: Callable[[np.ndarray], np.ndarray]
+    source: str
+
+
+def _const(value: float) -> Callable[[np.ndarray], np.ndarray]:
+    return lambda angle: np.full(np.shape(angle), value, dtype=float)
+
+
+def _quadriceps_knee_arm(knee_flexion_rad: np.ndarray) -> np.ndarray:
+    """Knee-extension moment arm of the quadriceps (negative: extensor), peaking near 40-60 deg of flexion.
+
+    About 3.5 cm near full extension rising to about 4.5 cm mid-range and falling again in deep flexion (from memory:
+    Herzog & Read 1993; Buford et al. 1997, IEEE Trans Rehabil Eng 5:367).
+    """
+    k = np.clip(np.asarray(knee_flexion_rad, dtype=float), 0.0, np.radians(140))
+    return -(0.035 + 0.010 * np.sin(k * np.pi / np.radians(120)).clip(min=0.0))
+
+
+def _gastrocnemius_knee_arm(knee_flexion_rad: np.ndarray) -> np.ndarray:
+    """Knee-flexion moment arm of the gastrocnemius: about 1 cm near extension to 2.5 cm in flexion (from memory)."""
+    k = np.clip(np.asarray(knee_flexion_rad, dtype=float), 0.0, np.radians(120))
+    return 0.010 + 0.015 * k / np.radians(120)
+
+
+def _gluteus_hip_arm(hip_flexion_rad: np.ndarray) -> np.ndarray:
+    """Hip-extension moment arm of gluteus maximus (negative): about 6.5 cm near neutral, smaller in deep flexion.
+
+    From memory (Németh & Ohlsén 1985, J Biomech 18:129).
+    """
+    h = np.clip(np.asarray(hip_flexion_rad, dtype=float), np.radians(-30), np.radians(120))
+    return -(0.065 - 0.020 * (h / np.radians(90)).clip(min=0.0))
+
+
+# PCSA from Ward et al. 2009 (Clin Orthop Relat Res 467:1074) - from memory, not checked against the table.
+# Optimal fibre lengths from the same paper - from memory. Moment arms as stated per function / entry.
+OTHER_MUSCLES: dict[str, OtherMuscle] = {
+    "gmax": OtherMuscle(
+        "gmax", "gluteus maximus", 33.4, 0.156, _gluteus_hip_arm, _const(0.0),
+        "PCSA, fibre length: Ward et al. 2009 (from memory); hip arm: Németh & Ohlsén 1985 (from memory)",
+    ),
+    "ilps": OtherMuscle(
+        "ilps", "iliopsoas (iliacus + psoas)", 9.9 + 7.7, 0.102, _const(0.030), _const(0.0),
+        "PCSA, fibre length: Ward et al. 2009 (from memory); hip-flexion arm 3 cm near neutral (from memory)",
+    ),
+    "rf": OtherMuscle(
+        "rf", "rectus femoris", 13.5, 0.076, _const(0.040), _quadriceps_knee_arm,
+        "PCSA, fibre length: Ward et al. 2009 (from memory); hip-flexion arm 4 cm (from memory); knee: quadriceps",
+    ),
+    "vas": OtherMuscle(
+        "vas", "vasti (lateralis + medialis + intermedius)", 35.1 + 20.6 + 16.7, 0.090, _const(0.0),
+        _quadriceps_knee_arm, "PCSA, fibre length: Ward et al. 2009 (from memory); knee: quadriceps",
+    ),
+    "gas": OtherMuscle(
+        "gas", "gastrocnemius (medial + lateral)", 21.1 + 9.7, 0.055, _const(0.0), _gastrocnemius_knee_arm,
+        "PCSA, fibre length: Ward et al. 2009 (from memory); knee arm from memory; its ankle moment is not matched",
+    ),
+}
+
+# Hamstring PCSA (cm^2) that the muscles stage's unscaled maximum forces correspond to (references.md, Ward 2009 [M]).
+WARD_2009_HAMSTRING_PCSA_CM2 = {"bflh": 11.3, "st": 4.8, "sm": 18.4, "bfsh": 5.1}
+SPECIFIC_TENSION_N_PER_CM2 = 26.8  # Persad et al. 2024, J Appl Physiol 137:945 [V]
+
+
+@dataclass(frozen=True)
+class OtherMuscleKinematics:
+    """Sagittal moment arms [F,2] (hip flexion, knee flexion) and musculotendon velocity [F] of a non-hamstring."""
+
+    code: str
+    moment_arms_m: np.ndarray
+    velocity_m_per_s: np.ndarray
+    max_isometric_force_n: float
+
+
+def other_muscle_kinematics(
+    hip_flexion_rad: np.ndarray,
+    knee_flexion_rad: np.ndarray,
+    rate_hz: float,
+    strength_scale: float = 1.0,
+    muscles: Mapping[str, OtherMuscle] = OTHER_MUSCLES,
+) -> dict[str, OtherMuscleKinematics]:
+    """Moment arms and lengthening velocity v = -(r_hip dhip/dt + r_knee dknee/dt) of the non-hamstring muscles."""
+    hip = np.asarray(hip_flexion_rad, dtype=float)
+    knee = np.asarray(knee_flexion_rad, dtype=float)
+    hip_rate, knee_rate = _derivative(hip, rate_hz), _derivative(knee, rate_hz)
+    out = {}
+    for code, m in muscles.items():
+        arms = np.stack([m.hip_moment_arm(hip), m.knee_moment_arm(knee)], axis=1)
+        velocity = -(arms[:, 0] * hip_rate + arms[:, 1] * knee_rate)
+        fmax = m.pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * strength_scale
+        out[code] = OtherMuscleKinematics(code, arms, velocity, fmax)
+    return out
+
+
+def _hamstring_strength_scale(states: Mapping[str, MuscleState]) -> float:
+    """Ratio of the hamstrings' maximum forces (muscles stage) to PCSA x specific tension: applied to the others."""
+    got = sum(float(states[m].max_isometric_force_n) for m in states if m in WARD_2009_HAMSTRING_PCSA_CM2)
+    ref = sum(WARD_2009_HAMSTRING_PCSA_CM2[m] * SPECIFIC_TENSION_N_PER_CM2 for m in states if m in WARD_2009_HAMSTRING_PCSA_CM2)
+    return got / ref if ref > 0 and np.isfinite(got) and got > 0 else 1.0
+
+
+@dataclass(frozen=True)
+class ForceSharing:
+    """Result of sharing the swing moments among the muscles: forces (N), velocities (m/s), frames not met."""
+
+    force_n: dict[str, np.ndarray]
+    velocity_m_per_s: dict[str, np.ndarray]
+    moment_arms_m: dict[str, np.ndarray]  # [F,2] hip flexion, knee flexion
+    unmet: np.ndarray  # swing frames where no admissible activations reproduce the moments
+    valid: np.ndarray  # swing frames with finite moments
+
+
+def share_swing_moments(
+    moments: JointMoments,
+    states: Mapping[str, MuscleState],
+    hip_flexion_rad: np.ndarray,
+    knee_flexion_rad: np.ndarray,
+    rate_hz: float,
+    strength_scale: float | None = None,
+    include_passive: bool = True,
+) -> ForceSharing:
+    """Muscle forces that reproduce the net sagittal hip and knee moments with minimum squared activation.
+
+    Hamstrings: capacity = Fmax fl(l) fv(v) from the muscles stage's fibre length and velocity, plus the passive
+    force Fmax fp(l) that acts whatever the activation. Other muscles: Fmax fv(v) with v from their moment arms and a
+    rigid tendon (their length-force relation is not modelled: set to 1), no passive force. ``strength_scale``
+    multiplies the other muscles' PCSA-based force; default: the same ratio the muscles stage applied to the
+    hamstrings, so all muscles are scaled alike.
+    """
+    from . import muscles as mus  # same or earlier stage: allowed
+
+    hip = np.asarray(hip_flexion_rad, dtype=float)
+    n = hip.shape[0]
+    if strength_scale is None:
+        strength_scale = _hamstring_strength_scale(states)
+    others = other_muscle_kinematics(hip, knee_flexion_rad, rate_hz, strength_scale)
+    names, arms, caps, passive, vel = [], [], [], [], []
+    for code, st in states.items():
+        fmax = float(st.max_isometric_force_n)
+        l_norm = np.asarray(st.fibre_length_lopt, dtype=float)
+        v_norm = np.asarray(st.velocity_lopt_per_s, dtype=float)
+        names.append(code)
+        arms.append(np.asarray(st.moment_arms_m, dtype=float)[:, [0, 3]])
+        caps.append(fmax * np.clip(mus.active_force_length(l_norm) * mus.force_velocity(v_norm), 0.0, None))
+        passive.append(fmax * mus.passive_force_length(l_norm) if include_passive else np.zeros(n))
+        vel.append(np.asarray(st.velocity_m_per_s, dtype=float))
+    for code, ok in others.items():
+        m = OTHER_MUSCLES[code]
+        names.append(code)
+        arms.append(ok.moment_arms_m)
+        v_norm = ok.velocity_m_per_s / m.optimal_fibre_length_m
+        caps.append(ok.max_isometric_force_n * np.clip(mus.force_velocity(v_norm), 0.0, None))
+        passive.append(np.zeros(n))
+        vel.append(ok.velocity_m_per_s)
+    r = np.stack(arms, axis=1)  # [F,m,2]
+    cap = np.stack(caps, axis=1)
+    fp = np.nan_to_num(np.stack(passive, axis=1), nan=0.0)
+    target = np.stack([moments.hip_flexion_nm, moments.knee_flexion_nm], axis=1)
+    target = target - np.einsum("fmj,fm->fj", r, fp)
+    active, met = share_forces(r, cap, target)
+    force = active + fp
+    valid = np.asarray(moments.valid, dtype=bool) & np.isfinite(target).all(axis=1)
+    force[~valid] = np.nan
+    return ForceSharing(
+        force_n={c: force[:, i] for i, c in enumerate(names)},
+        velocity_m_per_s={c: vel[i] for i, c in enumerate(names)},
+        moment_arms_m={c: r[:, i] for i, c in enumerate(names)},
+        unmet=valid & ~met,
+        valid=valid,
+    )
+
+
+def muscle_forces(
+    moments: JointMoments,
+    states: Mapping[str, MuscleState],
+    hip_flexion_rad: np.ndarray,
+    knee_flexion_rad: np.ndarray,
+    rate_hz: float,
+    strength_scale: float | None = None,
+    include_passive: bool = True,
+) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Forces (N) [F] of every muscle in the sharing problem and the swing frames whose moments were not met."""
+    res = share_swing_moments(
+        moments, states, hip_flexion_rad, knee_flexion_rad, rate_hz, strength_scale, include_passive
+    )
+    return res.force_n, res.unmet
+
+
+# --------------------------------------------------------------------------- power and work
+def negative_positive_work(
+    force_n: np.ndarray, velocity_m_per_s: np.ndarray, rate_hz: float, start: int, stop: int
+) -> tuple[float, float]:
+    """Work absorbed (lengthening under force) and produced (shortening) between frames start..stop-1 (J, both >= 0).
+
+    Absorbed = integral of F v over the frames where F v > 0 (v = dL/dt lengthening positive); produced = integral
+    of -F v where F v < 0 (trapezoidal rule). NaN when any force in the window is NaN (e.g. no body mass).
+    """
+    f = np.asarray(force_n, dtype=float)[start:stop]
+    v = np.asarray(velocity_m_per_s, dtype=float)[start:stop]
+    if f.size < 2 or not (np.isfinite(f).all() and np.isfinite(v).all()):
+        return float("nan"), float("nan")
+    absorbed_rate = f * v
+    dt = 1.0 / rate_hz
+    negative = float(np.trapezoid(np.clip(absorbed_rate, 0.0, None), dx=dt))
+    positive = float(np.trapezoid(np.clip(-absorbed_rate, 0.0, None), dx=dt))
+    return negative, positive
+
+
+@dataclass(frozen=True)
+class MuscleDynamics:
+    """Force, velocity and power of one muscle over a trial; power delivered = -F v (W, negative while absorbing)."""
+
+    muscle: str
+    force_n: np.ndarray
+    velocity_m_per_s: np.ndarray
+    power_w: np.ndarray
+    rate_hz: float
+
+    def work_over(self, start: int, stop: int) -> tuple[float, float]:
+        """(negative_work_j, positive_work_j) over frames start..stop-1, both reported positive."""
+        return negative_positive_work(self.force_n, self.velocity_m_per_s, self.rate_hz, start, stop)
+
+    def peak_force(self, start: int, stop: int) -> tuple[float, int]:
+        """Peak force (N) in the window and its frame index; NaN, -1 when there is no force."""
+        f = np.asarray(self.force_n, dtype=float)[start:stop]
+        if f.size == 0 or not np.isfinite(f).any():
+            return float("nan"), -1
+        i = int(np.nanargmax(f))
+        return float(f[i]), start + i
+
+
+def muscle_dynamics(sharing: ForceSharing, rate_hz: float) -> dict[str, MuscleDynamics]:
+    """Per-muscle force, velocity and delivered power (-F v) from a force-sharing result."""
+    return {
+        m: MuscleDynamics(m, f, sharing.velocity_m_per_s[m], -f * sharing.velocity_m_per_s[m], float(rate_hz))
+        for m, f in sharing.force_n.items()
+    }

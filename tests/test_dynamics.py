@@ -1,0 +1,415 @@
+"""Tests of swing-phase inverse dynamics, force sharing, power and work.
+
+References: de Leva 1996 (J Biomech 29:1223) Table 4 for the inertia table; physics (forward simulations with
+scipy.integrate.solve_ivp and the work-energy theorem) for inverse dynamics; scipy.optimize.minimize (SLSQP) for the
+static optimisation; closed-form integrals for work.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.integrate import solve_ivp
+from scipy.optimize import minimize
+from scipy.spatial.transform import Rotation
+
+from hamstride import dynamics as dyn
+from hamstride.segments import Frames, frames_from_x_y, frames_from_y_z
+from hamstride.signal import lowpass, residual_cutoff
+
+# --------------------------------------------------------------------------- de Leva table, cell by cell
+# de Leva P. 1996, J Biomech 29:1223-1230, Table 4 (as transcribed in references.md, status [V]):
+# mass fraction, CoM from the proximal endpoint, r_sagittal, r_transverse, r_longitudinal.
+DE_LEVA_TABLE_4 = [
+    ("thigh", "male", 0.1416, 0.4095, 0.329, 0.329, 0.149),
+    ("thigh", "female", 0.1478, 0.3612, 0.369, 0.364, 0.162),
+    ("shank", "male", 0.0433, 0.4459, 0.255, 0.249, 0.103),
+    ("shank", "female", 0.0481, 0.4416, 0.271, 0.267, 0.093),
+    ("foot", "male", 0.0137, 0.4415, 0.257, 0.245, 0.124),
+    ("foot", "female", 0.0129, 0.4014, 0.299, 0.279, 0.139),
+]
+
+
+@pytest.mark.parametrize("segment,sex,mass,com,r_sag,r_trans,r_long", DE_LEVA_TABLE_4)
+def test_de_leva_table_cell_by_cell(segment, sex, mass, com, r_sag, r_trans, r_long):
+    p = dyn.DE_LEVA_1996[(segment, sex)]
+    assert p.mass_fraction == mass
+    assert p.com_fraction == com
+    assert p.r_sagittal == r_sag
+    assert p.r_transverse == r_trans
+    assert p.r_longitudinal == r_long
+
+
+def test_de_leva_table_has_exactly_the_leg_rows():
+    assert set(dyn.DE_LEVA_1996) == {(s, x) for s, x, *_ in DE_LEVA_TABLE_4}
+
+
+def test_leg_inertia_scales_mass_and_radii():
+    # m = fraction * body mass, I = m (r L)^2 (de Leva 1996; radius-of-gyration definition)
+    inertia = dyn.leg_inertia(80.0, "F", 0.40, 0.41, 0.24)
+    thigh, foot = inertia["thigh"], inertia["foot"]
+    assert thigh.mass_kg == pytest.approx(0.1478 * 80.0)
+    assert thigh.inertia_local[2, 2] == pytest.approx(0.1478 * 80 * (0.364 * 0.40) ** 2)  # medio-lateral: transverse
+    assert thigh.inertia_local[1, 1] == pytest.approx(0.1478 * 80 * (0.162 * 0.40) ** 2)  # long axis Y
+    assert foot.inertia_local[0, 0] == pytest.approx(0.0129 * 80 * (0.139 * 0.24) ** 2)  # foot long axis X
+    assert foot.com_fraction == 0.4014
+    assert dyn.leg_inertia(80.0, None, 0.4, 0.4, 0.25)["shank"].mass_kg == pytest.approx(0.0433 * 80)
+
+
+@pytest.mark.parametrize("mass", [None, float("nan"), 0.0])
+def test_missing_body_mass_is_explained(mass):
+    with pytest.raises(dyn.BodyMassMissing, match="body mass"):
+        dyn.leg_inertia(mass, "male", 0.4, 0.4, 0.25)
+
+
+# --------------------------------------------------------------------------- planar swing simulation
+BODY_MASS = 75.0
+L_THIGH, L_SHANK, L_FOOT = 0.42, 0.43, 0.26
+HEEL_IN_FOOT = np.array([-0.05, -0.06])  # heel relative to the ankle centre in foot axes (X, Y), m
+INERTIA = dyn.leg_inertia(BODY_MASS, "male", L_THIGH, L_SHANK, L_FOOT)
+T_SWING, HIP_SPEED = 0.36, 8.0
+P90 = np.array([[0.0, -1.0], [1.0, 0.0]])
+Y_PLANE = -0.1  # the right leg swings in the plane y = -0.1 m; lateral is -y on the right
+
+
+def _rot2(phi):
+    c, s = np.cos(phi), np.sin(phi)
+    return np.array([[c, -s], [s, c]])
+
+
+def _hip_path(t):
+    w = 2 * np.pi / T_SWING
+    pos = np.stack([HIP_SPEED * t, 0.95 + 0.03 * np.sin(w * t)], axis=-1)
+    acc = np.stack([0.0 * t, -0.03 * w**2 * np.sin(w * t)], axis=-1)
+    return pos, acc
+
+
+def _chain():
+    """Local vectors s[i][j] so that CoM_i = hip + sum_j Rot(phi_j) s[i][j] (absolute segment angles)."""
+    c1, c2, c3 = (INERTIA[s].com_fraction for s in dyn.SEGMENTS)
+    z = np.zeros(2)
+    return [
+        [np.array([0.0, -c1 * L_THIGH]), z, z],
+        [np.array([0.0, -L_THIGH]), np.array([0.0, -c2 * L_SHANK]), z],
+        [np.array([0.0, -L_THIGH]), np.array([0.0, -L_SHANK]), HEEL_IN_FOOT + np.array([c3 * L_FOOT, 0.0])],
+    ]
+
+
+CHAIN = _chain()
+MASSES = np.array([INERTIA[s].mass_kg for s in dyn.SEGMENTS])
+I_ZZ = np.array([INERTIA[s].inertia_local[2, 2] for s in dyn.SEGMENTS])  # about the medio-lateral axis
+G2 = np.array([0.0, -9.81])
+
+
+def _applied_torques(t, q, qd):
+    """Known joint torques (N m, positive = increasing absolute angle of the distal segment, i.e. about +Z).
+
+    A proportional-derivative drive toward a swing-like path (hip flexion -20 -> 70 deg, knee flexion up to
+    about 100 deg) and a spring-damper ankle; only their values along the solution matter to the test.
+    """
+    u = np.clip(t / T_SWING, 0.0, 1.0)
+    hip_goal = -0.35 + 1.55 * 0.5 * (1 - np.cos(np.pi * u))
+    knee_goal = 0.5 + 1.7 * np.sin(np.pi * u) ** 1.5 * (1 - 0.5 * u)
+    tau_hip = 400 * (hip_goal - q[0]) - 25 * qd[0]
+    knee_flexion_moment = 150 * (knee_goal - (q[0] - q[1])) - 8 * (qd[0] - qd[1])
+    tau_ankle = -15 * (q[2] - q[1] - 0.1) - 0.4 * (qd[2] - qd[1])
+    return tau_hip, -knee_flexion_moment, tau_ankle
+
+
+def _leg_rhs(t, y):
+    """Three-segment planar leg with a prescribed hip path: sum_i m_i J_i^T (a_i - g) + I phi'' = Q (virtual work)."""
+    q, qd = y[:3], y[3:]
+    _, hip_acc = _hip_path(t)
+    mass_matrix = np.diag(I_ZZ)
+    bias = np.zeros(3)
+    tau_h, tau_k, tau_a = _applied_torques(t, q, qd)
+    generalised = np.array([tau_h - tau_k, tau_k - tau_a, tau_a])
+    for i in range(3):
+        jac = np.zeros((2, 3))
+        centripetal = np.zeros(2)
+        for j in range(3):
+            r = _rot2(q[j])
+            jac[:, j] = r @ P90 @ CHAIN[i][j]
+            centripetal -= r @ CHAIN[i][j] * qd[j] ** 2
+        mass_matrix = mass_matrix + MASSES[i] * jac.T @ jac
+        bias += MASSES[i] * jac.T @ (hip_acc + centripetal - G2)
+    return np.concatenate([qd, np.linalg.solve(mass_matrix, generalised - bias)])
+
+
+def _simulate_swing(rate_hz, duration=0.5):
+    y0 = np.array([-0.35, -0.85, -0.75, 0.0, 0.0, 0.0])
+    t = np.arange(0.0, duration + 1e-12, 1.0 / rate_hz)
+    sol = solve_ivp(_leg_rhs, (0.0, duration), y0, t_eval=t, rtol=1e-10, atol=1e-10, method="DOP853")
+    assert sol.success
+    q, qd = sol.y[:3].T, sol.y[3:].T
+    tau = np.array([_applied_torques(tt, qq, vv) for tt, qq, vv in zip(t, q, qd)])
+    return t, q, tau
+
+
+def _planar_markers(t, q):
+    def lab(p2, y=Y_PLANE):
+        return np.stack([p2[:, 0], np.full(len(p2), y), p2[:, 1]], axis=-1)
+
+    hip2, _ = _hip_path(t)
+    rots = [np.moveaxis(_rot2(q[:, j]), -1, 0) for j in range(3)]
+    knee2 = hip2 + rots[0] @ np.array([0.0, -L_THIGH])
+    ankle2 = knee2 + rots[1] @ np.array([0.0, -L_SHANK])
+    heel2 = ankle2 + rots[2] @ HEEL_IN_FOOT
+    met2 = heel2 + rots[2] @ np.array([0.75 * L_FOOT, 0.0])
+    return {
+        "hip": lab(hip2),
+        "lat_epi": lab(knee2, Y_PLANE - 0.05), "med_epi": lab(knee2, Y_PLANE + 0.05),
+        "lat_mal": lab(ankle2, Y_PLANE - 0.035), "med_mal": lab(ankle2, Y_PLANE + 0.035),
+        "heel": lab(heel2),
+        "met5": lab(met2, Y_PLANE - 0.04), "met1": lab(met2, Y_PLANE + 0.04),
+    }
+
+
+def _inverse_dynamics_from_markers(m, rate_hz):
+    """Frames and joint centres as the segments stage defines them (DEVELOPERS.md), then inverse dynamics."""
+    knee = 0.5 * (m["lat_epi"] + m["med_epi"])
+    ankle = 0.5 * (m["lat_mal"] + m["med_mal"])
+    mid_met = 0.5 * (m["met1"] + m["met5"])
+    toe = m["heel"] + (mid_met - m["heel"]) / 0.75
+    thigh = frames_from_y_z(m["hip"], m["hip"] - knee, m["lat_epi"] - m["med_epi"])
+    shank = frames_from_y_z(knee, knee - ankle, m["lat_mal"] - m["med_mal"])
+    foot = frames_from_x_y(ankle, mid_met - m["heel"], shank.y)
+    return dyn.swing_inverse_dynamics(thigh, shank, foot, m["hip"], knee, ankle, m["heel"], toe, rate_hz, INERTIA)
+
+
+def _rms_error_pct(t, moments, tau):
+    inner = (t > 0.05) & (t < 0.45)  # swing lies inside a trial: keep clear of the trial's first/last frames
+    out = {}
+    # hip flexion = +Z torque on the thigh; knee flexion = -Z torque on the shank; dorsiflexion = +Z on the foot
+    for name, got, true in (
+        ("hip", moments.hip_flexion_nm, tau[:, 0]),
+        ("knee", moments.knee_flexion_nm, -tau[:, 1]),
+        ("ankle", moments.ankle_dorsiflexion_nm, tau[:, 2]),
+    ):
+        err = got[inner] - true[inner]
+        out[name] = 100 * np.sqrt(np.mean(err**2)) / np.abs(true[inner]).max()
+    return out
+
+
+RATE_HZ = 250.0
+
+
+@pytest.fixture(scope="module")
+def swing_sim():
+    return _simulate_swing(RATE_HZ)
+
+
+def test_inverse_dynamics_recovers_simulated_torques_noise_free(swing_sim):
+    t, q, tau = swing_sim
+    assert np.abs(tau[:, 0]).max() > 80 and np.abs(tau[:, 1]).max() > 30  # the swing is actually driven
+    moments = _inverse_dynamics_from_markers(_planar_markers(t, q), RATE_HZ)
+    err = _rms_error_pct(t, moments, tau)
+    assert err["hip"] < 2.0 and err["knee"] < 2.0  # acceptance: RMS < 2 % of peak, noise-free
+    assert err["ankle"] < 2.0
+    assert moments.valid.all()
+    assert np.abs(moments.hip[:, 1:]).max() < 1e-6 * np.abs(moments.hip[:, 0]).max()  # planar: no out-of-plane moment
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_inverse_dynamics_with_marker_noise_and_default_filter(swing_sim, seed):
+    t, q, tau = swing_sim
+    rng = np.random.default_rng(seed)
+    noisy = {k: v + rng.normal(0.0, 0.0005, v.shape) for k, v in _planar_markers(t, q).items()}  # 0.5 mm
+    stacked = np.concatenate(list(noisy.values()), axis=1)
+    cutoff = residual_cutoff(stacked, RATE_HZ)  # the default: Winter's residual analysis, one cutoff for all markers
+    filtered = {k: lowpass(v, RATE_HZ, cutoff) for k, v in noisy.items()}
+    err = _rms_error_pct(t, _inverse_dynamics_from_markers(filtered, RATE_HZ), tau)
+    assert err["hip"] < 10.0 and err["knee"] < 10.0  # acceptance: RMS < 10 % of peak with 0.5 mm noise
+
+
+def test_swing_mask_blanks_stance(swing_sim):
+    t, q, tau = swing_sim
+    m = _planar_markers(t, q)
+    knee = 0.5 * (m["lat_epi"] + m["med_epi"])
+    ankle = 0.5 * (m["lat_mal"] + m["med_mal"])
+    mid_met = 0.5 * (m["met1"] + m["met5"])
+    thigh = frames_from_y_z(m["hip"], m["hip"] - knee, m["lat_epi"] - m["med_epi"])
+    shank = frames_from_y_z(knee, knee - ankle, m["lat_mal"] - m["med_mal"])
+    foot = frames_from_x_y(ankle, mid_met - m["heel"], shank.y)
+    mask = dyn.swing_mask_from_events(len(t), RATE_HZ, np.array([0.1]), np.array([0.05, 0.3]))
+    assert mask.sum() == round(0.2 * RATE_HZ) + 1 and mask[25] and mask[75] and not mask[24] and not mask[76]
+    jm = dyn.swing_inverse_dynamics(thigh, shank, foot, m["hip"], knee, ankle, m["heel"], mid_met, RATE_HZ,
+                                    INERTIA, swing_mask=mask)
+    assert np.isnan(jm.knee_flexion_nm[~mask]).all() and np.isfinite(jm.knee_flexion_nm[mask]).all()
+    assert (jm.valid == mask).all()
+
+
+# --------------------------------------------------------------------------- 3D checks
+def _skew(v):
+    return np.array([[0, -v[2], v[1]], [v[2], 0, -v[0]], [-v[1], v[0], 0]])
+
+
+def test_3d_foot_on_a_spherical_ankle_recovers_applied_torque():
+    """A foot spinning about a fixed ankle point under a known 3D torque (Euler's equations about a fixed point,
+    integrated with solve_ivp): the ankle moment from inverse dynamics is that torque, gyroscopic terms included."""
+    rate = 1000.0
+    foot_in = INERTIA["foot"]
+    heel_local = np.array([-0.05, -0.06, 0.0])
+    d = heel_local + np.array([foot_in.com_fraction * L_FOOT, 0.0, 0.0])  # ankle -> CoM, foot axes
+    m = foot_in.mass_kg
+    i_p = foot_in.inertia_local + m * (d @ d * np.eye(3) - np.outer(d, d))  # parallel axes to the ankle
+    g = np.array([0.0, 0.0, -9.81])
+
+    def torque_lab(t):
+        return np.array([0.4 * np.sin(7 * t), 0.3 * np.cos(5 * t), 0.5 * np.sin(11 * t + 0.3)])
+
+    def rhs(t, y):
+        rmat, w = y[:9].reshape(3, 3), y[9:]
+        tau_b = rmat.T @ torque_lab(t) + np.cross(d, rmat.T @ (m * g))
+        w_dot = np.linalg.solve(i_p, tau_b - np.cross(w, i_p @ w))
+        return np.concatenate([(rmat @ _skew(w)).ravel(), w_dot])
+
+    y0 = np.concatenate([Rotation.from_euler("xyz", [0.3, -0.2, 0.5]).as_matrix().ravel(), [6.0, -4.0, 9.0]])
+    t = np.arange(0.0, 0.4, 1.0 / rate)
+    sol = solve_ivp(rhs, (0, t[-1]), y0, t_eval=t, rtol=1e-11, atol=1e-11, method="DOP853")
+    rmat = Rotation.from_matrix(sol.y[:9].T.reshape(-1, 3, 3)).as_matrix()  # re-orthonormalise
+    n = len(t)
+    ankle = np.zeros((n, 3))
+    heel = np.einsum("fij,j->fi", rmat, heel_local)
+    toe = heel + rmat[:, :, 0] * L_FOOT
+    still = Frames(np.zeros((n, 3)), np.broadcast_to(np.eye(3), (n, 3, 3)).copy())
+    knee = np.tile([0.0, 0.0, L_SHANK], (n, 1))
+    hip = knee + [0.0, 0.0, L_THIGH]
+    jm = dyn.swing_inverse_dynamics(still, still, Frames(ankle, rmat), hip, knee, ankle, heel, toe, rate, INERTIA)
+    truth = np.array([torque_lab(tt) for tt in t])
+    inner = slice(5, -5)
+    err = np.sqrt(np.mean((jm.ankle_lab[inner] - truth[inner]) ** 2, axis=0))
+    assert (err < 0.01 * np.abs(truth).max(axis=0)).all()
+    # gyroscopic and gravity terms are not small here, so the check would fail without them
+    assert np.abs(np.cross(sol.y[9:].T, sol.y[9:].T @ i_p)).max() > 0.5 * np.abs(truth).max()
+
+
+def test_3d_chain_power_equals_rate_of_mechanical_energy():
+    """Work-energy theorem for an arbitrary 3D motion of the three segments (rotations not confined to a plane):
+    dE/dt = F_hip . v_hip + M_hip . w_thigh + M_knee . (w_shank - w_thigh) + M_ankle . (w_foot - w_shank)."""
+    rate = 2000.0
+    t = np.arange(0.0, 0.4, 1.0 / rate)
+    rotvecs = [
+        np.stack([0.3 * np.sin(9 * t), 0.2 * np.cos(6 * t), 1.2 * np.sin(8 * t)], axis=1),
+        np.stack([0.2 * np.cos(7 * t), 0.4 * np.sin(5 * t), -1.0 + 0.9 * np.sin(10 * t)], axis=1),
+        np.stack([0.3 * np.sin(12 * t), 0.2 * np.sin(4 * t), -0.8 + 0.5 * np.cos(9 * t)], axis=1),
+    ]
+    rmats = [Rotation.from_rotvec(v).as_matrix() for v in rotvecs]
+    hip = np.stack([7.0 * t, -0.1 + 0.02 * np.sin(15 * t), 0.95 + 0.03 * np.sin(17 * t)], axis=1)
+    knee = hip + rmats[0] @ np.array([0.0, -L_THIGH, 0.0])
+    ankle = knee + rmats[1] @ np.array([0.0, -L_SHANK, 0.0])
+    heel = ankle + rmats[2] @ np.array([-0.05, -0.06, 0.0])
+    toe = heel + rmats[2] @ np.array([L_FOOT, 0.0, 0.0])
+    frames = [Frames(o, r) for o, r in zip((hip, knee, ankle), rmats)]
+    jm = dyn.swing_inverse_dynamics(*frames, hip, knee, ankle, heel, toe, rate, INERTIA)
+
+    def omega(r):  # independent of the module: finite rotation between neighbouring frames (scipy)
+        w = np.full((len(r), 3), np.nan)
+        w[1:-1] = Rotation.from_matrix(np.einsum("fij,fkj->fik", r[2:], r[:-2])).as_rotvec() * rate / 2
+        return w
+
+    w = [omega(r) for r in rmats]
+    coms = [hip + INERTIA["thigh"].com_fraction * (knee - hip), knee + INERTIA["shank"].com_fraction * (ankle - knee),
+            heel + INERTIA["foot"].com_fraction * (toe - heel)]
+    energy = np.zeros(len(t))
+    for seg, c, r, ww in zip(dyn.SEGMENTS, coms, rmats, w):
+        v = np.gradient(c, 1 / rate, axis=0)
+        i_lab = r @ INERTIA[seg].inertia_local @ np.swapaxes(r, 1, 2)
+        energy += INERTIA[seg].mass_kg * (0.5 * (v**2).sum(1) + 9.81 * c[:, 2])
+        energy += 0.5 * np.einsum("fi,fij,fj->f", ww, i_lab, ww)
+    e_rate = np.gradient(energy, 1 / rate)
+    v_hip = np.gradient(hip, 1 / rate, axis=0)
+    power = ((jm.hip_force_lab * v_hip).sum(1) + (jm.hip_lab * w[0]).sum(1) + (jm.knee_lab * (w[1] - w[0])).sum(1)
+             + (jm.ankle_lab * (w[2] - w[1])).sum(1))
+    inner = slice(10, -10)
+    err = np.sqrt(np.mean((power[inner] - e_rate[inner]) ** 2))
+    assert err < 0.005 * np.abs(e_rate[inner]).max()
+
+
+# --------------------------------------------------------------------------- static optimisation
+def _random_sharing_problem(rng, n_frames, n_muscles=9):
+    """Moment-arm signs as in the swing model: 3 biarticular hamstrings, 1 knee flexor, 1 hip extensor,
+    1 hip flexor, 1 hip flexor + knee extensor, 1 knee extensor, 1 knee flexor (m)."""
+    signs = np.array([[-1, 1], [-1, 1], [-1, 1], [0, 1], [-1, 0], [1, 0], [1, -1], [0, -1], [0, 1]], dtype=float)
+    arms = signs[None, :n_muscles] * rng.uniform(0.01, 0.07, (n_frames, n_muscles, 2))
+    cap = rng.uniform(300.0, 6000.0, (n_frames, n_muscles))
+    return arms, cap
+
+
+def _slsqp(arms, cap, target):
+    a_mat = (arms * cap[:, None]).T  # [2, m]
+    a_mat, target = a_mat / np.abs(a_mat).max(), target / np.abs(a_mat).max()  # same constraints, well scaled
+    m = arms.shape[0]
+    res = minimize(lambda a: a @ a, np.full(m, 0.5), jac=lambda a: 2 * a, method="SLSQP",
+                   bounds=[(0.0, 1.0)] * m,
+                   constraints={"type": "eq", "fun": lambda a: a_mat @ a - target, "jac": lambda a: a_mat},
+                   options={"ftol": 1e-12, "maxiter": 500})
+    return res
+
+
+def test_share_forces_matches_slsqp_on_random_frames():
+    rng = np.random.default_rng(7)
+    n = 40
+    arms, cap = _random_sharing_problem(rng, n)
+    truth_act = rng.uniform(0.0, 1.0, (n, arms.shape[1])) ** 2  # some feasible activations -> reachable moments
+    target = np.einsum("fmj,fm->fj", arms, truth_act * cap)
+    forces, met = dyn.share_forces(arms, cap, target)
+    assert met.all()
+    np.testing.assert_allclose(np.einsum("fmj,fm->fj", arms, forces), target, atol=1e-4)
+    act = forces / cap
+    assert (act >= -1e-12).all() and (act <= 1 + 1e-12).all()
+    saturated = 0
+    for f in range(n):
+        ref = _slsqp(arms[f], cap[f], target[f])
+        assert ref.success
+        assert act[f] @ act[f] <= ref.fun + 1e-7  # never worse than SLSQP
+        np.testing.assert_allclose(act[f], ref.x, atol=2e-4)
+        saturated += int((ref.x > 1 - 1e-6).any() or (ref.x < 1e-6).any())
+    assert saturated > n // 2  # the bounds were active in most frames, so the active-set part is exercised
+
+
+def test_share_forces_interior_solution_is_closed_form():
+    rng = np.random.default_rng(3)
+    arms, cap = _random_sharing_problem(rng, 5)
+    arms = np.abs(arms)  # all moment arms positive: unbounded optimum a = A^T (A A^T)^-1 M is positive
+    target = np.full((5, 2), 20.0)
+    forces, met = dyn.share_forces(arms, cap, target)
+    for f in range(5):
+        a_mat = (arms[f] * cap[f][:, None]).T
+        expected = a_mat.T @ np.linalg.solve(a_mat @ a_mat.T, target[f])
+        assert 0 < expected.min() and expected.max() < 1
+        np.testing.assert_allclose(forces[f] / cap[f], expected, rtol=1e-8, atol=1e-12)
+    assert met.all()
+
+
+def test_share_forces_reports_unreachable_moments():
+    rng = np.random.default_rng(11)
+    arms, cap = _random_sharing_problem(rng, 6)
+    max_knee_flexion = np.einsum("fm,fm->f", np.clip(arms[:, :, 1], 0, None), cap)
+    target = np.stack([np.zeros(6), 1.5 * max_knee_flexion], axis=1)
+    target[:3, 1] = 0.3 * max_knee_flexion[:3]  # first three reachable, last three beyond every knee flexor
+    target[5] = np.nan  # outside swing
+    forces, met = dyn.share_forces(arms, cap, target)
+    assert met[:3].all() and not met[3:].any()
+    flexors = arms[3, :, 1] > 0
+    np.testing.assert_allclose(forces[3, flexors], cap[3, flexors], rtol=1e-6)  # every flexor at its maximum
+    assert np.isnan(forces[5]).all()
+
+
+# --------------------------------------------------------------------------- work
+def test_negative_and_positive_work_closed_form():
+    rate = 1000.0
+    t = np.arange(0.0, 1.0 + 1e-12, 1 / rate)
+    force = np.full_like(t, 1000.0)
+    velocity = 0.5 * np.sin(2 * np.pi * t)  # lengthening in the first half, shortening in the second
+    neg, pos = dyn.negative_positive_work(force, velocity, rate, 0, len(t))
+    # integral of 500 sin(2 pi t) over half a period = 500 / pi J
+    assert neg == pytest.approx(500 / np.pi, rel=1e-4)
+    assert pos == pytest.approx(500 / np.pi, rel=1e-4)
+    neg_half, pos_half = dyn.negative_positive_work(force, velocity, rate, 0, 501)
+    assert neg_half == pytest.approx(500 / np.pi, rel=1e-4) and pos_half == pytest.approx(0.0, abs=1e-9)
+    force_nan = force.copy()
+    force_nan[10] = np.nan
+    assert np.isnan(dyn.negative_positive_work(force_nan, velocity, rate, 0, 100)).all()
+    md = dyn.MuscleDynamics("st", force, velocity, -force * velocity, rate)
+    assert md.work_over(0, 501) == (neg_half, pos_half)
+    assert (md.power_w[1:500] < 0).all()  # delivered power is negative while the muscle absorbs energy
