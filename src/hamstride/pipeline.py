@@ -166,7 +166,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                                   dims_body.shank_length_m[side], dims_body.foot_length_m[side])
             moments = swing_inverse_dynamics(body.thigh[side], body.shank[side], body.foot[side],
                                              body.hip_centre[side], body.knee_centre[side], body.ankle_centre[side],
-                                             body.heel[side], body.toe[side], rate, inertia, swing_mask=swing)
+                                             body.heel[side], body.toe[side], rate, inertia, swing_mask=swing,
+                                             pelvis=body.pelvis, side=side)
             hip_moment = moments.hip_flexion_nm / body_mass
             knee_moment = moments.knee_flexion_nm / body_mass
             forces_side, unmet = muscle_forces(moments, states, joint, rate)

@@ -1,0 +1,104 @@
+"""The main job end to end on the shipped demo squad (issue 6 acceptance).
+
+The demo squad is invented (synth stage); the expected outcomes follow from how it was built: a returning athlete
+with a right-side deficit that shrinks over three sessions, and symmetric athletes with ordinary stride noise.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from hamstride.cli import app
+
+DEMO = Path(__file__).resolve().parents[1] / "demo_trials"
+pytestmark = pytest.mark.skipif(not (DEMO / "athletes.csv").exists(), reason="demo squad not generated")
+
+
+@pytest.fixture(scope="module")
+def squad_run(tmp_path_factory):
+    root = tmp_path_factory.mktemp("squad") / "demo"
+    shutil.copytree(DEMO, root)
+    # A corrupt trial inside the squad: the first 3 kB of a real file.
+    first = sorted(root.glob("*/*/sprint_*.c3d"))[0]
+    (first.parent / "sprint_99_cut.c3d").write_bytes(first.read_bytes()[:3000])
+    out = root.parent / "out"
+    result = CliRunner().invoke(app, ["squad", str(root), "--out", str(out), "--jobs", "2"])
+    return root, out, result
+
+
+def _athletes():
+    return pd.read_csv(DEMO / "athletes.csv", dtype={"athlete": str})
+
+
+def test_corrupt_trial_fails_alone_with_exit_code_1(squad_run):
+    root, out, result = squad_run
+    assert result.exit_code == 1, result.output
+    manifest = json.loads((out / "manifest.json").read_text())
+    failed = [r for r in manifest["inputs"] if r["status"] == "failed"]
+    assert [Path(r["file"]).name for r in failed] == ["sprint_99_cut.c3d"]
+    assert failed[0]["code"] == "truncated" and "sprint_99_cut.c3d" in failed[0]["reason"]
+    assert "sprint_99_cut.c3d" in result.output
+    ok = [r for r in manifest["inputs"] if r["status"] == "ok"]
+    assert len(ok) == len(list(DEMO.glob("*/*/sprint_*.c3d")))
+    assert all(len(r["sha256"]) == 64 for r in manifest["inputs"])
+    assert manifest["version"] and manifest["configuration"]["flags"]["asymmetry_pct"] == 10.0
+
+
+def test_tables_follow_the_export_contract(squad_run):
+    _, out, _ = squad_run
+    strides = pd.read_csv(out / "strides.csv")
+    # design.md required columns
+    for col in ["athlete", "session", "trial", "side", "stride", "muscle", "foot_strike_s", "toe_off_s",
+                "next_foot_strike_s", "stride_time_s", "toe_off_pct", "peak_hip_flexion_deg", "peak_knee_flexion_deg",
+                "peak_strain_pct", "peak_strain_time_pct", "peak_fibre_length_lopt",
+                "peak_lengthening_velocity_lopt_per_s", "negative_work_j"]:
+        assert col in strides.columns, col
+    curves = pd.read_csv(out / "curves.csv", nrows=5000)
+    for col in ["athlete", "session", "trial", "side", "stride", "muscle", "pct", "hip_flexion_deg",
+                "hip_adduction_deg", "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt",
+                "velocity_lopt_per_s", "force_n", "power_w"]:
+        assert col in curves.columns, col
+    assert set(strides["muscle"]) >= {"bflh", "st", "sm"}
+    assert set(strides["side"]) == {"left", "right"}
+    flags = pd.read_csv(out / "flags.csv")
+    assert list(flags.columns) == ["athlete", "session", "side", "muscle", "flag", "value", "threshold", "message"]
+    assert (out / "summary.csv").exists() and (out / "index.html").exists()
+
+
+def test_returning_athlete_flagged_first_session_less_in_last(squad_run):
+    _, out, _ = squad_run
+    athletes = _athletes()
+    returning = athletes[athletes["involved_side"] == "right"]["athlete"].iloc[0]
+    flags = pd.read_csv(out / "flags.csv", dtype={"athlete": str})
+    mine = flags[(flags["athlete"] == returning) & flags["flag"].isin(["involved_side_guarding", "side_asymmetry"])]
+    sessions = sorted(pd.read_csv(out / "summary.csv", dtype={"athlete": str}).query("athlete == @returning")["session"].unique())
+    assert len(sessions) == 3
+    first = mine[mine["session"] == sessions[0]]
+    last = mine[mine["session"] == sessions[-1]]
+    assert len(first) > 0, "first session of the returning athlete must be flagged"
+    assert len(last) < len(first)
+
+
+def test_symmetric_athletes_get_no_asymmetry_flag(squad_run):
+    _, out, _ = squad_run
+    athletes = _athletes()
+    symmetric = set(athletes[athletes["involved_side"].fillna("none") == "none"]["athlete"])
+    flags = pd.read_csv(out / "flags.csv", dtype={"athlete": str})
+    wrong = flags[flags["athlete"].isin(symmetric) & (flags["flag"] == "side_asymmetry")]
+    assert wrong.empty, wrong.to_string()
+
+
+def test_rerun_uses_cache_and_is_byte_identical(squad_run):
+    root, out, _ = squad_run
+    before = {name: (out / name).read_bytes() for name in ("strides.csv", "curves.csv", "summary.csv", "flags.csv")}
+    result = CliRunner().invoke(app, ["squad", str(root), "--out", str(out), "--jobs", "2", "--no-report"])
+    assert result.exit_code == 1
+    assert " 0 analysed" in result.output.replace("(0 analysed", " 0 analysed")
+    for name, data in before.items():
+        assert (out / name).read_bytes() == data, name
+    assert not list(out.rglob("*.partial*"))
