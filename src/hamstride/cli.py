@@ -153,7 +153,7 @@ def analyze_cmd(
 
 @app.command("squad")
 def squad_cmd(
-    root: Path = typer.Argument(..., help="Squad folder: athletes.csv and <athlete>/<session>/*.c3d."),
+    root: Path = typer.Argument(..., help="Squad folder: athletes.csv and ATHLETE/SESSION/*.c3d."),
     out: Path = typer.Option(Path("reports"), "--out", help="Output folder for tables and reports."),
     jobs: Optional[int] = typer.Option(None, "--jobs", min=1, help="Worker processes (default: all cores)."),
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
