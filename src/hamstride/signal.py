@@ -195,6 +195,19 @@ def residuals(x: np.ndarray, rate_hz: float, cutoffs_hz: np.ndarray) -> np.ndarr
     return out
 
 
+def _analysis_window(x2: np.ndarray) -> np.ndarray:
+    """Frames and columns for residual analysis: every frame if some columns have no gap; otherwise the longest
+    stretch of frames in which at least half the columns are present, keeping the columns complete over it."""
+    finite = np.isfinite(x2)
+    if finite.all(axis=0).any() or not finite.any():
+        return x2
+    _, starts, stops = _runs((finite.mean(axis=1) >= 0.5)[:, None])
+    if not len(starts):
+        return x2[:0]
+    k = int(np.argmax(stops - starts))
+    return x2[starts[k]:stops[k]]
+
+
 def residual_cutoff(
     x: np.ndarray,
     rate_hz: float,
@@ -208,14 +221,15 @@ def residual_cutoff(
     line fitted to the high-frequency part (default: the upper half of the range, from ``fit_from_hz``), its
     intercept at 0 Hz taken as the noise level, and the cutoff where R first falls to that level (linear
     interpolation between grid points). The trial's cutoff is the median over columns, so a few markers with odd
-    content cannot drag it. Columns with NaN or no variation are ignored; if none remain, the lower bound is returned.
+    content cannot drag it. Columns with NaN or no variation are ignored (if every column has a gap, the longest
+    stretch of frames where most are present is used); if nothing usable remains, the lower bound is returned.
     """
     lo, hi = fc_range if fc_range is not None else (2.0, 0.25 * rate_hz)
     hi = min(hi, 0.49 * rate_hz)
     if not 0 < lo < hi:
         raise ConfigError(f"residual analysis range {lo:g}-{hi:g} Hz is empty at {rate_hz:g} Hz")
     cutoffs = np.arange(lo, hi + 1e-9, step_hz)
-    x2 = np.asarray(x, dtype=float).reshape(len(x), -1)
+    x2 = _analysis_window(np.asarray(x, dtype=float).reshape(len(x), -1))
     usable = np.isfinite(x2).all(axis=0) & (np.ptp(np.nan_to_num(x2), axis=0) > 0)
     if not usable.any() or x2.shape[0] < 8:
         return float(lo)
