@@ -413,3 +413,47 @@ def test_negative_and_positive_work_closed_form():
     md = dyn.MuscleDynamics("st", force, velocity, -force * velocity, rate)
     assert md.work_over(0, 501) == (neg_half, pos_half)
     assert (md.power_w[1:500] < 0).all()  # delivered power is negative while the muscle absorbs energy
+
+
+# --------------------------------------------------------------------------- muscles in the swing
+@pytest.fixture(scope="module")
+def swing_sharing(swing_sim):
+    from hamstride.muscles import MuscleDims, muscle_states
+
+    t, q, tau = swing_sim
+    moments = _inverse_dynamics_from_markers(_planar_markers(t, q), RATE_HZ)
+    angles = {"hip_flexion": q[:, 0], "hip_adduction": 0.05 * np.sin(9 * t), "hip_rotation": 0.05 + 0.1 * np.sin(6 * t),
+              "knee_flexion": q[:, 0] - q[:, 1]}  # out-of-plane angles so the hamstrings also carry those moments
+    states = muscle_states(angles, RATE_HZ, MuscleDims(0.26, 0.16, L_THIGH, L_SHANK), body_mass_kg=BODY_MASS,
+                           scale_force_to_mass=True)
+    return t, moments, angles, states, dyn.share_swing_moments(moments, states, angles, RATE_HZ)
+
+
+def test_muscle_power_equals_minus_joint_power_of_carried_moments(swing_sharing):
+    """Sum_m F_m v_m = -Sum_j M_j w_j (tendon-excursion identity, DEVELOPERS.md) within 1 % on every frame where the
+    moments are met; sagittal M_j are the inverse-dynamics moments, the others what the hamstrings carry."""
+    t, moments, angles, states, res = swing_sharing
+    met = res.valid & ~res.unmet
+    assert met.sum() > 0.3 * res.valid.sum()  # late swing in particular must be met
+    rates = {k: np.gradient(v, 1 / RATE_HZ) for k, v in angles.items()}
+    muscle_power = sum(res.force_n[m] * res.velocity_m_per_s[m] for m in res.force_n)
+    joint_power = moments.hip_flexion_nm * rates["hip_flexion"] + moments.knee_flexion_nm * rates["knee_flexion"]
+    for j, name in ((1, "hip_adduction"), (2, "hip_rotation")):
+        joint_power = joint_power + sum(states[m].moment_arms_m[:, j] * res.force_n[m] for m in states) * rates[name]
+    scale = np.abs(joint_power[met]) + 1e-3 * np.nanmax(np.abs(joint_power[met]))
+    assert (np.abs(muscle_power[met] + joint_power[met]) <= 0.01 * scale).all()
+
+
+def test_shared_forces_reproduce_the_moments_within_bounds(swing_sharing):
+    t, moments, angles, states, res = swing_sharing
+    met = res.valid & ~res.unmet
+    hip = sum(res.moment_arms_m[m][:, 0] * res.force_n[m] for m in res.force_n)
+    knee = sum(res.moment_arms_m[m][:, 1] * res.force_n[m] for m in res.force_n)
+    np.testing.assert_allclose(hip[met], moments.hip_flexion_nm[met], atol=1e-3)
+    np.testing.assert_allclose(knee[met], moments.knee_flexion_nm[met], atol=1e-3)
+    for m, f in res.force_n.items():
+        assert (f[res.valid] >= 0).all(), m
+    # a knee-flexor moment with a hip-extensor moment (late swing) is carried by the hamstrings
+    late = met & (moments.knee_flexion_nm > 10) & (moments.hip_flexion_nm < -10)
+    assert late.any()
+    assert (sum(res.force_n[m][late] for m in ("bflh", "st", "sm")) > 0).all()

@@ -462,9 +462,13 @@ OTHER_MUSCLES: dict[str, OtherMuscle] = {
     ),
 }
 
-# Hamstring PCSA (cm^2) that the muscles stage's unscaled maximum forces correspond to (references.md, Ward 2009 [M]).
-WARD_2009_HAMSTRING_PCSA_CM2 = {"bflh": 11.3, "st": 4.8, "sm": 18.4, "bfsh": 5.1}
-SPECIFIC_TENSION_N_PER_CM2 = 26.8  # Persad et al. 2024, J Appl Physiol 137:945 [V]
+SPECIFIC_TENSION_N_PER_CM2 = 26.8  # Persad et al. 2024, J Appl Physiol 137:945 [V]; the muscles stage uses the same
+
+#: Multiplier on every muscle's maximum isometric force in the sharing problem. Cadaver PCSAs (Ward et al. 2009,
+#: elderly donors) underestimate young athletes' muscles (references.md); young adults' hamstring and quadriceps
+#: volumes are roughly twice those of elderly cadavers (Handsfield et al. 2014, J Biomech 47:631, from memory).
+#: Assumption: 2.0. Frames where even this cannot meet the moments are reported, never hidden.
+ATHLETE_STRENGTH_FACTOR = 2.0
 
 
 @dataclass(frozen=True)
@@ -487,7 +491,8 @@ def other_muscle_kinematics(
     """Moment arms and lengthening velocity v = -(r_hip dhip/dt + r_knee dknee/dt) of the non-hamstring muscles."""
     hip = np.asarray(hip_flexion_rad, dtype=float)
     knee = np.asarray(knee_flexion_rad, dtype=float)
-    hip_rate, knee_rate = _derivative(hip, rate_hz), _derivative(knee, rate_hz)
+    # angle rates exactly as the muscles stage takes them (np.gradient), so all muscles share one joint velocity
+    hip_rate, knee_rate = (np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in (hip, knee))
     out = {}
     for code, m in muscles.items():
         arms = np.stack([m.hip_moment_arm(hip), m.knee_moment_arm(knee)], axis=1)
@@ -497,10 +502,13 @@ def other_muscle_kinematics(
     return out
 
 
-def _hamstring_strength_scale(states: Mapping[str, MuscleState]) -> float:
-    """Ratio of the hamstrings' maximum forces (muscles stage) to PCSA x specific tension: applied to the others."""
-    got = sum(float(states[m].max_isometric_force_n) for m in states if m in WARD_2009_HAMSTRING_PCSA_CM2)
-    ref = sum(WARD_2009_HAMSTRING_PCSA_CM2[m] * SPECIFIC_TENSION_N_PER_CM2 for m in states if m in WARD_2009_HAMSTRING_PCSA_CM2)
+def _mass_scale(states: Mapping[str, MuscleState]) -> float:
+    """How much the muscles stage scaled the hamstrings' PCSA-based forces (body-mass scaling), to apply alike to
+    the other muscles: ratio of the states' maximum forces to PCSA x specific tension of the same muscles."""
+    from . import muscles as mus
+
+    got = sum(float(states[m].max_isometric_force_n) for m in states if m in mus.ARCHITECTURE)
+    ref = sum(mus.ARCHITECTURE[m].max_isometric_force_n for m in states if m in mus.ARCHITECTURE)
     return got / ref if ref > 0 and np.isfinite(got) and got > 0 else 1.0
 
 
@@ -518,8 +526,7 @@ class ForceSharing:
 def share_swing_moments(
     moments: JointMoments,
     states: Mapping[str, MuscleState],
-    hip_flexion_rad: np.ndarray,
-    knee_flexion_rad: np.ndarray,
+    angles: Mapping[str, np.ndarray],
     rate_hz: float,
     strength_scale: float | None = None,
     include_passive: bool = True,
@@ -528,20 +535,21 @@ def share_swing_moments(
 
     Hamstrings: capacity = Fmax fl(l) fv(v) from the muscles stage's fibre length and velocity, plus the passive
     force Fmax fp(l) that acts whatever the activation. Other muscles: Fmax fv(v) with v from their moment arms and a
-    rigid tendon (their length-force relation is not modelled: set to 1), no passive force. ``strength_scale``
-    multiplies the other muscles' PCSA-based force; default: the same ratio the muscles stage applied to the
-    hamstrings, so all muscles are scaled alike.
+    rigid tendon (their length-force relation is not modelled: set to 1), no passive force. ``angles`` are the
+    joint angles in rad as given to ``muscles.muscle_states`` (keys ``hip_flexion``, ``knee_flexion``).
+    Maximum forces: the states' (hamstrings) and PCSA x specific tension x the states' body-mass scaling (others),
+    all multiplied by ``strength_scale`` (default ``ATHLETE_STRENGTH_FACTOR``).
     """
     from . import muscles as mus  # same or earlier stage: allowed
 
-    hip = np.asarray(hip_flexion_rad, dtype=float)
+    hip = np.asarray(angles["hip_flexion"], dtype=float)
     n = hip.shape[0]
     if strength_scale is None:
-        strength_scale = _hamstring_strength_scale(states)
-    others = other_muscle_kinematics(hip, knee_flexion_rad, rate_hz, strength_scale)
+        strength_scale = ATHLETE_STRENGTH_FACTOR
+    others = other_muscle_kinematics(hip, angles["knee_flexion"], rate_hz, strength_scale * _mass_scale(states))
     names, arms, caps, passive, vel = [], [], [], [], []
     for code, st in states.items():
-        fmax = float(st.max_isometric_force_n)
+        fmax = float(st.max_isometric_force_n) * strength_scale
         l_norm = np.asarray(st.fibre_length_lopt, dtype=float)
         v_norm = np.asarray(st.velocity_lopt_per_s, dtype=float)
         names.append(code)
@@ -578,16 +586,16 @@ def share_swing_moments(
 def muscle_forces(
     moments: JointMoments,
     states: Mapping[str, MuscleState],
-    hip_flexion_rad: np.ndarray,
-    knee_flexion_rad: np.ndarray,
+    angles: Mapping[str, np.ndarray],
     rate_hz: float,
     strength_scale: float | None = None,
     include_passive: bool = True,
 ) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """Forces (N) [F] of every muscle in the sharing problem and the swing frames whose moments were not met."""
-    res = share_swing_moments(
-        moments, states, hip_flexion_rad, knee_flexion_rad, rate_hz, strength_scale, include_passive
-    )
+    """Forces (N) [F] of every muscle in the sharing problem and the swing frames whose moments were not met.
+
+    See ``share_swing_moments``; ``angles`` as given to ``muscles.muscle_states`` (rad).
+    """
+    res = share_swing_moments(moments, states, angles, rate_hz, strength_scale, include_passive)
     return res.force_n, res.unmet
 
 
