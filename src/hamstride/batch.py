@@ -271,9 +271,12 @@ class SquadRun:
 
 
 def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
-              on_done: Callable[[TrialJob, str, dict], None]) -> None:
-    """Run jobs in a process pool; a worker that dies (native crash) becomes a failed-trial record."""
+              on_done: Callable[[TrialJob, str, dict], None], cluster=None) -> None:
+    """Run jobs in a process pool (or on a Dask cluster); a worker that dies (native crash) becomes a failed-trial record."""
     if not todo:
+        return
+    if cluster is not None:
+        run_on_cluster(todo, options, cluster, on_done)
         return
     if jobs <= 1:
         for job, key in todo:
@@ -306,8 +309,11 @@ def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: 
 
 def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, markers: str | Path | None = None,
               config: RunConfig = RunConfig(), report: bool = True, athlete_filter: str | None = None,
-              progress: Callable[[int, int, int], None] | None = None) -> SquadRun:
-    """Analyse a whole squad folder and write the tables, manifest and (optionally) reports under ``out``."""
+              progress: Callable[[int, int, int], None] | None = None, cluster=None) -> SquadRun:
+    """Analyse a whole squad folder and write the tables, manifest and (optionally) reports under ``out``.
+
+    ``cluster`` (optional): send the trials to an existing Dask cluster instead of local processes; see
+    :func:`run_on_cluster`."""
     root, out = Path(root), Path(out)
     athletes, all_jobs = discover_squad(root, markers)
     if athlete_filter is not None:
@@ -351,7 +357,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         if progress:
             progress(done[0], total, failures[0])
 
-    _run_pool(todo, config.analysis, jobs, on_done)
+    _run_pool(todo, config.analysis, jobs, on_done, cluster=cluster)
 
     stride_tables, failed = [], []
     curve_files: list[Path] = []
@@ -465,3 +471,106 @@ def build_timeline(run: SquadRun, athlete: str) -> pd.DataFrame:
             "peak_strain_symmetry_index_pct", "peak_strain_lsi_pct", "negative_work_lsi_pct"]
     summary = summary.sort_values(["date", "session", "muscle", "side"], kind="stable")
     return summary[[c for c in cols if c in summary.columns]].reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------------------------- Dask cluster
+
+CLUSTER_CONNECT_TIMEOUT_S = 30.0
+
+
+def _worker_software() -> str:
+    """Runs on a cluster worker: the hamstride version it would analyse with."""
+    from . import __version__ as worker_version
+    return worker_version
+
+
+def _analyse_job_on_worker(job: TrialJob, options: AnalysisOptions) -> dict:
+    """Cluster task: like the local worker, plus a clear record when the worker host cannot see the file."""
+    for label, path in (("trial", job.path), ("static trial", job.static_path), ("marker map", job.markers)):
+        if path is not None and not os.path.exists(path):
+            import socket
+            return {"status": "failed", "code": "not_on_worker",
+                    "reason": f"trial {Path(job.path).name}: the {label} {path} is not visible on cluster worker "
+                              f"{socket.gethostname()}; the workers must see the squad folder at the same path "
+                              "(shared disk)"}
+    return _analyse_job(job, options)
+
+
+def _connect_cluster(cluster):
+    """A dask.distributed Client for ``cluster``: a scheduler address (tcp://HOST:PORT), a scheduler file or a Client."""
+    try:
+        from distributed import Client
+    except ImportError:
+        raise ConfigError("--cluster needs the optional Dask extra; install it with "
+                          "pip install 'hamstride[cluster]' (or run without --cluster on this computer's cores)") from None
+    if isinstance(cluster, Client):
+        return cluster, False
+    target = str(getattr(cluster, "scheduler_address", cluster))
+    try:
+        if "://" not in target and Path(target).is_file():
+            client = Client(scheduler_file=target, timeout=CLUSTER_CONNECT_TIMEOUT_S)
+        elif "://" not in target and target.lower().endswith(".json"):
+            raise ConfigError(f"scheduler file {target} not found; start the scheduler with "
+                              f"`dask scheduler --scheduler-file {target}` first")
+        else:
+            client = Client(target, timeout=CLUSTER_CONNECT_TIMEOUT_S)
+    except (OSError, TimeoutError) as exc:
+        raise ConfigError(f"could not reach the Dask scheduler at {target} within {CLUSTER_CONNECT_TIMEOUT_S:g} s "
+                          f"({type(exc).__name__}); check that `dask scheduler` is running and the address/port is "
+                          "right, or run without --cluster") from None
+    return client, True
+
+
+def run_on_cluster(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, cluster,
+                   on_done: Callable[[TrialJob, str, dict], None]) -> None:
+    """Send trials to an existing Dask distributed cluster; results go through ``on_done`` exactly as in the pool.
+
+    ``cluster`` is a scheduler address (``tcp://HOST:PORT``), a scheduler file written by
+    ``dask scheduler --scheduler-file FILE``, a ``distributed.Client`` or anything with ``scheduler_address``
+    (e.g. a ``LocalCluster``). Workers read the C3D files themselves, so they need the squad folder at the same
+    path (shared disk) and the same hamstride version. The analysis code and the CSV text are the ones of the
+    local pool, so the tables are byte-identical; caching and the manifest stay on this computer.
+    """
+    if not todo:
+        return
+    client, owned = _connect_cluster(cluster)
+    try:
+        from distributed import KilledWorker, as_completed
+        from . import __version__ as local_version
+
+        try:
+            client.wait_for_workers(1, timeout=CLUSTER_CONNECT_TIMEOUT_S)
+        except TimeoutError:
+            raise ConfigError(f"the Dask scheduler at {client.scheduler.address} has no workers; start some with "
+                              f"`dask worker {client.scheduler.address}`") from None
+        try:
+            versions = client.run(_worker_software)
+        except Exception as exc:
+            raise ConfigError(f"the Dask workers could not load hamstride ({type(exc).__name__}: {exc}); install "
+                              "hamstride (same version) in every worker's Python environment") from None
+        wrong = sorted({str(v) for v in versions.values()} - {local_version})
+        if wrong:
+            raise ConfigError(f"cluster workers run hamstride {', '.join(wrong)} but this computer runs "
+                              f"{local_version}; install the same version on every worker")
+        remote = [replace(job, path=os.path.abspath(job.path),
+                          static_path=os.path.abspath(job.static_path) if job.static_path else None,
+                          markers=os.path.abspath(job.markers) if job.markers else None) for job, _ in todo]
+        keys = [f"hamstride-trial-{i}-{key}" for i, (_, key) in enumerate(todo)]
+        futures = client.map(_analyse_job_on_worker, remote, options=options, key=keys, pure=False)
+        by_key = {f.key: item for f, item in zip(futures, todo)}
+        for future in as_completed(futures):
+            job, key = by_key[future.key]
+            try:
+                result = future.result()
+            except KilledWorker:  # workers died on this trial repeatedly: a native crash, as in the local pool
+                result = {"status": "failed", "code": "reader_crash",
+                          "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
+                                    "it is probably corrupt; re-export it from the capture software"}
+            except Exception as exc:  # the cluster went away: do not cache a failure, the trial is not at fault
+                raise HamstrideError(f"lost the Dask cluster ({type(exc).__name__}: {exc}); trials finished so far "
+                                     "are cached, run the same command again to continue", code="cluster_lost") from None
+            on_done(job, key, result)
+            future.release()
+    finally:
+        if owned:
+            client.close()
