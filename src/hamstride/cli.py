@@ -159,10 +159,16 @@ def squad_cmd(
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
     config: Optional[Path] = typer.Option(None, "--config", help="TOML config; see `hamstride config`."),
     no_report: bool = typer.Option(False, "--no-report", help="Write tables only, no HTML/PDF reports."),
+    cluster: Optional[str] = typer.Option(
+        None, "--cluster", help="Send trials to an existing Dask cluster: scheduler address tcp://HOST:PORT or a "
+                                "scheduler file (needs `pip install 'hamstride[cluster]'`; workers must see ROOT "
+                                "at the same path). --jobs is then ignored."),
 ) -> None:
     """Analyse a whole squad: tables, flags, manifest and reports (the main job).
 
     Example: `hamstride squad demo_trials --out reports/`
+
+    On a Dask cluster: `hamstride squad /shared/squad --out reports/ --cluster tcp://10.0.0.5:8786`
 
     Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors.
     """
@@ -183,7 +189,7 @@ def squad_cmd(
 
         try:
             run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=not no_report,
-                            progress=progress)
+                            progress=progress, cluster=cluster)
         except HamstrideError as exc:
             _fail(exc, 2)
     counts = run.manifest["counts"]
