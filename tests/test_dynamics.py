@@ -395,6 +395,14 @@ def test_share_forces_reports_unreachable_moments():
     assert np.isnan(forces[5]).all()
 
 
+def test_share_forces_without_any_capacity_gives_zero_force_not_met():
+    rng = np.random.default_rng(5)
+    arms, cap = _random_sharing_problem(rng, 2)
+    cap[0] = 0.0  # e.g. every fibre outside its active range
+    forces, met = dyn.share_forces(arms, cap, np.array([[10.0, 5.0], [0.0, 0.0]]))
+    assert (forces == 0).all() and not met[0] and met[1]
+
+
 # --------------------------------------------------------------------------- work
 def test_negative_and_positive_work_closed_form():
     rate = 1000.0

@@ -354,7 +354,7 @@ def share_forces(
     a_mat = np.swapaxes(r * cap[:, :, None], 1, 2)  # [F, 2, m]
     eye = np.eye(2)
     gram = np.einsum("fjm,fkm->fjk", a_mat, a_mat)
-    scale = np.einsum("fjj->f", gram)[:, None, None] + 1e-300
+    scale = np.einsum("fjj->f", gram)[:, None, None] + 1.0  # floor keeps frames without any capacity finite
     lam = np.linalg.solve(gram + 1e-12 * scale * eye, bb[:, :, None])[:, :, 0]
     tol = tol_nm * (1.0 + np.abs(bb).max(axis=1))
     steps = 0.5 ** np.arange(0, 30)
