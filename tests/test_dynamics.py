@@ -465,3 +465,108 @@ def test_shared_forces_reproduce_the_moments_within_bounds(swing_sharing):
     late = met & (moments.knee_flexion_nm > 10) & (moments.hip_flexion_nm < -10)
     assert late.any()
     assert (sum(res.force_n[m][late] for m in ("bflh", "st", "sm")) > 0).all()
+
+
+# --------------------------------------------------------------------------- generated sprints (published behaviour)
+def _sprint_swings(speed_m_s, side="right"):
+    """Inverse dynamics and force sharing on the truth kinematics of a generated sprint (hamstride.synth);
+    per complete swing: work in each half, lengthening-under-load fraction, peak-force timing."""
+    from hamstride import synth
+    from hamstride.muscles import MuscleDims, muscle_states
+
+    spec = synth.SprintSpec(speed_m_s=speed_m_s, noise_mm=0.0, n_gaps=0, seed=4, duration_s=2.0)
+    _, _, tr = synth.simulate_sprint(spec)
+    b, rate, n = tr.body, tr.rate_hz, len(tr.time_s)
+    seg = {s: Frames(tr.origins[f"{side}_{s}"], tr.axes[f"{side}_{s}"]) for s in dyn.SEGMENTS}
+    swing = dyn.swing_mask_from_events(n, rate, tr.toe_offs_s[side], tr.foot_strikes_s[side])
+    moments = dyn.swing_inverse_dynamics(
+        seg["thigh"], seg["shank"], seg["foot"], tr.joint_centres[f"{side}_hip"], tr.joint_centres[f"{side}_knee"],
+        tr.joint_centres[f"{side}_ankle"], tr.landmarks_lab[f"{side}_heel"], tr.landmarks_lab[f"{side}_toe_tip"],
+        rate, dyn.leg_inertia(b.mass_kg, b.sex, b.thigh_length_m, b.shank_length_m, b.foot_length_m),
+        swing_mask=swing, pelvis=Frames(tr.origins["pelvis"], tr.axes["pelvis"]), side=side)
+    angles = {k: tr.angles[side][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
+    states = muscle_states(angles, rate, MuscleDims(b.pelvis_width_m, b.pelvis_depth_m, b.thigh_length_m,
+                                                    b.shank_length_m), body_mass_kg=b.mass_kg)
+    md = dyn.muscle_dynamics(dyn.share_swing_moments(moments, states, angles, rate), rate)
+    fs = np.sort(tr.foot_strikes_s[side])
+    swings = []
+    for to in np.sort(tr.toe_offs_s[side]):
+        before, after = fs[fs < to], fs[fs > to]
+        if not (before.size and after.size):
+            continue
+        a, z = int(np.ceil(to * rate)), int(np.floor(after[0] * rate))
+        mid = (a + z) // 2
+        knee_peak = a + int(np.argmax(angles["knee_flexion"][a:z + 1]))
+        cycle = (after[0] - before[-1]) * rate
+        out = {"late_swing_start": knee_peak}
+        for m in ("bflh", "st", "sm"):
+            d = md[m]
+            second = slice(mid, z + 1)
+            peak, i_peak = d.peak_force(a, z + 1)
+            out[m] = {
+                "neg_first": d.work_over(a, mid + 1)[0],
+                "neg_second": d.work_over(mid, z + 1)[0],
+                "neg": d.work_over(a, z + 1)[0],
+                "lengthening_under_load": np.mean((d.force_n[second] > 1.0) & (d.velocity_m_per_s[second] > 0)),
+                "i_peak": i_peak,
+                "peak_pct_cycle": 100 * (i_peak - before[-1] * rate) / cycle,
+            }
+        swings.append(out)
+    assert len(swings) >= 2
+    return swings
+
+
+@pytest.fixture(scope="module")
+def sprint_swings():
+    return {speed: _sprint_swings(speed) for speed in (7.0, 9.0)}
+
+
+def test_hamstrings_lengthen_under_load_and_absorb_energy_in_the_second_half_of_swing(sprint_swings):
+    # Chumanov et al. 2011 (MSSE 43:525): lengthening under load from about 50 to 90 % of the gait cycle, negative
+    # work in swing; Schache et al. 2012 (MSSE 44:647): large negative work in terminal swing [direction only].
+    for swings in sprint_swings.values():
+        for s in swings:
+            for m in ("bflh", "st", "sm"):
+                w = s[m]
+                assert w["neg_second"] > 1.0, m
+                assert w["neg_second"] > 3 * w["neg_first"], m
+                assert w["lengthening_under_load"] > 0.3, m
+
+
+def test_negative_work_rises_with_speed(sprint_swings):
+    # Chumanov et al. 2011: hamstring negative work in swing rises with speed.
+    def mean_work(swings):
+        return np.mean([sum(s[m]["neg"] for m in ("bflh", "st", "sm")) for s in swings])
+
+    assert mean_work(sprint_swings[9.0]) > 1.1 * mean_work(sprint_swings[7.0])
+
+
+def test_peak_hamstring_force_in_late_swing(sprint_swings):
+    # Schache et al. 2012: peak force in terminal swing; Nagano et al. 2014 (J Sports Sci 32:1722): peak BF force at
+    # 80.5 +- 2.9 % of the running cycle. Late swing = swing-phase peak knee flexion to foot strike (design.md).
+    for swings in sprint_swings.values():
+        for s in swings:
+            for m in ("bflh", "st", "sm"):
+                assert s[m]["i_peak"] >= s["late_swing_start"], m
+                assert 65.0 < s[m]["peak_pct_cycle"] < 95.0, m
+
+
+# --------------------------------------------------------------------------- missing body mass (whole trial)
+def test_missing_body_mass_keeps_kinematics_and_empties_forces(tmp_path):
+    from hamstride import synth
+    from hamstride.io import write_c3d
+    from hamstride.pipeline import AthleteInfo, analyse_trial
+
+    spec = synth.SprintSpec(speed_m_s=8.5, seed=3)
+    labels, xyz, _ = synth.simulate_sprint(spec)
+    write_c3d(tmp_path / "no_mass.c3d", labels, xyz, spec.rate_hz, units=spec.units)  # no subject body mass
+    res = analyse_trial(tmp_path / "no_mass.c3d", athlete=AthleteInfo(athlete="SYN01"))
+    assert len(res.strides) > 0
+    assert np.isfinite(res.strides["peak_strain_pct"]).all()
+    assert np.isfinite(res.curves["length_m"]).all()
+    assert res.strides[["peak_force_n", "negative_work_j"]].isna().all().all()
+    assert res.curves[["force_n", "power_w", "hip_moment_nm_per_kg", "knee_moment_nm_per_kg"]].isna().all().all()
+    assert any("body mass" in w for w in res.info["warnings"])
+    with_mass = analyse_trial(tmp_path / "no_mass.c3d", athlete=AthleteInfo(athlete="SYN01", body_mass_kg=75.0))
+    assert np.isfinite(with_mass.strides["negative_work_j"]).all()
+    assert (with_mass.strides["negative_work_j"] > 0).all()
