@@ -175,7 +175,8 @@ def fill_gaps(x: np.ndarray, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES) -> tu
         x2[np.ix_(to_fill, group)] = spline(frames[to_fill])
     not_filled = set(long_)
     filled = tuple(g for g in short if g not in not_filled)
-    return x2.reshape(arr.shape), GapReport(filled=filled, unfilled=tuple(sorted(long_, key=lambda g: (g.column, g.start))))
+    unfilled = tuple(sorted(long_, key=lambda g: (g.column, g.start)))
+    return x2.reshape(arr.shape), GapReport(filled=filled, unfilled=unfilled)
 
 
 # --------------------------------------------------------------------------- residual analysis
