@@ -1,0 +1,834 @@
+"""Synthetic sprint trials with known truth, and the invented demo squad.
+
+Truth is defined by construction in the conventions of DEVELOPERS.md: ISB segment frames (Wu et al. 2002) are
+built first, landmarks are then placed in those frames, and the truth joint angles are the Grood & Suntay JCS
+decomposition (intrinsic Z-X-Y Cardan of ``R_prox^T R_dist``) of the truth frames. Landmarks sit where the
+pipeline's marker-based frames reproduce the truth frames exactly: the hip centre lies on the Harrington et al. 2007
+pelvis-width regression (J Biomech 40:595), knee/ankle centres midway between epicondyles/malleoli, heel and
+metatarsal heads at one height in the foot frame.
+
+Model: each leg is a planar hip-knee-ankle chain (thigh, shank, foot share the lab's medio-lateral Z axis) in the
+vertical plane through its hip centre; the pelvis translates, tilts, rolls and yaws. Swing: hip flexion, knee
+flexion and ankle angle are C2 cubic splines of swing phase through sprint key values (references.md, "Typical sprint
+kinematics" [M]; stance about 22 % of the stride, Mann & Hagy 1980). Stance: the toe tip is pinned to the ground
+(treadmill: moves backward at belt speed) while the foot pitch follows a prescribed roll-over; thigh and shank come
+from planar two-link inverse kinematics. The swing joins stance with matched angle rates at toe-off (the toe
+lifts with an acceleration step, a jerk peak) and through a short quintic (C2) landing of the toe before foot
+strike (a sharp upward-acceleration peak, as at a real touchdown). Foot strike / toe-off truth = the instants the
+toe tip reaches / leaves the ground.
+
+Internal lab frame: x forward (travel), y to the athlete's left, z up, metres. Files may be Y-up, travel along -x,
+and in mm, cm or m.
+"""
+from __future__ import annotations
+
+import csv
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Mapping, Sequence
+
+import numpy as np
+from scipy.interpolate import CubicSpline
+
+SIDES = ("left", "right")
+_RIGHT_SIGN = {"right": 1.0, "left": -1.0}  # lateral direction along the segment +Z (which points right)
+_DEG = np.pi / 180.0
+_HIP_TRUTH_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion", "ankle_dorsiflexion")
+
+# Landmark name (DEVELOPERS.md) -> default C3D label suffix (owned by landmarks.py; a test checks they agree).
+LANDMARK_LABELS = {
+    "asis": "asis", "psis": "psis", "lateral_epicondyle": "knee.lat", "medial_epicondyle": "knee.med",
+    "lateral_malleolus": "ankle.lat", "medial_malleolus": "ankle.med", "heel": "heel",
+    "first_metatarsal": "met1", "fifth_metatarsal": "met5", "toe_tip": "toe",
+}
+MEDIAL_SITES = ("medial_epicondyle", "medial_malleolus")
+CLUSTER_SEGMENTS = ("thigh", "shank")
+
+
+# ------------------------------------------------------------------------------------------------ body and spec
+@dataclass(frozen=True)
+class AthleteBody:
+    """Segment dimensions of one (invented) athlete, m and kg."""
+
+    height_m: float
+    mass_kg: float
+    sex: str  # 'male' / 'female'
+    pelvis_width_m: float  # inter-ASIS distance (PW)
+    pelvis_depth_m: float  # mid-ASIS to mid-PSIS (PD)
+    thigh_length_m: float  # hip centre -> knee centre
+    shank_length_m: float  # knee centre -> ankle centre
+    foot_length_m: float  # heel -> toe tip
+    knee_width_m: float  # epicondyle to epicondyle
+    ankle_width_m: float  # malleolus to malleolus
+
+    @classmethod
+    def from_height(cls, height_m: float, mass_kg: float = 75.0, sex: str = "male") -> "AthleteBody":
+        """Proportional body from stature.
+
+        Segment lengths / stature from de Leva 1996 (J Biomech 29:1223, Table 1 mean lengths and statures; from
+        memory): male thigh 422.2/1741, shank 434.0/1741, foot 258.1/1741; female 368.5/1735, 432.3/1735,
+        228.3/1735. Pelvis width/depth and joint widths: invented, common-practice magnitudes (PW 0.24-0.27 m).
+        """
+        if sex not in ("male", "female"):
+            raise ValueError("sex must be 'male' or 'female'")
+        h = float(height_m)
+        if sex == "male":
+            thigh, shank, foot, pw = 422.2 / 1741, 434.0 / 1741, 258.1 / 1741, 0.137
+        else:
+            thigh, shank, foot, pw = 368.5 / 1735, 432.3 / 1735, 228.3 / 1735, 0.150
+        return cls(height_m=h, mass_kg=float(mass_kg), sex=sex, pelvis_width_m=pw * h, pelvis_depth_m=0.088 * h,
+                   thigh_length_m=thigh * h, shank_length_m=shank * h, foot_length_m=foot * h,
+                   knee_width_m=0.056 * h, ankle_width_m=0.040 * h)
+
+
+_DEFAULT_BODY = AthleteBody.from_height(1.80, 75.0, "male")
+
+
+@dataclass(frozen=True)
+class SprintSpec:
+    """What to simulate and how the file should look."""
+
+    speed_m_s: float = 8.5
+    rate_hz: float = 250.0
+    duration_s: float = 2.0
+    treadmill: bool = False
+    vertical_axis: str = "z"  # the FILE's vertical axis: 'z' or 'y'
+    travel_sign: int = 1  # direction of travel along the FILE's forward axis (+1 / -1)
+    units: str = "mm"  # 'mm', 'cm' or 'm' in the FILE
+    noise_mm: float = 0.5
+    n_gaps: int = 3  # short gaps (2-8 frames) in random markers
+    asymmetry_side: str | None = None
+    hip_flexion_deficit_deg: float = 0.0  # less late-swing hip flexion on asymmetry_side
+    knee_extension_deficit_deg: float = 0.0  # less late-swing knee extension on asymmetry_side
+    stride_jitter: float = 1.0  # scale of the natural stride-to-stride variation (0 = identical strides)
+    include_medial: bool = True
+    include_clusters: bool = True
+    include_events: bool = False  # write foot strikes / toe-offs into the C3D EVENT group
+    seed: int = 0
+    body: AthleteBody = _DEFAULT_BODY
+    athlete: str = "SYN01"
+
+
+@dataclass(frozen=True)
+class SprintTruth:
+    """Noise-free truth of a synthetic trial (internal lab frame, SI units)."""
+
+    time_s: np.ndarray  # [F]
+    rate_hz: float
+    angles: Mapping[str, Mapping[str, np.ndarray]]  # side -> name -> [F] rad
+    foot_strikes_s: Mapping[str, np.ndarray]
+    toe_offs_s: Mapping[str, np.ndarray]
+    speed_m_s: float
+    treadmill: bool
+    body: AthleteBody
+    landmarks_lab: Mapping[str, np.ndarray]  # landmark name (right_asis ...) -> [F, 3]
+    markers_lab: Mapping[str, np.ndarray]  # C3D label -> [F, 3], noise-free
+    origins: Mapping[str, np.ndarray]  # 'pelvis', 'right_thigh', ... -> [F, 3]
+    axes: Mapping[str, np.ndarray]  # same keys -> [F, 3, 3], columns = segment X, Y, Z in the lab
+    joint_centres: Mapping[str, np.ndarray]  # 'right_hip', 'right_knee', 'right_ankle', ... -> [F, 3]
+    contact_landmark: str = "toe_tip"  # the landmark pinned to the ground in stance
+    belt_speed_m_s: float = 0.0
+
+
+# ------------------------------------------------------------------------------------------------ geometry helpers
+def jcs_zxy(prox_axes: np.ndarray, dist_axes: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Intrinsic Z-X-Y Cardan angles of ``R_prox^T R_dist`` (Grood & Suntay 1983 JCS), closed form.
+
+    With R = Rz(a) Rx(b) Ry(c): R[2,1] = sin b, R[0,1] = -sin a cos b, R[1,1] = cos a cos b,
+    R[2,0] = -cos b sin c, R[2,2] = cos b cos c.
+    """
+    rel = np.einsum("...ji,...jk->...ik", prox_axes, dist_axes)
+    b = np.arcsin(np.clip(rel[..., 2, 1], -1.0, 1.0))
+    a = np.arctan2(-rel[..., 0, 1], rel[..., 1, 1])
+    c = np.arctan2(-rel[..., 2, 0], rel[..., 2, 2])
+    return a, b, c
+
+
+def _sagittal_axes(pitch: np.ndarray) -> np.ndarray:
+    """Leg-segment axes [n, 3, 3] for a rotation ``pitch`` about the segment Z (= lab -y) from the upright pose."""
+    c, s = np.cos(pitch), np.sin(pitch)
+    z = np.zeros_like(pitch)
+    x_axis = np.stack([c, z, s], axis=-1)
+    y_axis = np.stack([-s, z, c], axis=-1)
+    z_axis = np.stack([z, z - 1.0, z], axis=-1)
+    return np.stack([x_axis, y_axis, z_axis], axis=-1)
+
+
+def _pelvis_axes(pitch: np.ndarray, roll: np.ndarray, yaw: np.ndarray) -> np.ndarray:
+    """Pelvis axes = Rz_lab(yaw) Rx_lab(roll) R_sagittal(pitch)."""
+    base = _sagittal_axes(pitch)
+    cr, sr = np.cos(roll), np.sin(roll)
+    cy, sy = np.cos(yaw), np.sin(yaw)
+    one, zero = np.ones_like(roll), np.zeros_like(roll)
+    rx = np.stack([np.stack([one, zero, zero], -1), np.stack([zero, cr, -sr], -1), np.stack([zero, sr, cr], -1)], -2)
+    rz = np.stack([np.stack([cy, -sy, zero], -1), np.stack([sy, cy, zero], -1), np.stack([zero, zero, one], -1)], -2)
+    return rz @ rx @ base
+
+
+def _rot2(pitch: np.ndarray, local: np.ndarray) -> np.ndarray:
+    """Sagittal (x, z) lab offset of a foot-frame point (X, Y) for foot pitch ``pitch``: [n, 2]."""
+    c, s = np.cos(pitch), np.sin(pitch)
+    return np.stack([local[0] * c - local[1] * s, local[0] * s + local[1] * c], axis=-1)
+
+
+def _hermite5(u: np.ndarray, p0, v0, a0, p1, v1, a1, dt: float) -> np.ndarray:
+    """Quintic Hermite (position, velocity, acceleration at both ends) at normalised time u in [0, 1]."""
+    u = np.asarray(u)[..., None] if np.ndim(p0) else np.asarray(u)
+    u2, u3, u4, u5 = u * u, u ** 3, u ** 4, u ** 5
+    h0 = 1 - 10 * u3 + 15 * u4 - 6 * u5
+    h1 = u - 6 * u3 + 8 * u4 - 3 * u5
+    h2 = 0.5 * u2 - 1.5 * u3 + 1.5 * u4 - 0.5 * u5
+    h3 = 0.5 * u3 - u4 + 0.5 * u5
+    h4 = -4 * u3 + 7 * u4 - 3 * u5
+    h5 = 10 * u3 - 15 * u4 + 6 * u5
+    return p0 * h0 + v0 * dt * h1 + a0 * dt * dt * h2 + a1 * dt * dt * h3 + v1 * dt * h4 + p1 * h5
+
+
+def _smoothstep5(u: np.ndarray) -> np.ndarray:
+    u = np.clip(u, 0.0, 1.0)
+    return u ** 3 * (10 - 15 * u + 6 * u * u)
+
+
+def _derivatives(fun: Callable[[np.ndarray], np.ndarray], t0: float, eps: float = 2e-5):
+    """Value, first and second time derivative of a vectorised function at t0 (central differences)."""
+    v = fun(np.array([t0 - eps, t0, t0 + eps]))
+    return v[1], (v[2] - v[0]) / (2 * eps), (v[2] - 2 * v[1] + v[0]) / (eps * eps)
+
+
+# ------------------------------------------------------------------------------------------------ local geometry
+def hip_centre_local(body: AthleteBody, side: str) -> np.ndarray:
+    """Hip joint centre in the pelvis frame (m): Harrington et al. 2007 pelvis-width-only regression.
+
+    x = -0.24 PD - 9.9, y = -0.30 PW - 10.9, z = +/-(0.33 PW + 7.3) mm (+ right); references.md table [V].
+    """
+    pw, pd = body.pelvis_width_m * 1000.0, body.pelvis_depth_m * 1000.0
+    return np.array([-0.24 * pd - 9.9, -0.30 * pw - 10.9, _RIGHT_SIGN[side] * (0.33 * pw + 7.3)]) / 1000.0
+
+
+def _foot_local(body: AthleteBody, side: str) -> dict[str, np.ndarray]:
+    """Foot landmarks in the foot frame (origin ankle centre). Heel and metatarsal heads at one plantar height."""
+    lf = body.foot_length_m
+    plantar = -0.25 * lf  # ankle centre about a quarter foot length above the sole markers (invented)
+    lat = _RIGHT_SIGN[side]
+    return {
+        "heel": np.array([-0.22 * lf, plantar, 0.0]),
+        "first_metatarsal": np.array([0.52 * lf, plantar, -lat * 0.13 * lf]),
+        "fifth_metatarsal": np.array([0.44 * lf, plantar, lat * 0.13 * lf]),
+        "toe_tip": np.array([0.78 * lf, plantar, -lat * 0.03 * lf]),
+    }
+
+
+def _segment_local(body: AthleteBody, side: str) -> dict[str, dict[str, np.ndarray]]:
+    """Landmarks and cluster markers in their segment frames."""
+    lat = _RIGHT_SIGN[side]
+    lt, ls = body.thigh_length_m, body.shank_length_m
+    kw, aw = body.knee_width_m, body.ankle_width_m
+    thigh = {
+        "lateral_epicondyle": np.array([0.0, -lt, lat * kw / 2]),
+        "medial_epicondyle": np.array([0.0, -lt, -lat * kw / 2]),
+        "thigh.a": np.array([0.035, -0.40 * lt, lat * 0.085]),
+        "thigh.b": np.array([-0.030, -0.52 * lt, lat * 0.080]),
+        "thigh.c": np.array([0.030, -0.66 * lt, lat * 0.075]),
+    }
+    shank = {
+        "lateral_malleolus": np.array([0.0, -ls, lat * aw / 2]),
+        "medial_malleolus": np.array([0.0, -ls, -lat * aw / 2]),
+        "shank.a": np.array([0.030, -0.30 * ls, lat * 0.060]),
+        "shank.b": np.array([-0.025, -0.45 * ls, lat * 0.058]),
+        "shank.c": np.array([0.030, -0.60 * ls, lat * 0.052]),
+    }
+    pelvis = {
+        "asis": np.array([0.0, 0.0, lat * body.pelvis_width_m / 2]),
+        "psis": np.array([-body.pelvis_depth_m, 0.0, lat * 0.045 * body.height_m / 1.80]),
+    }
+    return {"pelvis": pelvis, "thigh": thigh, "shank": shank, "foot": _foot_local(body, side)}
+
+
+def marker_labels(include_medial: bool = True, include_clusters: bool = True) -> tuple[str, ...]:
+    """Default C3D labels in file order (pelvis, right leg, left leg, clusters)."""
+    labels = []
+    for side in ("right", "left"):
+        for site, label in LANDMARK_LABELS.items():
+            if site in MEDIAL_SITES and not include_medial:
+                continue
+            labels.append(f"{side[0]}.{label}")
+    if include_clusters:
+        for side in ("right", "left"):
+            for seg in CLUSTER_SEGMENTS:
+                labels.extend(f"{side[0]}.{seg}.{k}" for k in "abc")
+    return tuple(labels)
+
+
+# ------------------------------------------------------------------------------------------------ sprint design
+@dataclass(frozen=True)
+class _Design:
+    """Key values of one sprint (radians, seconds, metres)."""
+
+    stride_time: float
+    pelvis_tilt: float
+    hip_td: float
+    knee_td: float
+    pitch_td: float
+    knee_to: float
+    pitch_to: float
+    hip_peak: float
+    knee_peak: float
+    knee_min: float
+    toe_velocity_td: tuple[float, float]
+    stance_dip: float
+    flight_rise: float
+    s_hip_peak: float = 0.62  # swing phase (0 = toe-off, 1 = foot strike) of the swing key points
+    s_knee_peak: float = 0.38
+    s_knee_min: float = 0.93
+    landing_window: float = 0.006  # toe comes to rest in the last 6 ms before foot strike
+
+
+def _design(speed: float) -> _Design:
+    """Sprint key values as a function of speed (7-9.5 m/s).
+
+    Stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]; peak hip flexion 65-80 deg, knee 15-30 deg at foot
+    strike, peak knee flexion 120-135 deg, late-swing knee extension to 10-30 deg [M, references.md]. Faster running:
+    shorter stride time, more hip flexion, more late-swing knee extension (common practice).
+    """
+    k = float(np.clip((speed - 7.0) / 2.5, -0.4, 1.4))
+    return _Design(
+        stride_time=0.470 - 0.036 * k,
+        pelvis_tilt=-12.0 * _DEG,
+        hip_td=(37.0 + 2.0 * k) * _DEG,
+        knee_td=22.0 * _DEG,
+        pitch_td=-14.0 * _DEG,
+        knee_to=(20.0 - 4.0 * k) * _DEG,
+        pitch_to=-52.0 * _DEG,
+        hip_peak=(70.0 + 6.0 * k) * _DEG,
+        knee_peak=(124.0 + 6.0 * k) * _DEG,
+        knee_min=(22.0 - 8.0 * k) * _DEG,
+        toe_velocity_td=(1.0, -1.5),  # toe still moving forward/down just before touchdown (invented)
+        stance_dip=0.035,
+        flight_rise=0.012,
+    )
+
+
+def _planar_leg(phi_t, phi_s, phi_f, body: AthleteBody, toe_local: np.ndarray):
+    """Knee, ankle and toe (x, z) relative to the hip for absolute thigh/shank/foot pitches."""
+    lt, ls = body.thigh_length_m, body.shank_length_m
+    knee = np.stack([lt * np.sin(phi_t), -lt * np.cos(phi_t)], axis=-1)
+    ankle = knee + np.stack([ls * np.sin(phi_s), -ls * np.cos(phi_s)], axis=-1)
+    toe = ankle + _rot2(phi_f, toe_local)
+    return knee, ankle, toe
+
+
+def _two_link_ik(rel_ankle: np.ndarray, body: AthleteBody) -> tuple[np.ndarray, np.ndarray]:
+    """Thigh and shank pitch placing the ankle at ``rel_ankle`` (x, z from the hip), knee flexed forward."""
+    lt, ls = body.thigh_length_m, body.shank_length_m
+    d = np.linalg.norm(rel_ankle, axis=-1)
+    if np.any(d > lt + ls) or np.any(d < abs(lt - ls)):
+        raise RuntimeError("synthetic stance out of leg reach; adjust the sprint design")
+    knee = np.pi - np.arccos(np.clip((lt * lt + ls * ls - d * d) / (2 * lt * ls), -1.0, 1.0))
+    beta = np.arctan2(rel_ankle[..., 0], -rel_ankle[..., 1])
+    gamma = np.arccos(np.clip((lt * lt + d * d - ls * ls) / (2 * lt * d), -1.0, 1.0))
+    phi_t = beta + gamma
+    return phi_t, phi_t - knee
+
+
+@dataclass
+class _Step:
+    side: str
+    strike: float
+    toe_off: float
+    contact_x: float = np.nan
+    stance_pitch: CubicSpline | None = None
+
+
+class _Gait:
+    """Continuous-time model of one sprint (ground frame); every method takes an array of times."""
+
+    def __init__(self, spec: SprintSpec, rng: np.random.Generator):
+        self.spec, self.body = spec, spec.body
+        self.design = d = _design(spec.speed_m_s)
+        self.v = float(spec.speed_m_s)
+        self.toe_local = {s: _foot_local(self.body, s)["toe_tip"][:2] for s in SIDES}
+        self.hip_local = {s: hip_centre_local(self.body, s) for s in SIDES}
+        jitter = float(spec.stride_jitter)
+
+        # Foot-strike configuration (same on both sides): toe offset from the hip fixes the standing hip height.
+        pitch_at_strike = d.pelvis_tilt + 1.5 * _DEG  # pelvis pitch is phase-locked: same at every strike
+        phi_t = pitch_at_strike + d.hip_td
+        phi_s = phi_t - d.knee_td
+        _, _, toe = _planar_leg(phi_t, phi_s, d.pitch_td, self.body, self.toe_local["right"])
+        self.td_reach = toe  # (x ahead, z below) of the hip at foot strike
+        self.h_td = -toe[1]
+        self.h_to = self.h_td - 0.010
+        # Contact time from the toe-off geometry: knee at knee_to with the foot pitched to pitch_to.
+        lt, ls = self.body.thigh_length_m, self.body.shank_length_m
+        reach = np.sqrt(lt * lt + ls * ls + 2 * lt * ls * np.cos(d.knee_to))
+        toe_from_ankle = _rot2(np.array(d.pitch_to), self.toe_local["right"])
+        ankle_height = -toe_from_ankle[1]
+        behind = np.sqrt(reach ** 2 - (self.h_to - ankle_height) ** 2) - toe_from_ankle[0]
+        self.contact_time = (toe[0] + behind) / self.v
+
+        # Step timeline: alternate right/left, starting before t = 0, with small stride-to-stride timing jitter.
+        t = -d.stride_time * (1.0 + rng.uniform(0.0, 1.0))
+        steps: list[_Step] = []
+        side = "right"
+        while t < spec.duration_s + 1.5 * d.stride_time:
+            steps.append(_Step(side, t, t + self.contact_time))
+            t += 0.5 * d.stride_time * (1.0 + 0.012 * jitter * rng.standard_normal())
+            side = "left" if side == "right" else "right"
+        self.steps = steps
+        strikes = np.array([s.strike for s in steps])
+        self.phase = CubicSpline(strikes, 0.5 * np.arange(len(steps)))  # right strides; right strike = integer
+
+        # Pelvis vertical: knots at strike, mid-stance, toe-off and mid-flight for the stance side's hip height.
+        knots_t, knots_z = [], []
+        for i, st in enumerate(steps[:-1]):
+            nxt = steps[i + 1].strike
+            for tk, hz, sd in ((st.strike, self.h_td, st.side),
+                               (st.strike + 0.5 * self.contact_time, self.h_td - d.stance_dip, st.side),
+                               (st.toe_off, self.h_to, st.side),
+                               (0.5 * (st.toe_off + nxt), self.h_td + d.flight_rise, None)):
+                offset = self._hip_offset(np.array([tk]), sd)[0, 2]
+                knots_t.append(tk)
+                knots_z.append(hz - offset)
+        self.pelvis_z = CubicSpline(np.array(knots_t), np.array(knots_z))
+
+        # Per-stride swing targets with natural variation; asymmetry on one side.
+        for st in steps:
+            hip_peak, knee_min = d.hip_peak, d.knee_min
+            if spec.asymmetry_side == st.side:
+                hip_peak -= spec.hip_flexion_deficit_deg * _DEG
+                knee_min += spec.knee_extension_deficit_deg * _DEG
+            st.hip_peak = hip_peak + 1.2 * _DEG * jitter * rng.standard_normal()
+            st.knee_peak = d.knee_peak + 2.0 * _DEG * jitter * rng.standard_normal()
+            st.knee_min = knee_min + 1.2 * _DEG * jitter * rng.standard_normal()
+            st.ankle_peak = 8.0 * _DEG + 1.5 * _DEG * jitter * rng.standard_normal()
+        self._build_legs()
+
+    # -- pelvis
+    def pelvis_angles(self, t):
+        ph = self.phase(t)
+        pitch = self.design.pelvis_tilt + 1.5 * _DEG * np.cos(4 * np.pi * ph)
+        roll = 3.0 * _DEG * np.sin(2 * np.pi * ph)
+        yaw = 5.0 * _DEG * np.cos(2 * np.pi * ph)
+        return pitch, roll, yaw
+
+    def pelvis_axes(self, t):
+        return _pelvis_axes(*self.pelvis_angles(t))
+
+    def _hip_offset(self, t, side):
+        """Hip centre offset from mid-ASIS in the lab; side None = mean of both hips."""
+        axes = self.pelvis_axes(t)
+        if side is None:
+            return 0.5 * (axes @ self.hip_local["right"] + axes @ self.hip_local["left"])
+        return axes @ self.hip_local[side]
+
+    def _right_weight(self, t):
+        """1 in right stance, 0 in left stance, C2 smooth in between (for the pelvis side-to-side position)."""
+        w = np.zeros_like(t, dtype=float)
+        for i, st in enumerate(self.steps):
+            stance = (t >= st.strike) & (t <= st.toe_off)
+            w[stance] = 1.0 if st.side == "right" else 0.0
+            nxt = self.steps[i + 1].strike if i + 1 < len(self.steps) else st.toe_off + 1.0
+            flight = (t > st.toe_off) & (t < nxt)
+            ramp = _smoothstep5((t[flight] - st.toe_off) / (nxt - st.toe_off))
+            w[flight] = 1.0 - ramp if st.side == "right" else ramp
+        before = t < self.steps[0].strike
+        w[before] = 0.0
+        return w
+
+    def pelvis_origin(self, t):
+        t = np.asarray(t, dtype=float)
+        axes = self.pelvis_axes(t)
+        lateral = {s: -(axes @ self.hip_local[s])[:, 1] + self.hip_local[s][2] * -1.0 for s in SIDES}
+        w = self._right_weight(t)
+        y = w * lateral["right"] + (1.0 - w) * lateral["left"]
+        return np.stack([self.v * t, y, self.pelvis_z(t)], axis=-1)
+
+    def hip(self, t, side):
+        t = np.asarray(t, dtype=float)
+        return self.pelvis_origin(t) + self.pelvis_axes(t) @ self.hip_local[side]
+
+    # -- legs
+    def _stance_pitches(self, t, st: _Step):
+        """Thigh, shank, foot pitch in stance: toe pinned at contact_x, planar IK."""
+        t = np.asarray(t, dtype=float)
+        phi_f = st.stance_pitch((t - st.strike) / self.contact_time)
+        hip = self.hip(t, st.side)
+        toe = np.stack([np.full_like(t, st.contact_x), np.zeros_like(t)], axis=-1)
+        ankle = toe - _rot2(phi_f, self.toe_local[st.side])
+        phi_t, phi_s = _two_link_ik(ankle - hip[:, [0, 2]], self.body)
+        return np.stack([phi_t, phi_s, phi_f], axis=-1)
+
+    def _build_legs(self):
+        d, body = self.design, self.body
+        td = self.td_reach
+        # Stance: contact point from the strike configuration, foot pitch roll-over spline.
+        for st in self.steps:
+            st.contact_x = self.hip(np.array([st.strike]), st.side)[0, 0] + td[0]
+            st.stance_pitch = CubicSpline([0.0, 0.4, 0.75, 1.0],
+                                          [d.pitch_td, -6.0 * _DEG, -22.0 * _DEG, d.pitch_to])
+        # Swing: from each toe-off to the same side's next strike.
+        self.swings = []
+        by_side = {s: [st for st in self.steps if st.side == s] for s in SIDES}
+        for side in SIDES:
+            seq = by_side[side]
+            for st, nxt in zip(seq[:-1], seq[1:]):
+                self.swings.append(self._swing(st, nxt))
+
+    def _swing(self, st: _Step, nxt: _Step):
+        d, body = self.design, self.body
+        t0, t1 = st.toe_off, nxt.strike
+        dur = t1 - t0
+        pelvis_pitch = lambda t: self.pelvis_angles(np.asarray(t))[0]
+        # start: stance state at toe-off (angles relative, and their rates) -> C1 join
+        p, dp, _ = _derivatives(lambda t: self._stance_pitches(t, st), t0)
+        pp, dpp, _ = _derivatives(pelvis_pitch, t0)
+        start = np.array([p[0] - pp, p[0] - p[1], p[2] - p[1]])
+        start_rate = np.array([dp[0] - dpp, dp[0] - dp[1], dp[2] - dp[1]]) * dur
+        # end: strike configuration; rates so that the toe moves at toe_velocity_td (ground frame)
+        pp1, dpp1, _ = _derivatives(pelvis_pitch, t1)
+        phi_t = pp1 + d.hip_td
+        phi_s = phi_t - d.knee_td
+        _, dfoot, _ = _derivatives(lambda t: nxt.stance_pitch((np.asarray(t) - nxt.strike) / self.contact_time), t1)
+        hip_v = _derivatives(lambda t: self.hip(t, st.side), t1)[1][[0, 2]]
+        lt, ls = body.thigh_length_m, body.shank_length_m
+        toe_l = self.toe_local[st.side]
+        c, s = np.cos(d.pitch_td), np.sin(d.pitch_td)
+        foot_term = np.array([-toe_l[0] * s - toe_l[1] * c, toe_l[0] * c - toe_l[1] * s]) * dfoot
+        target = np.asarray(d.toe_velocity_td) - hip_v - foot_term
+        jac = np.array([[lt * np.cos(phi_t), ls * np.cos(phi_s)], [lt * np.sin(phi_t), ls * np.sin(phi_s)]])
+        w_t, w_s = np.linalg.solve(jac, target)
+        end = np.array([d.hip_td, d.knee_td, d.pitch_td - phi_s])
+        end_rate = np.array([w_t - dpp1, w_t - w_s, dfoot - w_s]) * dur
+
+        def between(s_a, v_a, m_a, s_b, v_b, m_b, n=3):
+            """Cubic-Hermite samples strictly between (s_a, v_a, slope m_a) and (s_b, v_b, slope m_b)."""
+            u = np.linspace(0.0, 1.0, n + 2)[1:-1]
+            h = s_b - s_a
+            vals = ((2 * u ** 3 - 3 * u ** 2 + 1) * v_a + (u ** 3 - 2 * u ** 2 + u) * h * m_a
+                    + (-2 * u ** 3 + 3 * u ** 2) * v_b + (u ** 3 - u ** 2) * h * m_b)
+            return list(zip(s_a + u * h, vals))
+
+        def spline(points, rate0, rate1):
+            s_k, v_k = zip(*points)
+            return CubicSpline(np.array(s_k), np.array(v_k), bc_type=((1, rate0), (1, rate1)))
+
+        # hip flexion: rises from toe-off to its late-swing peak, then extends to the strike value
+        s_pk = d.s_hip_peak
+        hip = spline([(0.0, start[0])] + between(0.0, start[0], start_rate[0], s_pk, st.hip_peak, 0.0)
+                     + [(s_pk, st.hip_peak)] + between(s_pk, st.hip_peak, 0.0, 1.0, end[0], end_rate[0])
+                     + [(1.0, end[0])], start_rate[0], end_rate[0])
+        # knee flexion: peak in early/mid swing, extension to the late-swing minimum, slight flexion to strike
+        k_pk, k_mn = d.s_knee_peak, d.s_knee_min
+        knee = spline([(0.0, start[1])] + between(0.0, start[1], start_rate[1], k_pk, st.knee_peak, 0.0)
+                      + [(k_pk, st.knee_peak)] + between(k_pk, st.knee_peak, 0.0, k_mn, st.knee_min, 0.0)
+                      + [(k_mn, st.knee_min)] + between(k_mn, st.knee_min, 0.0, 1.0, end[1], end_rate[1], n=1)
+                      + [(1.0, end[1])], start_rate[1], end_rate[1])
+        ankle = spline([(0.0, start[2]), (0.3, 0.0), (0.6, st.ankle_peak), (0.85, 0.6 * st.ankle_peak),
+                        (1.0, end[2])], start_rate[2], end_rate[2])
+        return {"side": st.side, "t0": t0, "t1": t1, "hip": hip, "knee": knee, "ankle": ankle, "next": nxt}
+
+    def _swing_pitches(self, t, sw):
+        t = np.asarray(t, dtype=float)
+        s = (t - sw["t0"]) / (sw["t1"] - sw["t0"])
+        phi_t = self.pelvis_angles(t)[0] + sw["hip"](s)
+        phi_s = phi_t - sw["knee"](s)
+        return np.stack([phi_t, phi_s, phi_s + sw["ankle"](s)], axis=-1)
+
+    def _landing_pitches(self, t, sw, window: float):
+        """Last ``window`` s before strike: quintic toe path to rest at the contact point, then IK."""
+        nxt = sw["next"]
+        side = sw["side"]
+        t_a = sw["t1"] - window
+        toe_fun = lambda tt: self.hip(tt, side)[:, [0, 2]] + _planar_leg(
+            *self._swing_pitches(tt, sw).T, self.body, self.toe_local[side])[2]
+        p0, v0, a0 = _derivatives(toe_fun, t_a)
+        f0, fv0, fa0 = _derivatives(lambda tt: self._swing_pitches(tt, sw)[:, 2], t_a)
+        pitch_fun = lambda tt: nxt.stance_pitch((np.asarray(tt) - nxt.strike) / self.contact_time)
+        f1, fv1, fa1 = _derivatives(pitch_fun, nxt.strike)
+        u = (np.asarray(t, dtype=float) - t_a) / window
+        toe = _hermite5(u, p0, v0, a0, np.array([nxt.contact_x, 0.0]), np.zeros(2), np.zeros(2), window)
+        phi_f = _hermite5(u, f0, fv0, fa0, f1, fv1, fa1, window)
+        ankle = toe - _rot2(phi_f, self.toe_local[side])
+        phi_t, phi_s = _two_link_ik(ankle - self.hip(t, side)[:, [0, 2]], self.body)
+        return np.stack([phi_t, phi_s, phi_f], axis=-1)
+
+    def leg_pitches(self, t, side):
+        """Absolute thigh, shank and foot pitch [n, 3] of one leg at times t (ground frame)."""
+        t = np.asarray(t, dtype=float)
+        landing_window = self.design.landing_window
+        out = np.full((len(t), 3), np.nan)
+        for st in self.steps:
+            if st.side != side:
+                continue
+            m = (t >= st.strike) & (t <= st.toe_off)
+            if m.any():
+                out[m] = self._stance_pitches(t[m], st)
+        for sw in self.swings:
+            if sw["side"] != side:
+                continue
+            m = (t > sw["t0"]) & (t < sw["t1"] - landing_window)
+            if m.any():
+                out[m] = self._swing_pitches(t[m], sw)
+            m = (t >= sw["t1"] - landing_window) & (t < sw["t1"])
+            if m.any():
+                out[m] = self._landing_pitches(t[m], sw, landing_window)
+        if np.isnan(out).any():
+            raise RuntimeError("synthetic gait timeline does not cover the trial")
+        return out
+
+    def events(self, t_end: float):
+        fs = {s: np.array([st.strike for st in self.steps if st.side == s and 0.0 <= st.strike <= t_end])
+              for s in SIDES}
+        to = {s: np.array([st.toe_off for st in self.steps if st.side == s and 0.0 <= st.toe_off <= t_end])
+              for s in SIDES}
+        return fs, to
+
+
+# ------------------------------------------------------------------------------------------------ kinematics -> truth
+def _assemble(time_s: np.ndarray, rate_hz: float, body: AthleteBody, pelvis_origin: np.ndarray,
+              pelvis_axes: np.ndarray, pitches: Mapping[str, np.ndarray], *, include_medial: bool,
+              include_clusters: bool, speed: float, treadmill: bool, strikes, toe_offs, belt: float = 0.0
+              ) -> tuple[tuple[str, ...], np.ndarray, SprintTruth]:
+    """Frames, landmarks, markers and JCS truth angles from pelvis pose and per-leg sagittal pitches."""
+    origins = {"pelvis": pelvis_origin}
+    axes = {"pelvis": pelvis_axes}
+    centres: dict[str, np.ndarray] = {}
+    landmarks: dict[str, np.ndarray] = {}
+    markers: dict[str, np.ndarray] = {}
+    angles: dict[str, dict[str, np.ndarray]] = {}
+    for side in SIDES:
+        local = _segment_local(body, side)
+        hip = pelvis_origin + pelvis_axes @ hip_centre_local(body, side)
+        phi_t, phi_s, phi_f = pitches[side].T
+        thigh_ax, shank_ax, foot_ax = _sagittal_axes(phi_t), _sagittal_axes(phi_s), _sagittal_axes(phi_f)
+        knee = hip - body.thigh_length_m * thigh_ax[:, :, 1]
+        ankle = knee - body.shank_length_m * shank_ax[:, :, 1]
+        for seg, org, ax in (("thigh", hip, thigh_ax), ("shank", knee, shank_ax), ("foot", ankle, foot_ax)):
+            origins[f"{side}_{seg}"] = org
+            axes[f"{side}_{seg}"] = ax
+        centres.update({f"{side}_hip": hip, f"{side}_knee": knee, f"{side}_ankle": ankle})
+        for seg, org, ax in (("pelvis", pelvis_origin, pelvis_axes), ("thigh", hip, thigh_ax),
+                             ("shank", knee, shank_ax), ("foot", ankle, foot_ax)):
+            for name, p in local[seg].items():
+                xyz = org + ax @ p
+                if name in LANDMARK_LABELS:
+                    landmarks[f"{side}_{name}"] = xyz
+                    markers[f"{side[0]}.{LANDMARK_LABELS[name]}"] = xyz
+                else:
+                    markers[f"{side[0]}.{name}"] = xyz
+        mirror = 1.0 if side == "right" else -1.0
+        hf, ha, hr = jcs_zxy(pelvis_axes, thigh_ax)
+        kf, _, _ = jcs_zxy(thigh_ax, shank_ax)
+        af, _, _ = jcs_zxy(shank_ax, foot_ax)
+        angles[side] = {"hip_flexion": hf, "hip_adduction": mirror * ha, "hip_rotation": mirror * hr,
+                        "knee_flexion": -kf, "ankle_dorsiflexion": af}
+    labels = marker_labels(include_medial, include_clusters)
+    xyz = np.stack([markers[lab] for lab in labels], axis=1)
+    truth = SprintTruth(time_s=time_s, rate_hz=rate_hz, angles=angles, foot_strikes_s=strikes, toe_offs_s=toe_offs,
+                        speed_m_s=speed, treadmill=treadmill, body=body, landmarks_lab=landmarks,
+                        markers_lab=markers, origins=origins, axes=axes, joint_centres=centres, belt_speed_m_s=belt)
+    return labels, xyz, truth
+
+
+_UNIT_SCALE = {"mm": 1000.0, "cm": 100.0, "m": 1.0}
+
+
+def lab_to_file(xyz: np.ndarray, vertical_axis: str = "z", travel_sign: int = 1, units: str = "mm") -> np.ndarray:
+    """Internal lab (x forward, y left, z up; m) -> file axes and units (right-handed in both cases)."""
+    if units not in _UNIT_SCALE:
+        raise ValueError("units must be 'mm', 'cm' or 'm'")
+    s = 1.0 if travel_sign >= 0 else -1.0
+    x, y, z = xyz[..., 0], xyz[..., 1], xyz[..., 2]
+    if vertical_axis == "z":
+        out = np.stack([s * x, s * y, z], axis=-1)
+    elif vertical_axis == "y":
+        out = np.stack([s * x, z, -s * y], axis=-1)
+    else:
+        raise ValueError("vertical_axis must be 'z' or 'y'")
+    return out * _UNIT_SCALE[units]
+
+
+def _noise_and_gaps(xyz: np.ndarray, noise_mm: float, n_gaps: int, rng: np.random.Generator) -> np.ndarray:
+    out = xyz + rng.normal(0.0, noise_mm / 1000.0, xyz.shape)
+    n_frames, n_markers = xyz.shape[:2]
+    for _ in range(n_gaps):
+        if n_frames < 30:
+            break
+        m = rng.integers(n_markers)
+        length = int(rng.integers(2, 9))
+        start = int(rng.integers(10, n_frames - 10 - length))
+        out[start:start + length, m] = np.nan
+    return out
+
+
+# ------------------------------------------------------------------------------------------------ public API
+def simulate_sprint(spec: SprintSpec = SprintSpec()) -> tuple[tuple[str, ...], np.ndarray, SprintTruth]:
+    """Simulate one sprint trial: (labels, xyz [F, M, 3] in FILE units/axes with noise and NaN gaps, truth)."""
+    if not 4.0 <= spec.speed_m_s <= 11.0:
+        raise ValueError("speed_m_s should be a sprint speed (about 7-9.5 m/s)")
+    rng = np.random.default_rng(spec.seed)
+    gait = _Gait(spec, rng)
+    n = int(round(spec.duration_s * spec.rate_hz))
+    t = np.arange(n) / spec.rate_hz
+    pitch = {s: gait.leg_pitches(t, s) for s in SIDES}
+    origin = gait.pelvis_origin(t)
+    axes = gait.pelvis_axes(t)
+    belt = 0.0
+    if spec.treadmill:
+        belt = gait.v
+        origin = origin - np.stack([gait.v * t, np.zeros_like(t), np.zeros_like(t)], axis=-1)
+    strikes, toe_offs = gait.events(t[-1])
+    labels, xyz, truth = _assemble(t, spec.rate_hz, spec.body, origin, axes, pitch,
+                                   include_medial=spec.include_medial, include_clusters=spec.include_clusters,
+                                   speed=gait.v, treadmill=spec.treadmill, strikes=strikes, toe_offs=toe_offs,
+                                   belt=belt)
+    noisy = _noise_and_gaps(xyz, spec.noise_mm, spec.n_gaps, rng)
+    return labels, lab_to_file(noisy, spec.vertical_axis, spec.travel_sign, spec.units), truth
+
+
+def sprint_events(truth: SprintTruth) -> list[tuple[str, str, float]]:
+    """Truth events as (label, context, time_s) for the C3D EVENT group."""
+    events = []
+    for side in SIDES:
+        ctx = side.capitalize()
+        events += [("Foot Strike", ctx, float(x)) for x in truth.foot_strikes_s[side]]
+        events += [("Toe Off", ctx, float(x)) for x in truth.toe_offs_s[side]]
+    return sorted(events, key=lambda e: e[2])
+
+
+def _subject(body: AthleteBody, name: str) -> dict[str, object]:
+    return {"name": name, "body_mass_kg": body.mass_kg, "height_m": body.height_m}
+
+
+def write_sprint_trial(path: str | Path, spec: SprintSpec = SprintSpec()) -> SprintTruth:
+    """Simulate a sprint and write it as a C3D file (hamstride.io.write_c3d); returns the truth."""
+    from .io import write_c3d
+
+    labels, xyz, truth = simulate_sprint(spec)
+    events = sprint_events(truth) if spec.include_events else ()
+    write_c3d(path, labels, xyz, spec.rate_hz, units=spec.units, events=events,
+              subject=_subject(spec.body, spec.athlete))
+    return truth
+
+
+def simulate_static(body: AthleteBody = _DEFAULT_BODY, rate_hz: float = 250.0, duration_s: float = 1.0, *,
+                    vertical_axis: str = "z", travel_sign: int = 1, units: str = "mm", noise_mm: float = 0.5,
+                    include_clusters: bool = True, seed: int = 0
+                    ) -> tuple[tuple[str, ...], np.ndarray, SprintTruth]:
+    """Standing trial: pelvis level, legs vertical, feet flat on the ground, all joint angles zero; slight sway."""
+    rng = np.random.default_rng(seed)
+    n = int(round(duration_s * rate_hz))
+    t = np.arange(n) / rate_hz
+    zero = np.zeros(n)
+    axes = _pelvis_axes(zero, zero, zero)
+    plantar = -_foot_local(body, "right")["heel"][1]
+    hip_height = body.thigh_length_m + body.shank_length_m + plantar
+    sway = 0.002 * np.sin(2 * np.pi * 0.4 * t)
+    origin = np.stack([sway, zero, hip_height - hip_centre_local(body, "right")[1] + zero], axis=-1)
+    pitches = {s: np.zeros((n, 3)) for s in SIDES}
+    empty = {s: np.zeros(0) for s in SIDES}
+    labels, xyz, truth = _assemble(t, rate_hz, body, origin, axes, pitches, include_medial=True,
+                                   include_clusters=include_clusters, speed=0.0, treadmill=False,
+                                   strikes=empty, toe_offs=empty)
+    noisy = _noise_and_gaps(xyz, noise_mm, 0, rng)
+    return labels, lab_to_file(noisy, vertical_axis, travel_sign, units), truth
+
+
+def write_static_trial(path: str | Path, body: AthleteBody = _DEFAULT_BODY, rate_hz: float = 250.0,
+                       duration_s: float = 1.0, *, vertical_axis: str = "z", travel_sign: int = 1,
+                       units: str = "mm", noise_mm: float = 0.5, seed: int = 0, athlete: str = "SYN01"
+                       ) -> SprintTruth:
+    """Write a standing calibration trial (all landmarks and clusters) as C3D; returns its truth."""
+    from .io import write_c3d
+
+    labels, xyz, truth = simulate_static(body, rate_hz, duration_s, vertical_axis=vertical_axis,
+                                         travel_sign=travel_sign, units=units, noise_mm=noise_mm, seed=seed)
+    write_c3d(path, labels, xyz, rate_hz, units=units, subject=_subject(body, athlete))
+    return truth
+
+
+# ------------------------------------------------------------------------------------------------ demo squad
+@dataclass(frozen=True)
+class _DemoTrialSet:
+    session: str  # YYYY-MM-DD_label
+    speeds: tuple[float, ...]
+    hip_deficit_deg: float = 0.0
+    knee_deficit_deg: float = 0.0
+
+
+@dataclass(frozen=True)
+class _DemoAthlete:
+    code: str
+    sex: str
+    height_m: float
+    mass_kg: float
+    involved_side: str  # left / right / none
+    injury_date: str
+    sessions: tuple[_DemoTrialSet, ...]
+    rate_hz: float = 250.0
+    duration_s: float = 2.0
+    treadmill: bool = False
+    vertical_axis: str = "z"
+    travel_sign: int = 1
+    units: str = "mm"
+    include_medial: bool = True
+    events_in: tuple[str, ...] = ()  # trial file names that carry C3D events
+
+
+# An invented club ("Riverside Flyers"); every code, body and date is fictional.
+DEMO_SQUAD: tuple[_DemoAthlete, ...] = (
+    _DemoAthlete("KT07", "male", 1.82, 78.0, "none", "", (_DemoTrialSet("2026-03-02_testing", (8.9, 9.0)),),
+                 events_in=("sprint_01.c3d",)),
+    _DemoAthlete("RB12", "male", 1.77, 73.5, "right", "2026-01-19", (
+        _DemoTrialSet("2026-02-09_return1", (7.6, 7.8), 12.0, 10.0),
+        _DemoTrialSet("2026-02-23_return2", (8.1, 8.3), 6.0, 5.0),
+        _DemoTrialSet("2026-03-09_return3", (8.7, 8.8), 1.5, 1.0))),
+    _DemoAthlete("MA03", "female", 1.68, 59.0, "none", "", (_DemoTrialSet("2026-03-02_testing", (8.0, 8.1)),),
+                 rate_hz=300.0, vertical_axis="y"),
+    _DemoAthlete("JS21", "male", 1.86, 82.0, "left", "2025-09-14",
+                 (_DemoTrialSet("2026-03-04_treadmill", (7.5, 7.7)),), treadmill=True),
+    _DemoAthlete("LV15", "female", 1.71, 62.0, "none", "", (_DemoTrialSet("2026-03-02_testing", (8.3, 8.4)),),
+                 rate_hz=500.0, duration_s=1.6, include_medial=False),
+    _DemoAthlete("DN09", "male", 1.79, 76.0, "none", "", (_DemoTrialSet("2026-03-02_testing", (9.1, 9.2)),),
+                 rate_hz=300.0, travel_sign=-1, units="m", events_in=("sprint_02.c3d",)),
+)
+
+
+def write_demo_squad(root: str | Path) -> list[Path]:
+    """Write the invented demo squad (athletes.csv and C3D trials) under ``root``; deterministic (fixed seeds).
+
+    Layout as in design.md: ``root/<athlete>/<YYYY-MM-DD_label>/sprint_01.c3d, sprint_02.c3d, static.c3d``.
+    RB12 returns from a right-side strain: three sessions two weeks apart, the right leg's late-swing hip-flexion
+    and knee-extension deficit shrinking (12/10, 6/5, 1.5/1 deg) while speed rises. JS21 runs on a treadmill.
+    Files vary in rate (250/300/500 Hz), vertical axis, travel direction and units, and two carry C3D events.
+    """
+    root = Path(root)
+    root.mkdir(parents=True, exist_ok=True)
+    written: list[Path] = []
+    table = root / "athletes.csv"
+    with table.open("w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(["athlete", "body_mass_kg", "height_m", "sex", "involved_side", "injury_date"])
+        for a in DEMO_SQUAD:
+            writer.writerow([a.code, f"{a.mass_kg:.1f}", f"{a.height_m:.2f}", a.sex, a.involved_side, a.injury_date])
+    written.append(table)
+    for i, a in enumerate(DEMO_SQUAD):
+        body = AthleteBody.from_height(a.height_m, a.mass_kg, a.sex)
+        for j, session in enumerate(a.sessions):
+            folder = root / a.code / session.session
+            for k, speed in enumerate(session.speeds):
+                name = f"sprint_{k + 1:02d}.c3d"
+                spec = SprintSpec(
+                    speed_m_s=speed, rate_hz=a.rate_hz, duration_s=a.duration_s, treadmill=a.treadmill,
+                    vertical_axis=a.vertical_axis, travel_sign=a.travel_sign, units=a.units,
+                    asymmetry_side="right" if session.hip_deficit_deg or session.knee_deficit_deg else None,
+                    hip_flexion_deficit_deg=session.hip_deficit_deg,
+                    knee_extension_deficit_deg=session.knee_deficit_deg, include_medial=a.include_medial,
+                    include_events=name in a.events_in, seed=1000 * i + 10 * j + k, body=body, athlete=a.code)
+                write_sprint_trial(folder / name, spec)
+                written.append(folder / name)
+            static = folder / "static.c3d"
+            write_static_trial(static, body, a.rate_hz, 1.0, vertical_axis=a.vertical_axis,
+                               travel_sign=a.travel_sign, units=a.units, seed=1000 * i + 10 * j + 9, athlete=a.code)
+            written.append(static)
+    return written
