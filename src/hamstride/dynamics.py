@@ -318,10 +318,43 @@ def swing_mask_from_events(
 
 
 # --------------------------------------------------------------------------- static optimisation
-def _dual_value(lam, a_mat, b):
+def _dual_value(lam, a_mat, b, reserve):
     s = np.einsum("fjm,fj->fm", a_mat, lam)
     phi = np.where(s <= 0, 0.0, np.where(s >= 1, s - 0.5, 0.5 * s * s))
-    return np.einsum("fj,fj->f", lam, b) - phi.sum(axis=1)
+    return np.einsum("fj,fj->f", lam, b) - phi.sum(axis=1) - 0.5 * reserve * np.einsum("fj,fj->f", lam, lam)
+
+
+def _solve_dual(a_mat, b, lam, reserve, max_iter, tol, scale):
+    """Semi-smooth Newton ascent with Armijo backtracking on the concave dual, all frames at once.
+
+    Dual of min 1/2 |a|^2 + |e|^2 / (2 reserve) s.t. A a + e = b, 0 <= a <= 1: a = clip(A^T lam), e = reserve lam;
+    gradient b - A a - reserve lam; generalised Hessian A_F A_F^T + reserve I over the free (unbounded) muscles F.
+    """
+    eye = np.eye(2)
+    steps = 0.5 ** np.arange(0, 40)
+    for _ in range(max_iter):
+        s = np.einsum("fjm,fj->fm", a_mat, lam)
+        grad = b - np.einsum("fjm,fm->fj", a_mat, np.clip(s, 0.0, 1.0)) - reserve[:, None] * lam
+        todo = np.abs(grad).max(axis=1) > tol
+        if not todo.any():
+            break
+        free = ((s > 0) & (s < 1)).astype(float)
+        hess = (np.einsum("fjm,fkm,fm->fjk", a_mat, a_mat, free) + (reserve[:, None, None] + 1e-10 * scale) * eye)
+        direction = np.linalg.solve(hess[todo], grad[todo][:, :, None])[:, :, 0]
+        lam_t, a_t, b_t, r_t = lam[todo], a_mat[todo], b[todo], reserve[todo]
+        q0 = _dual_value(lam_t, a_t, b_t, r_t)
+        slope = np.einsum("fj,fj->f", grad[todo], direction)
+        best = np.zeros(len(lam_t))
+        found = np.zeros(len(lam_t), dtype=bool)
+        for t in steps:
+            q = _dual_value(lam_t + t * direction, a_t, b_t, r_t)
+            ok = ~found & (q >= q0 + 1e-4 * t * slope)
+            best[ok] = t
+            found |= ok
+            if found.all():
+                break
+        lam[todo] = lam_t + best[:, None] * direction
+    return lam
 
 
 def share_forces(
@@ -330,6 +363,7 @@ def share_forces(
     target: np.ndarray,
     max_iter: int = 60,
     tol_nm: float = 1e-6,
+    reserve_nm2: float = 1e-4,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Static optimisation per frame: min sum(a^2) s.t. sum_m r_mj a_m Fmax_m = M_j (j = hip, knee), 0 <= a <= 1.
 
@@ -337,9 +371,9 @@ def share_forces(
     Solved through its dual for all frames at once: the KKT conditions give a = clip(A^T lambda, 0, 1) with
     A_jm = r_mj Fmax_m, so lambda solves the 2-equation piecewise-linear system A clip(A^T lambda) = M. We start
     from the closed-form solution without bounds (lambda = (A A^T)^-1 M) and take semi-smooth Newton steps on the
-    concave dual with backtracking. Frames whose moments cannot be met by any admissible activations keep the dual
-    diverging; they are returned with ``met = False`` and the activations of the last iterate (the muscles able to
-    help saturated).
+    concave dual with backtracking. Frames whose moments no admissible activations can produce (the dual diverges)
+    are returned with ``met = False`` and solved again with a heavily weighted residual moment e (cost
+    |e|^2 / (2 reserve_nm2)): their forces then come as close to the moments as the muscles can, without overshoot.
 
     moment_arms [F,m,2] (m), max_force [F,m] (N, >= 0; NaN treated as 0), target [F,2] (N m).
     Returns forces [F,m] = a * max_force and met [F].
@@ -347,44 +381,23 @@ def share_forces(
     r = np.asarray(moment_arms, dtype=float)
     cap = np.nan_to_num(np.asarray(max_force, dtype=float), nan=0.0).clip(min=0.0)
     b = np.asarray(target, dtype=float)
-    n = b.shape[0]
     usable = np.isfinite(b).all(axis=1) & np.isfinite(r).all(axis=(1, 2))
     r = np.where(np.isfinite(r), r, 0.0)
     bb = np.where(usable[:, None], b, 0.0)
     a_mat = np.swapaxes(r * cap[:, :, None], 1, 2)  # [F, 2, m]
-    eye = np.eye(2)
     gram = np.einsum("fjm,fkm->fjk", a_mat, a_mat)
     scale = np.einsum("fjj->f", gram)[:, None, None] + 1.0  # floor keeps frames without any capacity finite
-    lam = np.linalg.solve(gram + 1e-12 * scale * eye, bb[:, :, None])[:, :, 0]
+    lam0 = np.linalg.solve(gram + 1e-12 * scale * np.eye(2), bb[:, :, None])[:, :, 0]
     tol = tol_nm * (1.0 + np.abs(bb).max(axis=1))
-    steps = 0.5 ** np.arange(0, 30)
-    for _ in range(max_iter):
-        s = np.einsum("fjm,fj->fm", a_mat, lam)
-        act = np.clip(s, 0.0, 1.0)
-        grad = bb - np.einsum("fjm,fm->fj", a_mat, act)
-        todo = np.abs(grad).max(axis=1) > tol
-        if not todo.any():
-            break
-        free = ((s > 0) & (s < 1)).astype(float)
-        hess = np.einsum("fjm,fkm,fm->fjk", a_mat, a_mat, free) + 1e-10 * scale * eye
-        direction = np.linalg.solve(hess[todo], grad[todo][:, :, None])[:, :, 0]
-        lam_t, a_t, b_t = lam[todo], a_mat[todo], bb[todo]
-        q0 = _dual_value(lam_t, a_t, b_t)
-        slope = np.einsum("fj,fj->f", grad[todo], direction)
-        best = np.zeros(len(lam_t))
-        found = np.zeros(len(lam_t), dtype=bool)
-        for t in steps:  # backtracking (Armijo) on the concave dual, vectorised over frames
-            q = _dual_value(lam_t + t * direction, a_t, b_t)
-            ok = ~found & (q >= q0 + 1e-4 * t * slope)
-            best[ok] = t
-            found |= ok
-            if found.all():
-                break
-        lam[todo] = lam_t + best[:, None] * direction
-    s = np.einsum("fjm,fj->fm", a_mat, lam)
-    act = np.clip(s, 0.0, 1.0)
+    lam = _solve_dual(a_mat, bb, lam0.copy(), np.zeros(len(bb)), max_iter, tol, scale)
+    act = np.clip(np.einsum("fjm,fj->fm", a_mat, lam), 0.0, 1.0)
     resid = bb - np.einsum("fjm,fm->fj", a_mat, act)
     met = usable & (np.abs(resid).max(axis=1) <= 10 * tol)
+    retry = usable & ~met
+    if retry.any():
+        lam_r = _solve_dual(a_mat[retry], bb[retry], lam0[retry], np.full(retry.sum(), reserve_nm2), max_iter,
+                            tol[retry], scale[retry])
+        act[retry] = np.clip(np.einsum("fjm,fj->fm", a_mat[retry], lam_r), 0.0, 1.0)
     forces = act * cap
     forces[~usable] = np.nan
     return forces, met
