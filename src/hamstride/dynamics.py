@@ -17,10 +17,11 @@ from typing import TYPE_CHECKING, Callable, Mapping
 
 import numpy as np
 
+from . import muscles as mus
 from .errors import HamstrideError
+from .muscles import MuscleState
 
-if TYPE_CHECKING:  # pragma: no cover - type hints only, no runtime coupling to earlier stages
-    from .muscles import MuscleState
+if TYPE_CHECKING:  # pragma: no cover - type hints only
     from .segments import Frames
 
 GRAVITY_M_PER_S2 = 9.81
@@ -150,8 +151,8 @@ def _derivative(x: np.ndarray, rate_hz: float) -> np.ndarray:
 def angular_velocity(axes: np.ndarray, rate_hz: float) -> np.ndarray:
     """Angular velocity in the lab [F,3] from rotation matrices [F,3,3] (segment -> lab).
 
-    The skew part of dR/dt R^T is the angular-velocity tensor (Zatsiorsky 1998, Kinematics of Human Motion, ch. 2);
-    taking its skew part removes the non-orthogonal error of numerical differentiation.
+    dR/dt R^T is the skew-symmetric angular-velocity tensor of rigid-body kinematics; keeping only its skew part
+    removes the non-orthogonal error of numerical differentiation.
     """
     r_dot = _derivative(axes, rate_hz)
     w = np.einsum("fij,fkj->fik", r_dot, axes)
@@ -199,8 +200,8 @@ class JointMoments:
     def per_kg(self, body_mass_kg: float) -> dict[str, np.ndarray]:
         """Flexion moments normalised to body mass (N m/kg), as exported in curves.csv."""
         return {
-            "hip_flexion_moment_nm_per_kg": self.hip_flexion_nm / body_mass_kg,
-            "knee_flexion_moment_nm_per_kg": self.knee_flexion_nm / body_mass_kg,
+            "hip_moment_nm_per_kg": self.hip_flexion_nm / body_mass_kg,
+            "knee_moment_nm_per_kg": self.knee_flexion_nm / body_mass_kg,
         }
 
 
@@ -518,8 +519,6 @@ def other_muscle_kinematics(
 def _mass_scale(states: Mapping[str, MuscleState]) -> float:
     """How much the muscles stage scaled the hamstrings' PCSA-based forces (body-mass scaling), to apply alike to
     the other muscles: ratio of the states' maximum forces to PCSA x specific tension of the same muscles."""
-    from . import muscles as mus
-
     got = sum(float(states[m].max_isometric_force_n) for m in states if m in mus.ARCHITECTURE)
     ref = sum(mus.ARCHITECTURE[m].max_isometric_force_n for m in states if m in mus.ARCHITECTURE)
     return got / ref if ref > 0 and np.isfinite(got) and got > 0 else 1.0
@@ -553,8 +552,6 @@ def share_swing_moments(
     Maximum forces: the states' (hamstrings) and PCSA x specific tension x the states' body-mass scaling (others),
     all multiplied by ``strength_scale`` (default ``ATHLETE_STRENGTH_FACTOR``).
     """
-    from . import muscles as mus  # same or earlier stage: allowed
-
     hip = np.asarray(angles["hip_flexion"], dtype=float)
     n = hip.shape[0]
     if strength_scale is None:
