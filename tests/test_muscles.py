@@ -194,6 +194,24 @@ def test_straight_path_matches_scipy_rotation_convention():
         assert np.all(got[~clear] > expected[~clear])  # wrapping only ever lengthens the path
 
 
+def test_left_side_mirror_gives_the_same_lengths():
+    # DEVELOPERS.md: on the left, adduction and internal rotation are negated so the same anatomical motion has the
+    # same sign. Build the mirrored left leg with scipy (points z -> -z, femur = Rz(f) Rx(-a) Ry(-r)) and check the
+    # straight-path length equals the right-side model at the same anatomical angles.
+    hf, ad, ro, kf = random_postures(400, seed=11)
+    for muscle in M.BIARTICULAR:
+        path = M.muscle_path(muscle, DIMS)
+        mirror = np.array([1.0, 1.0, -1.0])
+        femur = Rotation.from_euler("ZXY", np.column_stack([hf, -ad, -ro]))
+        tibia = Rotation.from_euler("Z", -kf[:, None])
+        knee = np.array([0.0, -DIMS.thigh_length_m, 0.0])
+        insertion = femur.apply(knee + tibia.apply(path.insertion_m * mirror))
+        left = np.linalg.norm(insertion - path.origin_m * mirror, axis=1)
+        clear = M.wrap_arc_rad(muscle, hf, ad, ro, kf, DIMS) <= 0
+        np.testing.assert_allclose(M.musculotendon_length(muscle, hf, ad, ro, kf, DIMS)[clear], left[clear],
+                                   rtol=0, atol=1e-12)
+
+
 def test_wrapped_length_is_the_shortest_path_around_the_cylinder():
     # Physics: the wrapped length equals the shortest path origin -> cylinder surface -> helix -> surface ->
     # insertion whose straight parts stay outside the cylinder, found numerically by scipy's SLSQP (independent of

@@ -303,7 +303,7 @@ def musculotendon_length(muscle: str, hip_flexion, hip_adduction, hip_rotation, 
     return _path_length(path, hip_flexion, hip_adduction, hip_rotation, knee_flexion)
 
 
-_COMPLEX_STEP = 1e-30
+_COMPLEX_STEP = 1e-30  # complex step: no subtractive cancellation, any tiny step is exact (Squire & Trapp 1998)
 
 
 def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flexion, dims: MuscleDims,
@@ -320,7 +320,7 @@ def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flex
     for j in range(4):
         stepped = [a.astype(complex) for a in angles]
         stepped[j] = stepped[j] + 1j * _COMPLEX_STEP
-        columns.append(-np.imag(_path_length(path, *stepped)) / _COMPLEX_STEP)
+        columns.append(0.0 - np.imag(_path_length(path, *stepped)) / _COMPLEX_STEP)  # 0.0 - avoids "-0"
     return np.stack(np.broadcast_arrays(*columns), axis=-1)
 
 
@@ -351,7 +351,7 @@ def tendon_slack_length(muscle: str, dims: MuscleDims, *, geometry: MusclePath |
     return reference_length - np.sqrt(fibre * fibre - thickness * thickness)
 
 
-ACTIVE_FORCE_LENGTH_HALF_WIDTH = 0.5
+ACTIVE_FORCE_LENGTH_HALF_WIDTH = 0.5  # active range 0.5-1.5 l_opt: common practice (references.md)
 
 
 def active_force_length(l_norm) -> np.ndarray:
@@ -364,8 +364,8 @@ def active_force_length(l_norm) -> np.ndarray:
     return np.clip(1.0 - x * x, 0.0, None)
 
 
-PASSIVE_STRAIN_AT_F0 = 0.6
-PASSIVE_SHAPE = 4.0
+PASSIVE_STRAIN_AT_F0 = 0.6  # Thelen 2003 (J Biomech Eng 125:70), young adults, from memory
+PASSIVE_SHAPE = 4.0  # Thelen 2003, from memory
 
 
 def passive_force_length(l_norm) -> np.ndarray:
@@ -375,9 +375,9 @@ def passive_force_length(l_norm) -> np.ndarray:
     return np.expm1(PASSIVE_SHAPE * stretch / PASSIVE_STRAIN_AT_F0) / np.expm1(PASSIVE_SHAPE)
 
 
-HILL_CURVATURE = 0.25
-ECCENTRIC_FORCE_LIMIT = 1.5
-ECCENTRIC_SLOPE_RATIO = 2.0
+HILL_CURVATURE = 0.25  # a/F0 of Hill's hyperbola: common practice
+ECCENTRIC_FORCE_LIMIT = 1.5  # lengthening plateau, F0 units: Katz 1939 (1.5-1.8), from memory
+ECCENTRIC_SLOPE_RATIO = 2.0  # lengthening/shortening slope at v = 0: assumption (common practice)
 
 
 def force_velocity(v_norm_lopt_per_s) -> np.ndarray:
@@ -610,12 +610,13 @@ def plot_moment_arms(path, dims: MuscleDims) -> Path:
     for muscle in MUSCLES:
         style = dict(color=PALETTE[muscle], linestyle=_LINESTYLES[muscle], linewidth=2.0,
                      label=f"{muscle} ({MUSCLE_NAMES[muscle]})")
-        hip_arm = moment_arms(muscle, np.deg2rad(hip_deg), 0.0, 0.0, 0.0, dims)[:, 0]
+        if muscle in BIARTICULAR:
+            hip_arm = moment_arms(muscle, np.deg2rad(hip_deg), 0.0, 0.0, 0.0, dims)[:, 0]
+            ax_hip.plot(hip_deg, -1000.0 * hip_arm, **style)
         knee_arm = moment_arms(muscle, 0.0, 0.0, 0.0, np.deg2rad(knee_deg), dims)[:, 3]
-        ax_hip.plot(hip_deg, -1000.0 * hip_arm, **style)
         ax_knee.plot(knee_deg, 1000.0 * knee_arm, **style)
     ax_hip.set(xlabel="hip flexion (deg), knee 0 deg", ylabel="hip extension moment arm (mm)",
-               title="hip extension moment arm")
+               title="hip extension moment arm (bfsh does not cross the hip)")
     ax_knee.set(xlabel="knee flexion (deg), hip 0 deg", ylabel="knee flexion moment arm (mm)",
                 title="knee flexion moment arm")
     for ax in (ax_hip, ax_knee):
