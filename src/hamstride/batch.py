@@ -278,10 +278,7 @@ def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: 
     if cluster is not None:
         run_on_cluster(todo, options, cluster, on_done)
         return
-    if jobs <= 1:
-        for job, key in todo:
-            on_done(job, key, _analyse_job(job, options))
-        return
+    # Even with one job the trials run in a worker process: a native crash must never take the squad run down.
     pending = list(todo)
     while pending:
         crashed: list[tuple[TrialJob, str]] = []
