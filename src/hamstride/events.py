@@ -38,7 +38,9 @@ MIN_CONTACT_S = 0.03            # shorter low runs are noise / foot skimming the
 MERGE_GAP_S = 0.02              # low runs separated by less than this are one contact
 DERIVATIVE_WINDOW_S = 0.028     # Savitzky-Golay window for acceleration / jerk (about 7 frames at 250 Hz)
 STRIKE_SEARCH_S = (0.03, 0.06)  # search window around the start of the low run (before, after)
-TOE_OFF_SEARCH_S = (0.07, 0.02) # search window around the end of the low run (before, after)
+STRIKE_REFINE_S = (0.01, 0.03)  # floor-arrival search around the acceleration peak (before, after)
+FLOOR_TOLERANCE_M = 0.005       # lowest landmark "on the floor" within 5 mm of its floor level (10x 0.5 mm noise)
+TOE_OFF_SEARCH_S = (0.07, 0.05) # search window around the end of the low run (before, after)
 RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
 C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2 frames apart
 TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which the trial is on a treadmill (common practice)
@@ -143,7 +145,9 @@ def _low_foot_mask(heights: Mapping[str, np.ndarray], rate_hz: float) -> tuple[n
     for s, e in runs[short_gap & inner]:
         mask[s:e] = True
     runs = _runs(mask)
-    for s, e in runs[(runs[:, 1] - runs[:, 0]) < MIN_CONTACT_S * rate_hz]:
+    short = (runs[:, 1] - runs[:, 0]) < MIN_CONTACT_S * rate_hz
+    cut_by_trial_end = (runs[:, 0] == 0) | (runs[:, 1] == mask.size)  # a contact cut short by the recording
+    for s, e in runs[short & ~cut_by_trial_end]:
         mask[s:e] = False
     return mask, lowest
 
@@ -195,6 +199,19 @@ def _window_peak(y: np.ndarray, lo: int, hi: int) -> float | None:
     return _parabolic_peak(y, lo + best)
 
 
+def _floor_arrival(lowest: np.ndarray, lo: int, hi: int) -> float | None:
+    """First sub-frame index in [lo, hi) where the lowest landmark comes within FLOOR_TOLERANCE_M of its floor."""
+    seg = lowest[lo:hi] - FLOOR_TOLERANCE_M
+    below = seg <= 0
+    if seg.size < 2 or not below.any():
+        return None
+    k = int(np.argmax(below))
+    if k == 0:
+        return float(lo)
+    y0, y1 = seg[k - 1], seg[k]
+    return float(lo + k - 1 + y0 / (y0 - y1))
+
+
 def _detect_side(
     heights: Mapping[str, np.ndarray], rate_hz: float, knee_flexion: np.ndarray | None
 ) -> tuple[_SideEvents, np.ndarray]:
@@ -210,23 +227,30 @@ def _detect_side(
 
     before_fs, after_fs = (int(round(s * rate_hz)) for s in STRIKE_SEARCH_S)
     before_to, after_to = (int(round(s * rate_hz)) for s in TOE_OFF_SEARCH_S)
-    margin = max(before_fs, 2)
+    refine_before, refine_after = (int(round(s * rate_hz)) for s in STRIKE_REFINE_S)
 
     strikes, toe_offs, strikes_fb, toe_offs_fb = [], [], [], []
     n_fallback = 0
     for start, end in contacts:
-        # foot strike: only when the contact starts inside the trial with room for the search window
-        if start >= margin:
-            lo, hi = start - before_fs, min(start + after_fs, end, n)
+        # foot strike: only when the foot comes down inside the trial (the low run does not start at frame 0)
+        if start > 0:
+            lo, hi = max(start - before_fs, 0), min(start + after_fs, end, n)
             fb = _strike_fallback(lowest, lowest_vz, lo, hi)
-            fs = _strike_primary(acc, lo, hi)
-            if fs is None:
-                fs, n_fallback = fb, n_fallback + 1
+            impact = _strike_primary(acc, lo, hi)
+            if impact is None:
+                # no acceleration peak (e.g. the trial ends during the landing): floor arrival, then Fellin
+                fs = _floor_arrival(lowest, lo, hi)
+                fs, n_fallback = (fb if fs is None else fs), n_fallback + 1
+            else:
+                a = max(int(np.floor(impact)) - refine_before, 0)
+                fs = _floor_arrival(lowest, a, min(int(np.ceil(impact)) + refine_after, n))
+                if fs is None and end < n:  # never settles within 5 mm of the floor: keep the impact instant
+                    fs, n_fallback = impact, n_fallback + 1
             if fs is not None:
                 strikes.append(fs)
                 strikes_fb.append(np.nan if fb is None else fb)
-        # toe-off: only when the contact ends inside the trial
-        if end <= n - max(after_to, 2):
+        # toe-off: only when the foot leaves the floor inside the trial
+        if end < n:
             lo, hi = max(end - before_to, start + 1), min(end + after_to, n)
             fb = _toe_off_fallback(toe_rel, knee_flexion, lo, hi, start, end)
             to = _window_peak(toe_jerk, lo, hi)
@@ -298,8 +322,8 @@ def running_speed(lm: "Landmarks", events: GaitEvents, treadmill: bool) -> float
 
     Overground: horizontal displacement of the pelvis centre (mean of ASIS and PSIS) between the first and
     last foot strike of the same leg (whole strides, so the within-stride speed fluctuation cancels).
-    Treadmill: belt speed = median horizontal speed of the stance foot (heel and first metatarsal) over the
-    middle half of each contact, where the foot moves with the belt.
+    Treadmill: belt speed = median horizontal speed of the stance foot's lowest landmark (the one resting on
+    the belt) over the middle half of each contact.
     """
     rate = lm.rate_hz
     if not treadmill:
@@ -319,12 +343,15 @@ def running_speed(lm: "Landmarks", events: GaitEvents, treadmill: bool) -> float
         return float(np.linalg.norm(p1 - p0) / max(t1 - t0, 1e-9))
     speeds = []
     for side in SIDES:
-        names = [f"{side}_{m}" for m in STRIKE_MARKERS if f"{side}_{m}" in lm.points]
+        names = [f"{side}_{m}" for m in FOOT_MARKERS if f"{side}_{m}" in lm.points]
         if not names:
             continue
-        foot = np.mean([np.asarray(lm.points[m], float)[:, :2] for m in names], axis=0)
-        vel = np.stack([_derivative(_fill_nan(foot[:, k]), 1, rate) for k in range(2)], axis=1)
-        horizontal = np.linalg.norm(vel, axis=1)
+        xyz = np.stack([np.asarray(lm.points[m], float) for m in names])  # [landmark, F, 3]
+        heights = np.stack([_fill_nan(p[:, 2]) for p in xyz])
+        lowest = np.argmin(heights - np.percentile(heights, FLOOR_PERCENTILE, axis=1, keepdims=True), axis=0)
+        vel = np.stack([[_derivative(_fill_nan(p[:, k]), 1, rate) for k in range(2)] for p in xyz])  # [L, 2, F]
+        # the stance foot's lowest landmark is the one on the belt
+        horizontal = np.linalg.norm(vel[lowest, :, np.arange(lowest.size)], axis=1)
         fs = np.asarray(events.foot_strikes_s.get(side, ()), float)
         to = np.asarray(events.toe_offs_s.get(side, ()), float)
         for t_fs in fs:
@@ -344,9 +371,11 @@ def running_speed(lm: "Landmarks", events: GaitEvents, treadmill: bool) -> float
 def _pair_contacts(fs: np.ndarray, to: np.ndarray) -> np.ndarray:
     """[n, 2] (foot strike, toe-off) per contact; toe-off NaN when none falls before the next foot strike."""
     nxt = np.append(fs[1:], np.inf)
-    j = np.searchsorted(to, fs, side="right")
-    cand = np.where(j < to.size, to[np.minimum(j, max(to.size - 1, 0))] if to.size else np.nan, np.nan)
-    cand = np.where(cand < nxt, cand, np.nan)
+    j = np.searchsorted(to, fs, side="right")  # first toe-off after each foot strike
+    cand = np.full(fs.size, np.nan)
+    has = j < to.size
+    cand[has] = to[j[has]]
+    cand[~(cand < nxt)] = np.nan
     return np.stack([fs, cand], axis=1) if fs.size else np.empty((0, 2))
 
 
