@@ -11,6 +11,7 @@ EVENT:TIMES holds (minutes, seconds) pairs.
 """
 from __future__ import annotations
 
+import math
 import os
 import re
 import struct
@@ -87,104 +88,321 @@ class MarkerTrial:
 
 # --------------------------------------------------------------------------------------------------- reading
 
-def check_c3d_header(path: str | Path) -> None:
-    """Cheap structural checks of a C3D file in our own code, before the native reader sees it.
+@dataclass(frozen=True)
+class C3DLayout:
+    """What a C3D file's header and parameter section say, after checking them against each other and the file size."""
 
-    Header layout (c3d.org): byte 0 = first parameter block (1-based), byte 1 = 0x50; words 2..: number of points,
-    analog measurements per frame, first and last frame, max gap, scale (float), data start block, analog samples per
-    frame, frame rate (float). Raises FileFormatError with a one-line reason.
+    n_points: int
+    n_analog_per_frame: int  # analog samples stored with each 3D frame (channels x samples per frame)
+    first_frame: int
+    n_frames: int
+    rate_hz: float
+    float_data: bool  # POINT:SCALE < 0 means IEEE/DEC floats, otherwise scaled 16-bit integers
+    parameter_block: int  # 1-based block of the parameter section
+    parameter_blocks: int
+    data_start_block: int
+    processor: int  # 84 Intel, 85 DEC, 86 MIPS (c3d.org)
+    labels: tuple[str, ...]
+    units: str
+    file_size: int
+
+
+_C3D_TYPE_SIZES = {-1: 1, 1: 1, 2: 2, 4: 4}  # c3d.org: parameter data types char, byte, int16, float
+_MAX_PARAMETERS = 20000  # far above any real file (common practice: a few hundred)
+
+
+def _dec_float(raw: bytes) -> float:
+    """DEC (VAX F) float -> Python float: swap the 16-bit halves, read as IEEE little-endian, divide by 4."""
+    return struct.unpack("<f", raw[2:4] + raw[0:2])[0] / 4.0 if len(raw) == 4 else float("nan")
+
+
+def _parse_parameters(data: bytes, start: int, end: int, processor: int, name: str) -> dict[str, dict[str, tuple]]:
+    """Walk the parameter records between byte ``start`` and ``end`` (c3d.org record layout).
+
+    Record: int8 name length (negative = locked, 0 = end), int8 id (negative = group, positive = parameter of group
+    |id|), name, int16 offset to the next record (counted from the offset word; 0 = last); a parameter then holds
+    int8 type (-1 char, 1 byte, 2 int16, 4 float), uint8 number of dimensions, the dimensions, the data and a
+    description. Returns {GROUP: {PARAM: (type, dims, raw bytes)}}; raises FileFormatError on any record that leaves
+    the section or overlaps the next one.
+    """
+    def bad(reason: str, code: str = "bad_parameters") -> FileFormatError:
+        return FileFormatError(f"the parameter section is corrupt ({reason}); re-export the file from the capture "
+                               "software", trial=name, code=code)
+
+    endian = ">" if processor == 86 else "<"
+    group_names: dict[int, str] = {}
+    params: list[tuple[int, str, tuple]] = []
+    pos = start + 4
+    for _ in range(_MAX_PARAMETERS):
+        if pos + 2 > end:
+            if pos >= len(data) or end >= len(data):
+                raise bad("it runs past the end of the file", code="truncated")
+            raise bad("a record runs past the end of the section")
+        n_chars, ident = struct.unpack("bb", data[pos:pos + 2])
+        if n_chars == 0:
+            break
+        n_chars = abs(n_chars)
+        name_end = pos + 2 + n_chars
+        if name_end + 2 > end:
+            raise bad("a record runs past the end of the section",
+                      code="truncated" if name_end + 2 > len(data) else "bad_parameters")
+        label = data[pos + 2:name_end].decode("latin-1").strip().upper()
+        (offset,) = struct.unpack(endian + "h", data[name_end:name_end + 2])
+        if offset < 0:
+            raise bad(f"record {label!r} points backwards (offset {offset})")
+        next_pos = name_end + offset if offset > 0 else None
+        body = name_end + 2
+        if ident < 0:
+            if body + 1 > end:
+                raise bad(f"group {label!r} is cut off")
+            record_end = body + 1 + data[body]
+            if ident in group_names and group_names[ident] != label:
+                raise bad(f"two groups share the id {-ident}")
+            group_names[ident] = label
+        elif ident > 0:
+            if body + 2 > end:
+                raise bad(f"parameter {label!r} is cut off")
+            dtype, n_dims = struct.unpack("bB", data[body:body + 2])
+            if dtype not in _C3D_TYPE_SIZES:
+                raise bad(f"parameter {label!r} has the unknown data type {dtype}")
+            dims = tuple(data[body + 2:body + 2 + n_dims])
+            if len(dims) != n_dims:
+                raise bad(f"parameter {label!r} is cut off")
+            n_values = math.prod(dims)  # exact integer: 255 dimensions of 255 must not overflow
+            data_start = body + 2 + n_dims
+            data_end = data_start + _C3D_TYPE_SIZES[dtype] * n_values
+            if data_end + 1 > end:
+                raise bad(f"parameter {label!r} claims {n_values} values, more than the section holds")
+            record_end = data_end + 1 + data[data_end]
+            params.append((ident, label, (dtype, dims, data[data_start:data_end])))
+        else:
+            raise bad("a record has the id 0")
+        if record_end > end:
+            raise bad(f"record {label!r} runs past the end of the section")
+        if next_pos is None:
+            break
+        if next_pos < record_end:
+            raise bad(f"record {label!r} points back into itself (offset {offset})")
+        pos = next_pos
+    else:
+        raise bad(f"more than {_MAX_PARAMETERS} records")
+    groups: dict[str, dict[str, tuple]] = {g: {} for g in group_names.values()}
+    for ident, label, value in params:
+        group = group_names.get(-ident)
+        if group is not None:
+            groups[group][label] = value
+    return groups
+
+
+def _param_numbers(value: tuple | None, processor: int) -> np.ndarray:
+    """All numbers of an int16/byte/float parameter as float64 (empty when absent or of the wrong type)."""
+    if value is None:
+        return np.empty(0)
+    dtype, _, raw = value
+    if dtype == 4:
+        if processor == 85:
+            return np.array([_dec_float(raw[i:i + 4]) for i in range(0, len(raw) - 3, 4)])
+        return np.frombuffer(raw, dtype=(">f4" if processor == 86 else "<f4")).astype(float)
+    if dtype == 2:
+        return np.frombuffer(raw, dtype=(">i2" if processor == 86 else "<i2")).astype(float)
+    if dtype == 1:
+        return np.frombuffer(raw, dtype=np.int8).astype(float)
+    return np.empty(0)
+
+
+def _param_strings(value: tuple | None) -> list[str]:
+    if value is None or value[0] != -1:
+        return []
+    _, dims, raw = value
+    if len(dims) <= 1:
+        return [raw.decode("latin-1").strip()]
+    width = dims[0]
+    return [raw[i:i + width].decode("latin-1").strip() for i in range(0, len(raw), width)] if width else []
+
+
+def check_c3d_header(path: str | Path) -> C3DLayout:
+    """Structural checks of a C3D file in our own code, before the native reader sees it.
+
+    Header (c3d.org): byte 0 = first parameter block (1-based), byte 1 = 0x50; 16-bit words from byte 2: number of
+    points, analog samples per frame, first and last frame, max gap; scale (float, negative = float data) at byte 12,
+    data start block at byte 16, frame rate (float) at byte 20. The parameter section starts with (reserved, 0x50,
+    number of parameter blocks, processor type 84/85/86). Checked: block counts and positions, every parameter record
+    inside its section, POINT:USED against the header, POINT:LABELS count, POINT:RATE > 0, POINT:SCALE and
+    POINT:DATA_START against the header, and the frames the header promises against the file size.
+    Returns the :class:`C3DLayout`; raises FileFormatError (one line naming the trial and what to do) otherwise.
     """
     path = Path(path)
     name = path.name
     try:
-        size = path.stat().st_size
+        data = path.read_bytes()
     except OSError as exc:
         raise FileFormatError(f"cannot open the file ({exc.strerror})", trial=name, code="unreadable") from None
+    size = len(data)
     if size == 0:
         raise FileFormatError("the file is empty (0 bytes); re-export it from the capture software", trial=name,
                               code="empty_file")
     if size < 1024:
         raise FileFormatError(f"the file is only {size} bytes, too short for a C3D (header and parameters need at "
                               "least 1024); it is probably truncated", trial=name, code="truncated")
-    with open(path, "rb") as fh:
-        head = fh.read(512)
-        fh.seek(512 * (head[0] - 1) if head[0] >= 1 else 0)
-        param_head = fh.read(4)
-    if head[1] != 0x50:
+    if data[1] != 0x50:
         raise FileFormatError("not a C3D file (the header's key byte is not 0x50); check the file type", trial=name,
                               code="not_c3d")
-    if head[0] < 2 or 512 * head[0] > size:
-        raise FileFormatError(f"the header points to a parameter section at block {head[0]} that is outside the "
+    param_block = data[0]
+    if param_block < 2 or 512 * param_block > size:
+        raise FileFormatError(f"the header points to a parameter section at block {param_block} that is outside the "
                               "file; the file is corrupt or truncated", trial=name, code="bad_header")
-    processor = param_head[3] if len(param_head) == 4 else 0
+    param_start = 512 * (param_block - 1)
+    n_param_blocks, processor = data[param_start + 2], data[param_start + 3]
     if processor not in (84, 85, 86):
         raise FileFormatError(f"unknown processor type {processor} in the parameter section (expected 84/85/86); "
                               "the file is corrupt", trial=name, code="bad_header")
     endian = ">" if processor == 86 else "<"
-    n_points, n_analog, first, last = struct.unpack(endian + "4H", head[2:10])
-    data_start = struct.unpack(endian + "H", head[16:18])[0]
-    if processor == 85:  # DEC floats: read the exponent loosely, only sign checks below
-        rate = 1.0
-        scale = -1.0
+    n_points, n_analog, first, last = struct.unpack(endian + "4H", data[2:10])
+    data_start = struct.unpack(endian + "H", data[16:18])[0]
+    if processor == 85:
+        scale, rate = _dec_float(data[12:16]), _dec_float(data[20:24])
     else:
-        scale = struct.unpack(endian + "f", head[12:16])[0]
-        rate = struct.unpack(endian + "f", head[20:24])[0]
-    if not np.isfinite(rate) or rate <= 0:
-        raise FileFormatError(f"the header frame rate is {rate!r}; it must be a positive number", trial=name,
-                              code="bad_rate")
-    if n_points == 0:
-        raise FileFormatError("the file holds no marker points", trial=name, code="no_markers")
-    n_frames = int(last) - int(first) + 1
-    if n_frames <= 0:
-        raise FileFormatError(f"the header says first frame {first} and last frame {last}: no frames", trial=name,
-                              code="no_frames")
+        scale = struct.unpack(endian + "f", data[12:16])[0]
+        rate = struct.unpack(endian + "f", data[20:24])[0]
+    if n_param_blocks == 0:
+        raise FileFormatError("the parameter section claims 0 blocks; the file is corrupt", trial=name,
+                              code="bad_header")
+    param_end = param_start + 512 * n_param_blocks
     if data_start < 2 or 512 * (data_start - 1) > size:
         raise FileFormatError("the data section starts beyond the end of the file; the file is truncated", trial=name,
                               code="truncated")
-    bytes_per_value = 4 if (np.isfinite(scale) and scale < 0) else 2
-    frame_bytes = (4 * n_points + n_analog) * bytes_per_value
+    if param_end > size:
+        raise FileFormatError(f"the parameter section ({n_param_blocks} blocks from block {param_block}) runs past "
+                              "the end of the file; it was cut short", trial=name, code="truncated")
+    if data_start < param_block + n_param_blocks:
+        raise FileFormatError(f"the header puts the data at block {data_start}, inside the parameter section (blocks "
+                              f"{param_block}-{param_block + n_param_blocks - 1}); the file is corrupt", trial=name,
+                              code="bad_header")
+    groups = _parse_parameters(data, param_start, param_end, processor, name)
+
+    def bad(reason: str, code: str = "bad_parameters") -> FileFormatError:
+        return FileFormatError(reason + "; re-export the file from the capture software", trial=name, code=code)
+
+    point = groups.get("POINT")
+    if point is None:
+        raise bad("the parameter section has no POINT group")
+    used = _param_numbers(point.get("USED"), processor)
+    if used.size and int(used[0]) % 65536 != n_points:
+        raise bad(f"POINT:USED says {int(used[0])} markers but the header says {n_points}")
+    if n_points == 0:
+        raise FileFormatError("the file holds no marker points", trial=name, code="no_markers")
+    param_rate = _param_numbers(point.get("RATE"), processor)
+    for source, value in (("header", rate), ("POINT:RATE", param_rate[0] if param_rate.size else rate)):
+        if not np.isfinite(value) or value <= 0:
+            raise FileFormatError(f"the {source} frame rate is {value!r}; it must be a positive number", trial=name,
+                                  code="bad_rate")
+    if param_rate.size:
+        rate = float(param_rate[0])
+    param_scale = _param_numbers(point.get("SCALE"), processor)
+    if param_scale.size and np.isfinite(param_scale[0]) and np.isfinite(scale) and (param_scale[0] < 0) != (scale < 0):
+        raise bad(f"the header scale ({scale:g}) and POINT:SCALE ({param_scale[0]:g}) disagree on whether the data "
+                  "are floats")
+    param_start_block = _param_numbers(point.get("DATA_START"), processor)
+    if param_start_block.size and int(param_start_block[0]) % 65536 != data_start:
+        raise bad(f"POINT:DATA_START ({int(param_start_block[0])}) and the header ({data_start}) disagree on where the "
+                  "data begin")
+    labels: list[str] = []
+    key, k = "LABELS", 1
+    while key in point:
+        labels.extend(_param_strings(point[key]))
+        k += 1
+        key = f"LABELS{k}"
+    if len(labels) < n_points:
+        raise bad(f"the file has {n_points} markers but only {len(labels)} labels (POINT:LABELS)", code="bad_labels")
+    units = (_param_strings(point.get("UNITS")) or ["mm"])[0].lower() or "mm"
+    n_frames = int(last) - int(first) + 1
+    if n_frames <= 0:
+        raise FileFormatError(f"the header says first frame {first} and last frame {last}: the trial has no frames; "
+                              "re-export the trial with its frames", trial=name, code="no_frames")
+    param_frames = _param_numbers(point.get("FRAMES"), processor)
+    if param_frames.size and last < 65535:
+        frames_said = int(param_frames[0]) % 65536 if point["FRAMES"][0] != 4 else int(param_frames[0])
+        if frames_said != n_frames:
+            raise bad(f"POINT:FRAMES says {frames_said} frames but the header's first/last frame give {n_frames}")
+    float_data = bool(np.isfinite(scale) and scale < 0)
+    frame_bytes = (4 * n_points + n_analog) * (4 if float_data else 2)
     needed = 512 * (data_start - 1) + n_frames * frame_bytes
     if needed > size:
         have = max(0, size - 512 * (data_start - 1)) // max(frame_bytes, 1)
         raise FileFormatError(f"the header promises {n_frames} frames but the file holds data for only {have}; "
-                              "it was cut short (full disk or interrupted copy?)", trial=name, code="truncated")
+                              "it was cut short (full disk or interrupted copy?); re-export or copy it again",
+                              trial=name, code="truncated")
+    return C3DLayout(n_points=n_points, n_analog_per_frame=n_analog, first_frame=first, n_frames=n_frames,
+                     rate_hz=float(rate), float_data=float_data, parameter_block=param_block,
+                     parameter_blocks=n_param_blocks, data_start_block=data_start, processor=processor,
+                     labels=tuple(labels[:n_points]), units=units, file_size=size)
+
+
+# Coordinates further than this from the lab origin are not a marker in a capture volume (common practice).
+MAX_ABS_COORDINATE_M = 1.0e4
 
 
 def read_c3d(path: str | Path) -> MarkerTrial:
-    """Read a C3D file into a :class:`MarkerTrial` (metres, internal lab frame, invalid points NaN)."""
+    """Read a C3D file into a :class:`MarkerTrial` (metres, internal lab frame, invalid points NaN).
+
+    The file is first checked by :func:`check_c3d_header` in our own code, so the native reader (ezc3d) only sees
+    files whose blocks, counts and sizes agree. Every problem is a FileFormatError; nothing else escapes. Points with
+    non-finite or absurd coordinates (beyond 10 km) are marked invalid and counted in ``meta['bad_coordinates']``.
+    """
     import ezc3d
 
     path = Path(path)
-    check_c3d_header(path)
+    layout = check_c3d_header(path)
+    name = path.name
     try:
         c = ezc3d.c3d(str(path), extract_forceplat_data=False)
     except Exception as exc:  # ezc3d raises RuntimeError/IOError with C++ messages
-        raise FileFormatError(f"the C3D reader could not parse the file ({str(exc).strip()[:120]})", trial=path.name,
-                              code="bad_file") from None
+        raise FileFormatError(f"the C3D reader could not parse the file ({str(exc).strip()[:120]}); re-export it "
+                              "from the capture software", trial=name, code="bad_file") from None
+    try:
+        return _trial_from_ezc3d(c, path, layout)
+    except FileFormatError:
+        raise
+    except (KeyError, IndexError, TypeError, ValueError, OverflowError, AttributeError) as exc:
+        raise FileFormatError(f"the file's contents are inconsistent ({type(exc).__name__}: {str(exc)[:80]}); "
+                              "re-export it from the capture software", trial=name, code="bad_file") from None
+
+
+def _trial_from_ezc3d(c, path: Path, layout: C3DLayout) -> MarkerTrial:
+    name = path.name
     params = c["parameters"]
     point = params["POINT"]
     raw = np.asarray(c["data"]["points"], dtype=float)  # [4, marker, frame]
+    if raw.ndim != 3 or raw.shape[1] != layout.n_points or raw.shape[2] != layout.n_frames:
+        raise FileFormatError(f"the reader found {raw.shape[1:] if raw.ndim == 3 else raw.shape} (markers, frames) "
+                              f"but the header says ({layout.n_points}, {layout.n_frames}); the file is corrupt",
+                              trial=name, code="bad_file")
     n_markers = raw.shape[1]
     labels = tuple(_continued_strings(point, "LABELS")[:n_markers])
     if len(labels) < n_markers:
         labels = labels + tuple(f"unlabelled_{i + 1}" for i in range(len(labels), n_markers))
     units = str(_first(point.get("UNITS", {}).get("value", ["mm"]), "mm")).strip().lower() or "mm"
     if units not in UNIT_TO_METRES:
-        raise FileFormatError(f"POINT:UNITS is '{units}'; expected mm, cm or m", trial=path.name, code="bad_units")
+        raise FileFormatError(f"POINT:UNITS is '{units}'; expected mm, cm or m. Fix the unit in the capture software "
+                              "and re-export", trial=name, code="bad_units")
     rate = float(_first(point.get("RATE", {}).get("value", [0.0]), 0.0) or c["header"]["points"]["frame_rate"])
     if not np.isfinite(rate) or rate <= 0:
-        raise FileFormatError(f"POINT:RATE is {rate}; it must be positive", trial=path.name, code="bad_rate")
+        raise FileFormatError(f"POINT:RATE is {rate}; it must be positive", trial=name, code="bad_rate")
 
-    xyz = raw[:3].transpose(2, 1, 0) * UNIT_TO_METRES[units]  # [frame, marker, 3]
-    residuals = np.asarray(c["data"]["meta_points"]["residuals"], dtype=float)[0].T  # [frame, marker]
-    invalid = (residuals < 0) | np.all(raw[:3].transpose(2, 1, 0) == 0.0, axis=2) | ~np.all(np.isfinite(xyz), axis=2)
-    xyz[invalid] = np.nan
+    file_xyz = raw[:3].transpose(2, 1, 0)  # [frame, marker, 3] in file units
+    with np.errstate(all="ignore"):
+        xyz = file_xyz * UNIT_TO_METRES[units]
+        residuals = np.asarray(c["data"]["meta_points"]["residuals"], dtype=float)[0].T  # [frame, marker]
+        flagged = (residuals < 0) | np.all(file_xyz == 0.0, axis=2)
+        absurd = ~np.all(np.isfinite(xyz) & (np.abs(xyz) < MAX_ABS_COORDINATE_M), axis=2)
+    xyz[flagged | absurd] = np.nan
+    meta = _read_subject(params)
+    meta["bad_coordinates"] = int(np.sum(absurd & ~flagged))
 
     first_frame = int(c["header"]["points"]["first_frame"]) + 1  # ezc3d reports it 0-based
     lab = detect_lab_frame(xyz)
     xyz = xyz @ lab.file_to_lab.T
     events = _read_events(c, first_frame, rate)
-    meta = _read_subject(params)
     return MarkerTrial(path=str(path), labels=labels, xyz=xyz, rate_hz=rate, first_frame=first_frame,
                        events=events, meta=meta, units_in_file=units, lab=lab)
 
