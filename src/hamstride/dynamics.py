@@ -319,20 +319,44 @@ def swing_mask_from_events(
 
 
 # --------------------------------------------------------------------------- static optimisation
-def _dual_value(lam, a_mat, b, reserve):
-    s = np.einsum("fjm,fj->fm", a_mat, lam)
-    phi = np.where(s <= 0, 0.0, np.where(s >= 1, s - 0.5, 0.5 * s * s))
-    return np.einsum("fj,fj->f", lam, b) - phi.sum(axis=1) - 0.5 * reserve * np.einsum("fj,fj->f", lam, lam)
+def _exact_step(s, c, lam, direction, grad_dot_d, reserve):
+    """Maximiser t >= 0 of the dual along lam + t d: its slope is piecewise linear in t with kinks where a muscle's
+    s_i + t c_i crosses 0 or 1, so evaluate it at every kink and interpolate inside the bracketing piece."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        kinks = np.concatenate([-s / c, (1.0 - s) / c], axis=1)
+    kinks = np.where(np.isfinite(kinks) & (kinks > 0), kinks, np.inf)
+    t = np.concatenate([np.zeros((len(s), 1)), np.sort(kinks, axis=1)], axis=1)  # [F, K]
+    t_eval = np.where(np.isfinite(t), t, 0.0)
+    act = np.clip(s[:, None, :] + t_eval[:, :, None] * c[:, None, :], 0.0, 1.0)  # [F, K, m]
+    act0 = np.clip(s, 0.0, 1.0)
+    dd = np.einsum("fj,fj->f", direction, direction)
+    # slope(t) = slope(0) - sum_i c_i (a_i(t) - a_i(0)) - reserve t |d|^2
+    slope = grad_dot_d[:, None] - np.einsum("fkm,fm->fk", act - act0[:, None, :], c) - reserve[:, None] * t_eval * dd[:, None]
+    finite = np.isfinite(t)
+    turned = finite & (slope <= 0)
+    k = np.argmax(turned, axis=1)  # first kink where the slope is no longer positive
+    rows = np.arange(len(s))
+    never = ~turned.any(axis=1)
+    k = np.where(never, 1, np.maximum(k, 1))
+    t_lo, t_hi = t_eval[rows, k - 1], t_eval[rows, k]
+    s_lo, s_hi = slope[rows, k - 1], slope[rows, k]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inside = t_lo + s_lo * (t_hi - t_lo) / (s_lo - s_hi)
+        # beyond the last kink the slope falls only through the reserve term (or stays: the dual is unbounded)
+        last = t_eval.max(axis=1)
+        s_last = slope[rows, finite.sum(axis=1) - 1]
+        beyond = np.where(reserve * dd > 0, last + s_last / (reserve * dd), np.maximum(2.0 * last, 1.0))
+    step = np.where(never, beyond, inside)
+    return np.where(np.isfinite(step) & (step >= 0), step, 0.0)
 
 
 def _solve_dual(a_mat, b, lam, reserve, max_iter, tol, scale):
-    """Semi-smooth Newton ascent with Armijo backtracking on the concave dual, all frames at once.
+    """Semi-smooth Newton ascent with exact line search on the concave dual, all frames at once.
 
     Dual of min 1/2 |a|^2 + |e|^2 / (2 reserve) s.t. A a + e = b, 0 <= a <= 1: a = clip(A^T lam), e = reserve lam;
     gradient b - A a - reserve lam; generalised Hessian A_F A_F^T + reserve I over the free (unbounded) muscles F.
     """
     eye = np.eye(2)
-    steps = 0.5 ** np.arange(0, 40)
     for _ in range(max_iter):
         s = np.einsum("fjm,fj->fm", a_mat, lam)
         grad = b - np.einsum("fjm,fm->fj", a_mat, np.clip(s, 0.0, 1.0)) - reserve[:, None] * lam
@@ -342,19 +366,10 @@ def _solve_dual(a_mat, b, lam, reserve, max_iter, tol, scale):
         free = ((s > 0) & (s < 1)).astype(float)
         hess = (np.einsum("fjm,fkm,fm->fjk", a_mat, a_mat, free) + (reserve[:, None, None] + 1e-10 * scale) * eye)
         direction = np.linalg.solve(hess[todo], grad[todo][:, :, None])[:, :, 0]
-        lam_t, a_t, b_t, r_t = lam[todo], a_mat[todo], b[todo], reserve[todo]
-        q0 = _dual_value(lam_t, a_t, b_t, r_t)
-        slope = np.einsum("fj,fj->f", grad[todo], direction)
-        best = np.zeros(len(lam_t))
-        found = np.zeros(len(lam_t), dtype=bool)
-        for t in steps:
-            q = _dual_value(lam_t + t * direction, a_t, b_t, r_t)
-            ok = ~found & (q >= q0 + 1e-4 * t * slope)
-            best[ok] = t
-            found |= ok
-            if found.all():
-                break
-        lam[todo] = lam_t + best[:, None] * direction
+        c = np.einsum("fjm,fj->fm", a_mat[todo], direction)
+        step = _exact_step(s[todo], c, lam[todo], direction, np.einsum("fj,fj->f", grad[todo], direction),
+                           reserve[todo])
+        lam[todo] = lam[todo] + step[:, None] * direction
     return lam
 
 
@@ -365,6 +380,7 @@ def share_forces(
     max_iter: int = 60,
     tol_nm: float = 1e-6,
     reserve_nm2: float = 1e-4,
+    first_pass_iter: int = 20,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Static optimisation per frame: min sum(a^2) s.t. sum_m r_mj a_m Fmax_m = M_j (j = hip, knee), 0 <= a <= 1.
 
@@ -372,9 +388,11 @@ def share_forces(
     Solved through its dual for all frames at once: the KKT conditions give a = clip(A^T lambda, 0, 1) with
     A_jm = r_mj Fmax_m, so lambda solves the 2-equation piecewise-linear system A clip(A^T lambda) = M. We start
     from the closed-form solution without bounds (lambda = (A A^T)^-1 M) and take semi-smooth Newton steps on the
-    concave dual with backtracking. Frames whose moments no admissible activations can produce (the dual diverges)
-    are returned with ``met = False`` and solved again with a heavily weighted residual moment e (cost
-    |e|^2 / (2 reserve_nm2)): their forces then come as close to the moments as the muscles can, without overshoot.
+    concave dual with backtracking. Frames not solved after ``first_pass_iter`` steps (where no admissible
+    activations produce the moments the dual diverges) are solved again with a heavily weighted residual moment e
+    (cost |e|^2 / (2 reserve_nm2), a strongly concave dual that always converges): their forces come as close to
+    the moments as the muscles can, without overshoot, and they are reported ``met = False`` unless e is below
+    the tolerance.
 
     moment_arms [F,m,2] (m), max_force [F,m] (N, >= 0; NaN treated as 0), target [F,2] (N m).
     Returns forces [F,m] = a * max_force and met [F].
@@ -390,15 +408,14 @@ def share_forces(
     scale = np.einsum("fjj->f", gram)[:, None, None] + 1.0  # floor keeps frames without any capacity finite
     lam0 = np.linalg.solve(gram + 1e-12 * scale * np.eye(2), bb[:, :, None])[:, :, 0]
     tol = tol_nm * (1.0 + np.abs(bb).max(axis=1))
-    lam = _solve_dual(a_mat, bb, lam0.copy(), np.zeros(len(bb)), max_iter, tol, scale)
+    lam = _solve_dual(a_mat, bb, lam0.copy(), np.zeros(len(bb)), first_pass_iter, tol, scale)
     act = np.clip(np.einsum("fjm,fj->fm", a_mat, lam), 0.0, 1.0)
-    resid = bb - np.einsum("fjm,fm->fj", a_mat, act)
-    met = usable & (np.abs(resid).max(axis=1) <= 10 * tol)
-    retry = usable & ~met
+    retry = usable & (np.abs(bb - np.einsum("fjm,fm->fj", a_mat, act)).max(axis=1) > 10 * tol)
     if retry.any():
         lam_r = _solve_dual(a_mat[retry], bb[retry], lam0[retry], np.full(retry.sum(), reserve_nm2), max_iter,
                             tol[retry], scale[retry])
         act[retry] = np.clip(np.einsum("fjm,fj->fm", a_mat[retry], lam_r), 0.0, 1.0)
+    met = usable & (np.abs(bb - np.einsum("fjm,fm->fj", a_mat, act)).max(axis=1) <= 10 * tol)
     forces = act * cap
     forces[~usable] = np.nan
     return forces, met
