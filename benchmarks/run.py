@@ -1,0 +1,303 @@
+"""hamstride benchmark: per-stage timings, cost relative to reading the file, scaling, parallel speedup, memory
+and report time, printed in one run on invented trials.
+
+    python benchmarks/run.py            # full run (several minutes: 48-trial speedup and 500-trial memory runs)
+    python benchmarks/run.py --quick    # small sizes, about a minute
+    python benchmarks/run.py --help     # every size is a flag
+
+Targets (issue 8; printed beside each figure, not asserted): full analysis <= 4x the ezc3d read time (aim 3x);
+time ~ frames^k with k <= 1.1; --jobs 2 speedup >= 1.7 on 48 trials; peak memory of a 500-trial squad run
+<= 600 MB and flat in the number of trials; report rendering <= 1 s per athlete; Dask tables byte-identical.
+"""
+from __future__ import annotations
+
+import argparse
+import contextlib
+import filecmp
+import importlib
+import os
+import shutil
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+from memwatch import run_and_watch  # noqa: E402
+from squadgen import write_squad, write_trial  # noqa: E402
+
+from hamstride.pipeline import AnalysisOptions, AthleteInfo, analyse_trial  # noqa: E402
+
+#: (module, function, label) of each stage as analyse_trial calls it; nested calls count to the outer stage.
+STAGES = [
+    ("io", "read_c3d", "read C3D (io)"),
+    ("landmarks", "resolve_landmarks", "landmarks"),
+    ("signal", "smooth_landmarks", "gap fill + filter (signal)"),
+    ("segments", "build_body", "segment frames"),
+    ("angles", "joint_angles", "joint angles"),
+    ("events", "detect_events", "events"),
+    ("events", "is_treadmill", "events"),
+    ("events", "running_speed", "events"),
+    ("strides", "cut_strides", "strides"),
+    ("muscles", "muscle_states", "muscle states"),
+    ("muscles", "monte_carlo_lengths", "Monte Carlo band"),
+    ("dynamics", "swing_inverse_dynamics", "inverse dynamics"),
+    ("dynamics", "muscle_forces", "force sharing"),
+    ("strides", "normalise", "normalise to cycle"),
+]
+TABLES = ["athlete", "strides", "curves", "summary", "flags"]
+ATHLETE = AthleteInfo(athlete="BX001", session="2026-01-01_s1", body_mass_kg=75.0, height_m=1.80, sex="male")
+
+
+@contextlib.contextmanager
+def stage_timer(totals: dict[str, float]):
+    """Wrap each stage function (module attribute) with a timer; only the outermost wrapped call is counted."""
+    depth = [0]
+    saved = []
+
+    def wrap(fn, label):
+        def timed(*args, **kwargs):
+            if depth[0]:
+                return fn(*args, **kwargs)
+            depth[0] += 1
+            t0 = time.perf_counter()
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                totals[label] = totals.get(label, 0.0) + time.perf_counter() - t0
+                depth[0] -= 1
+        return timed
+
+    for module_name, name, label in STAGES:
+        module = importlib.import_module(f"hamstride.{module_name}")
+        fn = getattr(module, name, None)
+        if fn is None:
+            continue
+        saved.append((module, name, fn))
+        setattr(module, name, wrap(fn, label))
+    try:
+        yield totals
+    finally:
+        for module, name, fn in saved:
+            setattr(module, name, fn)
+
+
+def time_ezc3d(path: Path, repeats: int) -> float:
+    """Median time ezc3d needs to read the file (as io.read_c3d calls it: no force-plate extraction)."""
+    import ezc3d
+
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        ezc3d.c3d(str(path), extract_forceplat_data=False)
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
+def time_analysis(path: Path, repeats: int) -> tuple[float, dict[str, float], int]:
+    """Median full-analysis time (no reports), per-stage times of the median run, and the number of frames."""
+    runs = []
+    n_frames = 0
+    for _ in range(repeats):
+        totals: dict[str, float] = {}
+        with stage_timer(totals):
+            t0 = time.perf_counter()
+            result = analyse_trial(path, AnalysisOptions(), athlete=ATHLETE)
+            wall = time.perf_counter() - t0
+        n_frames = int(result.info["n_frames"])
+        totals["tables + metrics (rest)"] = wall - sum(totals.values())
+        runs.append((wall, totals))
+    runs.sort(key=lambda r: r[0])
+    wall, totals = runs[len(runs) // 2]
+    return wall, totals, n_frames
+
+
+def check(value: float, target: float, lower_is_better: bool = True) -> str:
+    ok = value <= target if lower_is_better else value >= target
+    return "meets target" if ok else "MISSES target"
+
+
+def same_tables(a: Path, b: Path) -> tuple[bool, list[str]]:
+    differ = []
+    for name in TABLES:
+        fa, fb = a / f"{name}.csv", b / f"{name}.csv"
+        if fa.exists() or fb.exists():
+            if not (fa.exists() and fb.exists() and filecmp.cmp(fa, fb, shallow=False)):
+                differ.append(name)
+    return not differ, differ
+
+
+def squad_wall(root: Path, out: Path, jobs: int | None = None, report: bool = False, cluster=None):
+    from hamstride.batch import run_squad
+
+    t0 = time.perf_counter()
+    run = run_squad(root, out, jobs=jobs, report=report, cluster=cluster)
+    return time.perf_counter() - t0, run
+
+
+def section(title: str) -> None:
+    print(f"\n== {title} " + "=" * max(0, 100 - len(title)), flush=True)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--quick", action="store_true", help="small sizes (about a minute)")
+    ap.add_argument("--base-s", type=float, default=2.0, help="base trial length in s (scaled 1x, 4x, 16x)")
+    ap.add_argument("--repeats", type=int, default=None, help="repeats per timing (median; default 5, quick 2)")
+    ap.add_argument("--squad-trials", type=int, default=None, help="trials in the speedup squad (default 48)")
+    ap.add_argument("--memory-trials", type=int, nargs="+", default=None,
+                    help="squad sizes for the memory run (default 100 500; quick 20 60)")
+    ap.add_argument("--jobs", type=int, default=2, help="worker processes for the parallel runs (default 2)")
+    ap.add_argument("--no-dask", action="store_true", help="skip the Dask LocalCluster comparison")
+    ap.add_argument("--skip", nargs="*", default=[], choices=["stages", "scaling", "speedup", "memory", "report",
+                                                               "dask"], help="sections to skip")
+    ap.add_argument("--workdir", type=Path, default=None, help="keep generated trials and outputs here")
+    args = ap.parse_args(argv)
+    repeats = args.repeats or (2 if args.quick else 5)
+    squad_trials = args.squad_trials or (12 if args.quick else 48)
+    memory_trials = args.memory_trials or ([20, 60] if args.quick else [100, 500])
+    work = args.workdir or Path(tempfile.mkdtemp(prefix="hamstride-bench-"))
+    work.mkdir(parents=True, exist_ok=True)
+    skip = set(args.skip) | ({"dask"} if args.no_dask else set())
+    from hamstride import __version__
+
+    print(f"hamstride {__version__} benchmark, python {sys.version.split()[0]}, numpy {np.__version__}, "
+          f"{os.cpu_count()} cores; work folder {work}")
+    results: dict[str, object] = {}
+
+    # ---------------------------------------------------------------- per trial: stages, ratio to ezc3d, scaling
+    factors = [1, 4, 16]
+    trials = {f: write_trial(work / "trials" / f"sprint_{f:02d}x.c3d", duration_s=args.base_s * f, seed=f)
+              for f in factors}
+    analyse_trial(trials[1], AnalysisOptions(), athlete=ATHLETE)  # warm-up: imports, caches
+    rows = {}
+    for f in factors:
+        if f > 1 and "scaling" in skip:
+            continue
+        reps = repeats if f < 16 else max(1, repeats // 2)
+        wall, totals, frames = time_analysis(trials[f], reps)
+        read = time_ezc3d(trials[f], max(5, repeats))
+        rows[f] = (wall, totals, frames, read)
+    if "stages" not in skip:
+        section(f"per-stage time per trial (ms; median of {repeats}; default options, body mass given)")
+        labels = list(dict.fromkeys([label for _, _, label in STAGES] + ["tables + metrics (rest)"]))
+        header = f"{'stage':<28}" + "".join(f"{f'{args.base_s * f:g} s ({rows[f][2]} fr)':>20}" for f in rows)
+        print(header)
+        for label in labels:
+            print(f"{label:<28}" + "".join(f"{1000 * rows[f][1].get(label, 0.0):>20.1f}" for f in rows))
+        print(f"{'total analysis':<28}" + "".join(f"{1000 * rows[f][0]:>20.1f}" for f in rows))
+        print(f"{'ezc3d read of the file':<28}" + "".join(f"{1000 * rows[f][3]:>20.2f}" for f in rows))
+    section("full analysis / ezc3d read")
+    for f, (wall, _, frames, read) in rows.items():
+        ratio = wall / read
+        results.setdefault("ratio", ratio)
+        print(f"{args.base_s * f:g} s trial ({frames} frames): analysis {1000 * wall:.1f} ms, ezc3d read "
+              f"{1000 * read:.2f} ms, ratio {ratio:.1f}x  (target <= 4x, aim 3x: {check(ratio, 4.0)})")
+    if len(rows) == 3 and "scaling" not in skip:
+        section("scaling of analysis time with trial length")
+        frames = np.array([rows[f][2] for f in factors], dtype=float)
+        walls = np.array([rows[f][0] for f in factors])
+        k = float(np.polyfit(np.log(frames), np.log(walls), 1)[0])
+        k_hi = float(np.log(walls[2] / walls[1]) / np.log(frames[2] / frames[1]))
+        results["exponent"] = k
+        print(f"time ~ frames^k: k = {k:.2f} over 1x/4x/16x (4x->16x alone: {k_hi:.2f})  "
+              f"(target <= 1.1: {check(k, 1.1)})")
+        print("per-stage exponents (4x -> 16x):")
+        for label in rows[16][1]:
+            a, b = rows[4][1].get(label, 0.0), rows[16][1].get(label, 0.0)
+            if a > 1e-4 and b > 1e-4:
+                print(f"  {label:<28} {np.log(b / a) / np.log(frames[2] / frames[1]):5.2f}   "
+                      f"({1000 * b:.0f} ms at 16x)")
+
+    # ---------------------------------------------------------------- squad: speedup, report, Dask
+    squad = work / f"squad{squad_trials}"
+    if {"speedup", "report", "dask"} - skip:
+        write_squad(squad, squad_trials, duration_s=args.base_s)
+    out1, outj = work / "out_jobs1", work / f"out_jobs{args.jobs}"
+    if "speedup" not in skip:
+        section(f"squad of {squad_trials} trials ({args.base_s:g} s each), tables only: --jobs 1 vs --jobs {args.jobs}")
+        for out in (out1, outj):
+            shutil.rmtree(out, ignore_errors=True)
+        t1, run1 = squad_wall(squad, out1, jobs=1)
+        tj, _ = squad_wall(squad, outj, jobs=args.jobs)
+        speedup = t1 / tj
+        results["speedup"] = speedup
+        same, differ = same_tables(out1, outj)
+        print(f"--jobs 1: {t1:.1f} s ({t1 / squad_trials:.3f} s per trial); --jobs {args.jobs}: {tj:.1f} s; "
+              f"speedup {speedup:.2f} (target >= 1.7 with 2 jobs on 2 cores: {check(speedup, 1.7, False)}); "
+              f"{run1.manifest['counts']['ok']} ok, {run1.manifest['counts']['failed']} failed")
+        print(f"tables identical between --jobs 1 and --jobs {args.jobs}: {same}" + (f" (differ: {differ})" if differ else ""))
+        t_cached, _ = squad_wall(squad, outj, jobs=args.jobs)
+        print(f"rerun with everything cached: {t_cached:.2f} s")
+    if "report" not in skip:
+        section("report rendering")
+        if not (outj / "manifest.json").exists():
+            squad_wall(squad, outj, jobs=args.jobs)
+        t_tables, run = squad_wall(squad, outj, jobs=args.jobs)
+        try:
+            t_report, run = squad_wall(squad, outj, jobs=args.jobs, report=True)
+        except Exception as exc:  # report stage still being built
+            print(f"report rendering failed: {type(exc).__name__}: {exc}")
+        else:
+            n_athletes = max(1, run.strides["athlete"].nunique())
+            per = (t_report - t_tables) / n_athletes
+            results["report_per_athlete"] = per
+            print(f"{n_athletes} athletes, {len(run.report_paths)} files: {t_report - t_tables:.2f} s, "
+                  f"{per:.2f} s per athlete (target <= 1 s: {check(per, 1.0)})")
+    if "dask" not in skip:
+        section(f"Dask LocalCluster ({args.jobs} worker processes, 1 thread each) vs local pool")
+        try:
+            from distributed import LocalCluster
+        except ImportError:
+            print("distributed not installed (pip install 'hamstride[cluster]'); skipped")
+        else:
+            if not (out1 / "manifest.json").exists():
+                squad_wall(squad, out1, jobs=1)
+            outd = work / "out_dask"
+            shutil.rmtree(outd, ignore_errors=True)
+            t0 = time.perf_counter()
+            with LocalCluster(n_workers=args.jobs, threads_per_worker=1, processes=True,
+                              dashboard_address=None) as cluster:
+                start = time.perf_counter() - t0
+                td, _ = squad_wall(squad, outd, cluster=cluster.scheduler_address)
+            same, differ = same_tables(out1, outd)
+            results["dask_identical"] = same
+            print(f"cluster start {start:.1f} s; squad {td:.1f} s; tables byte-identical to the local pool: {same}"
+                  + (f" (differ: {differ})" if differ else ""))
+
+    # ---------------------------------------------------------------- memory of long squad runs
+    if "memory" not in skip:
+        section(f"peak memory of squad runs (tables only, --jobs {args.jobs}; whole process tree)")
+        peaks = []
+        for n in memory_trials:
+            root = work / f"mem{n}"
+            write_squad(root, n, trials_per_session=5, sessions_per_athlete=4, duration_s=args.base_s)
+            out = work / f"mem{n}_out"
+            shutil.rmtree(out, ignore_errors=True)
+            cmd = [sys.executable, "-c", "import sys; from hamstride.batch import run_squad; "
+                   "run_squad(sys.argv[1], sys.argv[2], jobs=int(sys.argv[3]), report=False)",
+                   str(root), str(out), str(args.jobs)]
+            peak = run_and_watch(cmd)
+            peaks.append(peak.pss_mb)
+            print(f"{n:5d} trials: {peak.wall_s:6.1f} s, peak PSS {peak.pss_mb:6.0f} MB (RSS sum {peak.rss_mb:.0f} MB, "
+                  f"main process {peak.main_rss_mb:.0f} MB)  (target <= 600 MB: {check(peak.pss_mb, 600.0)})")
+        if len(peaks) > 1:
+            growth = (peaks[-1] - peaks[0]) / (memory_trials[-1] - memory_trials[0])
+            results["memory_growth_mb_per_trial"] = growth
+            print(f"growth {1000 * growth:.0f} kB per extra trial (flat if close to 0)")
+
+    section("summary")
+    for key, value in results.items():
+        print(f"{key}: {value:.3g}" if isinstance(value, float) else f"{key}: {value}")
+    if args.workdir is None:
+        shutil.rmtree(work, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
