@@ -69,9 +69,30 @@ def _deg(x):
     return np.degrees(x)
 
 
-def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
-                  static_path: str | Path | None = None, markers: str | Path | None = None) -> TrialResult:
-    """Run one trial through the whole pipeline and return its stride and curve tables."""
+@dataclass(frozen=True)
+class Kinematics:
+    """The kinematic half of a trial: filtered landmarks, segments, angles, events, strides and speed."""
+
+    trial: object  # io.MarkerTrial
+    landmarks: object  # landmarks.Landmarks, gap-filled and filtered
+    filter_info: object  # signal.FilterInfo
+    body: object  # segments.Body
+    angles: object  # angles.JointAngles
+    events: object  # events.GaitEvents
+    strides: tuple  # strides.Stride, valid and rejected
+    treadmill: bool
+    speed_m_s: float
+    warnings: tuple[str, ...]
+
+    @property
+    def valid_strides(self) -> list:
+        return [s for s in self.strides if s.valid]
+
+
+def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *,
+                     athlete: AthleteInfo = AthleteInfo(), static_path: str | Path | None = None,
+                     markers: str | Path | None = None) -> Kinematics:
+    """io -> landmarks -> signal -> segments -> angles -> events -> strides for one trial."""
     from .angles import joint_angles
     from .events import detect_events, is_treadmill, running_speed
     from .io import read_c3d
@@ -80,9 +101,8 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
     from .signal import smooth_landmarks
     from .strides import cut_strides
 
-    path = Path(path)
     marker_map = load_marker_map(markers)
-    trial = read_c3d(path)
+    trial = read_c3d(Path(path))
     warnings: list[str] = []
     calibration = None
     if static_path is not None:
@@ -102,26 +122,36 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
     events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee, min_strides=options.min_strides)
     warnings.extend(events.warnings)
     warnings.extend(events.disagreements)
-    treadmill = is_treadmill(lm)
+    treadmill = bool(is_treadmill(lm))
     speed = float(running_speed(lm, events, treadmill))
     strides = cut_strides(events, trial.rate_hz, lm.n_frames, knee, stride_time_range=options.stride_time_range_s,
                           contact_range=options.contact_range_s)
-    rejected = [f"{s.side} stride {s.index + 1}: {s.reason}" for s in strides if not s.valid]
-    warnings.extend(rejected)
-    valid = [s for s in strides if s.valid]
+    warnings.extend(f"{s.side} stride {s.index + 1}: {s.reason}" for s in strides if not s.valid)
+    return Kinematics(trial, lm, filter_info, body, angles, events, tuple(strides), treadmill, speed, tuple(warnings))
+
+
+def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
+                  static_path: str | Path | None = None, markers: str | Path | None = None) -> TrialResult:
+    """Run one trial through the whole pipeline and return its stride and curve tables."""
+    kin = trial_kinematics(path, options, athlete=athlete, static_path=static_path, markers=markers)
+    trial = kin.trial
+    valid = kin.valid_strides
     if not valid:
+        rejected = [f"{s.side} stride {s.index + 1}: {s.reason}" for s in kin.strides]
         raise PlausibilityError("no valid stride in the trial (" + "; ".join(rejected[:3]) + ")", trial=trial.name,
                                 code="few_strides")
     body_mass = athlete.body_mass_kg or trial.meta.get("body_mass_kg")
     info = {
-        "trial": trial.name, "rate_hz": trial.rate_hz, "n_frames": trial.n_frames, "cutoff_hz": filter_info.cutoff_hz,
-        "cutoff_method": filter_info.method, "vertical_axis": trial.lab.vertical_axis,
-        "travel_axis": trial.lab.travel_axis, "treadmill": bool(treadmill), "speed_m_s": speed,
-        "event_method": events.method, "n_strides": {s: sum(1 for v in valid if v.side == s) for s in SIDES},
-        "body_mass_kg": body_mass, "warnings": warnings, "software_version": __version__,
-        "hip_method": body.hip_method if hasattr(body, "hip_method") else options.hip_method,
+        "trial": trial.name, "rate_hz": trial.rate_hz, "n_frames": trial.n_frames,
+        "cutoff_hz": kin.filter_info.cutoff_hz, "cutoff_method": kin.filter_info.method,
+        "vertical_axis": trial.lab.vertical_axis, "travel_axis": trial.lab.travel_axis, "treadmill": kin.treadmill,
+        "speed_m_s": kin.speed_m_s, "event_method": kin.events.method,
+        "n_strides": {s: sum(1 for v in valid if v.side == s) for s in SIDES},
+        "body_mass_kg": body_mass, "warnings": list(kin.warnings), "software_version": __version__,
+        "hip_method": kin.body.hip_method,
     }
-    stride_rows, curve_frames = _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info)
+    stride_rows, curve_frames = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
+                                               kin.speed_m_s, info)
     strides_df = pd.DataFrame(stride_rows, columns=STRIDE_COLUMNS)
     curves_df = pd.concat(curve_frames, ignore_index=True)[CURVE_COLUMNS] if curve_frames else pd.DataFrame(
         columns=CURVE_COLUMNS)
