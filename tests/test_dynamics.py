@@ -283,10 +283,8 @@ def test_3d_foot_on_a_spherical_ankle_recovers_applied_torque():
     assert np.abs(np.cross(sol.y[9:].T, sol.y[9:].T @ i_p)).max() > 0.5 * np.abs(truth).max()
 
 
-def test_3d_chain_power_equals_rate_of_mechanical_energy():
-    """Work-energy theorem for an arbitrary 3D motion of the three segments (rotations not confined to a plane):
-    dE/dt = F_hip . v_hip + M_hip . w_thigh + M_knee . (w_shank - w_thigh) + M_ankle . (w_foot - w_shank)."""
-    rate = 2000.0
+def _leg_3d_motion(rate):
+    """An arbitrary smooth 3D motion of a connected thigh-shank-foot chain (rotations not confined to a plane)."""
     t = np.arange(0.0, 0.4, 1.0 / rate)
     rotvecs = [
         np.stack([0.3 * np.sin(9 * t), 0.2 * np.cos(6 * t), 1.2 * np.sin(8 * t)], axis=1),
@@ -299,6 +297,32 @@ def test_3d_chain_power_equals_rate_of_mechanical_energy():
     ankle = knee + rmats[1] @ np.array([0.0, -L_SHANK, 0.0])
     heel = ankle + rmats[2] @ np.array([-0.05, -0.06, 0.0])
     toe = heel + rmats[2] @ np.array([L_FOOT, 0.0, 0.0])
+    return t, rmats, (hip, knee, ankle, heel, toe)
+
+
+def test_mirrored_left_leg_gives_the_same_anatomical_moments():
+    """The mirror image of a right-leg motion (y -> -y; segment Z kept pointing right) analysed as a left leg gives
+    the same flexion, adduction and internal-rotation moments (sign conventions of DEVELOPERS.md)."""
+    rate = 500.0
+    _, rmats, points = _leg_3d_motion(rate)
+    mirror = np.diag([1.0, -1.0, 1.0])
+    keep_z_right = np.diag([1.0, 1.0, -1.0])
+    right = dyn.swing_inverse_dynamics(*[Frames(o, r) for o, r in zip(points[:3], rmats)], *points, rate, INERTIA)
+    m_points = [p @ mirror for p in points]
+    m_rmats = [mirror @ r @ keep_z_right for r in rmats]
+    left = dyn.swing_inverse_dynamics(*[Frames(o, r) for o, r in zip(m_points[:3], m_rmats)], *m_points, rate,
+                                      INERTIA, side="left")
+    for joint in ("hip", "knee", "ankle"):
+        a, b = getattr(right, joint), getattr(left, joint)
+        assert np.abs(a[:, 1:]).max() > 0.05 * np.abs(a).max()  # out-of-plane components are not trivially zero
+        np.testing.assert_allclose(b, a, atol=1e-9 * np.abs(a).max())
+
+
+def test_3d_chain_power_equals_rate_of_mechanical_energy():
+    """Work-energy theorem for an arbitrary 3D motion of the three segments (rotations not confined to a plane):
+    dE/dt = F_hip . v_hip + M_hip . w_thigh + M_knee . (w_shank - w_thigh) + M_ankle . (w_foot - w_shank)."""
+    rate = 2000.0
+    t, rmats, (hip, knee, ankle, heel, toe) = _leg_3d_motion(rate)
     frames = [Frames(o, r) for o, r in zip((hip, knee, ankle), rmats)]
     jm = dyn.swing_inverse_dynamics(*frames, hip, knee, ankle, heel, toe, rate, INERTIA)
 
