@@ -5,6 +5,8 @@ Batch runs record `code` and `message` in manifest.json; nothing here ever needs
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 
 class HamstrideError(Exception):
     """Base of every error hamstride raises on purpose."""
@@ -51,3 +53,14 @@ class ConfigError(HamstrideError):
 
 class AnalysisWarning(UserWarning):
     """A problem that does not stop the analysis but should be shown to the user (``--strict`` turns it into an error)."""
+
+
+@dataclass(frozen=True)
+class TrialWarning:
+    """A problem that does not stop a trial's analysis: a short code and a message (``--strict`` makes it an error)."""
+
+    code: str
+    message: str
+
+    def __str__(self) -> str:
+        return self.message
