@@ -283,19 +283,20 @@ class _Design:
     landing_window: float = 0.006  # toe comes to rest in the last 6 ms before foot strike
 
 
-def _design(speed: float) -> _Design:
+def _design(speed: float, leg_length_m: float = 0.886) -> _Design:
     """Sprint key values as a function of speed (7-9.5 m/s).
 
     Stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]; peak hip flexion 65-80 deg, knee 15-30 deg at foot
     strike, peak knee flexion 120-135 deg, late-swing knee extension to 10-30 deg [M, references.md]. Faster running:
-    shorter stride time, more hip flexion, more late-swing knee extension (common practice).
+    shorter stride time, more hip flexion, more late-swing knee extension (common practice). Stride time scales
+    with the square root of leg length (dynamic similarity; 0.886 m = hip-to-ankle of a 1.80 m man).
     """
     k = float(np.clip((speed - 7.0) / 2.5, -0.4, 1.4))
     return _Design(
-        stride_time=0.470 - 0.036 * k,
+        stride_time=(0.470 - 0.036 * k) * np.sqrt(leg_length_m / 0.886),
         pelvis_tilt=-12.0 * _DEG,
         hip_td=(37.0 + 2.0 * k) * _DEG,
-        knee_td=22.0 * _DEG,
+        knee_td=23.0 * _DEG,
         pitch_td=-14.0 * _DEG,
         knee_to=(20.0 - 4.0 * k) * _DEG,
         pitch_to=-52.0 * _DEG,
@@ -344,34 +345,38 @@ class _Gait:
 
     def __init__(self, spec: SprintSpec, rng: np.random.Generator):
         self.spec, self.body = spec, spec.body
-        self.design = d = _design(spec.speed_m_s)
+        self.design = d = _design(spec.speed_m_s, spec.body.thigh_length_m + spec.body.shank_length_m)
         self.v = float(spec.speed_m_s)
         self.toe_local = {s: _foot_local(self.body, s)["toe_tip"][:2] for s in SIDES}
         self.hip_local = {s: hip_centre_local(self.body, s) for s in SIDES}
         jitter = float(spec.stride_jitter)
 
-        # Foot-strike configuration (same on both sides): toe offset from the hip fixes the standing hip height.
+        # Foot-strike configuration per side: the toe offset from the hip fixes the hip height at strike. A leg
+        # with a knee-extension deficit also lands with a more flexed knee.
         pitch_at_strike = d.pelvis_tilt + 1.5 * _DEG  # pelvis pitch is phase-locked: same at every strike
-        phi_t = pitch_at_strike + d.hip_td
-        phi_s = phi_t - d.knee_td
-        _, _, toe = _planar_leg(phi_t, phi_s, d.pitch_td, self.body, self.toe_local["right"])
-        self.td_reach = toe  # (x ahead, z below) of the hip at foot strike
-        self.h_td = -toe[1]
-        self.h_to = self.h_td - 0.010
-        # Contact time from the toe-off geometry: knee at knee_to with the foot pitched to pitch_to.
         lt, ls = self.body.thigh_length_m, self.body.shank_length_m
-        reach = np.sqrt(lt * lt + ls * ls + 2 * lt * ls * np.cos(d.knee_to))
-        toe_from_ankle = _rot2(np.array(d.pitch_to), self.toe_local["right"])
-        ankle_height = -toe_from_ankle[1]
-        behind = np.sqrt(reach ** 2 - (self.h_to - ankle_height) ** 2) - toe_from_ankle[0]
-        self.contact_time = (toe[0] + behind) / self.v
+        self.knee_td, self.td_reach, self.h_td, self.h_to, self.contact_time = {}, {}, {}, {}, {}
+        for side in SIDES:
+            deficit = spec.knee_extension_deficit_deg if spec.asymmetry_side == side else 0.0
+            self.knee_td[side] = d.knee_td + deficit * _DEG
+            phi_t = pitch_at_strike + d.hip_td
+            _, _, toe = _planar_leg(phi_t, phi_t - self.knee_td[side], d.pitch_td, self.body, self.toe_local[side])
+            self.td_reach[side] = toe  # (x ahead of, z below) the hip at foot strike
+            self.h_td[side] = -toe[1]
+            self.h_to[side] = self.h_td[side] - 0.010
+            # Contact time from the toe-off geometry: knee at knee_to with the foot pitched to pitch_to.
+            reach = np.sqrt(lt * lt + ls * ls + 2 * lt * ls * np.cos(d.knee_to))
+            toe_from_ankle = _rot2(np.array(d.pitch_to), self.toe_local[side])
+            ankle_height = -toe_from_ankle[1]
+            behind = np.sqrt(reach ** 2 - (self.h_to[side] - ankle_height) ** 2) - toe_from_ankle[0]
+            self.contact_time[side] = (toe[0] + behind) / self.v
 
         # Step timeline: alternate right/left, starting before t = 0, with small stride-to-stride timing jitter.
         t = -d.stride_time * (1.0 + rng.uniform(0.0, 1.0))
         steps: list[_Step] = []
         side = "right"
         while t < spec.duration_s + 1.5 * d.stride_time:
-            steps.append(_Step(side, t, t + self.contact_time))
+            steps.append(_Step(side, t, t + self.contact_time[side]))
             t += 0.5 * d.stride_time * (1.0 + 0.012 * jitter * rng.standard_normal())
             side = "left" if side == "right" else "right"
         self.steps = steps
@@ -382,10 +387,12 @@ class _Gait:
         knots_t, knots_z = [], []
         for i, st in enumerate(steps[:-1]):
             nxt = steps[i + 1].strike
-            for tk, hz, sd in ((st.strike, self.h_td, st.side),
-                               (st.strike + 0.5 * self.contact_time, self.h_td - d.stance_dip, st.side),
-                               (st.toe_off, self.h_to, st.side),
-                               (0.5 * (st.toe_off + nxt), self.h_td + d.flight_rise, None)):
+            h_td, h_to = self.h_td[st.side], self.h_to[st.side]
+            h_flight = 0.5 * (self.h_td["left"] + self.h_td["right"]) + d.flight_rise
+            for tk, hz, sd in ((st.strike, h_td, st.side),
+                               (0.5 * (st.strike + st.toe_off), h_td - d.stance_dip, st.side),
+                               (st.toe_off, h_to, st.side),
+                               (0.5 * (st.toe_off + nxt), h_flight, None)):
                 offset = self._hip_offset(np.array([tk]), sd)[0, 2]
                 knots_t.append(tk)
                 knots_z.append(hz - offset)
@@ -451,7 +458,7 @@ class _Gait:
     def _stance_pitches(self, t, st: _Step):
         """Thigh, shank, foot pitch in stance: toe pinned at contact_x, planar IK."""
         t = np.asarray(t, dtype=float)
-        phi_f = st.stance_pitch((t - st.strike) / self.contact_time)
+        phi_f = st.stance_pitch((t - st.strike) / (st.toe_off - st.strike))
         hip = self.hip(t, st.side)
         toe = np.stack([np.full_like(t, st.contact_x), np.zeros_like(t)], axis=-1)
         ankle = toe - _rot2(phi_f, self.toe_local[st.side])
@@ -460,10 +467,9 @@ class _Gait:
 
     def _build_legs(self):
         d, body = self.design, self.body
-        td = self.td_reach
         # Stance: contact point from the strike configuration, foot pitch roll-over spline.
         for st in self.steps:
-            st.contact_x = self.hip(np.array([st.strike]), st.side)[0, 0] + td[0]
+            st.contact_x = self.hip(np.array([st.strike]), st.side)[0, 0] + self.td_reach[st.side][0]
             st.stance_pitch = CubicSpline([0.0, 0.4, 0.75, 1.0],
                                           [d.pitch_td, -6.0 * _DEG, -22.0 * _DEG, d.pitch_to])
         # Swing: from each toe-off to the same side's next strike.
@@ -487,8 +493,10 @@ class _Gait:
         # end: strike configuration; rates so that the toe moves at toe_velocity_td (ground frame)
         pp1, dpp1, _ = _derivatives(pelvis_pitch, t1)
         phi_t = pp1 + d.hip_td
-        phi_s = phi_t - d.knee_td
-        _, dfoot, _ = _derivatives(lambda t: nxt.stance_pitch((np.asarray(t) - nxt.strike) / self.contact_time), t1)
+        knee_td = self.knee_td[st.side]
+        phi_s = phi_t - knee_td
+        _, dfoot, _ = _derivatives(
+            lambda t: nxt.stance_pitch((np.asarray(t) - nxt.strike) / (nxt.toe_off - nxt.strike)), t1)
         hip_v = _derivatives(lambda t: self.hip(t, st.side), t1)[1][[0, 2]]
         lt, ls = body.thigh_length_m, body.shank_length_m
         toe_l = self.toe_local[st.side]
@@ -497,7 +505,7 @@ class _Gait:
         target = np.asarray(d.toe_velocity_td) - hip_v - foot_term
         jac = np.array([[lt * np.cos(phi_t), ls * np.cos(phi_s)], [lt * np.sin(phi_t), ls * np.sin(phi_s)]])
         w_t, w_s = np.linalg.solve(jac, target)
-        end = np.array([d.hip_td, d.knee_td, d.pitch_td - phi_s])
+        end = np.array([d.hip_td, knee_td, d.pitch_td - phi_s])
         end_rate = np.array([w_t - dpp1, w_t - w_s, dfoot - w_s]) * dur
 
         def between(s_a, v_a, m_a, s_b, v_b, m_b, n=3):
@@ -543,7 +551,7 @@ class _Gait:
             *self._swing_pitches(tt, sw).T, self.body, self.toe_local[side])[2]
         p0, v0, a0 = _derivatives(toe_fun, t_a)
         f0, fv0, fa0 = _derivatives(lambda tt: self._swing_pitches(tt, sw)[:, 2], t_a)
-        pitch_fun = lambda tt: nxt.stance_pitch((np.asarray(tt) - nxt.strike) / self.contact_time)
+        pitch_fun = lambda tt: nxt.stance_pitch((np.asarray(tt) - nxt.strike) / (nxt.toe_off - nxt.strike))
         f1, fv1, fa1 = _derivatives(pitch_fun, nxt.strike)
         u = (np.asarray(t, dtype=float) - t_a) / window
         toe = _hermite5(u, p0, v0, a0, np.array([nxt.contact_x, 0.0]), np.zeros(2), np.zeros(2), window)
