@@ -117,6 +117,27 @@ def time_analysis(path: Path, repeats: int) -> tuple[float, dict[str, float], in
     return wall, totals, n_frames
 
 
+def profile_trial(path: Path, repeats: int, top: int) -> None:
+    """cProfile of ``repeats`` analyses of one trial: top functions by cumulative and by own time."""
+    import cProfile
+    import io
+    import pstats
+
+    section(f"profile of {repeats} analyses of {path.name} (cProfile)")
+    profiler = cProfile.Profile()
+    profiler.enable()
+    for _ in range(repeats):
+        analyse_trial(path, AnalysisOptions(), athlete=ATHLETE)
+    profiler.disable()
+    for order in ("cumulative", "tottime"):
+        text = io.StringIO()
+        pstats.Stats(profiler, stream=text).strip_dirs().sort_stats(order).print_stats(top)
+        lines = [line for line in text.getvalue().splitlines() if line.strip()]
+        start = next(i for i, line in enumerate(lines) if line.lstrip().startswith("ncalls"))
+        print(f"-- by {order} time")
+        print("\n".join(lines[start:]))
+
+
 def check(value: float, target: float, lower_is_better: bool = True) -> str:
     ok = value <= target if lower_is_better else value >= target
     return "meets target" if ok else "MISSES target"
@@ -156,6 +177,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--no-dask", action="store_true", help="skip the Dask LocalCluster comparison")
     ap.add_argument("--skip", nargs="*", default=[], choices=["stages", "scaling", "speedup", "memory", "report",
                                                                "dask"], help="sections to skip")
+    ap.add_argument("--memory-with-reports", action="store_true",
+                    help="memory runs also render the HTML/PDF reports (default: tables only)")
+    ap.add_argument("--profile", type=int, default=0, metavar="N",
+                    help="also cProfile the analysis of the base trial and print the top N functions")
     ap.add_argument("--workdir", type=Path, default=None, help="keep generated trials and outputs here")
     args = ap.parse_args(argv)
     repeats = args.repeats or (2 if args.quick else 5)
@@ -183,6 +208,8 @@ def main(argv: list[str] | None = None) -> int:
         wall, totals, frames = time_analysis(trials[f], reps)
         read = time_ezc3d(trials[f], max(5, repeats))
         rows[f] = (wall, totals, frames, read)
+    if args.profile:
+        profile_trial(trials[1], repeats, args.profile)
     if "stages" not in skip:
         section(f"per-stage time per trial (ms; median of {repeats}; default options, body mass given)")
         labels = list(dict.fromkeys([label for _, _, label in STAGES] + ["tables + metrics (rest)"]))
@@ -272,7 +299,8 @@ def main(argv: list[str] | None = None) -> int:
 
     # ---------------------------------------------------------------- memory of long squad runs
     if "memory" not in skip:
-        section(f"peak memory of squad runs (tables only, --jobs {args.jobs}; whole process tree)")
+        what = "tables and reports" if args.memory_with_reports else "tables only"
+        section(f"peak memory of squad runs ({what}, --jobs {args.jobs}; whole process tree)")
         peaks = []
         for n in memory_trials:
             root = work / f"mem{n}"
@@ -280,8 +308,8 @@ def main(argv: list[str] | None = None) -> int:
             out = work / f"mem{n}_out"
             shutil.rmtree(out, ignore_errors=True)
             cmd = [sys.executable, "-c", "import sys; from hamstride.batch import run_squad; "
-                   "run_squad(sys.argv[1], sys.argv[2], jobs=int(sys.argv[3]), report=False)",
-                   str(root), str(out), str(args.jobs)]
+                   "run_squad(sys.argv[1], sys.argv[2], jobs=int(sys.argv[3]), report=sys.argv[4] == '1')",
+                   str(root), str(out), str(args.jobs), "1" if args.memory_with_reports else "0"]
             peak = run_and_watch(cmd)
             peaks.append(peak.pss_mb)
             print(f"{n:5d} trials: {peak.wall_s:6.1f} s, peak PSS {peak.pss_mb:6.0f} MB (RSS sum {peak.rss_mb:.0f} MB, "
