@@ -347,7 +347,8 @@ def read_c3d(path: str | Path) -> MarkerTrial:
 
     The file is first checked by :func:`check_c3d_header` in our own code, so the native reader (ezc3d) only sees
     files whose blocks, counts and sizes agree. Every problem is a FileFormatError; nothing else escapes. Points with
-    non-finite or absurd coordinates (beyond 10 km) are marked invalid and counted in ``meta['bad_coordinates']``.
+    infinite or absurd coordinates (beyond 10 km) are marked invalid and counted in ``meta['bad_coordinates']``;
+    NaN coordinates are gaps.
     """
     import ezc3d
 
@@ -394,8 +395,10 @@ def _trial_from_ezc3d(c, path: Path, layout: C3DLayout) -> MarkerTrial:
         xyz = file_xyz * UNIT_TO_METRES[units]
         residuals = np.asarray(c["data"]["meta_points"]["residuals"], dtype=float)[0].T  # [frame, marker]
         flagged = (residuals < 0) | np.all(file_xyz == 0.0, axis=2)
-        absurd = ~np.all(np.isfinite(xyz) & (np.abs(xyz) < MAX_ABS_COORDINATE_M), axis=2)
-    xyz[flagged | absurd] = np.nan
+        # NaN is how ezc3d returns points the file marks invalid, and how several writers (ezc3d among them) store
+        # gaps in float files: a gap, not corruption. Infinite or absurdly far coordinates are corruption.
+        absurd = np.any(np.isinf(xyz) | (np.isfinite(xyz) & (np.abs(xyz) >= MAX_ABS_COORDINATE_M)), axis=2)
+    xyz[flagged | absurd | ~np.isfinite(xyz).all(axis=2)] = np.nan
     meta = _read_subject(params)
     meta["bad_coordinates"] = int(np.sum(absurd & ~flagged))
 
