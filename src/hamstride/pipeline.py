@@ -13,7 +13,8 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .errors import HamstrideError, PlausibilityError
+from .checks import strict_failure
+from .errors import HamstrideError, PlausibilityError, TrialWarning
 
 STRIDE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "foot_strike_s", "toe_off_s", "next_foot_strike_s",
@@ -42,6 +43,8 @@ class AnalysisOptions:
     monte_carlo_samples: int = 200
     scale_force_to_mass: bool = False
     min_strides: int = 1
+    min_speed_m_s: float = 4.0  # slower is a jog, not a sprint (checks.MIN_SPRINT_SPEED_M_S; common practice)
+    strict: bool = False  # --strict: any warning fails the trial
 
     def key(self) -> dict:
         return asdict(self)
@@ -83,6 +86,7 @@ class Kinematics:
     treadmill: bool
     speed_m_s: float
     warnings: tuple[str, ...]
+    warning_codes: tuple[str, ...] = ()  # one short code per warning (errors.TrialWarning)
 
     @property
     def valid_strides(self) -> list:
@@ -94,6 +98,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
                      markers: str | Path | None = None) -> Kinematics:
     """io -> landmarks -> signal -> segments -> angles -> events -> strides for one trial."""
     from .angles import joint_angles
+    from .checks import check_body_size, check_landmark_gaps, check_marker_trial, check_sides, check_speed
     from .events import detect_events, is_treadmill, running_speed
     from .io import read_c3d
     from .landmarks import STATIC_RECOVERABLE, load_marker_map, resolve_landmarks
@@ -103,7 +108,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
 
     marker_map = load_marker_map(markers)
     trial = read_c3d(Path(path))
-    warnings: list[str] = []
+    warnings: list[TrialWarning] = list(check_marker_trial(trial, marker_map.landmarks.values()))
     calibration = None
     if static_path is not None:
         static = read_c3d(static_path)
@@ -113,21 +118,27 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     lm = resolve_landmarks(trial, marker_map, allow_missing=STATIC_RECOVERABLE if calibration is not None else ())
     if calibration is not None:
         lm = reconstruct_missing(lm, calibration)
+    check_landmark_gaps(lm, skip=STATIC_RECOVERABLE if calibration is not None else ())
+    check_sides(lm, marker_map)
+    check_body_size(lm, trial.units_in_file)
     lm, filter_info = smooth_landmarks(lm, cutoff_hz=options.cutoff_hz, max_gap_frames=options.max_gap_frames)
-    warnings.extend(filter_info.long_gaps)
+    warnings.extend(TrialWarning("long_gap", w) for w in filter_info.long_gaps)
     leg_length = athlete.leg_length_m or getattr(calibration, "leg_length_m", None)
     body = build_body(lm, hip_method=options.hip_method, leg_length_m=leg_length)
     angles = joint_angles(body)
     knee = {side: angles[side]["knee_flexion"] for side in SIDES}
     events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee, min_strides=options.min_strides)
-    warnings.extend(events.warnings)
-    warnings.extend(events.disagreements)
+    warnings.extend(TrialWarning("event_rules", w) for w in events.warnings)
+    warnings.extend(TrialWarning("event_disagreement", w) for w in events.disagreements)
     treadmill = bool(is_treadmill(lm))
     speed = float(running_speed(lm, events, treadmill))
+    check_speed(speed, trial.name, min_speed_m_s=options.min_speed_m_s)
     strides = cut_strides(events, trial.rate_hz, lm.n_frames, knee, stride_time_range=options.stride_time_range_s,
                           contact_range=options.contact_range_s)
-    warnings.extend(f"{s.side} stride {s.index + 1}: {s.reason}" for s in strides if not s.valid)
-    return Kinematics(trial, lm, filter_info, body, angles, events, tuple(strides), treadmill, speed, tuple(warnings))
+    warnings.extend(TrialWarning("stride_rejected", f"{s.side} stride {s.index + 1}: {s.reason}")
+                    for s in strides if not s.valid)
+    return Kinematics(trial, lm, filter_info, body, angles, events, tuple(strides), treadmill, speed,
+                      tuple(w.message for w in warnings), tuple(w.code for w in warnings))
 
 
 def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
@@ -147,7 +158,8 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
         "vertical_axis": trial.lab.vertical_axis, "travel_axis": trial.lab.travel_axis, "treadmill": kin.treadmill,
         "speed_m_s": kin.speed_m_s, "event_method": kin.events.method,
         "n_strides": {s: sum(1 for v in valid if v.side == s) for s in SIDES},
-        "body_mass_kg": body_mass, "warnings": list(kin.warnings), "software_version": __version__,
+        "body_mass_kg": body_mass, "warnings": list(kin.warnings),
+        "warning_codes": list(kin.warning_codes), "software_version": __version__,
         "hip_method": kin.body.hip_method,
     }
     stride_rows, curve_frames = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
@@ -155,6 +167,10 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
     strides_df = pd.DataFrame(stride_rows, columns=STRIDE_COLUMNS)
     curves_df = pd.concat(curve_frames, ignore_index=True)[CURVE_COLUMNS] if curve_frames else pd.DataFrame(
         columns=CURVE_COLUMNS)
+    if options.strict:
+        failure = strict_failure(map(TrialWarning, info["warning_codes"], info["warnings"]), trial.name)
+        if failure is not None:
+            raise failure
     return TrialResult(trial.name, strides_df, curves_df, info)
 
 
@@ -262,4 +278,5 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     info["frames_moments_not_met"] = unmet_total
     if not body_mass:
         info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
+        info["warning_codes"].append("no_body_mass")
     return stride_rows, curve_frames
