@@ -437,12 +437,64 @@ def test_demo_squad_layout_and_story(tmp_path):
 
 
 def test_committed_demo_trials_match_the_generator(tmp_path):
+    import ezc3d
+
     committed = Path(__file__).resolve().parents[1] / "demo_trials"
     if not committed.exists():
         pytest.skip("demo_trials/ not in this checkout")
     fresh = tmp_path / "demo"
     synth.write_demo_squad(fresh)
+    stale = "demo_trials/ is stale: regenerate it with `hamstride demo demo_trials` and commit"
     names = sorted(p.relative_to(fresh) for p in fresh.rglob("*") if p.is_file())
-    assert names == sorted(p.relative_to(committed) for p in committed.rglob("*") if p.is_file())
+    assert names == sorted(p.relative_to(committed) for p in committed.rglob("*") if p.is_file()), stale
+    assert (fresh / "athletes.csv").read_text() == (committed / "athletes.csv").read_text(), stale
     for name in names:
-        assert (fresh / name).read_bytes() == (committed / name).read_bytes(), str(name)
+        if name.suffix != ".c3d":
+            continue
+        a, b = ezc3d.c3d(str(fresh / name)), ezc3d.c3d(str(committed / name))
+        for group, param in (("POINT", "LABELS"), ("POINT", "RATE"), ("POINT", "UNITS")):
+            assert list(a["parameters"][group][param]["value"]) == list(b["parameters"][group][param]["value"]), stale
+        assert np.array_equal(a["data"]["points"], b["data"]["points"], equal_nan=True), f"{stale} ({name})"
+
+
+# --------------------------------------------------------------------------------------- errors and fuzz
+def test_specs_outside_the_simulator_range_raise_config_errors():
+    from hamstride.errors import ConfigError
+
+    with pytest.raises(ConfigError):
+        simulate_sprint(SprintSpec(speed_m_s=3.0))
+    with pytest.raises(ConfigError):
+        simulate_sprint(SprintSpec(vertical_axis="x"))
+    with pytest.raises(ConfigError):
+        simulate_sprint(SprintSpec(asymmetry_side="both"))
+    with pytest.raises(ConfigError):
+        AthleteBody.from_height(1.8, 70.0, "other")
+
+
+@pytest.mark.slow
+def test_any_plausible_spec_keeps_the_foot_on_and_above_the_ground():
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    @settings(max_examples=80, deadline=None)
+    @given(speed=st.floats(7.0, 9.5), height=st.floats(1.55, 2.0), sex=st.sampled_from(["male", "female"]),
+           treadmill=st.booleans(), side=st.sampled_from([None, "left", "right"]), hip_def=st.floats(0.0, 15.0),
+           knee_def=st.floats(0.0, 12.0), rate=st.sampled_from([200.0, 250.0, 300.0, 500.0]),
+           seed=st.integers(0, 10_000))
+    def check(speed, height, sex, treadmill, side, hip_def, knee_def, rate, seed):
+        spec = SprintSpec(speed_m_s=speed, rate_hz=rate, treadmill=treadmill, asymmetry_side=side,
+                          hip_flexion_deficit_deg=hip_def, knee_extension_deficit_deg=knee_def, seed=seed,
+                          body=AthleteBody.from_height(height, 70.0, sex), duration_s=1.2)
+        _, _, truth = simulate_sprint(spec)
+        for s in SIDES:
+            lowest = np.min([truth.landmarks_lab[f"{s}_{site}"][:, 2] for site in FOOT_SITES], axis=0)
+            assert lowest.min() > -1e-6
+            toe = truth.landmarks_lab[f"{s}_toe_tip"]
+            for m in _stance_masks(truth, s):
+                assert np.max(np.abs(toe[m, 2])) < 0.005
+                vx = np.diff(toe[m, 0]) * rate
+                assert np.all(np.abs(vx + (speed if treadmill else 0.0)) < 0.05 * speed)
+            assert 50.0 < _deg(truth.angles[s]["hip_flexion"].max()) < 82.0
+            assert 115.0 < _deg(truth.angles[s]["knee_flexion"].max()) < 138.0
+
+    check()

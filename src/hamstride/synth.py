@@ -30,6 +30,8 @@ from typing import Callable, Mapping, Sequence
 import numpy as np
 from scipy.interpolate import CubicSpline
 
+from .errors import ConfigError, HamstrideError
+
 SIDES = ("left", "right")
 _RIGHT_SIGN = {"right": 1.0, "left": -1.0}  # lateral direction along the segment +Z (which points right)
 _DEG = np.pi / 180.0
@@ -70,7 +72,7 @@ class AthleteBody:
         228.3/1735. Pelvis width/depth and joint widths: invented, common-practice magnitudes (PW 0.24-0.27 m).
         """
         if sex not in ("male", "female"):
-            raise ValueError("sex must be 'male' or 'female'")
+            raise ConfigError(f"sex must be 'male' or 'female', not {sex!r}")
         h = float(height_m)
         if sex == "male":
             thigh, shank, foot, pw = 422.2 / 1741, 434.0 / 1741, 258.1 / 1741, 0.137
@@ -323,7 +325,8 @@ def _two_link_ik(rel_ankle: np.ndarray, body: AthleteBody) -> tuple[np.ndarray, 
     lt, ls = body.thigh_length_m, body.shank_length_m
     d = np.linalg.norm(rel_ankle, axis=-1)
     if np.any(d > lt + ls) or np.any(d < abs(lt - ls)):
-        raise RuntimeError("synthetic stance out of leg reach; adjust the sprint design")
+        raise HamstrideError("the simulated stance leg cannot reach the ground contact; choose a speed of "
+                             "7-9.5 m/s and a body from AthleteBody.from_height", code="synth")
     knee = np.pi - np.arccos(np.clip((lt * lt + ls * ls - d * d) / (2 * lt * ls), -1.0, 1.0))
     beta = np.arctan2(rel_ankle[..., 0], -rel_ankle[..., 1])
     gamma = np.arccos(np.clip((lt * lt + d * d - ls * ls) / (2 * lt * d), -1.0, 1.0))
@@ -581,7 +584,7 @@ class _Gait:
             if m.any():
                 out[m] = self._landing_pitches(t[m], sw, landing_window)
         if np.isnan(out).any():
-            raise RuntimeError("synthetic gait timeline does not cover the trial")
+            raise HamstrideError("the simulated step timeline does not cover the whole trial", code="synth")
         return out
 
     def events(self, t_end: float):
@@ -644,7 +647,7 @@ _UNIT_SCALE = {"mm": 1000.0, "cm": 100.0, "m": 1.0}
 def lab_to_file(xyz: np.ndarray, vertical_axis: str = "z", travel_sign: int = 1, units: str = "mm") -> np.ndarray:
     """Internal lab (x forward, y left, z up; m) -> file axes and units (right-handed in both cases)."""
     if units not in _UNIT_SCALE:
-        raise ValueError("units must be 'mm', 'cm' or 'm'")
+        raise ConfigError(f"units must be 'mm', 'cm' or 'm', not {units!r}")
     s = 1.0 if travel_sign >= 0 else -1.0
     x, y, z = xyz[..., 0], xyz[..., 1], xyz[..., 2]
     if vertical_axis == "z":
@@ -652,7 +655,7 @@ def lab_to_file(xyz: np.ndarray, vertical_axis: str = "z", travel_sign: int = 1,
     elif vertical_axis == "y":
         out = np.stack([s * x, z, -s * y], axis=-1)
     else:
-        raise ValueError("vertical_axis must be 'z' or 'y'")
+        raise ConfigError(f"vertical_axis must be 'z' or 'y', not {vertical_axis!r}")
     return out * _UNIT_SCALE[units]
 
 
@@ -670,10 +673,20 @@ def _noise_and_gaps(xyz: np.ndarray, noise_mm: float, n_gaps: int, rng: np.rando
 
 
 # ------------------------------------------------------------------------------------------------ public API
+def _check_spec(spec: SprintSpec) -> None:
+    if not 6.0 <= spec.speed_m_s <= 10.5:
+        raise ConfigError(f"speed {spec.speed_m_s} m/s is not a sprint speed the simulator covers (6-10.5 m/s)")
+    if spec.asymmetry_side not in (None, "left", "right"):
+        raise ConfigError("asymmetry_side must be None, 'left' or 'right'")
+    if spec.rate_hz < 100.0 or spec.duration_s < 0.5:
+        raise ConfigError("simulate at least 100 Hz and 0.5 s")
+    if spec.vertical_axis not in ("z", "y") or spec.units not in _UNIT_SCALE:
+        raise ConfigError("vertical_axis must be 'z' or 'y' and units 'mm', 'cm' or 'm'")
+
+
 def simulate_sprint(spec: SprintSpec = SprintSpec()) -> tuple[tuple[str, ...], np.ndarray, SprintTruth]:
     """Simulate one sprint trial: (labels, xyz [F, M, 3] in FILE units/axes with noise and NaN gaps, truth)."""
-    if not 4.0 <= spec.speed_m_s <= 11.0:
-        raise ValueError("speed_m_s should be a sprint speed (about 7-9.5 m/s)")
+    _check_spec(spec)
     rng = np.random.default_rng(spec.seed)
     gait = _Gait(spec, rng)
     n = int(round(spec.duration_s * spec.rate_hz))
