@@ -126,6 +126,8 @@ def analyze_cmd(
     static: Optional[Path] = typer.Option(None, "--static", help="Static standing trial for calibration."),
     cutoff: Optional[float] = typer.Option(None, "--cutoff", help="Low-pass cutoff in Hz (default: residual analysis)."),
     out: Path = typer.Option(Path("reports/trial"), "--out", help="Output folder."),
+    strict: bool = typer.Option(False, "--strict", help="Treat warnings (gaps, rejected strides, event "
+                                "disagreements, ...) as errors: such a trial fails with the warning's code."),
 ) -> None:
     """Analyse one trial and write its strides.csv and curves.csv.
 
@@ -137,7 +139,7 @@ def analyze_cmd(
     info = AthleteInfo(athlete=trial.parent.parent.name, session=trial.parent.name, body_mass_kg=body_mass,
                        sex="female" if sex.lower().startswith("f") else "male")
     try:
-        result = analyse_trial(trial, AnalysisOptions(cutoff_hz=cutoff), athlete=info, static_path=static,
+        result = analyse_trial(trial, AnalysisOptions(cutoff_hz=cutoff, strict=strict), athlete=info, static_path=static,
                                markers=markers)
     except HamstrideError as exc:
         _fail(exc)
@@ -159,6 +161,8 @@ def squad_cmd(
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
     config: Optional[Path] = typer.Option(None, "--config", help="TOML config; see `hamstride config`."),
     no_report: bool = typer.Option(False, "--no-report", help="Write tables only, no HTML/PDF reports."),
+    strict: bool = typer.Option(False, "--strict", help="Treat warnings (gaps, rejected strides, event "
+                                "disagreements, ...) as errors: such a trial fails with the warning's code."),
     cluster: Optional[str] = typer.Option(
         None, "--cluster", help="Send trials to an existing Dask cluster: scheduler address tcp://HOST:PORT or a "
                                 "scheduler file (needs `pip install 'hamstride[cluster]'`; workers must see ROOT "
@@ -177,7 +181,7 @@ def squad_cmd(
     from .batch import load_config, run_squad
 
     try:
-        cfg = load_config(config)
+        cfg = load_config(config, strict=True if strict else None)
     except HamstrideError as exc:
         _fail(exc, 2)
     with Progress(TextColumn("[bold]trials"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.fields[failed]}"),
