@@ -365,6 +365,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         if meta["status"] == "ok":
             rec["reason"] = ""
             rec["warnings"] = meta.get("info", {}).get("warnings", [])
+            rec["warning_codes"] = meta.get("info", {}).get("warning_codes", [])
             rec["cutoff_hz"] = meta.get("info", {}).get("cutoff_hz")
             rec["speed_m_s"] = meta.get("info", {}).get("speed_m_s")
             rec["n_strides"] = meta.get("info", {}).get("n_strides")
