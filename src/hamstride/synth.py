@@ -8,14 +8,17 @@ pelvis-width regression (J Biomech 40:595), knee/ankle centres midway between ep
 metatarsal heads at one height in the foot frame.
 
 Model: each leg is a planar hip-knee-ankle chain (thigh, shank, foot share the lab's medio-lateral Z axis) in the
-vertical plane through its hip centre; the pelvis translates, tilts, rolls and yaws. Swing: hip flexion, knee
+vertical plane through its hip centre; the pelvis translates, tilts, rolls and yaws (so hip adduction and rotation,
+a few degrees, come from pelvic obliquity and rotation; knee and ankle are hinges) and shifts sideways so that the
+stance hip stays over the planted foot. Swing: hip flexion, knee
 flexion and ankle angle are C2 cubic splines of swing phase through sprint key values (references.md, "Typical sprint
 kinematics" [M]; stance about 22 % of the stride, Mann & Hagy 1980). Stance: the toe tip is pinned to the ground
 (treadmill: moves backward at belt speed) while the foot pitch follows a prescribed roll-over; thigh and shank come
 from planar two-link inverse kinematics. The swing joins stance with matched angle rates at toe-off (the toe
 lifts with an acceleration step, a jerk peak) and through a short quintic (C2) landing of the toe before foot
 strike (a sharp upward-acceleration peak, as at a real touchdown). Foot strike / toe-off truth = the instants the
-toe tip reaches / leaves the ground.
+toe tip reaches / leaves the ground. Strides vary slightly (seeded jitter of timing and key angles); an asymmetric
+leg gets less late-swing hip flexion and knee extension (and lands with the knee flexed by the same deficit).
 
 Internal lab frame: x forward (travel), y to the athlete's left, z up, metres. Files may be Y-up, travel along -x,
 and in mm, cm or m.
@@ -23,9 +26,9 @@ and in mm, cm or m.
 from __future__ import annotations
 
 import csv
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Mapping, Sequence
+from typing import Callable, Mapping
 
 import numpy as np
 from scipy.interpolate import CubicSpline
@@ -35,7 +38,7 @@ from .errors import ConfigError, HamstrideError
 SIDES = ("left", "right")
 _RIGHT_SIGN = {"right": 1.0, "left": -1.0}  # lateral direction along the segment +Z (which points right)
 _DEG = np.pi / 180.0
-_HIP_TRUTH_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion", "ankle_dorsiflexion")
+ANGLE_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion", "ankle_dorsiflexion")
 
 # Landmark name (DEVELOPERS.md) -> default C3D label suffix (owned by landmarks.py; a test checks they agree).
 LANDMARK_LABELS = {
@@ -339,8 +342,12 @@ class _Step:
     side: str
     strike: float
     toe_off: float
-    contact_x: float = np.nan
-    stance_pitch: CubicSpline | None = None
+    contact_x: float = np.nan  # where the toe tip is pinned (ground frame)
+    stance_pitch: CubicSpline | None = None  # foot pitch over stance fraction 0..1
+    hip_peak: float = np.nan  # swing targets of the swing that follows this stance (rad)
+    knee_peak: float = np.nan
+    knee_min: float = np.nan
+    ankle_peak: float = np.nan
 
 
 class _Gait:
@@ -469,7 +476,7 @@ class _Gait:
         return np.stack([phi_t, phi_s, phi_f], axis=-1)
 
     def _build_legs(self):
-        d, body = self.design, self.body
+        d = self.design
         # Stance: contact point from the strike configuration, foot pitch roll-over spline.
         for st in self.steps:
             st.contact_x = self.hip(np.array([st.strike]), st.side)[0, 0] + self.td_reach[st.side][0]
