@@ -16,6 +16,7 @@ import contextlib
 import filecmp
 import importlib
 import os
+import resource
 import shutil
 import statistics
 import sys
@@ -51,6 +52,8 @@ STAGES = [
     ("strides", "normalise", "normalise to cycle"),
 ]
 TABLES = ["athlete", "strides", "curves", "summary", "flags"]
+CLOCKS = {"cpu": time.process_time, "wall": time.perf_counter}
+clock = CLOCKS["cpu"]  # per-trial timings; set by --clock
 ATHLETE = AthleteInfo(athlete="BX001", session="2026-01-01_s1", body_mass_kg=75.0, height_m=1.80, sex="male")
 
 
@@ -65,11 +68,11 @@ def stage_timer(totals: dict[str, float]):
             if depth[0]:
                 return fn(*args, **kwargs)
             depth[0] += 1
-            t0 = time.perf_counter()
+            t0 = clock()
             try:
                 return fn(*args, **kwargs)
             finally:
-                totals[label] = totals.get(label, 0.0) + time.perf_counter() - t0
+                totals[label] = totals.get(label, 0.0) + clock() - t0
                 depth[0] -= 1
         return timed
 
@@ -93,9 +96,9 @@ def time_ezc3d(path: Path, repeats: int) -> float:
 
     times = []
     for _ in range(repeats):
-        t0 = time.perf_counter()
+        t0 = clock()
         ezc3d.c3d(str(path), extract_forceplat_data=False)
-        times.append(time.perf_counter() - t0)
+        times.append(clock() - t0)
     return statistics.median(times)
 
 
@@ -106,9 +109,9 @@ def time_analysis(path: Path, repeats: int) -> tuple[float, dict[str, float], in
     for _ in range(repeats):
         totals: dict[str, float] = {}
         with stage_timer(totals):
-            t0 = time.perf_counter()
+            t0 = clock()
             result = analyse_trial(path, AnalysisOptions(), athlete=ATHLETE)
-            wall = time.perf_counter() - t0
+            wall = clock() - t0
         n_frames = int(result.info["n_frames"])
         totals["tables + metrics (rest)"] = wall - sum(totals.values())
         runs.append((wall, totals))
@@ -153,12 +156,25 @@ def same_tables(a: Path, b: Path) -> tuple[bool, list[str]]:
     return not differ, differ
 
 
+def cpu_seconds() -> float:
+    """CPU time (user + system) of this process and its finished child processes."""
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
 def squad_wall(root: Path, out: Path, jobs: int | None = None, report: bool = False, cluster=None):
     from hamstride.batch import run_squad
 
     t0 = time.perf_counter()
     run = run_squad(root, out, jobs=jobs, report=report, cluster=cluster)
     return time.perf_counter() - t0, run
+
+
+def load_note() -> str:
+    load = os.getloadavg()[0]
+    cores = os.cpu_count() or 1
+    busy = "  WARNING: the machine is busy, timings and speedup are pessimistic" if load > 0.5 * cores else ""
+    return f"load average {load:.1f} on {cores} cores{busy}"
 
 
 def section(title: str) -> None:
@@ -177,12 +193,17 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--no-dask", action="store_true", help="skip the Dask LocalCluster comparison")
     ap.add_argument("--skip", nargs="*", default=[], choices=["stages", "scaling", "speedup", "memory", "report",
                                                                "dask"], help="sections to skip")
+    ap.add_argument("--clock", choices=sorted(CLOCKS), default="cpu",
+                    help="per-trial timings in CPU time of the process (default; robust on a shared machine, equal "
+                         "to wall time on an idle one) or wall time")
     ap.add_argument("--memory-with-reports", action="store_true",
                     help="memory runs also render the HTML/PDF reports (default: tables only)")
     ap.add_argument("--profile", type=int, default=0, metavar="N",
                     help="also cProfile the analysis of the base trial and print the top N functions")
     ap.add_argument("--workdir", type=Path, default=None, help="keep generated trials and outputs here")
     args = ap.parse_args(argv)
+    global clock
+    clock = CLOCKS[args.clock]
     repeats = args.repeats or (2 if args.quick else 5)
     squad_trials = args.squad_trials or (12 if args.quick else 48)
     memory_trials = args.memory_trials or ([20, 60] if args.quick else [100, 500])
@@ -193,6 +214,7 @@ def main(argv: list[str] | None = None) -> int:
 
     print(f"hamstride {__version__} benchmark, python {sys.version.split()[0]}, numpy {np.__version__}, "
           f"{os.cpu_count()} cores; work folder {work}")
+    print(load_note())
     results: dict[str, object] = {}
 
     # ---------------------------------------------------------------- per trial: stages, ratio to ezc3d, scaling
@@ -211,7 +233,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.profile:
         profile_trial(trials[1], repeats, args.profile)
     if "stages" not in skip:
-        section(f"per-stage time per trial (ms; median of {repeats}; default options, body mass given)")
+        section(f"per-stage {args.clock} time per trial (ms; median of {repeats}; default options, body mass given)")
         labels = list(dict.fromkeys([label for _, _, label in STAGES] + ["tables + metrics (rest)"]))
         header = f"{'stage':<28}" + "".join(f"{f'{args.base_s * f:g} s ({rows[f][2]} fr)':>20}" for f in rows)
         print(header)
@@ -219,14 +241,14 @@ def main(argv: list[str] | None = None) -> int:
             print(f"{label:<28}" + "".join(f"{1000 * rows[f][1].get(label, 0.0):>20.1f}" for f in rows))
         print(f"{'total analysis':<28}" + "".join(f"{1000 * rows[f][0]:>20.1f}" for f in rows))
         print(f"{'ezc3d read of the file':<28}" + "".join(f"{1000 * rows[f][3]:>20.2f}" for f in rows))
-    section("full analysis / ezc3d read")
+    section(f"full analysis / ezc3d read ({args.clock} time)")
     for f, (wall, _, frames, read) in rows.items():
         ratio = wall / read
         results.setdefault("ratio", ratio)
         print(f"{args.base_s * f:g} s trial ({frames} frames): analysis {1000 * wall:.1f} ms, ezc3d read "
               f"{1000 * read:.2f} ms, ratio {ratio:.1f}x  (target <= 4x, aim 3x: {check(ratio, 4.0)})")
     if len(rows) == 3 and "scaling" not in skip:
-        section("scaling of analysis time with trial length")
+        section(f"scaling of analysis {args.clock} time with trial length")
         frames = np.array([rows[f][2] for f in factors], dtype=float)
         walls = np.array([rows[f][0] for f in factors])
         k = float(np.polyfit(np.log(frames), np.log(walls), 1)[0])
@@ -250,14 +272,19 @@ def main(argv: list[str] | None = None) -> int:
         section(f"squad of {squad_trials} trials ({args.base_s:g} s each), tables only: --jobs 1 vs --jobs {args.jobs}")
         for out in (out1, outj):
             shutil.rmtree(out, ignore_errors=True)
+        c0 = cpu_seconds()
         t1, run1 = squad_wall(squad, out1, jobs=1)
+        c1 = cpu_seconds()
         tj, _ = squad_wall(squad, outj, jobs=args.jobs)
+        c2 = cpu_seconds()
         speedup = t1 / tj
         results["speedup"] = speedup
         same, differ = same_tables(out1, outj)
         print(f"--jobs 1: {t1:.1f} s ({t1 / squad_trials:.3f} s per trial); --jobs {args.jobs}: {tj:.1f} s; "
               f"speedup {speedup:.2f} (target >= 1.7 with 2 jobs on 2 cores: {check(speedup, 1.7, False)}); "
               f"{run1.manifest['counts']['ok']} ok, {run1.manifest['counts']['failed']} failed")
+        print(f"CPU time (all processes): --jobs 1 {c1 - c0:.1f} s, --jobs {args.jobs} {c2 - c1:.1f} s; "
+              f"{load_note()}")
         print(f"tables identical between --jobs 1 and --jobs {args.jobs}: {same}" + (f" (differ: {differ})" if differ else ""))
         t_cached, _ = squad_wall(squad, outj, jobs=args.jobs)
         print(f"rerun with everything cached: {t_cached:.2f} s")
@@ -320,6 +347,7 @@ def main(argv: list[str] | None = None) -> int:
             print(f"growth {1000 * growth:.0f} kB per extra trial (flat if close to 0)")
 
     section("summary")
+    print(load_note())
     for key, value in results.items():
         print(f"{key}: {value:.3g}" if isinstance(value, float) else f"{key}: {value}")
     if args.workdir is None:
