@@ -498,3 +498,20 @@ def test_any_plausible_spec_keeps_the_foot_on_and_above_the_ground():
             assert 115.0 < _deg(truth.angles[s]["knee_flexion"].max()) < 138.0
 
     check()
+
+
+@pytest.mark.parametrize("height,sex", [(1.55, "female"), (1.70, "female"), (1.80, "male"), (2.0, "male")])
+def test_hip_centre_agrees_with_both_harrington_forms(height, sex):
+    # Harrington et al. 2007 (references.md [V]), mm: full y = -0.16 PW - 0.04 LL - 7.1, z = 0.28 PD + 0.16 PW + 7.9;
+    # PW-only y = -0.30 PW - 10.9, z = 0.33 PW + 7.3. LL = ASIS to medial malleolus in the standing trial.
+    body = AthleteBody.from_height(height, 65.0, sex)
+    _, _, truth = simulate_static(body, noise_mm=0.0)
+    p = truth.landmarks_lab
+    pw = body.pelvis_width_m * 1000
+    pd = body.pelvis_depth_m * 1000
+    ll = np.mean([np.linalg.norm(p[f"{s}_asis"] - p[f"{s}_medial_malleolus"], axis=1).mean() for s in SIDES]) * 1000
+    full = np.array([-0.24 * pd - 9.9, -0.16 * pw - 0.04 * ll - 7.1, 0.28 * pd + 0.16 * pw + 7.9])
+    local = synth.hip_centre_local(body, "right") * 1000
+    assert np.allclose(local, [-0.24 * pd - 9.9, -0.30 * pw - 10.9, 0.33 * pw + 7.3], atol=1e-9)
+    assert np.max(np.abs(full - local)) < 2.5  # mm; well inside the regression's own 3-5 mm error
+    assert 200 <= pw <= 290 and 120 <= pd <= 175  # adult sizes, small women to tall men (common practice)

@@ -72,16 +72,20 @@ class AthleteBody:
 
         Segment lengths / stature from de Leva 1996 (J Biomech 29:1223, Table 1 mean lengths and statures; from
         memory): male thigh 422.2/1741, shank 434.0/1741, foot 258.1/1741; female 368.5/1735, 432.3/1735,
-        228.3/1735. Pelvis width/depth and joint widths: invented, common-practice magnitudes (PW 0.24-0.27 m).
+        228.3/1735. Pelvis width and joint widths: invented, common-practice magnitudes (PW 0.23-0.28 m). Pelvis
+        depth is set so that the full and the pelvis-width-only Harrington et al. 2007 forms give the same hip
+        centre z (0.28 PD + 0.16 PW + 7.9 = 0.33 PW + 7.3 mm); with these proportions their y agree within ~2 mm,
+        so a hip centre estimated with or without leg length matches the truth.
         """
         if sex not in ("male", "female"):
             raise ConfigError(f"sex must be 'male' or 'female', not {sex!r}")
         h = float(height_m)
         if sex == "male":
-            thigh, shank, foot, pw = 422.2 / 1741, 434.0 / 1741, 258.1 / 1741, 0.137
+            thigh, shank, foot, pw = 422.2 / 1741, 434.0 / 1741, 258.1 / 1741, 0.142 * h
         else:
-            thigh, shank, foot, pw = 368.5 / 1735, 432.3 / 1735, 228.3 / 1735, 0.150
-        return cls(height_m=h, mass_kg=float(mass_kg), sex=sex, pelvis_width_m=pw * h, pelvis_depth_m=0.088 * h,
+            thigh, shank, foot, pw = 368.5 / 1735, 432.3 / 1735, 228.3 / 1735, 0.135 * h
+        pd = (0.17 * pw * 1000.0 - 0.6) / 0.28 / 1000.0
+        return cls(height_m=h, mass_kg=float(mass_kg), sex=sex, pelvis_width_m=pw, pelvis_depth_m=pd,
                    thigh_length_m=thigh * h, shank_length_m=shank * h, foot_length_m=foot * h,
                    knee_width_m=0.056 * h, ankle_width_m=0.040 * h)
 
