@@ -94,7 +94,7 @@ def check_marker_trial(trial: MarkerTrial, landmark_labels: Iterable[str] = (), 
     n_points = max(trial.xyz.shape[0] * trial.xyz.shape[1], 1)
     if bad > MAX_BAD_COORDINATE_FRACTION * n_points:
         raise PlausibilityError(
-            f"{bad} of {n_points} marker positions ({100 * bad / n_points:.0f}%) are NaN, infinite or absurdly far "
+            f"{bad} of {n_points} marker positions ({100 * bad / n_points:.0f}%) are infinite or absurdly far "
             "(beyond 10 km); the data block is corrupt. Re-export the trial from the capture software",
             trial=name, code="bad_coordinates")
     if empty.all():
@@ -102,7 +102,7 @@ def check_marker_trial(trial: MarkerTrial, landmark_labels: Iterable[str] = (), 
                                 "the trial was reconstructed (labelled) before export", trial=name,
                                 code="no_marker_data")
     if bad:
-        warnings.append(TrialWarning("bad_coordinates", f"{bad} marker position(s) had NaN, infinite or absurd "
+        warnings.append(TrialWarning("bad_coordinates", f"{bad} marker position(s) had infinite or absurd "
                                      "coordinates and were treated as missing; check the export"))
     if empty.any():
         warnings.append(TrialWarning(
@@ -226,7 +226,7 @@ def check_body_size(lm: Landmarks, units_in_file: str = "mm") -> None:
         metres_per_unit = UNIT_TO_METRES.get(units_in_file, 1e-3) / 10.0 ** power
         implied = min(("mm", "cm", "m"), key=lambda u: abs(math.log10(UNIT_TO_METRES[u] / metres_per_unit)))
         raise PlausibilityError(
-            f"body dimensions are about {10.0 ** -power:g} times {'too small' if power < 0 else 'too large'} "
+            f"body dimensions are about {10.0 ** abs(power):g} times {'too small' if power < 0 else 'too large'} "
             f"({shown}): the file says its coordinates are in '{units_in_file}' but they look like '{implied}'. "
             f"Set POINT:UNITS to '{implied}' when exporting (or re-export in mm)", trial=lm.trial,
             code="units_suspect")

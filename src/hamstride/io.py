@@ -12,10 +12,12 @@ EVENT:TIMES holds (minutes, seconds) pairs.
 from __future__ import annotations
 
 import math
+import contextlib
 import os
 import re
 import struct
 import tempfile
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable, Mapping, Sequence
@@ -172,7 +174,8 @@ def _parse_parameters(data: bytes, start: int, end: int, processor: int, name: s
             data_start = body + 2 + n_dims
             data_end = data_start + _C3D_TYPE_SIZES[dtype] * n_values
             if data_end + 1 > end:
-                raise bad(f"parameter {label!r} claims {n_values} values, more than the section holds")
+                raise bad(f"parameter {label!r} ({n_dims} dimensions, {n_values} values) runs past the end of the "
+                          "section")
             record_end = data_end + 1 + data[data_end]
             params.append((ident, label, (dtype, dims, data[data_start:data_end])))
         else:
@@ -249,13 +252,15 @@ def check_c3d_header(path: str | Path) -> C3DLayout:
                               code="not_c3d")
     param_block = data[0]
     if param_block < 2 or 512 * param_block > size:
-        raise FileFormatError(f"the header points to a parameter section at block {param_block} that is outside the "
-                              "file; the file is corrupt or truncated", trial=name, code="bad_header")
+        where = "the header itself" if param_block < 2 else "outside the file"
+        raise FileFormatError(f"the header points to a parameter section at block {param_block}, {where}; the file is "
+                              "corrupt or truncated", trial=name, code="bad_header")
     param_start = 512 * (param_block - 1)
     n_param_blocks, processor = data[param_start + 2], data[param_start + 3]
     if processor not in (84, 85, 86):
-        raise FileFormatError(f"unknown processor type {processor} in the parameter section (expected 84/85/86); "
-                              "the file is corrupt", trial=name, code="bad_header")
+        raise FileFormatError(f"unknown processor type {processor} at the start of the parameter section (block "
+                              f"{param_block}; expected 84/85/86): the header's pointer or the parameters are corrupt",
+                              trial=name, code="bad_header")
     endian = ">" if processor == 86 else "<"
     n_points, n_analog, first, last = struct.unpack(endian + "4H", data[2:10])
     data_start = struct.unpack(endian + "H", data[16:18])[0]
@@ -294,7 +299,7 @@ def check_c3d_header(path: str | Path) -> C3DLayout:
     param_rate = _param_numbers(point.get("RATE"), processor)
     for source, value in (("header", rate), ("POINT:RATE", param_rate[0] if param_rate.size else rate)):
         if not np.isfinite(value) or value <= 0:
-            raise FileFormatError(f"the {source} frame rate is {value!r}; it must be a positive number", trial=name,
+            raise FileFormatError(f"the {source} frame rate is {float(value):g}; it must be a positive number", trial=name,
                                   code="bad_rate")
     if param_rate.size:
         rate = float(param_rate[0])
@@ -403,7 +408,9 @@ def _trial_from_ezc3d(c, path: Path, layout: C3DLayout) -> MarkerTrial:
     meta["bad_coordinates"] = int(np.sum(absurd & ~flagged))
 
     first_frame = int(c["header"]["points"]["first_frame"]) + 1  # ezc3d reports it 0-based
-    lab = detect_lab_frame(xyz)
+    with warnings.catch_warnings():  # frames with every marker missing give all-NaN slices; they are gaps
+        warnings.simplefilter("ignore", RuntimeWarning)
+        lab = detect_lab_frame(xyz)
     xyz = xyz @ lab.file_to_lab.T
     events = _read_events(c, first_frame, rate)
     return MarkerTrial(path=str(path), labels=labels, xyz=xyz, rate_hz=rate, first_frame=first_frame,
@@ -589,16 +596,48 @@ def write_c3d(path: str | Path, labels: Sequence[str], xyz: np.ndarray, rate_hz:
             c.add_parameter("SUBJECTS", "BODY_MASS_KG", [float(subject["body_mass_kg"])])
         if subject.get("height_m"):
             c.add_parameter("SUBJECTS", "HEIGHT_M", [float(subject["height_m"])])
+    with atomic_path(path, suffix=".partial.c3d") as tmp:  # ezc3d insists on a .c3d ending
+        c.write(str(tmp))
+    return path
+
+
+
+# --------------------------------------------------------------------------------------------------- atomic files
+
+@contextlib.contextmanager
+def atomic_path(path: str | Path, suffix: str = ".partial"):
+    """Yield a temporary path beside ``path``; on success it replaces ``path`` atomically, on failure it is removed.
+
+    The file gets the usual permissions (0666 less the umask), not the private mode of temporary files.
+    """
+    path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".partial.c3d", dir=path.parent)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix, dir=path.parent)
     os.close(fd)
     try:
-        c.write(tmp)
+        yield Path(tmp)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
-    return path
+
+
+def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and an atomic rename."""
+    with atomic_path(path) as tmp:
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+    return Path(path)
+
+
+def atomic_write_text(path: str | Path, text: str) -> Path:
+    """UTF-8 text version of :func:`atomic_write_bytes`."""
+    return atomic_write_bytes(path, text.encode("utf-8"))
 
 
 def safe_name(text: str) -> str:
