@@ -15,7 +15,6 @@ import json
 import math
 import os
 import re
-import tempfile
 import tomllib
 from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
@@ -26,6 +25,7 @@ import pandas as pd
 
 from . import __version__
 from .errors import ConfigError, HamstrideError
+from .io import atomic_path, atomic_write_bytes, atomic_write_text
 from .metrics import FlagConfig, compute_flags, flag_config_toml, summarise
 from .pipeline import CURVE_COLUMNS, STRIDE_COLUMNS, AnalysisOptions, AthleteInfo, analyse_trial
 
@@ -35,27 +35,6 @@ DATE_PREFIX = re.compile(r"^(\d{4}-\d{2}-\d{2})")
 
 
 # --------------------------------------------------------------------------------------------- atomic files
-
-def atomic_write_bytes(path: Path, data: bytes) -> Path:
-    """Write ``data`` to ``path`` through a temporary file in the same folder and an atomic rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    return path
-
-
-def atomic_write_text(path: Path, text: str) -> Path:
-    return atomic_write_bytes(path, text.encode("utf-8"))
-
 
 def table_csv(df: pd.DataFrame) -> str:
     """CSV text of a table: one header row, UTF-8, fixed float format so reruns are byte-identical."""
@@ -426,20 +405,13 @@ def _rel(path: str | None, root: Path) -> str | None:
 
 def _stream_curves(target: Path, files: list[Path]) -> None:
     """Concatenate per-trial curve CSVs into one file without holding them in memory, atomically."""
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".partial", dir=target.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write((",".join(CURVE_COLUMNS) + "\n").encode())
-            for path in files:
-                with open(path, "rb") as src:
-                    src.readline()
-                    for chunk in iter(lambda: src.read(1 << 20), b""):
-                        fh.write(chunk)
-        os.replace(tmp, target)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    with atomic_path(target) as tmp, open(tmp, "wb") as fh:
+        fh.write((",".join(CURVE_COLUMNS) + "\n").encode())
+        for path in files:
+            with open(path, "rb") as src:
+                src.readline()
+                for chunk in iter(lambda: src.read(1 << 20), b""):
+                    fh.write(chunk)
 
 
 def _read_curves(files: list[Path]) -> pd.DataFrame:

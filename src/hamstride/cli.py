@@ -133,7 +133,8 @@ def analyze_cmd(
 
     Example: `hamstride analyze demo_trials/KT07/2026-03-02_week0/sprint_01.c3d --body-mass 74 --out reports/one`
     """
-    from .batch import table_csv, atomic_write_text
+    from .batch import table_csv
+    from .io import atomic_write_text
     from .pipeline import AnalysisOptions, AthleteInfo, analyse_trial
 
     info = AthleteInfo(athlete=trial.parent.parent.name, session=trial.parent.name, body_mass_kg=body_mass,
@@ -220,7 +221,7 @@ def timeline_cmd(
 
     Example: `hamstride timeline demo_trials --athlete RB12 --out reports/`
     """
-    from .batch import build_timeline, load_config, run_squad, table_csv, atomic_write_text
+    from .batch import build_timeline, load_config, run_squad
     from .report import render_timeline, safe_component
 
     try:
