@@ -29,7 +29,7 @@ class FlagConfig:
     """Flag thresholds. Defaults are documented in `hamstride config`."""
 
     asymmetry_pct: float = 10.0  # |SI| above this: side_asymmetry (common practice from strength testing, MSSE 2019)
-    asymmetry_confidence_z: float = 2.0  # the left/right difference must also exceed z standard errors of stride noise
+    asymmetry_confidence_z: float = 1.645  # one-sided 95 %: the SI must stay beyond the line after z standard errors
     guarding_lsi_pct: float = 90.0  # involved-side peak stretch below this % of the other side: involved_side_guarding
     high_stretch_limit_lopt: float = float("nan")  # fixed limit on peak l/l_opt; NaN = use the squad distribution
     high_stretch_squad_z: float = 2.0  # above squad mean + z SD (per muscle) when no fixed limit is set
@@ -182,14 +182,16 @@ def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: 
             if not (np.isfinite(r["mean"]) and np.isfinite(l_["mean"])):
                 continue
             si = symmetry_index(r["mean"], l_["mean"])
-            real, se = _real_difference(r, l_, config.asymmetry_confidence_z)
-            if np.isfinite(si) and abs(si) > config.asymmetry_pct and real:
+            _, se = _real_difference(r, l_, config.asymmetry_confidence_z)
+            se_si = se / abs(0.5 * (r["mean"] + l_["mean"])) * 100.0 if np.isfinite(si) else float("nan")
+            lower_bound = abs(si) - config.asymmetry_confidence_z * se_si
+            if np.isfinite(si) and lower_bound > config.asymmetry_pct:
                 lower = "right" if si < 0 else "left"
                 add(athlete, session, lower, muscle, "side_asymmetry", si, config.asymmetry_pct,
                     f"{mname}: {what} differs between legs by {abs(si):.0f}% (symmetry index; right "
-                    f"{r['mean']:.3g} vs left {l_['mean']:.3g}), lower on the {lower} side; beyond the "
-                    f"{config.asymmetry_pct:.0f}% line and beyond stride-to-stride variation "
-                    f"(difference > {config.asymmetry_confidence_z:g} standard errors).")
+                    f"{r['mean']:.3g} vs left {l_['mean']:.3g}), lower on the {lower} side. Even allowing for "
+                    f"stride-to-stride variation (one-sided 95% bound {lower_bound:.0f}%) it is beyond the "
+                    f"{config.asymmetry_pct:.0f}% line.")
         side = involved.get(str(athlete), "none")
         if side in ("left", "right"):
             other = "left" if side == "right" else "right"
@@ -235,8 +237,9 @@ def flag_config_toml(config: FlagConfig = FlagConfig()) -> str:
         "asymmetry_pct": "side_asymmetry when |symmetry index| of peak strain or negative work exceeds this (%). "
                          "Common practice from strength testing: <10% difference for return to sport (MSSE 2019); "
                          "imbalances >=15% raised strain risk 2.4x (Bourne et al. 2015)",
-        "asymmetry_confidence_z": "...and the left/right difference exceeds this many standard errors of "
-                                  "stride-to-stride variation (so ordinary variation does not fire the flag)",
+        "asymmetry_confidence_z": "...and still exceeds it after subtracting this many standard errors of the "
+                                  "stride-to-stride variation (1.645 = one-sided 95%), so ordinary variation does not "
+                                  "fire the flag",
         "guarding_lsi_pct": "involved_side_guarding when the involved side's peak strain is below this % of the "
                             "other side (limb symmetry index)",
         "high_stretch_limit_lopt": "high_stretch above this peak fibre length / optimal length; nan = use the squad "
