@@ -133,3 +133,62 @@ def test_missing_dask_extra_tells_how_to_install(squad, tmp_path, monkeypatch):
     monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed now raises ImportError
     with pytest.raises(ConfigError, match=r"hamstride\[cluster\]"):
         run_squad(squad, tmp_path, cluster="tcp://127.0.0.1:8786", report=False)
+
+
+def _crash_on_file_plugin(name: str):
+    """Worker plugin: analysing a file called ``name`` kills the worker process, like a native reader crash.
+
+    Registered with the scheduler, it is installed again on every restarted worker, so retries crash as well.
+    Defined inside a function so cloudpickle ships it by value to the workers.
+    """
+    from distributed.diagnostics.plugin import WorkerPlugin
+
+    class CrashOnFile(WorkerPlugin):
+        def setup(self, worker):
+            import os
+
+            from hamstride import batch as worker_batch
+
+            original = worker_batch._analyse_job
+
+            def crashing(job, options):
+                if os.path.basename(job.path) == name:
+                    os._exit(70)
+                return original(job, options)
+
+            worker_batch._analyse_job = crashing
+
+    return CrashOnFile()
+
+
+_ORIGINAL_ANALYSE_JOB = None
+
+
+def _crashing_local(job, options):
+    if Path(job.path).name == "sprint_02.c3d":
+        import os
+        os._exit(70)
+    return _ORIGINAL_ANALYSE_JOB(job, options)
+
+
+@pytest.mark.slow
+def test_worker_crash_gives_the_local_pool_record(squad, tmp_path, monkeypatch):
+    """A trial that kills its worker process becomes the same failed-trial record as in the local pool."""
+    distributed = pytest.importorskip("distributed")
+    import dask
+
+    monkeypatch.setattr(sys.modules[__name__], "_ORIGINAL_ANALYSE_JOB", batch._analyse_job)
+    monkeypatch.setattr(batch, "_analyse_job", _crashing_local)  # forked pool workers inherit the patch
+    local = run_squad(squad, tmp_path / "local", jobs=2, report=False)
+    monkeypatch.undo()
+    with dask.config.set({"distributed.scheduler.allowed-failures": 1}):
+        with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                      dashboard_address=None) as local_cluster:
+            with distributed.Client(local_cluster) as client:
+                client.register_plugin(_crash_on_file_plugin("sprint_02.c3d"), name="crash-on-file")
+                remote = run_squad(squad, tmp_path / "cluster", cluster=client, report=False)
+    assert [r["file"] for r in local.failed] == [f"ZQ01/2026-02-03_week1/{n}" for n in ("sprint_02.c3d",
+                                                                                        "sprint_03.c3d")]
+    assert [(r["file"], r["code"], r["reason"]) for r in remote.failed] == \
+        [(r["file"], r["code"], r["reason"]) for r in local.failed]
+    assert remote.manifest["counts"] == local.manifest["counts"]
