@@ -36,6 +36,22 @@ DATE_PREFIX = re.compile(r"^(\d{4}-\d{2}-\d{2})")
 
 # --------------------------------------------------------------------------------------------- atomic files
 
+def remove_stale_partials(out: Path) -> int:
+    """Delete the temporary files (``.NAME.*.partial``, see io.atomic_path) a killed run left under ``out``.
+
+    Only one run may write into an output folder at a time (a second run would delete the first one's temporaries).
+    Returns how many files were removed.
+    """
+    removed = 0
+    for tmp in Path(out).rglob(".*.partial*"):
+        try:
+            tmp.unlink()
+            removed += 1
+        except OSError:
+            pass
+    return removed
+
+
 def table_csv(df: pd.DataFrame) -> str:
     """CSV text of a table: one header row, UTF-8, fixed float format so reruns are byte-identical."""
     return df.to_csv(index=False, lineterminator="\n", float_format="%.6g")
@@ -297,6 +313,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     jobs = jobs or os.cpu_count() or 1
     cache = out / CACHE_DIR
     cache.mkdir(parents=True, exist_ok=True)
+    remove_stale_partials(out)
     markers_sha = file_sha256(markers) if markers else None
     records: dict[str, dict] = {}
     todo: list[tuple[TrialJob, str]] = []
