@@ -316,7 +316,7 @@ def main(argv: list[str] | None = None) -> int:
             shutil.rmtree(outd, ignore_errors=True)
             t0 = time.perf_counter()
             with LocalCluster(n_workers=args.jobs, threads_per_worker=1, processes=True,
-                              dashboard_address=None) as cluster:
+                              dashboard_address=":0") as cluster:
                 start = time.perf_counter() - t0
                 td, _ = squad_wall(squad, outd, cluster=cluster.scheduler_address)
             same, differ = same_tables(out1, outd)

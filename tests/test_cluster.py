@@ -15,12 +15,15 @@ import pytest
 
 import hamstride
 from hamstride import batch
-from hamstride.batch import TrialJob, run_on_cluster, run_squad
+from hamstride.batch import RunConfig, TrialJob, run_on_cluster, run_squad
 from hamstride.errors import ConfigError
 from hamstride.pipeline import AnalysisOptions, AthleteInfo
 from hamstride.synth import SprintSpec, write_sprint_trial
 
 OUTPUTS = ["strides.csv", "curves.csv", "summary.csv", "flags.csv", "manifest.json"]
+# Not the defaults, so a worker that ignored the settings would write different tables (and it is quicker).
+CONFIG_TOML = "[analysis]\ncutoff_hz = 14.0\nmonte_carlo_samples = 50\n"
+CONFIG = RunConfig(AnalysisOptions(cutoff_hz=14.0, monte_carlo_samples=50))
 
 
 @pytest.fixture(scope="module")
@@ -42,7 +45,7 @@ def cluster(tmp_path_factory):
     """A LocalCluster with two single-threaded worker processes; also writes a scheduler file."""
     distributed = pytest.importorskip("distributed")
     scheduler_file = tmp_path_factory.mktemp("dask") / "scheduler.json"
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
                                   scheduler_kwargs={"scheduler_file": str(scheduler_file)}) as local:
         yield local.scheduler_address, scheduler_file
 
@@ -50,7 +53,7 @@ def cluster(tmp_path_factory):
 @pytest.fixture(scope="module")
 def local_run(squad, tmp_path_factory):
     out = tmp_path_factory.mktemp("local_out")
-    run = run_squad(squad, out, jobs=1, report=False)
+    run = run_squad(squad, out, jobs=1, config=CONFIG, report=False)
     return out, run
 
 
@@ -65,7 +68,7 @@ def test_cluster_writes_byte_identical_files_and_failure_records(squad, cluster,
     assert local.manifest["counts"]["ok"] == 2 and local.manifest["counts"]["failed"] == 1
     assert local.strides.shape[0] > 0
     address, _ = cluster
-    run = run_squad(squad, tmp_path, cluster=address, report=False)
+    run = run_squad(squad, tmp_path, cluster=address, config=CONFIG, report=False)
     assert (run.analysed, run.cached) == (3, 0)
     _same_files(local_out, tmp_path)
     failed = [rec for rec in json.loads((tmp_path / "manifest.json").read_text())["inputs"]
@@ -73,7 +76,7 @@ def test_cluster_writes_byte_identical_files_and_failure_records(squad, cluster,
     assert [(rec["file"], rec["code"]) for rec in failed] == [("ZQ01/2026-02-03_week1/sprint_03.c3d",
                                                              local.failed[0]["code"])]
     # Second cluster run: everything comes from the cache the first one wrote.
-    again = run_squad(squad, tmp_path, cluster=address, report=False)
+    again = run_squad(squad, tmp_path, cluster=address, config=CONFIG, report=False)
     assert (again.analysed, again.cached) == (0, 3)
     _same_files(local_out, tmp_path)
 
@@ -81,7 +84,7 @@ def test_cluster_writes_byte_identical_files_and_failure_records(squad, cluster,
 def test_cluster_cache_is_shared_with_the_local_pool(squad, cluster, local_run):
     local_out, _ = local_run
     address, _ = cluster
-    run = run_squad(squad, local_out, cluster=address, report=False)
+    run = run_squad(squad, local_out, cluster=address, config=CONFIG, report=False)
     assert (run.analysed, run.cached) == (0, 3)
 
 
@@ -92,11 +95,15 @@ def test_cli_squad_with_scheduler_file(squad, cluster, local_run, tmp_path):
 
     local_out, _ = local_run
     _, scheduler_file = cluster
-    result = CliRunner().invoke(app, ["squad", str(squad), "--out", str(tmp_path), "--no-report",
+    config = tmp_path / "settings.toml"
+    config.write_text(CONFIG_TOML, encoding="utf-8")
+    assert batch.load_config(config) == CONFIG
+    out = tmp_path / "out"
+    result = CliRunner().invoke(app, ["squad", str(squad), "--out", str(out), "--no-report", "--config", str(config),
                                       "--cluster", str(scheduler_file)])
     assert result.exit_code == 1, result.output  # 1: some trials failed (the corrupt one), listed at the end
     assert "sprint_03.c3d" in result.output
-    _same_files(local_out, tmp_path)
+    _same_files(local_out, out)
 
 
 def test_trial_not_visible_on_worker_is_a_failure_record(cluster, tmp_path):
@@ -179,14 +186,14 @@ def test_worker_crash_gives_the_local_pool_record(squad, tmp_path, monkeypatch):
 
     monkeypatch.setattr(sys.modules[__name__], "_ORIGINAL_ANALYSE_JOB", batch._analyse_job)
     monkeypatch.setattr(batch, "_analyse_job", _crashing_local)  # forked pool workers inherit the patch
-    local = run_squad(squad, tmp_path / "local", jobs=2, report=False)
+    local = run_squad(squad, tmp_path / "local", jobs=2, config=CONFIG, report=False)
     monkeypatch.undo()
     with dask.config.set({"distributed.scheduler.allowed-failures": 1}):
         with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                      dashboard_address=None) as local_cluster:
+                                      dashboard_address=":0") as local_cluster:
             with distributed.Client(local_cluster) as client:
                 client.register_plugin(_crash_on_file_plugin("sprint_02.c3d"), name="crash-on-file")
-                remote = run_squad(squad, tmp_path / "cluster", cluster=client, report=False)
+                remote = run_squad(squad, tmp_path / "cluster", cluster=client, config=CONFIG, report=False)
     assert [r["file"] for r in local.failed] == [f"ZQ01/2026-02-03_week1/{n}" for n in ("sprint_02.c3d",
                                                                                         "sprint_03.c3d")]
     assert [(r["file"], r["code"], r["reason"]) for r in remote.failed] == \
