@@ -42,6 +42,7 @@ STRIKE_REFINE_S = (0.01, 0.03)  # floor-arrival search around the acceleration p
 FLOOR_TOLERANCE_M = 0.005       # lowest landmark "on the floor" within 5 mm of its floor level (10x 0.5 mm noise)
 TOE_OFF_SEARCH_S = (0.07, 0.05) # search window around the end of the low run (before, after)
 RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
+EDGE_PEAK_FRACTION = 0.5       # an event cut by the trial start needs half the median peak of the others
 C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2 frames apart
 TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which the trial is on a treadmill (common practice)
 
@@ -230,6 +231,7 @@ def _detect_side(
     refine_before, refine_after = (int(round(s * rate_hz)) for s in STRIKE_REFINE_S)
 
     strikes, toe_offs, strikes_fb, toe_offs_fb = [], [], [], []
+    toe_off_peaks, toe_off_cut = [], []
     n_fallback = 0
     for start, end in contacts:
         # foot strike: only when the foot comes down inside the trial (the low run does not start at frame 0)
@@ -249,19 +251,33 @@ def _detect_side(
             if fs is not None:
                 strikes.append(fs)
                 strikes_fb.append(np.nan if fb is None else fb)
+        elif lowest[0] > FLOOR_TOLERANCE_M:
+            # the recording starts while the foot comes down: no room for the acceleration peak, floor arrival only
+            fs = _floor_arrival(lowest, 0, min(after_fs, end))
+            if fs is not None:
+                strikes.append(fs)
+                strikes_fb.append(np.nan)
         # toe-off: only when the foot leaves the floor inside the trial
         if end < n:
             lo, hi = max(end - before_to, start + 1), min(end + after_to, n)
             fb = _toe_off_fallback(toe_rel, knee_flexion, lo, hi, start, end)
             to = _window_peak(toe_jerk, lo, hi)
-            if to is None:
+            if to is None and start > 0:
                 to, n_fallback = fb, n_fallback + 1
             if to is not None:
                 toe_offs.append(to)
                 toe_offs_fb.append(np.nan if fb is None else fb)
+                toe_off_peaks.append(np.interp(to, np.arange(n), toe_jerk))
+                toe_off_cut.append(start == 0)
+    # A contact already under way when the recording starts may have ended just before it: its window then holds
+    # only early-swing jerk. Keep such a toe-off only if its jerk peak is as sharp as the trial's other toe-offs.
+    keep = np.ones(len(toe_offs), bool)
+    cut, peaks = np.asarray(toe_off_cut, bool), np.asarray(toe_off_peaks, float)
+    if cut.any() and (~cut).sum() >= 2:
+        keep = ~cut | (peaks >= EDGE_PEAK_FRACTION * np.median(peaks[~cut]))
     side = _SideEvents(
-        np.asarray(strikes, float), np.asarray(toe_offs, float),
-        np.asarray(strikes_fb, float), np.asarray(toe_offs_fb, float), n_fallback,
+        np.asarray(strikes, float), np.asarray(toe_offs, float)[keep],
+        np.asarray(strikes_fb, float), np.asarray(toe_offs_fb, float)[keep], n_fallback,
     )
     return side, mask
 
