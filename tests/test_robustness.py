@@ -17,6 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from hamstride.errors import HamstrideError
@@ -339,3 +340,110 @@ def test_squad_over_the_corpus_lists_every_file_with_its_code(corpus, tmp_path):
             assert case.path.name in rec["reason"] or case.path.stem in rec["reason"]
             assert name in proc.stdout  # listed at the end of the run
     assert all(len(r["sha256"]) == 64 for r in manifest["inputs"])
+
+
+# ------------------------------------------------------------------------------------------------ safe outputs
+
+HOSTILE_ATHLETES = ("<script>alert(1)<\\script>", '"><img src=x onerror=alert(2)>')
+HOSTILE_SESSION = "2026-01-05_<svg onload=alert(3)>"
+HOSTILE_SUBJECT = "../../../pwn<script>alert(4)</script>"
+
+
+def _assert_outputs_safe(base: Path, out: Path, inputs: Path) -> list[Path]:
+    """Nothing written outside ``out`` (besides the inputs); no output path component carries markup or '..'."""
+    stray = [p for p in base.rglob("*") if p.is_file() and out not in p.parents and inputs not in p.parents]
+    assert stray == [], stray
+    files = [p for p in out.rglob("*") if p.is_file()]
+    for p in files:
+        assert out.resolve() in p.resolve().parents
+        for part in p.relative_to(out).parts:
+            assert not set(part) & set('<>"\'\\') and not part.startswith(".."), p
+    return files
+
+
+def _assert_html_escaped(pages: list[Path], names: list[str]) -> None:
+    import html as html_lib
+    import re
+
+    assert pages
+    text = "\n".join(p.read_text(encoding="utf-8") for p in pages)
+    for raw in ("<script>alert(1)", "<img src=x", "<svg onload", "<script>alert(4)"):
+        assert raw not in text, raw
+    for name in names:  # the names are shown (escaped), so the check above is not vacuous
+        assert html_lib.escape(name, quote=True) in text or html_lib.escape(name, quote=False) in text, name
+    # Nothing is fetched from anywhere: no external src/href (common practice for self-contained reports).
+    assert not re.search(r"""(src|href)\s*=\s*["']?\s*(https?:|//|file:)""", text, flags=re.I)
+
+
+@pytest.fixture(scope="module")
+def hostile_squad(tmp_path_factory):
+    from hamstride.batch import run_squad
+
+    base = tmp_path_factory.mktemp("hostile")
+    root = base / "squad"
+    labels, xyz = _base(duration_s=1.2)
+    for k, athlete in enumerate(HOSTILE_ATHLETES):
+        session = HOSTILE_SESSION if k == 0 else "2026-01-06_normal"
+        write_c3d(root / athlete / session / "sprint_01.c3d", labels, xyz, RATE,
+                  subject={"name": HOSTILE_SUBJECT, "body_mass_kg": 75.0})
+    import pandas as pd
+
+    pd.DataFrame({"athlete": [*HOSTILE_ATHLETES, "../../outside", "..\\..\\outside2"],
+                  "body_mass_kg": [75.0, 70.0, 60.0, 60.0], "height_m": [1.8, 1.75, 1.7, 1.7],
+                  "sex": ["male", "female", "male", "male"], "involved_side": ["right", "none", "none", "none"],
+                  "injury_date": ["2025-12-01", "", "", ""]}).to_csv(root / "athletes.csv", index=False)
+    out = base / "out"
+    run = run_squad(root, out, jobs=2, report=True, config=__import__("hamstride.batch", fromlist=["RunConfig"])
+                    .RunConfig(analysis=FAST))
+    return base, root, out, run
+
+
+def test_hostile_folder_names_are_sanitised_and_escaped(hostile_squad):
+    base, root, out, run = hostile_squad
+    assert not run.failed, run.failed
+    files = _assert_outputs_safe(base, out, root)
+    pages = [p for p in files if p.suffix == ".html"]
+    assert len([p for p in pages if p.parent.name == "athletes"]) == len(HOSTILE_ATHLETES)
+    _assert_html_escaped(pages, list(HOSTILE_ATHLETES))
+    # The names survive unchanged as data in the tables (they are data there, not markup or paths).
+    strides = pd.read_csv(out / "strides.csv", dtype={"athlete": str, "session": str})
+    assert set(strides["athlete"]) == set(HOSTILE_ATHLETES)
+    assert HOSTILE_SESSION in set(strides["session"])
+
+
+def test_dot_dot_names_from_tables_stay_inside_out(hostile_squad, tmp_path):
+    """Athlete names with ../ (from athletes.csv or C3D subject metadata) reaching the report and timeline writers."""
+    from hamstride.report import render_squad, render_timeline, safe_component
+
+    _, _, out, run = hostile_squad
+    renamed = {HOSTILE_ATHLETES[0]: "../../outside", HOSTILE_ATHLETES[1]: HOSTILE_SUBJECT}
+
+    def rename(df):
+        df = df.copy()
+        if "athlete" in df.columns:
+            df["athlete"] = df["athlete"].replace(renamed)
+        return df
+
+    curves = pd.read_csv(out / "curves.csv", dtype={"athlete": str, "session": str, "trial": str})
+    target = tmp_path / "deep" / "out"
+    render_squad(target, rename(run.strides), rename(curves), rename(run.flags), rename(run.summary),
+                 rename(run.athletes), {"version": "test", "configuration": {}})
+    timeline = rename(run.summary[run.summary["athlete"] == HOSTILE_ATHLETES[0]])
+    render_timeline(target, timeline, "../../outside", None, {"configuration": {}})
+    files = _assert_outputs_safe(tmp_path, target, out)
+    assert any(p.name.startswith("timeline_") for p in files)
+    for name in ("../../outside", HOSTILE_SUBJECT, "..", "../", "a/../../b", "C:\\x\\..\\y", "\x00nul", "CON"):
+        part = safe_component(name)
+        assert "/" not in part and "\\" not in part and not part.startswith(".") and ".." not in part, part
+    _assert_html_escaped([p for p in files if p.suffix == ".html"], ["../../outside"])
+    assert not (tmp_path / "outside.html").exists() and not (tmp_path / "deep" / "outside.html").exists()
+
+
+def test_timeline_cli_with_dot_dot_athlete_writes_nothing_outside(hostile_squad, tmp_path):
+    _, root, out, _ = hostile_squad
+    target = tmp_path / "t" / "out"
+    proc = subprocess.run([sys.executable, "-m", "hamstride.cli", "timeline", str(root), "--athlete",
+                           "../../outside", "--out", str(target), "--jobs", "1"], capture_output=True, text=True,
+                          timeout=300)
+    assert proc.returncode == 1 and "Traceback" not in proc.stdout + proc.stderr
+    _assert_outputs_safe(tmp_path, target, root)
