@@ -137,6 +137,7 @@ h1{font-size:1.6em;margin:.6em 0 .2em}h2{font-size:1.25em;margin:1.4em 0 .3em;bo
 .explain{color:#444;font-size:.92em;margin:.2em 0 .6em}
 table{border-collapse:collapse;font-size:.86em;margin:6px 0}
 th,td{border:1px solid #c8c8c8;padding:3px 6px;text-align:left;vertical-align:top}
+td{white-space:nowrap}td.msg{white-space:normal;min-width:18em}
 td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 caption{text-align:left;caption-side:top}
 thead th{background:#eef0f3}
@@ -385,6 +386,17 @@ def _header(fig, title: str, handles: list) -> None:
                ncol=len(handles), fontsize=7.5, frameon=False, borderaxespad=0.0, handlelength=2.6)
 
 
+def _cycle_axes(ax) -> None:
+    """Gait-cycle x axis 0..100 % with few ticks (tick objects dominate drawing time), light grid."""
+    from matplotlib.ticker import FixedLocator, MaxNLocator
+
+    ax.set_xlim(0, 100)
+    ax.xaxis.set_major_locator(FixedLocator([0, 25, 50, 75, 100]))
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=5))
+    ax.tick_params(labelsize=7.5)
+    ax.grid(True, color="#e5e5e5", lw=0.5)
+
+
 def _headroom(ax, fraction: float = 0.16) -> None:
     """Extra space above the data for the window labels (call once per shared row, after drawing)."""
     lo, hi = ax.get_ylim()
@@ -426,7 +438,7 @@ def _raster(fig, dpi: int = RASTER_DPI) -> _Raster:
     canvas.draw()
     rgb = np.asarray(canvas.buffer_rgba())[..., :3].copy()
     buffer = io.BytesIO()
-    Image.fromarray(rgb).save(buffer, format="PNG", compress_level=6)
+    Image.fromarray(rgb).save(buffer, format="PNG", compress_level=3)
     width, height = fig.get_size_inches()
     return _Raster(buffer.getvalue(), rgb, (float(width), float(height)))
 
@@ -583,9 +595,7 @@ def _stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequen
                 ax.set_ylabel(ylabel, fontsize=8.5)
             if i == len(_STRETCH_ROWS) - 1:
                 ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-            ax.set_xlim(0, 100)
-            ax.tick_params(labelsize=7.5)
-            ax.grid(True, color="#e5e5e5", lw=0.5)
+            _cycle_axes(ax)
     _headroom(axes[0, 0])
     _header(fig, title, _side_handles())
     _margins(fig, top_in=0.85, left_in=0.75, bottom_in=0.5)
@@ -616,9 +626,7 @@ def _force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence
                 ax.set_ylabel(ylabel, fontsize=8.5)
             if i == len(_FORCE_ROWS) - 1:
                 ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-            ax.set_xlim(0, 100)
-            ax.tick_params(labelsize=7.5)
-            ax.grid(True, color="#e5e5e5", lw=0.5)
+            _cycle_axes(ax)
     from matplotlib.lines import Line2D
 
     _headroom(axes[0, 0])
@@ -648,9 +656,7 @@ def _joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
         _headroom(ax)
         ax.set_ylabel(labels[col], fontsize=8.5)
         ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-        ax.set_xlim(0, 100)
-        ax.tick_params(labelsize=7.5)
-        ax.grid(True, color="#e5e5e5", lw=0.5)
+        _cycle_axes(ax)
     _header(fig, title, _side_handles(with_peak=False))
     _margins(fig, top_in=0.85, left_in=0.75, bottom_in=0.5, wspace=0.25)
     return fig
@@ -709,7 +715,7 @@ def _flag_rows(flags: pd.DataFrame, *, with_athlete: bool, links: Mapping[str, s
         cells += [_td(rec.get("session", "")), _td(rec.get("side", "")), _td(_muscle_label(str(rec.get("muscle", "")))),
                   f'<td title="{_e(explanation)}">{_e(flag)}</td>',
                   _td(rec.get("value"), 2), _td(rec.get("threshold"), 2),
-                  _td(rec.get("message", ""))]
+                  f'<td class="msg">{_e(rec.get("message", ""))}</td>']
         rows.append('<tr class="flagged">' + "".join(cells) + "</tr>")
     return rows
 
@@ -977,7 +983,7 @@ def _athlete_page(athlete: str, strides: pd.DataFrame, curves: pd.DataFrame, fla
     _write_atomic(html_path, _page(f"hamstride · {athlete}", "".join(body), home="../index.html"))
 
     _write_pdf(pdf_path, athlete, info, sessions, latest, flags, summary_text, uncertainty_text,
-               [(r, title) for r, title, *_ in pngs], run_info, mass_missing)
+               [(r, title, text) for r, title, text, _ in pngs], run_info, mass_missing)
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -1014,13 +1020,16 @@ def _text_page(pdf, lines: Sequence[tuple[str, str]], title: str) -> None:
     pdf.savefig(fig)
 
 
-def _image_page(pdf, raster: _Raster, title: str) -> None:
-    """An A4 landscape page holding one pre-drawn plot, with the caution as a footer."""
+def _image_page(pdf, raster: _Raster, title: str, caption: str = "") -> None:
+    """An A4 landscape page holding one pre-drawn plot, its plain-language caption and the caution as a footer."""
     page = _new_figure(11.69, 8.27)
-    ax = page.add_axes((0.03, 0.07, 0.94, 0.88))
+    ax = page.add_axes((0.03, 0.15, 0.94, 0.8))
     ax.imshow(raster.rgb, interpolation="none")
     ax.set_axis_off()
+    ax.set_anchor("N")
     page.text(0.03, 0.975, _mpl_text(title), fontsize=9, va="top", color="#333333")
+    if caption:
+        page.text(0.03, 0.125, _mpl_text("\n".join(textwrap.wrap(caption, 175))), fontsize=8, va="top")
     page.text(0.03, 0.035, _mpl_text(f"Caution. {CAUTION}"), fontsize=7.5, va="top", color="#333333")
     pdf.savefig(page)
 
@@ -1088,8 +1097,8 @@ def _write_pdf(path: Path, athlete: str, info: Mapping, sessions: Sequence[str],
                                      "Creator": "hamstride"}) as pdf:
             for i, page in enumerate(_paginate(lines)):
                 _text_page(pdf, page, f"hamstride · athlete {athlete}" + (" (continued)" if i else ""))
-            for raster, title in figures:
-                _image_page(pdf, raster, f"{athlete} · {title}")
+            for raster, title, caption in figures:
+                _image_page(pdf, raster, f"{athlete} · {title}", caption)
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
@@ -1179,7 +1188,7 @@ def _failed_trials_html(run_info: Mapping | None) -> str:
             trial, reason = (list(item) + ["", ""])[:2]
         else:
             trial, reason = item, ""
-        rows.append("<tr>" + _td(trial) + _td(reason) + "</tr>")
+        rows.append("<tr>" + _td(trial) + f'<td class="msg">{_e(reason)}</td>' + "</tr>")
     return _table("failed", ("trial", "reason"), rows, caption="Trials that could not be analysed (they are left "
                                                                 "out of every table and plot).")
 
@@ -1197,28 +1206,55 @@ def render_squad(out_dir: Path, strides: pd.DataFrame, curves: pd.DataFrame, fla
     names = sorted(set().union(*(g.keys() for g in groups.values())), key=str)
     files = _unique_files(names)
     written: list[Path] = []
-    timings: dict[str, float] = {}
+    jobs = []
     for athlete in names:
-        start = time.perf_counter()
-        info = _athlete_info(athletes, athlete)
         html_path = _inside(out_dir, out_dir / "athletes" / f"{files[athlete]}.html")
         pdf_path = _inside(out_dir, out_dir / "athletes" / f"{files[athlete]}.pdf")
-        _athlete_page(athlete,
-                      groups["strides"].get(athlete, _empty_like(strides)),
-                      groups["curves"].get(athlete, _empty_like(curves)),
-                      groups["flags"].get(athlete, _empty_like(flags)),
-                      groups["summary"].get(athlete, _empty_like(summary)),
-                      info, run_info, html_path, pdf_path)
+        jobs.append((athlete,
+                     groups["strides"].get(athlete, _empty_like(strides)),
+                     groups["curves"].get(athlete, _empty_like(curves)),
+                     groups["flags"].get(athlete, _empty_like(flags)),
+                     groups["summary"].get(athlete, _empty_like(summary)),
+                     _athlete_info(athletes, athlete), run_info, html_path, pdf_path))
         written += [html_path, pdf_path]
-        timings[athlete] = time.perf_counter() - start
+    workers = _report_workers(run_info, len(jobs))
+    if workers > 1:
+        from concurrent.futures import ProcessPoolExecutor
+
+        with ProcessPoolExecutor(max_workers=workers) as pool:
+            list(pool.map(_render_athlete, jobs))
+    else:
+        for job in jobs:
+            _render_athlete(job)
 
     links = {a: f"athletes/{quote(files[a])}.html" for a in names}
     index = _inside(out_dir, out_dir / "index.html")
     _write_atomic(index, _index_html(names, links, groups, strides, flags, summary, athletes, run_info))
     written.insert(0, index)
-    if isinstance(run_info, dict):
-        run_info.setdefault("report_seconds_per_athlete", timings)
     return written
+
+
+def _report_workers(run_info: Mapping | None, n_athletes: int) -> int:
+    """Processes for the athlete pages: ``run_info['report_jobs']`` (or ``'jobs'``), at most one per athlete."""
+    requested = _num(_run_info_get(run_info, "report_jobs", "jobs", default=1))
+    if not math.isfinite(requested) or requested < 1:
+        return 1
+    return int(max(1, min(requested, n_athletes, os.cpu_count() or 1)))
+
+
+def _render_athlete(job: tuple) -> float:
+    """Render one athlete's page and PDF (a top-level function so a process pool can run it); returns CPU s."""
+    import gc
+
+    start = time.process_time()
+    was_enabled = gc.isenabled()
+    gc.disable()  # the page builds many short-lived objects; collecting mid-render only costs time
+    try:
+        _athlete_page(*job)
+    finally:
+        if was_enabled:
+            gc.enable()
+    return time.process_time() - start
 
 
 def _unique_files(names: Sequence[str]) -> dict[str, str]:
