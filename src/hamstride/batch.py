@@ -301,8 +301,12 @@ def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: 
 
 def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, markers: str | Path | None = None,
               config: RunConfig = RunConfig(), report: bool = True, athlete_filter: str | None = None,
-              progress: Callable[[int, int, int], None] | None = None, cluster=None) -> SquadRun:
+              progress: Callable[[int, int, int], None] | None = None, cluster=None,
+              write_outputs: bool = True) -> SquadRun:
     """Analyse a whole squad folder and write the tables, manifest and (optionally) reports under ``out``.
+
+    ``write_outputs=False`` analyses (through the cache under ``out``) and returns the tables without writing the
+    squad exports, so a one-athlete view such as the timeline never overwrites the squad's tables.
 
     ``cluster`` (optional): send the trials to an existing Dask cluster instead of local processes; see
     :func:`run_on_cluster`."""
@@ -378,6 +382,12 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     summary = summarise(strides, athletes)
     flags = compute_flags(summary, athletes, config.flags)
 
+    counts = {"trials": total, "ok": total - len(failed), "failed": len(failed),
+              "strides": int(strides.drop_duplicates(["athlete", "session", "trial", "side", "stride"]).shape[0])
+              if not strides.empty else 0, "flags": int(len(flags))}
+    if not write_outputs:
+        manifest = {"counts": counts, "inputs": [records[j.path] for j in all_jobs]}
+        return SquadRun(out, manifest, strides, summary, flags, athletes, failed, analysed=len(todo), cached=n_cached)
     out.mkdir(parents=True, exist_ok=True)
     write_table(out, "strides", strides)
     _stream_curves(out / "curves.csv", curve_files)
@@ -387,9 +397,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         "software": "hamstride", "version": __version__, "squad": str(root),
         "configuration": config.as_dict(), "markers": str(markers) if markers else None,
         "athletes_csv_sha256": file_sha256(root / "athletes.csv") if (root / "athletes.csv").exists() else None,
-        "counts": {"trials": total, "ok": total - len(failed), "failed": len(failed),
-                   "strides": int(strides.drop_duplicates(["athlete", "session", "trial", "side", "stride"]).shape[0])
-                   if not strides.empty else 0, "flags": int(len(flags))},
+        "counts": counts,
         "inputs": [records[j.path] for j in all_jobs],
     }
     atomic_write_text(out / "manifest.json", json.dumps(_jsonable(manifest), indent=1, sort_keys=False))

@@ -226,7 +226,8 @@ def timeline_cmd(
 
     try:
         cfg = load_config(config)
-        run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=False, athlete_filter=athlete)
+        run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=False, athlete_filter=athlete,
+                        write_outputs=False)
     except HamstrideError as exc:
         _fail(exc, 2)
     timeline = build_timeline(run, athlete)
