@@ -136,7 +136,21 @@ def build_corpus(folder: Path) -> dict[str, Case]:
                                                                  struct.pack("<h", 7)), "bad_parameters",
             "POINT:FRAMES")
     pos, n, _ = _param_record(good, "POINT", "LABELS")
-    mutated("parameter_fewer_labels", lambda d: d.__setitem__(pos + 4 + n + 3, 20), "bad_labels", "labels")
+
+    def fewer_labels(d: bytearray) -> None:
+        """Keep 20 of the 32 labels: shrink the dimension, cut the 12 strings out, shift the following records
+        (offsets are relative) and pad the parameter section so the data blocks stay where they are."""
+        width, count = d[pos + 4 + n + 2], d[pos + 4 + n + 3]
+        values = pos + 4 + n + 4
+        cut = slice(values + 20 * width, values + count * width)
+        removed = cut.stop - cut.start
+        d[pos + 4 + n + 3] = 20
+        (offset,) = struct.unpack("<h", d[pos + 2 + n:pos + 4 + n])
+        d[pos + 2 + n:pos + 4 + n] = struct.pack("<h", offset - removed)
+        del d[cut]
+        d[data_start - removed:data_start - removed] = bytes(removed)
+
+    mutated("parameter_fewer_labels", fewer_labels, "bad_labels", "only 20 labels")
     mutated("parameter_offset_backwards",
             lambda d: d.__setitem__(slice(pos + 2 + n, pos + 4 + n), struct.pack("<h", -40)), "bad_parameters",
             "points backwards")

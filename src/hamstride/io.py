@@ -170,6 +170,8 @@ def _parse_parameters(data: bytes, start: int, end: int, processor: int, name: s
             dims = tuple(data[body + 2:body + 2 + n_dims])
             if len(dims) != n_dims:
                 raise bad(f"parameter {label!r} is cut off")
+            if dtype == -1 and n_dims == 0:  # character data always give the string length first (c3d.org)
+                raise bad(f"character parameter {label!r} has no dimensions")
             n_values = math.prod(dims)  # exact integer: 255 dimensions of 255 must not overflow
             data_start = body + 2 + n_dims
             data_end = data_start + _C3D_TYPE_SIZES[dtype] * n_values
@@ -186,6 +188,8 @@ def _parse_parameters(data: bytes, start: int, end: int, processor: int, name: s
             break
         if next_pos < record_end:
             raise bad(f"record {label!r} points back into itself (offset {offset})")
+        if next_pos != record_end:  # records follow each other without gaps (ezc3d rejects anything else too)
+            raise bad(f"record {label!r} is {record_end - name_end} bytes long but its offset says {offset}")
         pos = next_pos
     else:
         raise bad(f"more than {_MAX_PARAMETERS} records")
@@ -363,8 +367,9 @@ def read_c3d(path: str | Path) -> MarkerTrial:
     try:
         c = ezc3d.c3d(str(path), extract_forceplat_data=False)
     except Exception as exc:  # ezc3d raises RuntimeError/IOError with C++ messages
-        raise FileFormatError(f"the C3D reader could not parse the file ({str(exc).strip()[:120]}); re-export it "
-                              "from the capture software", trial=name, code="bad_file") from None
+        reason = str(exc).split("If you want to ignore")[0].strip().rstrip(".")[:120]
+        raise FileFormatError(f"the C3D reader could not parse the file ({reason}); re-export it from the capture "
+                              "software", trial=name, code="bad_file") from None
     try:
         return _trial_from_ezc3d(c, path, layout)
     except FileFormatError:
