@@ -39,6 +39,7 @@ MERGE_GAP_S = 0.02              # low runs separated by less than this are one c
 DERIVATIVE_WINDOW_S = 0.028     # Savitzky-Golay window for acceleration / jerk (about 7 frames at 250 Hz)
 STRIKE_SEARCH_S = (0.03, 0.06)  # search window around the start of the low run (before, after)
 STRIKE_REFINE_S = (0.01, 0.03)  # floor-arrival search around the acceleration peak (before, after)
+DESCENT_ARREST_FRACTION = 0.25  # descent "arrested" at a quarter of the approach speed (common practice)
 FLOOR_TOLERANCE_M = 0.005       # lowest landmark "on the floor" within 5 mm of its floor level (10x 0.5 mm noise)
 TOE_OFF_SEARCH_S = (0.07, 0.05) # search window around the end of the low run (before, after)
 RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
@@ -213,11 +214,26 @@ def _floor_arrival(lowest: np.ndarray, lo: int, hi: int) -> float | None:
     return float(lo + k - 1 + y0 / (y0 - y1))
 
 
+def _descent_arrest(vz: np.ndarray, rel: np.ndarray, impact: int, lo: int, hi: int, lookback: int) -> float | None:
+    """First sub-frame index in [lo, hi) where the landmark lowest at the impact has slowed its descent to
+    DESCENT_ARREST_FRACTION of its peak descent speed over the preceding `lookback` frames."""
+    k = int(np.argmin(rel[:, min(impact, rel.shape[1] - 1)]))
+    v = vz[k]
+    approach = v[max(impact - lookback, 0):impact + 1]
+    if approach.size == 0 or approach.min() >= 0:
+        return None
+    i_fast = max(impact - lookback, 0) + int(np.argmin(approach))
+    level = DESCENT_ARREST_FRACTION * approach.min()
+    return _first_crossing_up(v, level, max(lo, i_fast), hi)
+
+
 def _detect_side(
     heights: Mapping[str, np.ndarray], rate_hz: float, knee_flexion: np.ndarray | None
 ) -> tuple[_SideEvents, np.ndarray]:
     n = next(iter(heights.values())).size
     mask, lowest = _low_foot_mask(heights, rate_hz)
+    rel = np.stack([z - np.percentile(z, FLOOR_PERCENTILE) for z in heights.values()])
+    vz = np.stack([_derivative(z, 1, rate_hz) for z in heights.values()])
     contacts = _runs(mask)
     acc = {m: _derivative(heights[m], 2, rate_hz) for m in STRIKE_MARKERS}
     toe = _toe_name(heights)
@@ -245,8 +261,12 @@ def _detect_side(
                 fs, n_fallback = (fb if fs is None else fs), n_fallback + 1
             else:
                 a = max(int(np.floor(impact)) - refine_before, 0)
-                fs = _floor_arrival(lowest, a, min(int(np.ceil(impact)) + refine_after, n))
-                if fs is None and end < n:  # never settles within 5 mm of the floor: keep the impact instant
+                b = min(int(np.ceil(impact)) + refine_after, n)
+                arrival = _floor_arrival(lowest, a, b)
+                arrest = _descent_arrest(vz, rel, int(round(impact)), a, b, before_fs)
+                found = [t for t in (arrival, arrest) if t is not None]
+                fs = min(found) if found else None
+                if fs is None and end < n:  # never settles on the floor: keep the impact instant
                     fs, n_fallback = impact, n_fallback + 1
             if fs is not None:
                 strikes.append(fs)
@@ -268,9 +288,10 @@ def _detect_side(
                 toe_offs.append(to)
                 toe_offs_fb.append(np.nan if fb is None else fb)
                 toe_off_peaks.append(np.interp(to, np.arange(n), toe_jerk))
-                toe_off_cut.append(start == 0)
-    # A contact already under way when the recording starts may have ended just before it: its window then holds
-    # only early-swing jerk. Keep such a toe-off only if its jerk peak is as sharp as the trial's other toe-offs.
+                toe_off_cut.append(start == 0 or end + after_to > n)
+    # A contact already under way when the recording starts may have ended just before it, and a search window cut
+    # by the recording's end may miss the toe-off: such windows can hold only swing jerk. Keep a toe-off found
+    # there only if its jerk peak is as sharp as the trial's other toe-offs.
     keep = np.ones(len(toe_offs), bool)
     cut, peaks = np.asarray(toe_off_cut, bool), np.asarray(toe_off_peaks, float)
     if cut.any() and (~cut).sum() >= 2:
