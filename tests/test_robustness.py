@@ -461,3 +461,37 @@ def test_timeline_cli_with_dot_dot_athlete_writes_nothing_outside(hostile_squad,
                           timeout=300)
     assert proc.returncode == 1 and "Traceback" not in proc.stdout + proc.stderr
     _assert_outputs_safe(tmp_path, target, root)
+
+
+def test_strict_option_fails_trials_with_warnings(corpus, tmp_path):
+    """`hamstride squad --strict`: trials that only had warnings fail with the warning's code; without it they pass."""
+    import shutil
+
+    from typer.testing import CliRunner
+
+    from hamstride.cli import app
+
+    root = tmp_path / "squad"
+    session = root / "ST01" / "2026-01-05_s"
+    session.mkdir(parents=True)
+    for name in ("valid", "duplicate_other_label", "frames_all_missing"):
+        shutil.copy(_case(corpus, name).path, session / f"{name}.c3d")
+    (root / "athletes.csv").write_text("athlete,body_mass_kg,height_m,sex,involved_side,injury_date\n"
+                                       "ST01,75,1.80,male,none,\n")
+    config = tmp_path / "fast.toml"
+    config.write_text("[analysis]\nmonte_carlo_samples = 0\n")
+    runner = CliRunner()
+    loose = runner.invoke(app, ["squad", str(root), "--out", str(tmp_path / "loose"), "--jobs", "2", "--no-report",
+                                "--config", str(config)])
+    assert loose.exit_code == 0, loose.output
+    strict = runner.invoke(app, ["squad", str(root), "--out", str(tmp_path / "strict"), "--jobs", "2", "--no-report",
+                                 "--config", str(config), "--strict"])
+    assert strict.exit_code == 1, strict.output
+    manifest = json.loads((tmp_path / "strict" / "manifest.json").read_text())
+    outcome = {Path(r["file"]).stem: (r["status"], r.get("code")) for r in manifest["inputs"]}
+    assert outcome == {"valid": ("ok", None), "duplicate_other_label": ("failed", "duplicate_labels"),
+                       "frames_all_missing": ("failed", "empty_frames")}
+    assert manifest["configuration"]["analysis"]["strict"] is True
+    loose_manifest = json.loads((tmp_path / "loose" / "manifest.json").read_text())
+    codes = {Path(r["file"]).stem: r.get("warning_codes") for r in loose_manifest["inputs"]}
+    assert "duplicate_labels" in codes["duplicate_other_label"] and "empty_frames" in codes["frames_all_missing"]
