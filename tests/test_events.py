@@ -158,10 +158,11 @@ def test_partial_c3d_events_fall_back_to_markers(tmp_path):
 
 
 # ------------------------------------------------------------------------------------------------ failures
-def _kinematic_run(rate: float, duration: float, stride: float, contact: float, speed: float) -> Landmarks:
+def _kinematic_run(rate: float, duration: float, stride: float, contact: float, speed: float,
+                   treadmill: bool = False) -> Landmarks:
     """A minimal running pattern by construction: each foot rests on the floor for `contact` s per stride (legs half a
     stride apart) and swings in an arc that lands with a vertical velocity (an impact). Contact > stride / 2 means
-    double support and no flight (a jog)."""
+    double support and no flight (a jog). On a treadmill everything moves back at the running speed."""
     t = np.arange(int(round(duration * rate))) / rate
     points = {}
     for side, phase in (("right", 0.0), ("left", 0.5)):
@@ -177,6 +178,9 @@ def _kinematic_run(rate: float, duration: float, stride: float, contact: float, 
             points[f"{side}_{name}"] = np.stack([x + dx, np.full_like(t, lateral), z + dz], axis=1)
         for name, dx in (("asis", 0.1), ("psis", -0.1)):
             points[f"{side}_{name}"] = np.stack([speed * t + dx, np.full_like(t, lateral), np.full_like(t, 1.0)], 1)
+    if treadmill:
+        belt = np.stack([speed * t, 0 * t, 0 * t], axis=1)
+        points = {k: v - belt for k, v in points.items()}
     return Landmarks(trial="constructed", rate_hz=rate, points=points)
 
 
@@ -213,3 +217,45 @@ def test_missing_heel_names_the_landmark():
     points = {k: v for k, v in lm.points.items() if k != "left_heel"}
     with pytest.raises(LandmarkError, match="left_heel"):
         detect_events(Landmarks(trial="x", rate_hz=250.0, points=points))
+
+
+@pytest.mark.parametrize("treadmill", [False, True])
+def test_treadmill_detection_and_speed_by_construction(treadmill):
+    lm = _kinematic_run(250.0, 2.0, 0.44, 0.12, 9.0, treadmill=treadmill)
+    assert is_treadmill(lm) is treadmill
+    events = detect_events(lm, treadmill=treadmill)
+    # 9.0 m/s by construction: pelvis displacement overground, stance foot on the belt on the treadmill
+    assert running_speed(lm, events, treadmill) == pytest.approx(9.0, rel=1e-3)
+
+
+def test_event_missing_from_c3d_file_is_reported(tmp_path):
+    spec = SprintSpec(speed_m_s=9.0, rate_hz=250.0, duration_s=2.0, include_events=True, seed=5)
+    trial, lm, _ = _pipeline_landmarks(tmp_path, spec)
+    strikes = sorted((ev for ev in trial.events if ev.kind == "foot_strike" and ev.side == "left"),
+                     key=lambda ev: ev.time_s)
+    dropped = strikes[1]  # an interior left foot strike the file "forgot"
+    events = detect_events(lm, c3d_events=tuple(ev for ev in trial.events if ev is not dropped))
+    assert events.method == "c3d"
+    assert len(events.disagreements) == 1
+    assert events.disagreements[0].startswith("left foot strike found from markers")
+    reported = float(re.search(r"at (\d+\.\d+) s", events.disagreements[0]).group(1))
+    assert reported == pytest.approx(dropped.time_s, abs=3 / 250)
+
+
+def test_c3d_events_used_when_foot_markers_are_missing(tmp_path):
+    spec = SprintSpec(speed_m_s=9.0, rate_hz=250.0, duration_s=2.0, include_events=True, seed=5)
+    trial, lm, truth = _pipeline_landmarks(tmp_path, spec)
+    no_heel = Landmarks(trial="x", rate_hz=lm.rate_hz, points={k: v for k, v in lm.points.items() if k != "right_heel"})
+    events = detect_events(no_heel, c3d_events=trial.events)
+    assert events.method == "c3d"
+    assert any("unchecked" in w and "right_heel" in w for w in events.warnings)
+    with pytest.raises(LandmarkError):
+        detect_events(no_heel)
+
+
+def test_min_strides_is_enforced_per_leg():
+    lm = _kinematic_run(250.0, 2.0, 0.44, 0.12, 9.0)  # 4 right strikes seen -> 3 strides per leg at most
+    detect_events(lm, min_strides=3)
+    with pytest.raises(EventError, match="at least 5 needed per leg") as info:
+        detect_events(lm, min_strides=5)
+    assert info.value.code == "few_strides"

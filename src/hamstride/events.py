@@ -1,17 +1,23 @@
 """Foot strikes and toe-offs from marker kinematics (no force plates), running speed, treadmill detection.
 
-Primary rule, after Handsaker et al. 2016 (J Biomech, doi 10.1016/j.jbiomech.2016.10.013):
-foot strike at the peak upward vertical acceleration of the heel or first-metatarsal marker, whichever
-comes first, inside a search window; toe-off at the peak vertical jerk of the toe marker.
-Fallback and consistency check, after Fellin et al. 2010 (J Sci Med Sport 13:646): foot strike at the
-minimum height of the lowest foot landmark (vertical velocity sign change), toe-off at peak knee
-extension (or, without knee angles, when the toe landmark leaves its floor level).
+Foot strike, after Handsaker et al. 2016 (J Biomech, doi 10.1016/j.jbiomech.2016.10.013): the impact is the
+peak upward vertical acceleration of the heel or first-metatarsal marker, whichever comes first, inside a
+search window. After zero-lag low-pass filtering that peak sits at the centre of the landing deceleration,
+which starts before the foot is on the floor, so it runs a few ms early. The strike instant is therefore
+refined, near the impact, to the first instant the foot's lowest landmark either reaches its floor level
+(within 5 mm) or has its descent arrested (vertical speed down to a quarter of its approach speed): the
+definition of touchdown itself, not an offset.
+Toe-off (Handsaker et al. 2016): the peak vertical jerk of the toe marker (first metatarsal without one).
+Fallback and consistency check, after Fellin et al. 2010 (J Sci Med Sport 13:646): foot strike when the
+lowest foot landmark stops descending (vertical velocity sign change), toe-off at peak knee extension (or,
+without knee angles, when the toe landmark leaves its floor level).
 
 Search windows come from a vertical-only contact estimate that works the same overground and on a
-treadmill: a foot is "low" when its lowest landmark is within a few centimetres of the height that
-landmark has when the foot is flat on the floor (a low percentile of its height over the trial).
-Derivatives are taken with a symmetric Savitzky-Golay kernel, so peaks are not shifted in time by
-the differentiation itself (zero phase).
+treadmill: a foot is "low" when its lowest landmark is within 25 mm of the height that landmark has when
+the foot is on the floor (a low percentile of its height over the trial, so marker heights above the sole
+and the floor level cancel). Derivatives use a symmetric Savitzky-Golay kernel (zero phase).
+Timing needs marker data filtered at about 15 Hz or above: heavier smoothing spreads the landing and
+delays the strike (about +7 ms at 10 Hz on generated sprints).
 """
 from __future__ import annotations
 
@@ -39,12 +45,13 @@ MERGE_GAP_S = 0.02              # low runs separated by less than this are one c
 DERIVATIVE_WINDOW_S = 0.028     # Savitzky-Golay window for acceleration / jerk (about 7 frames at 250 Hz)
 STRIKE_SEARCH_S = (0.03, 0.06)  # search window around the start of the low run (before, after)
 STRIKE_REFINE_S = (0.01, 0.03)  # floor-arrival search around the acceleration peak (before, after)
-DESCENT_ARREST_FRACTION = 0.25  # descent "arrested" at a quarter of the approach speed (common practice)
-FLOOR_TOLERANCE_M = 0.005       # lowest landmark "on the floor" within 5 mm of its floor level (10x 0.5 mm noise)
-TOE_OFF_SEARCH_S = (0.07, 0.05) # search window around the end of the low run (before, after)
+DESCENT_ARREST_FRACTION = 0.25  # descent "arrested" at a quarter of the approach speed (design choice, no source)
+FLOOR_TOLERANCE_M = 0.005       # "on the floor" within 5 mm of the floor level: 10x a 0.5 mm marker noise (design choice)
+TOE_OFF_SEARCH_S = (0.07, 0.05)  # search window around the end of the low run (before, after)
 RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
-EDGE_PEAK_FRACTION = 0.5       # an event cut by the trial start needs half the median peak of the others
+EDGE_PEAK_FRACTION = 0.5        # a toe-off next to a trial end needs half the median jerk peak of the others
 C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2 frames apart
+MISSING_EVENT_S = 0.03          # a marker event this far from every C3D event means the file lacks one
 TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which the trial is on a treadmill (common practice)
 
 
@@ -466,9 +473,32 @@ def _c3d_events(c3d_events: Iterable) -> tuple[dict[str, np.ndarray], dict[str, 
             {s: np.unique(np.asarray(v, float)) for s, v in to.items()})
 
 
-def _compare(label: str, side: str, reference: np.ndarray, markers: np.ndarray, rate_hz: float) -> list[str]:
-    """C3D event vs nearest marker event of the same kind and side; report > 2 frames apart."""
+def _rule_consistency(side: str, side_events: _SideEvents, fs: np.ndarray, to: np.ndarray,
+                      fs_fallback: np.ndarray, to_fallback: np.ndarray) -> list[str]:
+    """Warnings when the fallback rule had to be used or disagrees with the primary rule too often."""
     out = []
+    if side_events.n_fallback_used:
+        out.append(f"{side}: {side_events.n_fallback_used} event(s) found only by the fallback rule")
+    for label, prim, fb in (("foot strike", fs, fs_fallback), ("toe-off", to, to_fallback)):
+        diff = np.abs(prim - fb)
+        diff = diff[np.isfinite(diff)]
+        share = np.mean(diff > RULE_DISAGREEMENT_S) if diff.size else 0.0
+        if share > 0.25:
+            out.append(
+                f"{side} {label}: the two marker rules disagree by more than {1000 * RULE_DISAGREEMENT_S:.0f} ms "
+                f"in {share:.0%} of events (median {1000 * np.median(diff):.0f} ms); check the foot markers"
+            )
+    return out
+
+
+def _compare(label: str, side: str, reference: np.ndarray, markers: np.ndarray, rate_hz: float) -> list[str]:
+    """C3D event vs nearest marker event of the same kind and side; report > 2 frames apart, and marker events
+    inside the span of the file's events that have no file event within 30 ms (an event missing from the file)."""
+    out = []
+    if reference.size and markers.size:
+        inside = markers[(markers > reference.min()) & (markers < reference.max())]
+        for t in inside[np.min(np.abs(inside[:, None] - reference[None, :]), axis=1) > MISSING_EVENT_S]:
+            out.append(f"{side} {label} found from markers at {t:.3f} s has no C3D event; check the C3D events")
     for t in reference:
         if markers.size == 0:
             out.append(f"{side} {label} at {t:.3f} s in the C3D file has no marker-detected counterpart")
@@ -496,55 +526,49 @@ def detect_events(
     Uses the C3D events when the file has foot strikes and toe-offs for both sides (marker events are still
     computed and any C3D event more than 2 frames from its marker counterpart is listed in `disagreements`);
     otherwise the marker rules (Handsaker et al. 2016 primary, Fellin et al. 2010 fallback/consistency).
-    The vertical-only rules serve overground and treadmill trials alike; `treadmill` is only reported.
+    The vertical-only rules serve overground and treadmill trials alike, so `treadmill` (accepted for callers
+    that know it) does not change the result.
     Raises EventError 'few_strides' when a leg has fewer than `min_strides` complete strides and
     'no_flight' when there is no flight phase between steps.
     """
     rate = float(lm.rate_hz)
     trial = getattr(lm, "trial", None)
     knee_flexion = knee_flexion or {}
-    warnings: list[str] = []
-    marker_fs: dict[str, np.ndarray] = {}
-    marker_to: dict[str, np.ndarray] = {}
-    fallback_fs: dict[str, np.ndarray] = {}
-    fallback_to: dict[str, np.ndarray] = {}
-    n_frames = 0
-    for side in SIDES:
-        heights = _foot_heights(lm, side)
-        n_frames = next(iter(heights.values())).size
-        side_events, _ = _detect_side(heights, rate, knee_flexion.get(side))
-        marker_fs[side] = side_events.strikes / rate
-        marker_to[side] = side_events.toe_offs / rate
-        fallback_fs[side] = side_events.strikes_fallback / rate
-        fallback_to[side] = side_events.toe_offs_fallback / rate
-        if side_events.n_fallback_used:
-            warnings.append(f"{side}: {side_events.n_fallback_used} event(s) found only by the fallback rule")
-        for label, prim, fb in (("foot strike", marker_fs[side], fallback_fs[side]),
-                                ("toe-off", marker_to[side], fallback_to[side])):
-            diff = np.abs(prim - fb)
-            diff = diff[np.isfinite(diff)]
-            if diff.size and np.mean(diff > RULE_DISAGREEMENT_S) > 0.25:
-                warnings.append(
-                    f"{side} {label}: the two marker rules disagree by more than {1000 * RULE_DISAGREEMENT_S:.0f} ms "
-                    f"in {np.mean(diff > RULE_DISAGREEMENT_S):.0%} of events (median {1000 * np.median(diff):.0f} ms); "
-                    "check the foot markers"
-                )
-    duration = (n_frames - 1) / rate
-
     c3d_fs, c3d_to = _c3d_events(c3d_events)
     use_c3d = all(c3d_fs[s].size and c3d_to[s].size for s in SIDES)
+    warnings: list[str] = []
+    marker_fs = {s: np.empty(0) for s in SIDES}
+    marker_to = {s: np.empty(0) for s in SIDES}
+    fallback_fs: dict[str, np.ndarray] = {}
+    fallback_to: dict[str, np.ndarray] = {}
+    n_frames = int(lm.n_frames) if hasattr(lm, "n_frames") else len(next(iter(lm.points.values())))
+    try:
+        for side in SIDES:
+            side_events, _ = _detect_side(_foot_heights(lm, side), rate, knee_flexion.get(side))
+            marker_fs[side] = side_events.strikes / rate
+            marker_to[side] = side_events.toe_offs / rate
+            fallback_fs[side] = side_events.strikes_fallback / rate
+            fallback_to[side] = side_events.toe_offs_fallback / rate
+            warnings += _rule_consistency(side, side_events, marker_fs[side], marker_to[side],
+                                          fallback_fs[side], fallback_to[side])
+    except LandmarkError as err:
+        if not use_c3d:
+            raise
+        warnings.append(f"marker events not computed ({err.message}); the C3D events are used unchecked")
+        marker_fs = marker_to = None
+    duration = (n_frames - 1) / rate
+
     disagreements: list[str] = []
     if use_c3d:
-        for side in SIDES:
-            disagreements += _compare("foot strike", side, c3d_fs[side], marker_fs[side], rate)
-            disagreements += _compare("toe-off", side, c3d_to[side], marker_to[side], rate)
+        if marker_fs is not None:
+            for side in SIDES:
+                disagreements += _compare("foot strike", side, c3d_fs[side], marker_fs[side], rate)
+                disagreements += _compare("toe-off", side, c3d_to[side], marker_to[side], rate)
         foot_strikes, toe_offs, method = c3d_fs, c3d_to, "c3d"
     else:
         if any(c3d_fs[s].size or c3d_to[s].size for s in SIDES):
             warnings.append("the C3D file has only some foot strike/toe-off events; marker events used instead")
         foot_strikes, toe_offs, method = marker_fs, marker_to, "markers"
-    if treadmill is not None:
-        warnings = warnings  # treadmill flag does not change the vertical rules
     _check_strides(foot_strikes, toe_offs, rate, duration, trial, min_strides)
     return GaitEvents(
         foot_strikes_s={s: np.sort(foot_strikes[s]) for s in SIDES},
