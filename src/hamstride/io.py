@@ -300,6 +300,9 @@ def check_c3d_header(path: str | Path) -> C3DLayout:
         raise bad(f"POINT:USED says {int(used[0])} markers but the header says {n_points}")
     if n_points == 0:
         raise FileFormatError("the file holds no marker points", trial=name, code="no_markers")
+    analog_rate = _param_numbers(groups.get("ANALOG", {}).get("RATE"), processor)
+    if analog_rate.size and not (np.isfinite(analog_rate[0]) and analog_rate[0] >= 0):
+        raise bad(f"ANALOG:RATE is {float(analog_rate[0]):g}")
     param_rate = _param_numbers(point.get("RATE"), processor)
     for source, value in (("header", rate), ("POINT:RATE", param_rate[0] if param_rate.size else rate)):
         if not np.isfinite(value) or value <= 0:
@@ -470,6 +473,7 @@ def _read_events(c, first_frame: int, rate: float) -> tuple[C3DEvent, ...]:
             seconds = times[0, :used] * 60.0 + times[1, :used]
         else:
             seconds = times.reshape(-1)[:used]
+        used = min(used, len(seconds))  # EVENT:USED larger than the times stored: read the events that exist
         labels = list(group.get("LABELS", {}).get("value", [])) + [""] * used
         contexts = list(group.get("CONTEXTS", {}).get("value", [])) + [""] * used
         for i in range(used):
