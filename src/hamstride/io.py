@@ -110,7 +110,9 @@ class C3DLayout:
 
 
 _C3D_TYPE_SIZES = {-1: 1, 1: 1, 2: 2, 4: 4}  # c3d.org: parameter data types char, byte, int16, float
-_MAX_PARAMETERS = 20000  # far above any real file (common practice: a few hundred)
+_MAX_PARAMETERS = 20000
+# Parameters that hold one number in any C3D (c3d.org); an empty one means the section is corrupt.
+_SCALAR_PARAMETERS = frozenset({"USED", "RATE", "DATA_START", "FRAMES", "GEN_SCALE", "RATIO", "SCALE"})  # far above any real file (common practice: a few hundred)
 
 
 def _dec_float(raw: bytes) -> float:
@@ -295,6 +297,13 @@ def check_c3d_header(path: str | Path) -> C3DLayout:
     point = groups.get("POINT")
     if point is None:
         raise bad("the parameter section has no POINT group")
+    for group_name, group in groups.items():  # the native reader takes the first value of these (ezc3d 1.7 crashes)
+        for key in _SCALAR_PARAMETERS.intersection(group):
+            dtype, dims, raw = group[key]
+            if key == "SCALE" and group_name != "POINT":  # ANALOG:SCALE is one value per channel, may be empty
+                continue
+            if len(raw) < _C3D_TYPE_SIZES[dtype] or dtype == -1:
+                raise bad(f"{group_name}:{key} holds no number")
     used = _param_numbers(point.get("USED"), processor)
     if used.size and int(used[0]) % 65536 != n_points:
         raise bad(f"POINT:USED says {int(used[0])} markers but the header says {n_points}")
