@@ -90,6 +90,9 @@ def _tables(athletes=("ZZ99",), sessions=("2026-03-02_week0", "2026-01-15_pre"),
         flag_rows.append({"athlete": athlete, "session": sessions[0], "side": "left", "muscle": "bflh",
                           "flag": "side_asymmetry", "value": 14.0, "threshold": 10.0,
                           "message": f"left BFlh stretches 14 % less than right for {athlete}"})
+        flag_rows.append({"athlete": athlete, "session": sessions[0], "side": np.nan, "muscle": np.nan,
+                          "flag": "speed_low", "value": 7.7, "threshold": 7.9,
+                          "message": "running speed below 90 % of this athlete's best"})
     athletes_df = pd.DataFrame({"athlete": list(athletes),
                                 "body_mass_kg": [np.nan if a in no_mass else 75.0 for a in athletes],
                                 "height_m": 1.8, "sex": "M", "involved_side": "left", "injury_date": "2025-12-01"})
@@ -208,6 +211,13 @@ def test_caution_flags_and_notes_on_every_page(squad):
     assert html.escape("left BFlh stretches 14 % less than right for ZZ99") in athlete
     assert athlete.count("<img ") == 3  # stretch, force/power, joints
     assert 'id="summary"' in athlete and 'id="strides"' in athlete and 'id="uncertainty"' in athlete
+
+
+def test_missing_values_show_as_dashes_not_nan(squad):
+    _, out, _, _ = squad
+    for page in _pages(out):
+        text = page.read_text(encoding="utf-8")
+        assert ">nan<" not in text.lower() and "speed_low" in text
 
 
 def test_missing_body_mass_is_explained(squad):

@@ -279,24 +279,29 @@ def _empty_like(df: pd.DataFrame | None) -> pd.DataFrame:
     return pd.DataFrame(columns=list(df.columns) if df is not None else [])
 
 
+def _text(value: object) -> str:
+    """Text of a table value; missing values (None, NaN) become an en dash."""
+    return "–" if _missing(value) else str(value)
+
+
 def _td(value: object, digits: int | None = None, *, text: str | None = None) -> str:
     """A table cell; numbers get a numeric sort key and right alignment."""
     if digits is not None:
         x = _num(value)
         key = f"{x:.6g}" if math.isfinite(x) else ""
         return f'<td class="num" data-sort="{key}">{_e(text if text is not None else _fmt(x, digits))}</td>'
-    return f"<td>{_e(value if text is None else text)}</td>"
+    return f"<td>{_e(_text(value) if text is None else text)}</td>"
 
 
 def _table(table_id: str, headers: Sequence[str], rows: Sequence[str], *, sortable: bool = True,
            caption: str | None = None, titles: Sequence[str] | None = None) -> str:
     cls = ' class="sortable"' if sortable else ""
-    cap = f"<caption class=\"explain\">{_e(caption)}</caption>" if caption else ""
+    cap = f'<p class="explain">{_e(caption)}</p>' if caption else ""
     ths = "".join(
         f'<th scope="col"{f" title={chr(34)}{_e(titles[i])}{chr(34)}" if titles and titles[i] else ""}>{_e(h)}</th>'
         for i, h in enumerate(headers))
     body = "".join(rows) if rows else f'<tr><td colspan="{len(headers)}">none</td></tr>'
-    return (f'<div class="scroll"><table id="{_e(table_id)}"{cls}>{cap}<thead><tr>{ths}</tr></thead>'
+    return (f'{cap}<div class="scroll"><table id="{_e(table_id)}"{cls}><thead><tr>{ths}</tr></thead>'
             f"<tbody>{body}</tbody></table></div>")
 
 
@@ -331,22 +336,81 @@ def _run_info_get(run_info: Mapping | None, *keys: str, default: object = None) 
     return default
 
 
+_DEFAULT_SLACK_NOTE = ("l/l_opt depends on the tendon slack length the model assumes; treat it as an estimate and "
+                       "compare an athlete with themselves rather than with others.")
+
+
+def _slack_note(run_info: Mapping | None) -> str:
+    return str(_run_info_get(run_info, "tendon_slack_note", "tendon_note", "tendon_slack", "tendon_slack_assumption",
+                             default=_DEFAULT_SLACK_NOTE))
+
+
+def _thresholds(run_info: Mapping | None) -> Mapping:
+    """Flag thresholds: ``run_info['thresholds']`` or the ``flags`` part of ``run_info['configuration']``."""
+    found = _run_info_get(run_info, "thresholds", "config_thresholds")
+    if isinstance(found, Mapping):
+        return found
+    config = _run_info_get(run_info, "configuration", "config")
+    if isinstance(config, Mapping) and isinstance(config.get("flags"), Mapping):
+        return config["flags"]
+    return {}
+
+
+def _filter_note(run_info: Mapping | None) -> str | None:
+    found = _run_info_get(run_info, "filter_note", "filter_info", "filter_cutoff", "filter")
+    if found:
+        return _plain(found)
+    config = _run_info_get(run_info, "configuration", "config")
+    analysis = config.get("analysis") if isinstance(config, Mapping) else None
+    if isinstance(analysis, Mapping) and "cutoff_hz" in analysis:
+        cutoff = _num(analysis.get("cutoff_hz"))
+        if math.isfinite(cutoff):
+            return f"zero-lag Butterworth low-pass at a fixed {cutoff:g} Hz for every trial."
+        return ("zero-lag Butterworth low-pass; the cutoff is chosen for each trial by Winter's residual analysis "
+                "(the frequency above which the signal is mostly noise).")
+    return None
+
+
+_THRESHOLD_WORDS = MappingProxyType({
+    "asymmetry_pct": "side_asymmetry when the left–right difference (|SI|) is above {v:g} %",
+    "side_asymmetry_pct": "side_asymmetry when the left–right difference (|SI|) is above {v:g} %",
+    "guarding_lsi_pct": "involved_side_guarding when the injured side stretches less than {v:g} % of the other side",
+    "high_stretch_limit_lopt": "high_stretch when peak l/l_opt is above {v:g}",
+    "high_stretch_squad_z": "high_stretch (without a fixed limit) when peak stretch is above the squad mean + {v:g} SD",
+    "min_strides": "few_strides when a side has fewer than {v:g} strides",
+    "speed_low_fraction": "speed_low when the session is slower than {p:g} % of the athlete's best",
+    "asymmetry_confidence_z": "a side_asymmetry flag needs the difference to stay beyond the line after allowing "
+                              "for stride-to-stride variation ({v:g} standard errors)",
+    "high_stretch_min_athletes": "the squad comparison for high_stretch needs at least {v:g} athletes",
+})
+
+
+def _thresholds_text(thresholds: Mapping) -> str:
+    parts = []
+    for key, value in thresholds.items():
+        number = _num(value)
+        if key in _THRESHOLD_WORDS and math.isfinite(number):
+            parts.append(_THRESHOLD_WORDS[key].format(v=number, p=100 * number))
+        elif key == "muscles" and isinstance(value, (list, tuple)):
+            parts.append("stretch flags look at " + ", ".join(_muscle_label(str(m)) for m in value))
+        elif key not in _THRESHOLD_WORDS and value not in (None, ""):
+            parts.append(f"{key} = {_plain(value)}")
+    return "; ".join(parts)
+
+
 def _notes_html(run_info: Mapping | None) -> str:
     """Model and processing notes from the run: version, tendon slack assumption, filter, thresholds."""
     version = _run_info_get(run_info, "software_version", "version", default="unknown")
-    slack = _run_info_get(run_info, "tendon_slack_note", "tendon_slack", "tendon_slack_assumption",
-                          default="l/l_opt depends on the tendon slack length the model assumes; treat it as an "
-                                  "estimate and compare an athlete with themselves rather than with others.")
-    filt = _run_info_get(run_info, "filter_note", "filter_info", "filter_cutoff", "filter")
+    filt = _filter_note(run_info)
     uncertainty = _run_info_get(run_info, "uncertainty_note")
-    thresholds = _run_info_get(run_info, "thresholds", "config_thresholds")
-    items = [f"<li><strong>Tendon slack assumption:</strong> {_e(slack)}</li>"]
+    thresholds = _thresholds_text(_thresholds(run_info))
+    items = [f"<li><strong>Tendon slack assumption:</strong> {_e(_slack_note(run_info))}</li>"]
     if uncertainty:
         items.append(f"<li><strong>Model range:</strong> {_e(uncertainty)}</li>")
     if filt:
-        items.append(f"<li><strong>Marker filtering:</strong> {_e(_plain(filt))}</li>")
+        items.append(f"<li><strong>Marker filtering:</strong> {_e(filt)}</li>")
     if thresholds:
-        items.append(f"<li><strong>Flag thresholds:</strong> {_e(_plain(thresholds))}</li>")
+        items.append(f"<li><strong>Flag thresholds:</strong> {_e(thresholds)}</li>")
     items.append(f"<li><strong>Software version:</strong> {_e(version)}</li>")
     return '<div class="note" id="notes"><ul>' + "".join(items) + "</ul></div>"
 
@@ -712,7 +776,9 @@ def _flag_rows(flags: pd.DataFrame, *, with_athlete: bool, links: Mapping[str, s
             cells.append(f'<td><a href="{_e(href)}">{_e(name)}</a></td>' if href else _td(name))
         flag = str(rec.get("flag", ""))
         explanation = FLAG_EXPLANATIONS.get(flag, "")
-        cells += [_td(rec.get("session", "")), _td(rec.get("side", "")), _td(_muscle_label(str(rec.get("muscle", "")))),
+        muscle = rec.get("muscle")
+        cells += [_td(rec.get("session")), _td(rec.get("side")),
+                  _td(None if _missing(muscle) else _muscle_label(str(muscle))),
                   f'<td title="{_e(explanation)}">{_e(flag)}</td>',
                   _td(rec.get("value"), 2), _td(rec.get("threshold"), 2),
                   f'<td class="msg">{_e(rec.get("message", ""))}</td>']
@@ -1067,11 +1133,12 @@ def _write_pdf(path: Path, athlete: str, info: Mapping, sessions: Sequence[str],
         lines.append(("", "none"))
     else:
         for rec in flags.to_dict("records"):
-            head = (f"{rec.get('session', '')} · {rec.get('side', '')} · {_muscle_label(str(rec.get('muscle', '')))}"
-                    f" · {rec.get('flag', '')} (value {_fmt(rec.get('value'), 2)}, threshold "
-                    f"{_fmt(rec.get('threshold'), 2)})")
+            where = [_text(rec.get("session")), _text(rec.get("side")),
+                     "–" if _missing(rec.get("muscle")) else _muscle_label(str(rec.get("muscle")))]
+            head = (" · ".join(w for w in where if w != "–") + f" · {_text(rec.get('flag'))} (value "
+                    f"{_fmt(rec.get('value'), 2)}, threshold {_fmt(rec.get('threshold'), 2)})")
             lines += _wrap(head, style="b")
-            lines += _wrap(str(rec.get("message", "")))
+            lines += _wrap(_text(rec.get("message")))
     lines.append(("h", "Summary (mean ± SD over strides; L = left, R = right)"))
     summary_headers = ("session", "muscle", "strides L/R", "stretch L %", "stretch R %", "SI %", "LSI %",
                        "l/l_opt L", "l/l_opt R", "neg. work L J", "neg. work R J")
@@ -1081,9 +1148,7 @@ def _write_pdf(path: Path, athlete: str, info: Mapping, sessions: Sequence[str],
                                                "range 5-95 %"), uncertainty_text)]
     lines += _wrap("Every stride's values are in the HTML page of this athlete and in strides.csv.")
     lines.append(("h", "Notes"))
-    slack = _run_info_get(run_info, "tendon_slack_note", "tendon_slack", "tendon_slack_assumption",
-                          default="l/l_opt depends on the tendon slack length the model assumes.")
-    lines += _wrap(f"Tendon slack assumption: {slack}")
+    lines += _wrap(f"Tendon slack assumption: {_slack_note(run_info)}")
     lines += _wrap(f"Software version: {_run_info_get(run_info, 'software_version', 'version', default='unknown')}")
     lines.append(("h", "Terms used"))
     for term, text in GLOSSARY:
@@ -1274,14 +1339,20 @@ def _index_html(names: Sequence[str], links: Mapping[str, str], groups: Mapping[
                 flags: pd.DataFrame, summary: pd.DataFrame, athletes: pd.DataFrame, run_info: Mapping | None) -> str:
     latest = _latest_summary(summary)
     latest_groups = _by_athlete(latest)
-    thresholds = _run_info_get(run_info, "thresholds", "config_thresholds", default={}) or {}
+    thresholds = _thresholds(run_info)
     band = 10.0
-    if isinstance(thresholds, Mapping):
-        for key in ("side_asymmetry_pct", "asymmetry_pct", "side_asymmetry"):
-            if math.isfinite(_num(thresholds.get(key))):
-                band = _num(thresholds.get(key))
-                break
+    for key in ("side_asymmetry_pct", "asymmetry_pct", "side_asymmetry"):
+        if math.isfinite(_num(thresholds.get(key))):
+            band = _num(thresholds.get(key))
+            break
     points = _asymmetry_points(latest) if len(latest) else pd.DataFrame(columns=["athlete", "muscle", "peak", "si"])
+    flag_muscles = thresholds.get("muscles")
+    muscle_note = ""
+    if isinstance(flag_muscles, (list, tuple)) and flag_muscles and len(points):
+        # the muscles the stretch flags look at (the biarticular hamstrings by default)
+        points = points[points["muscle"].isin([str(m) for m in flag_muscles])]
+        muscle_note = "; muscles shown: " + ", ".join(_muscle_label(str(m)) for m in flag_muscles) + \
+                      " (those the stretch flags look at)"
     fig = _squad_figure(points, band)
     png = _raster(fig)
 
@@ -1310,8 +1381,13 @@ def _index_html(names: Sequence[str], links: Mapping[str, str], groups: Mapping[
         n_strides = _column(lat[lat["muscle"].astype(str) == "bflh"] if len(lat) else lat, "n_strides")
         n_text = "/".join(_fmt(_summary_value(lat[lat["muscle"].astype(str) == "bflh"], s, "n_strides"), 0)
                           for s in SIDES) if len(lat) else "–"
-        flag_names = sorted({str(f) for f in fl.get("flag", [])})
-        flagged = ' class="flagged"' if len(fl) else ""
+        latest_session = sessions[-1] if sessions else None
+        fl_latest = fl[fl["session"].astype(str) == latest_session] if len(fl) and "session" in fl.columns else fl
+        flag_names = sorted({str(f) for f in fl_latest.get("flag", [])})
+        flagged = ' class="flagged"' if len(fl_latest) else ""
+        flag_text = f"{len(fl_latest)}" + (f": {', '.join(flag_names)}" if flag_names else "")
+        if len(fl) > len(fl_latest):
+            flag_text += f" (all sessions: {len(fl)})"
         rows.append(
             f"<tr{flagged}>" + f'<td><a href="{_e(links[athlete])}">{_e(athlete)}</a></td>'
             + _td(len(sessions), 0, text=str(len(sessions))) + _td(sessions[-1] if sessions else "–")
@@ -1319,14 +1395,15 @@ def _index_html(names: Sequence[str], links: Mapping[str, str], groups: Mapping[
             + _td(speed, 2) + _td(np.nansum(n_strides) if len(n_strides) else math.nan, 0, text=n_text)
             + _td(left, 1) + _td(right, 1) + _td(si, 1) + _td(lsi, 0)
             + _td(abs(worst) if math.isfinite(worst) else math.nan, 1, text=worst_text)
-            + _td(len(fl), 0, text=f"{len(fl)}" + (f": {', '.join(flag_names)}" if flag_names else ""))
+            + f'<td class="msg" data-sort="{len(fl_latest)}">{_e(flag_text)}</td>'
             + "</tr>")
     headers = ("athlete", "sessions", "latest session", "injured side", "speed (m/s)", "BFlh strides L/R",
                "BFlh peak stretch L (%)", "BFlh peak stretch R (%)", "BFlh stretch SI (%)", "BFlh stretch LSI (%)",
                "largest |SI| (%) (muscle)", "flags")
     titles = (None, None, None, None, None, None, "mean over strides, latest session",
               "mean over strides, latest session", "(R − L) ÷ average × 100", "involved ÷ uninvolved × 100",
-              "largest left–right difference over all muscles", "number and kinds of flags")
+              "largest left–right difference over the muscles in the plot below",
+              "flags in the latest session: number and kinds")
     athletes_table = _table("athletes", headers, rows, titles=titles,
                             caption="Latest session of each athlete. BFlh (biceps femoris long head) is the "
                                     "hamstring most often strained in sprinting. Click a heading to sort.")
@@ -1346,8 +1423,8 @@ def _index_html(names: Sequence[str], links: Mapping[str, str], groups: Mapping[
         _flags_explained(),
         "<h2>Asymmetry vs peak stretch</h2>",
         f"<figure>{_img_tag(png, 'Squad plot of left-right asymmetry against peak stretch', 'fig-squad')}"
-        f"<figcaption>Each point is one muscle of one athlete (latest session). Right = more stretch; far from "
-        f"the zero line = left and right differ. The grey band marks a left–right difference within ±{band:g} % "
+        f"<figcaption>Each point is one muscle of one athlete (latest session){_e(muscle_note)}. "
+        f"Right = more stretch; far from the zero line = left and right differ. The grey band marks a left–right difference within ±{band:g} % "
         f"(a difference under 10 % is often suggested for return to sport). Each athlete is named once, beside "
         f"their most asymmetric muscle.</figcaption></figure>",
         "<h2>Trials not analysed</h2>", _failed_trials_html(run_info),
@@ -1529,9 +1606,9 @@ def render_timeline(out_dir: Path, timeline: pd.DataFrame, athlete: str, athlete
     dates = {}
     for s in sessions:
         d = tl.loc[tl["session"].astype(str) == s, "date"] if "date" in tl.columns else pd.Series(dtype=object)
-        d = d.dropna()
-        dates[s] = str(pd.Timestamp(d.iloc[0]).date()) if len(d) else (
-            _DATE_PREFIX.match(s).group(0) if _DATE_PREFIX.match(s) else s)
+        stamp = pd.to_datetime(d, errors="coerce").dropna()
+        match = _DATE_PREFIX.match(s)
+        dates[s] = str(stamp.iloc[0].date()) if len(stamp) else (match.group(0) if match else s)
     xlabels = [dates[s] + (f"\nday {days[s]:.0f}" if math.isfinite(days[s]) else "") for s in sessions]
     lsi_cols = [c for c in ("lsi_pct", "peak_strain_lsi_pct") if c in tl.columns][:1]
     if "negative_work_lsi_pct" in tl.columns:
