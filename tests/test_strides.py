@@ -98,3 +98,26 @@ def test_normalise_nan_column_falls_back_to_linear():
     assert out[0, 0] == pytest.approx(20.5) and out[0, 1] == pytest.approx(20.5)
     assert out[-1, 1] == pytest.approx(120.5)
     assert np.isnan(out[:, 1]).any() and np.isfinite(out[:, 0]).all()
+
+
+def test_late_swing_start_and_toe_off_pct_on_a_generated_sprint():
+    """Truth by construction (hamstride.synth): the same sprint generated at 250 Hz and at 5 kHz (same seed, same
+    gait); the 5 kHz knee curve gives the swing-phase peak knee flexion to 0.2 ms."""
+    from hamstride.synth import SprintSpec, simulate_sprint
+
+    _, _, coarse = simulate_sprint(SprintSpec(rate_hz=RATE, seed=4, noise_mm=0.0, n_gaps=0))
+    _, _, fine = simulate_sprint(SprintSpec(rate_hz=5000.0, seed=4, noise_mm=0.0, n_gaps=0))
+    sides = ("left", "right")
+    events = GaitEvents({s: coarse.foot_strikes_s[s] for s in sides}, {s: coarse.toe_offs_s[s] for s in sides},
+                        "markers")
+    knee = {s: coarse.angles[s]["knee_flexion"] for s in sides}
+    strides = cut_strides(events, RATE, coarse.time_s.size, knee)
+    assert len(strides) == sum(coarse.foot_strikes_s[s].size - 1 for s in sides)
+    for st in strides:
+        assert st.valid
+        in_swing = (fine.time_s > st.toe_off_s) & (fine.time_s < st.next_foot_strike_s)
+        t_peak = fine.time_s[in_swing][np.argmax(fine.angles[st.side]["knee_flexion"][in_swing])]
+        expected = 100 * (t_peak - st.foot_strike_s) / st.stride_time_s
+        assert st.late_swing_start_pct == pytest.approx(expected, abs=0.1)  # 0.1 % of a stride = 0.45 ms
+        # stance about 22 % of the stride in sprinting (Mann & Hagy 1980); the generator is built on it
+        assert 18 < st.toe_off_pct < 26
