@@ -105,8 +105,8 @@ def test_late_swing_start_and_toe_off_pct_on_a_generated_sprint():
     gait); the 5 kHz knee curve gives the swing-phase peak knee flexion to 0.2 ms."""
     from hamstride.synth import SprintSpec, simulate_sprint
 
-    _, _, coarse = simulate_sprint(SprintSpec(rate_hz=RATE, seed=4, noise_mm=0.0, n_gaps=0))
-    _, _, fine = simulate_sprint(SprintSpec(rate_hz=5000.0, seed=4, noise_mm=0.0, n_gaps=0))
+    _, _, coarse = simulate_sprint(SprintSpec(rate_hz=RATE, duration_s=1.4, seed=4, noise_mm=0.0, n_gaps=0))
+    _, _, fine = simulate_sprint(SprintSpec(rate_hz=5000.0, duration_s=1.4, seed=4, noise_mm=0.0, n_gaps=0))
     sides = ("left", "right")
     events = GaitEvents({s: coarse.foot_strikes_s[s] for s in sides}, {s: coarse.toe_offs_s[s] for s in sides},
                         "markers")
