@@ -319,6 +319,14 @@ def test_render_timeline_writes_png_html_csv_in_date_order(tmp_path):
     assert table["athlete"].iloc[0] == EVIL  # text kept as data, not altered (no leading formula character)
 
 
+def test_timeline_without_injury_date_or_involved_side(tmp_path):
+    table = _timeline_table("ZZ99").drop(columns=["days_since_injury"]).assign(lsi_pct=np.nan)
+    paths = render_timeline(tmp_path, table, "ZZ99", None, {"configuration": {}})
+    page = next(p for p in paths if p.suffix == ".html").read_text(encoding="utf-8")
+    assert "days since injury" not in page and html.escape(CAUTION) in page
+    assert next(p for p in paths if p.suffix == ".png").stat().st_size > 10_000
+
+
 # --- headless browser -----------------------------------------------------------------------------------------
 
 

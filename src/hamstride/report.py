@@ -1619,8 +1619,10 @@ def render_timeline(out_dir: Path, timeline: pd.DataFrame, athlete: str, athlete
     png = _raster(fig)
 
     png_path = _write_atomic(_inside(out_dir, out_dir / f"{stem}.png"), png.png)
-    ordered = tl.assign(_key=tl["session"].map(session_sort_key)).sort_values(
-        ["_key", "muscle", "side"], kind="stable").drop(columns="_key")
+    muscle_rank = {m: i for i, m in enumerate(muscles)}
+    ordered = tl.assign(_key=tl["session"].map(session_sort_key),
+                        _m=tl["muscle"].astype(str).map(muscle_rank)).sort_values(
+        ["_key", "_m", "side"], kind="stable").drop(columns=["_key", "_m"])
     csv_frame = ordered.copy()
     for col in csv_frame.columns:
         if csv_frame[col].dtype == object:
@@ -1632,15 +1634,18 @@ def render_timeline(out_dir: Path, timeline: pd.DataFrame, athlete: str, athlete
     rows = []
     for rec in ordered.to_dict("records"):
         s = str(rec.get("session", ""))
-        lsi = _num(rec.get(lsi_cols[0])) if lsi_cols else math.nan
+        lsi = [_num(rec.get(c)) for c in lsi_cols]
         rows.append("<tr>" + _td(s) + _td(dates.get(s, ""))
                     + (_td(days.get(s), 0) if has_injury else "")
                     + _td(_muscle_label(str(rec.get("muscle", "")))) + _td(rec.get("side", ""))
                     + _td(rec.get("speed_m_s"), 2) + _td(rec.get("peak_strain_pct_mean"), 1)
                     + _td(rec.get("peak_fibre_length_lopt_mean"), 2) + _td(rec.get("negative_work_j_mean"), 1)
-                    + _td(lsi, 0) + "</tr>")
+                    + "".join(_td(v, 0) for v in lsi) + "</tr>")
+    lsi_names = {"lsi_pct": "LSI (%)", "peak_strain_lsi_pct": "LSI stretch (%)",
+                 "negative_work_lsi_pct": "LSI negative work (%)"}
     headers = ["session", "date"] + (["days since injury"] if has_injury else []) + [
-        "muscle", "side", "speed (m/s)", "peak stretch (%)", "peak l/l_opt", "negative work (J)", "LSI (%)"]
+        "muscle", "side", "speed (m/s)", "peak stretch (%)", "peak l/l_opt", "negative work (J)"] + [
+        lsi_names[c] for c in lsi_cols]
     work_missing = not _has_values(tl, ("negative_work_j_mean",))
     body = [f"<h1>Timeline: athlete {_e(athlete)}</h1>",
             f"<p>{_e(_info_line(info))}</p>" if info else "",
