@@ -142,10 +142,13 @@ def _toe_name(heights: Mapping[str, np.ndarray]) -> str:
     return "toe_tip" if "toe_tip" in heights else "first_metatarsal"
 
 
-def _low_foot_mask(heights: Mapping[str, np.ndarray], rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
-    """Frames where the foot is near the floor, and the lowest landmark's height above its own floor level."""
-    rel = np.stack([z - np.percentile(z, FLOOR_PERCENTILE) for z in heights.values()])
-    lowest = rel.min(axis=0)
+def _heights_above_floor(heights: Mapping[str, np.ndarray]) -> np.ndarray:
+    """[landmark, F] height of each foot landmark above its own floor level (so marker heights above the sole cancel)."""
+    return np.stack([z - np.percentile(z, FLOOR_PERCENTILE) for z in heights.values()])
+
+
+def _low_foot_mask(lowest: np.ndarray, rate_hz: float) -> np.ndarray:
+    """Frames where the foot's lowest landmark is within LOW_FOOT_THRESHOLD_M of its floor level (contact runs)."""
     mask = lowest < LOW_FOOT_THRESHOLD_M
     # close short gaps, then drop short runs
     runs = _runs(~mask)
@@ -158,7 +161,7 @@ def _low_foot_mask(heights: Mapping[str, np.ndarray], rate_hz: float) -> tuple[n
     cut_by_trial_end = (runs[:, 0] == 0) | (runs[:, 1] == mask.size)  # a contact cut short by the recording
     for s, e in runs[short & ~cut_by_trial_end]:
         mask[s:e] = False
-    return mask, lowest
+    return mask
 
 
 # --------------------------------------------------------------------------------------------
@@ -238,8 +241,9 @@ def _detect_side(
     heights: Mapping[str, np.ndarray], rate_hz: float, knee_flexion: np.ndarray | None
 ) -> tuple[_SideEvents, np.ndarray]:
     n = next(iter(heights.values())).size
-    mask, lowest = _low_foot_mask(heights, rate_hz)
-    rel = np.stack([z - np.percentile(z, FLOOR_PERCENTILE) for z in heights.values()])
+    rel = _heights_above_floor(heights)
+    lowest = rel.min(axis=0)
+    mask = _low_foot_mask(lowest, rate_hz)
     vz = np.stack([_derivative(z, 1, rate_hz) for z in heights.values()])
     contacts = _runs(mask)
     acc = {m: _derivative(heights[m], 2, rate_hz) for m in STRIKE_MARKERS}
@@ -270,6 +274,8 @@ def _detect_side(
                 a = max(int(np.floor(impact)) - refine_before, 0)
                 b = min(int(np.ceil(impact)) + refine_after, n)
                 arrival = _floor_arrival(lowest, a, b)
+                if arrival == a:  # already on the floor at the window start: find where it got there
+                    arrival = _floor_arrival(lowest, max(start - 1, 0), b)
                 arrest = _descent_arrest(vz, rel, int(round(impact)), a, b, before_fs)
                 found = [t for t in (arrival, arrest) if t is not None]
                 fs = min(found) if found else None
