@@ -22,6 +22,7 @@ MUSCLES = ("bflh", "st", "sm", "bfsh")
 SIDES = ("left", "right")
 EVIL = "<script>alert(1)</script>"
 TRAVERSAL = "../../outside"
+HOSTILE = TRAVERSAL + EVIL  # one invented athlete folder name that tries both path traversal and markup
 
 
 def _tables(athletes=("ZZ99",), sessions=("2026-03-02_week0", "2026-01-15_pre"), n_strides=3, no_mass=()):
@@ -110,7 +111,7 @@ RUN_INFO = {"software_version": "0.1.0-test", "tendon_slack_note": "tendon slack
 def squad(tmp_path_factory):
     root = tmp_path_factory.mktemp("squad")
     out = root / "out"
-    tables = _tables(athletes=("ZZ99", EVIL, TRAVERSAL), no_mass=(TRAVERSAL,))
+    tables = _tables(athletes=("ZZ99", HOSTILE), no_mass=(HOSTILE,))
     start = time.process_time()  # CPU time: the wall clock on a shared CI machine says little
     paths = render_squad(out, *tables, dict(RUN_INFO))
     elapsed = time.process_time() - start
@@ -152,8 +153,8 @@ def test_render_squad_writes_every_file_inside_out_dir(squad):
     root, out, paths, _ = squad
     assert [p.name for p in root.iterdir()] == ["out"]  # nothing escaped the output folder
     assert out / "index.html" in paths
-    assert len([p for p in paths if p.suffix == ".pdf"]) == 3
-    assert len([p for p in paths if p.suffix == ".html"]) == 4
+    assert len([p for p in paths if p.suffix == ".pdf"]) == 2
+    assert len([p for p in paths if p.suffix == ".html"]) == 3
     for p in paths:
         assert p.exists() and p.stat().st_size > 0
         assert p.resolve().is_relative_to(out.resolve())
@@ -173,7 +174,7 @@ def test_names_from_data_are_escaped_everywhere(squad):
         assert text.count("<script") == 1  # only our own inline script
         assert "<b>bad</b>" not in text
     index = (out / "index.html").read_text(encoding="utf-8")
-    assert html.escape(EVIL) in index
+    assert html.escape(HOSTILE) in index
     assert "&lt;b&gt;bad&lt;/b&gt;.c3d" in index and "no heel marker" in index
 
 
@@ -192,7 +193,7 @@ def test_links_from_index_reach_athlete_pages(squad):
     _, out, _, _ = squad
     index = (out / "index.html").read_text(encoding="utf-8")
     links = re.findall(r'href="(athletes/[^"]+\.html)"', index)
-    assert len(set(links)) == 3
+    assert len(set(links)) == 2
     for link in links:
         assert (out / html.unescape(link)).exists()
 
@@ -222,7 +223,7 @@ def test_missing_values_show_as_dashes_not_nan(squad):
 
 def test_missing_body_mass_is_explained(squad):
     _, out, _, _ = squad
-    page = (out / "athletes" / f"{safe_component(TRAVERSAL)}.html").read_text(encoding="utf-8")
+    page = (out / "athletes" / f"{safe_component(HOSTILE)}.html").read_text(encoding="utf-8")
     assert html.escape(report.BODY_MASS_MISSING) in page
     assert 'id="fig-force"' not in page
     ok = (out / "athletes" / "ZZ99.html").read_text(encoding="utf-8")
@@ -246,7 +247,7 @@ def test_pdf_has_caution_text_page_and_plots(squad):
 def test_render_time_within_budget(squad):
     *_, elapsed = squad
     # target <= 1 s per athlete (issue 8); the bound is 3x that so a slow CI machine does not fail spuriously.
-    assert elapsed / 3 < 3.0
+    assert elapsed / 2 < 3.0
 
 
 @pytest.mark.slow
