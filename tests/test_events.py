@@ -323,3 +323,20 @@ def test_min_strides_is_enforced_per_leg():
     with pytest.raises(EventError, match="at least 5 needed per leg") as info:
         detect_events(lm, min_strides=5)
     assert info.value.code == "few_strides"
+
+
+def test_event_inside_a_long_marker_gap_is_not_used():
+    lm, truth_fs, _ = _rigid_foot_run(250.0, 2.0, 0.44, 0.11, 9.0, noise_mm=0.5, seed=4)
+    lm, _ = smooth_landmarks(lm, cutoff_hz=20.0)
+    target = truth_fs["right"][2]  # 0.88 s
+    points = dict(lm.points)
+    toe = points["right_toe_tip"].copy()
+    gap = slice(int(target * 250) - 15, int(target * 250) + 15)  # 30 frames: longer than gap filling bridges
+    toe[gap] = np.nan
+    points["right_toe_tip"] = toe
+    events = detect_events(Landmarks(trial="gap", rate_hz=250.0, points=points))
+    assert np.min(np.abs(events.foot_strikes_s["right"] - target)) > 0.1
+    assert any("right" in w and "missing" in w and f"{target:.2f} s" in w for w in events.warnings)
+    strides = cut_strides(events, 250.0, lm.n_frames, None)
+    spanning = [st for st in strides if st.side == "right" and st.foot_strike_s < target < st.next_foot_strike_s]
+    assert len(spanning) == 1 and not spanning[0].valid and "stride time" in spanning[0].reason

@@ -51,6 +51,7 @@ TOE_OFF_SEARCH_S = (0.07, 0.05)  # search window around the end of the low run (
 RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
 EDGE_PEAK_FRACTION = 0.5        # a toe-off next to a trial end needs half the median jerk peak of the others
 C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2 frames apart
+GAP_GUARD_S = 0.02              # events this close to missing foot-marker data are not trusted (design choice)
 MISSING_EVENT_S = 0.03          # a marker event this far from every C3D event means the file lacks one
 TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which the trial is on a treadmill (common practice)
 
@@ -136,6 +137,30 @@ def _foot_heights(lm: "Landmarks", side: str) -> dict[str, np.ndarray]:
             trial=getattr(lm, "trial", None),
         )
     return {m: _fill_nan(np.asarray(points[f"{side}_{m}"], float)[:, 2]) for m in FOOT_MARKERS if f"{side}_{m}" in points}
+
+
+def _missing_foot_frames(lm: "Landmarks", side: str) -> np.ndarray:
+    """Frames where any of the side's foot landmarks is missing (NaN)."""
+    names = [f"{side}_{m}" for m in FOOT_MARKERS if f"{side}_{m}" in lm.points]
+    return np.any([~np.isfinite(np.asarray(lm.points[m], float)).all(axis=1) for m in names], axis=0)
+
+
+def _drop_events_in_gaps(events: "_SideEvents", missing: np.ndarray, rate_hz: float) -> tuple["_SideEvents", list]:
+    """Remove events within GAP_GUARD_S of a frame with missing foot markers (interpolated data, not seen)."""
+    if not missing.any():
+        return events, []
+    guard = int(np.ceil(GAP_GUARD_S * rate_hz))
+    near_gap = np.convolve(missing.astype(float), np.ones(2 * guard + 1), mode="same") > 0
+    frames = np.arange(missing.size)
+
+    def bad(x):
+        return np.interp(x, frames, near_gap.astype(float)) > 0 if x.size else np.zeros(0, bool)
+
+    bad_fs, bad_to = bad(events.strikes), bad(events.toe_offs)
+    dropped = sorted(np.concatenate([events.strikes[bad_fs], events.toe_offs[bad_to]]) / rate_hz)
+    kept = _SideEvents(events.strikes[~bad_fs], events.toe_offs[~bad_to], events.strikes_fallback[~bad_fs],
+                       events.toe_offs_fallback[~bad_to], events.n_fallback_used)
+    return kept, dropped
 
 
 def _toe_name(heights: Mapping[str, np.ndarray]) -> str:
@@ -551,6 +576,12 @@ def detect_events(
     try:
         for side in SIDES:
             side_events, _ = _detect_side(_foot_heights(lm, side), rate, knee_flexion.get(side))
+            side_events, dropped = _drop_events_in_gaps(side_events, _missing_foot_frames(lm, side), rate)
+            if dropped:
+                warnings.append(
+                    f"{side}: event(s) near {', '.join(f'{t:.2f} s' for t in dropped)} not used: foot markers "
+                    "missing there (gap too long to fill); the strides around them are left out"
+                )
             marker_fs[side] = side_events.strikes / rate
             marker_to[side] = side_events.toe_offs / rate
             fallback_fs[side] = side_events.strikes_fallback / rate
