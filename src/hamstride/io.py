@@ -111,6 +111,7 @@ class C3DLayout:
 
 _C3D_TYPE_SIZES = {-1: 1, 1: 1, 2: 2, 4: 4}  # c3d.org: parameter data types char, byte, int16, float
 _MAX_PARAMETERS = 20000
+_MAX_HEADER_BYTES = 512 * (255 + 255)  # parameter section: starts at block <= 255, at most 255 blocks long
 # Parameters that hold one number in any C3D (c3d.org); an empty one means the section is corrupt.
 _SCALAR_PARAMETERS = frozenset({"USED", "RATE", "DATA_START", "FRAMES", "GEN_SCALE", "RATIO", "SCALE"})  # far above any real file (common practice: a few hundred)
 
@@ -243,10 +244,11 @@ def check_c3d_header(path: str | Path) -> C3DLayout:
     path = Path(path)
     name = path.name
     try:
-        data = path.read_bytes()
+        with open(path, "rb") as fh:
+            size = os.fstat(fh.fileno()).st_size
+            data = fh.read(_MAX_HEADER_BYTES)  # header + the largest possible parameter section, never the data
     except OSError as exc:
         raise FileFormatError(f"cannot open the file ({exc.strerror})", trial=name, code="unreadable") from None
-    size = len(data)
     if size == 0:
         raise FileFormatError("the file is empty (0 bytes); re-export it from the capture software", trial=name,
                               code="empty_file")
