@@ -497,3 +497,22 @@ def test_strict_option_fails_trials_with_warnings(corpus, tmp_path):
     loose_manifest = json.loads((tmp_path / "loose" / "manifest.json").read_text())
     codes = {Path(r["file"]).stem: r.get("warning_codes") for r in loose_manifest["inputs"]}
     assert "duplicate_labels" in codes["duplicate_other_label"] and "empty_frames" in codes["frames_all_missing"]
+
+
+@pytest.mark.parametrize("variant", [dict(vertical_axis="y", travel_sign=-1), dict(treadmill=True),
+                                     dict(treadmill=True, vertical_axis="y", travel_sign=-1, units="m")])
+def test_side_check_holds_in_every_lab_convention(variant, tmp_path):
+    """Y-up labs, runs in the file's -x direction, treadmills, metres: correct labels pass the side check, swapped
+    labels are caught (the check works in the internal lab frame, x along travel, y to the left)."""
+    from hamstride.pipeline import trial_kinematics
+
+    spec = SprintSpec(duration_s=1.2, **variant)
+    labels, xyz, _ = simulate_sprint(spec)
+    swapped = ["l" + lab[1:] if lab.startswith("r.") else "r" + lab[1:] if lab.startswith("l.") else lab
+               for lab in labels]
+    ok = write_c3d(tmp_path / "ok.c3d", labels, xyz, spec.rate_hz, units=spec.units)
+    bad = write_c3d(tmp_path / "swapped.c3d", swapped, xyz, spec.rate_hz, units=spec.units)
+    assert "sides_swapped" not in trial_kinematics(ok, FAST).warning_codes
+    with pytest.raises(HamstrideError) as info:
+        trial_kinematics(bad, FAST)
+    assert info.value.code == "sides_swapped"
