@@ -108,11 +108,17 @@ def muscles_cmd(
     frame = muscle_table(hip_flexion, knee_flexion, dims)
     table = Table(title=f"hamstring model at hip flexion {hip_flexion:g} deg, knee flexion {knee_flexion:g} deg, "
                         f"height {height:g} m")
+    headers = {"muscle": "muscle", "length_m": "length\nm", "strain_pct": "strain\n%",
+               "fibre_length_lopt": "fibre\nl/l_opt", "tendon_slack_length_m": "tendon\nslack m",
+               "hip_flexion_arm_mm": "hip flex\narm mm", "hip_adduction_arm_mm": "hip add\narm mm",
+               "hip_rotation_arm_mm": "hip rot\narm mm", "knee_flexion_arm_mm": "knee flex\narm mm"}
     for col in frame.columns:
-        table.add_column(str(col))
+        table.add_column(headers.get(str(col), str(col)), justify="left" if col == "muscle" else "right")
     for _, row in frame.iterrows():
-        table.add_row(*[f"{v:.4g}" if isinstance(v, float) else str(v) for v in row])
+        table.add_row(*[f"{v:.3g}" if isinstance(v, float) else str(v) for v in row])
     console.print(table)
+    console.print("Moment arms by tendon excursion, r = -dL/dtheta: negative at the hip = extensor, positive at the "
+                  "knee = flexor. Strain is relative to standing upright (hip 0, knee 0 deg).")
     if plot is not None:
         console.print(f"wrote {plot_moment_arms(plot, dims)}")
 
