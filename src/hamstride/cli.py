@@ -109,7 +109,7 @@ def muscles_cmd(
     table = Table(title=f"hamstring model at hip flexion {hip_flexion:g} deg, knee flexion {knee_flexion:g} deg, "
                         f"height {height:g} m")
     headers = {"muscle": "muscle", "length_m": "length\nm", "strain_pct": "strain\n%",
-               "fibre_length_lopt": "fibre\nl/l_opt", "tendon_slack_length_m": "tendon\nslack m",
+               "fibre_length_lopt": "fibre\nl/lopt", "tendon_slack_length_m": "tendon\nslack m",
                "hip_flexion_arm_mm": "hip flex\narm mm", "hip_adduction_arm_mm": "hip add\narm mm",
                "hip_rotation_arm_mm": "hip rot\narm mm", "knee_flexion_arm_mm": "knee flex\narm mm"}
     for col in frame.columns:
