@@ -4,7 +4,8 @@ While the foot is off the ground no external force acts on the leg but gravity, 
 from the leg's own motion (Newton-Euler from the foot up; Winter 2009, Biomechanics and Motor Control of Human
 Movement, ch. 5, in its 3D form). Segment masses and inertias come from de Leva 1996 (J Biomech 29:1223, Table 4).
 The sagittal hip and knee moments are shared among the muscles by static optimisation, minimising the sum of
-squared activations (Crowninshield & Brand 1981, J Biomech 14:793). Power and work follow the sign conventions of
+squared activations (Crowninshield & Brand 1981, J Biomech 14:793) plus a heavily weighted residual moment, one
+strictly convex problem whose solution is unique and continuous whether or not the muscles can meet the moments. Power and work follow the sign conventions of
 DEVELOPERS.md: power delivered by a muscle = -F*v (v = dL/dt, lengthening positive); negative work = the energy a
 muscle absorbs while it lengthens under force, reported as a positive number of joules.
 
@@ -360,7 +361,9 @@ def _solve_dual(a_mat, b, lam, reserve, max_iter, tol, scale):
     for _ in range(max_iter):
         s = np.einsum("fjm,fj->fm", a_mat, lam)
         grad = b - np.einsum("fjm,fm->fj", a_mat, np.clip(s, 0.0, 1.0)) - reserve[:, None] * lam
-        todo = np.abs(grad).max(axis=1) > tol
+        # rounding floor: s = A^T lam loses about 1e-16 |A| |lam| when lam is large (frames far beyond capacity)
+        floor = 1e-13 * np.abs(lam).max(axis=1) * np.abs(a_mat).max(axis=(1, 2))
+        todo = np.abs(grad).max(axis=1) > tol + floor
         if not todo.any():
             break
         free = ((s > 0) & (s < 1)).astype(float)
