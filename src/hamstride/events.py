@@ -292,9 +292,11 @@ def _detect_side(
             fb = _strike_fallback(lowest, lowest_vz, lo, hi)
             impact = _strike_primary(acc, lo, hi)
             if impact is None:
-                # no acceleration peak (e.g. the trial ends during the landing): floor arrival, then Fellin
+                # no acceleration peak: floor arrival, then Fellin. Expected when the recording ends during the
+                # landing (no room for the peak), so only counted as a fallback inside the trial.
                 fs = _floor_arrival(lowest, lo, hi)
-                fs, n_fallback = (fb if fs is None else fs), n_fallback + 1
+                fs = fb if fs is None else fs
+                n_fallback += int(end < n and start + after_fs < n)
             else:
                 a = max(int(np.floor(impact)) - refine_before, 0)
                 b = min(int(np.ceil(impact)) + refine_after, n)
