@@ -5,9 +5,10 @@ from the leg's own motion (Newton-Euler from the foot up; Winter 2009, Biomechan
 Movement, ch. 5, in its 3D form). Segment masses and inertias come from de Leva 1996 (J Biomech 29:1223, Table 4).
 The sagittal hip and knee moments are shared among the muscles by static optimisation, minimising the sum of
 squared activations (Crowninshield & Brand 1981, J Biomech 14:793) plus a heavily weighted residual moment, one
-strictly convex problem whose solution is unique and continuous whether or not the muscles can meet the moments. Power and work follow the sign conventions of
-DEVELOPERS.md: power delivered by a muscle = -F*v (v = dL/dt, lengthening positive); negative work = the energy a
-muscle absorbs while it lengthens under force, reported as a positive number of joules.
+strictly convex problem whose solution is unique and continuous whether or not the muscles can meet the moments.
+Power and work follow the sign conventions of DEVELOPERS.md: power delivered by a muscle = -F*v (v = dL/dt,
+lengthening positive); negative work = the energy a muscle absorbs while it lengthens under force, reported as a
+positive number of joules.
 
 Everything is vectorised over frames; moments are NaN outside the swing phases.
 """
@@ -378,14 +379,15 @@ def _solve_dual(a_mat, b, lam, reserve, max_iter, tol, scale):
 
 #: Weight w of the capacity-normalised moment residual against the activations in the sharing problem (see
 #: ``share_forces``). Assumption, no source: large, so that frames inside the muscles' capacity reproduce the moments
-#: to about 1e-10 of the joint capacity (the minimum-activation solution of Crowninshield & Brand), while the dual
-#: stays strongly concave and converges on every frame. A smaller w (e.g. 100) would round off the steep approach
-#: to the capacity limit, but the residual on reachable frames near the limit grows to several per cent; on the
-#: demo squad it changed the side-to-side work differences by a few per cent only.
+#: to about 1e-10 of the total capacity S (the minimum-activation solution of Crowninshield & Brand), while the dual
+#: stays strongly concave and converges on every frame. A smaller w (e.g. 100) rounds off the steep approach to the
+#: capacity limit (a muscle going from part to full activation within one frame) at the cost of residuals of
+#: several per cent on reachable frames near the limit.
 RESIDUAL_WEIGHT = 1e11
 
 #: A frame's moments count as met when both sagittal residuals are within this fraction of the total muscle
-#: capacity S (sum over hip and knee of |moment arm| x capacity of every muscle): about 0.1 N m for 1000 N m. Assumption (common practice: a reserve moment negligible against the net moment).
+#: capacity S (sum over hip and knee of |moment arm| x capacity of every muscle): about 0.1 N m for 1000 N m.
+#: Assumption (common practice: a reserve moment negligible against the net moment).
 MOMENT_TOLERANCE = 1e-4
 
 
