@@ -480,7 +480,7 @@ def _label_window(ax, starts: Mapping[str, float], toe_off: float) -> None:
         ax.text(toe_off + 1.0, 0.97, "toe-off", transform=trans, ha="left", va="top", fontsize=7, color="#333333")
 
 
-RASTER_DPI = 150  # one raster serves the HTML page (shown at 100 px per inch) and the PDF page (150 ppi print)
+RASTER_DPI = 120  # one raster serves the HTML page (shown at 100 px per inch) and the PDF page (~125 ppi on A4)
 
 
 class _Raster:
@@ -502,7 +502,7 @@ def _raster(fig, dpi: int = RASTER_DPI) -> _Raster:
     canvas.draw()
     rgb = np.asarray(canvas.buffer_rgba())[..., :3].copy()
     buffer = io.BytesIO()
-    Image.fromarray(rgb).save(buffer, format="PNG", compress_level=3)
+    Image.fromarray(rgb).save(buffer, format="PNG", compress_level=1)
     width, height = fig.get_size_inches()
     return _Raster(buffer.getvalue(), rgb, (float(width), float(height)))
 
