@@ -190,7 +190,8 @@ def _rigid_foot_run(rate: float, duration: float, stride: float, contact: float,
         k = np.floor(t / stride - phase)
         tau = (t / stride - phase - k) * stride  # time since this leg's foot strike
         flat_x = step_length * (k + phase)  # heel position while the foot is flat
-        pitch_st = land_pitch * (1 - ramp(tau / (0.3 * contact))) + push_pitch * ramp((tau - 0.5 * contact) / (0.5 * contact))
+        pitch_st = (land_pitch * (1 - ramp(tau / (0.3 * contact)))
+                    + push_pitch * ramp((tau - 0.5 * contact) / (0.5 * contact)))
         on_heel = pitch_st >= 0
         heel_x_st = np.where(on_heel, flat_x, heel_from_toe(flat_x + sole, pitch_st)[0])
         heel_z_st = np.where(on_heel, 0.0, heel_from_toe(flat_x + sole, pitch_st)[1])

@@ -46,14 +46,14 @@ DERIVATIVE_WINDOW_S = 0.028     # Savitzky-Golay window for acceleration / jerk 
 STRIKE_SEARCH_S = (0.03, 0.06)  # search window around the start of the low run (before, after)
 STRIKE_REFINE_S = (0.01, 0.03)  # floor-arrival search around the acceleration peak (before, after)
 DESCENT_ARREST_FRACTION = 0.25  # descent "arrested" at a quarter of the approach speed (design choice, no source)
-FLOOR_TOLERANCE_M = 0.005       # "on the floor" within 5 mm of the floor level: 10x a 0.5 mm marker noise (design choice)
+FLOOR_TOLERANCE_M = 0.005       # "on the floor" within 5 mm of its floor level: 10x a 0.5 mm noise (design choice)
 TOE_OFF_SEARCH_S = (0.07, 0.05)  # search window around the end of the low run (before, after)
 RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
 EDGE_PEAK_FRACTION = 0.5        # a toe-off next to a trial end needs half the median jerk peak of the others
 C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2 frames apart
 GAP_GUARD_S = 0.02              # events this close to missing foot-marker data are not trusted (design choice)
 MISSING_EVENT_S = 0.03          # a marker event this far from every C3D event means the file lacks one
-TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which the trial is on a treadmill (common practice)
+TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which it is a treadmill trial (common practice)
 
 
 @dataclass(frozen=True)
@@ -136,7 +136,8 @@ def _foot_heights(lm: "Landmarks", side: str) -> dict[str, np.ndarray]:
             "need the heel and first-metatarsal markers. Check the marker map.",
             trial=getattr(lm, "trial", None),
         )
-    return {m: _fill_nan(np.asarray(points[f"{side}_{m}"], float)[:, 2]) for m in FOOT_MARKERS if f"{side}_{m}" in points}
+    return {m: _fill_nan(np.asarray(points[f"{side}_{m}"], float)[:, 2])
+            for m in FOOT_MARKERS if f"{side}_{m}" in points}
 
 
 def _missing_foot_frames(lm: "Landmarks", side: str) -> np.ndarray:
@@ -168,7 +169,7 @@ def _toe_name(heights: Mapping[str, np.ndarray]) -> str:
 
 
 def _heights_above_floor(heights: Mapping[str, np.ndarray]) -> np.ndarray:
-    """[landmark, F] height of each foot landmark above its own floor level (so marker heights above the sole cancel)."""
+    """[landmark, F] height of each foot landmark above its own floor level (marker heights above the sole cancel)."""
     return np.stack([z - np.percentile(z, FLOOR_PERCENTILE) for z in heights.values()])
 
 
@@ -414,9 +415,10 @@ def running_speed(lm: "Landmarks", events: GaitEvents, treadmill: bool) -> float
             t0, t1 = max(spans, key=lambda s: s[1] - s[0])
         else:
             t0, t1 = 0.0, (pelvis.shape[0] - 1) / rate
-        frames = np.arange(pelvis.shape[0]) / rate
-        p0 = np.array([np.interp(t0, frames[np.isfinite(pelvis[:, k])], pelvis[np.isfinite(pelvis[:, k]), k]) for k in range(2)])
-        p1 = np.array([np.interp(t1, frames[np.isfinite(pelvis[:, k])], pelvis[np.isfinite(pelvis[:, k]), k]) for k in range(2)])
+        times = np.arange(pelvis.shape[0]) / rate
+        ok = np.isfinite(pelvis[:, :2]).all(axis=1)
+        p0 = np.array([np.interp(t0, times[ok], pelvis[ok, k]) for k in range(2)])
+        p1 = np.array([np.interp(t1, times[ok], pelvis[ok, k]) for k in range(2)])
         return float(np.linalg.norm(p1 - p0) / max(t1 - t0, 1e-9))
     speeds = []
     for side in SIDES:
