@@ -13,6 +13,8 @@ def test_symmetry_index_formula():
     assert symmetry_index(110.0, 90.0) == pytest.approx(20.0)
     assert symmetry_index(9.0, 9.0) == 0.0
     assert np.isnan(symmetry_index(0.0, 0.0))
+    assert np.isnan(symmetry_index(-3.0, -4.0))  # negative strains (short head shortening): no meaningful ratio
+    assert np.isnan(limb_symmetry_index(-5.8, -4.0))
     # LSI = involved / uninvolved x 100; 90 % is the usual line (MSSE 2019;51:1091)
     assert limb_symmetry_index(8.1, 9.0) == pytest.approx(90.0)
 
@@ -96,3 +98,16 @@ def test_high_stretch_against_squad_distribution_and_fixed_limit():
     assert all("squad mean" in m for m in high["message"])
     fixed = compute_flags(summary, None, FlagConfig(high_stretch_limit_lopt=1.1))
     assert "configured limit" in fixed[fixed["flag"] == "high_stretch"]["message"].iloc[0]
+
+
+def test_work_asymmetry_message_says_when_forces_are_capacity_limited():
+    strides = _strides(6.5, 9.0, 0.4)
+    strides["late_swing_moments_met_pct"] = 30.0
+    flags = compute_flags(summarise(strides), None)
+    work = flags[(flags["flag"] == "side_asymmetry") & flags["message"].str.contains("negative")]
+    stretch = flags[(flags["flag"] == "side_asymmetry") & flags["message"].str.contains("strain")]
+    assert len(work) == 3 and all("only 30% of late-swing" in m for m in work["message"])
+    assert len(stretch) == 3 and not any("late-swing frames" in m for m in stretch["message"])
+    strides["late_swing_moments_met_pct"] = 90.0
+    flags = compute_flags(summarise(strides), None)
+    assert not flags["message"].str.contains("late-swing frames").any()

@@ -50,16 +50,20 @@ class FlagConfig:
 
 
 def symmetry_index(right: float, left: float) -> float:
-    """SI = (R - L) / (0.5 (R + L)) x 100 (Robinson et al. 1987, from memory); NaN when undefined."""
-    denom = 0.5 * (right + left)
-    if not np.isfinite(denom) or denom == 0:
+    """SI = (R - L) / (0.5 (R + L)) x 100 (Robinson et al. 1987, from memory).
+
+    Defined for positive quantities only (a ratio of negative strains, e.g. the short head shortening in late swing,
+    means nothing); NaN otherwise.
+    """
+    if not (np.isfinite(right) and np.isfinite(left)) or right <= 0 or left <= 0:
         return float("nan")
+    denom = 0.5 * (right + left)
     return float((right - left) / denom * 100.0)
 
 
 def limb_symmetry_index(involved: float, uninvolved: float) -> float:
-    """LSI = involved / uninvolved x 100 %."""
-    if not np.isfinite(uninvolved) or uninvolved == 0 or not np.isfinite(involved):
+    """LSI = involved / uninvolved x 100 %; defined for positive quantities only (NaN otherwise)."""
+    if not (np.isfinite(uninvolved) and np.isfinite(involved)) or uninvolved <= 0 or involved <= 0:
         return float("nan")
     return float(involved / uninvolved * 100.0)
 
@@ -96,6 +100,8 @@ def summarise(strides: pd.DataFrame, athletes: pd.DataFrame | None = None) -> pd
             row[f"{metric}_mean"] = mean
             row[f"{metric}_sd"] = sd
             row[f"{metric}_cv_pct"] = _cv(sd, mean)
+        row["late_swing_moments_met_pct_mean"] = float(group["late_swing_moments_met_pct"].mean()) \
+            if "late_swing_moments_met_pct" in group else float("nan")
         for band in ("peak_strain_p5_pct", "peak_strain_p95_pct", "peak_fibre_length_lopt_p5",
                      "peak_fibre_length_lopt_p95"):
             row[f"{band}_mean"] = float(group[band].mean()) if band in group else float("nan")
@@ -134,6 +140,20 @@ def _real_difference(a: pd.Series, b: pd.Series, z: float) -> tuple[bool, float]
     se = math.sqrt(sa * sa / na + sb * sb / nb)
     diff = abs(a["mean"] - b["mean"])
     return bool(diff > z * se), se
+
+
+def _capacity_note(metric: str, right, left) -> str:
+    """For work-based flags: say when the muscle model could not reproduce most late-swing joint moments."""
+    if metric != "negative_work_j":
+        return ""
+    values = [v for v in (right.get("late_swing_moments_met_pct_mean", np.nan),
+                          left.get("late_swing_moments_met_pct_mean", np.nan)) if np.isfinite(v)]
+    if not values or np.mean(values) >= 50.0:
+        return ""
+    met = float(np.mean(values))
+    return (f" Note: the modelled muscles could reproduce the net joint moments in only {met:.0f}% of late-swing "
+            "frames, so forces there sit at the model's capacity and small timing differences change the work; "
+            "treat this work difference as indicative and look at the stretch results too.")
 
 
 def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: FlagConfig = FlagConfig()
@@ -191,7 +211,7 @@ def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: 
                     f"{mname}: {what} differs between legs by {abs(si):.0f}% (symmetry index; right "
                     f"{r['mean']:.3g} vs left {l_['mean']:.3g}), lower on the {lower} side. Even allowing for "
                     f"stride-to-stride variation (one-sided 95% bound {lower_bound:.0f}%) it is beyond the "
-                    f"{config.asymmetry_pct:.0f}% line.")
+                    f"{config.asymmetry_pct:.0f}% line." + _capacity_note(metric, right, left))
         side = involved.get(str(athlete), "none")
         if side in ("left", "right"):
             other = "left" if side == "right" else "right"

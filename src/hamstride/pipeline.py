@@ -22,6 +22,7 @@ STRIDE_COLUMNS = [
     "peak_knee_flexion_deg", "peak_strain_pct", "peak_strain_time_pct", "peak_strain_p5_pct", "peak_strain_p95_pct",
     "peak_fibre_length_lopt", "peak_fibre_length_lopt_p5", "peak_fibre_length_lopt_p95",
     "peak_lengthening_velocity_lopt_per_s", "peak_force_n", "negative_work_j", "positive_work_j",
+    "late_swing_moments_met_pct",
 ]
 CURVE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "pct", "hip_flexion_deg", "hip_adduction_deg",
@@ -202,6 +203,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
         hip_moment = np.full(n_frames, np.nan)
         knee_moment = np.full(n_frames, np.nan)
+        unmet = np.zeros(n_frames, dtype=bool)
         if body_mass:
             swing = np.zeros(n_frames, dtype=bool)
             for s in side_strides:
@@ -230,13 +232,15 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             swing_lo = min(max(int(np.ceil(s.toe_off_s * rate)), start), stop)
             hip_deg = _deg(a["hip_flexion"])
             knee_deg = _deg(a["knee_flexion"])
+            met_pct = float(100.0 * np.mean(~unmet[late:stop + 1])) if body_mass else np.nan
             base = {"athlete": athlete.athlete, "session": athlete.session, "trial": trial.name, "side": side,
                     "stride": s.index + 1, "foot_strike_s": s.foot_strike_s, "toe_off_s": s.toe_off_s,
                     "next_foot_strike_s": s.next_foot_strike_s, "stride_time_s": s.stride_time_s,
                     "toe_off_pct": s.toe_off_pct, "late_swing_start_pct": s.late_swing_start_pct,
                     "speed_m_s": speed,
                     "peak_hip_flexion_deg": float(np.nanmax(hip_deg[start:stop + 1])),
-                    "peak_knee_flexion_deg": float(np.nanmax(knee_deg[swing_lo:stop + 1]))}
+                    "peak_knee_flexion_deg": float(np.nanmax(knee_deg[swing_lo:stop + 1])),
+                    "late_swing_moments_met_pct": met_pct}
             norm_angles = normalise(np.column_stack([hip_deg, _deg(a["hip_adduction"]), knee_deg, hip_moment,
                                                      knee_moment]), s, rate)
             for m in MUSCLES:
