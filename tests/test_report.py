@@ -8,7 +8,6 @@ import html
 import re
 import shutil
 import subprocess
-import time
 from pathlib import Path
 
 import numpy as np
@@ -112,10 +111,8 @@ def squad(tmp_path_factory):
     root = tmp_path_factory.mktemp("squad")
     out = root / "out"
     tables = _tables(athletes=("ZZ99", HOSTILE), no_mass=(HOSTILE,))
-    start = time.process_time()  # CPU time: the wall clock on a shared CI machine says little
     paths = render_squad(out, *tables, dict(RUN_INFO))
-    elapsed = time.process_time() - start
-    return root, out, paths, elapsed
+    return root, out, paths, None  # rendering time is printed by benchmarks/run.py, not asserted here
 
 
 # --- safe_component -------------------------------------------------------------------------------------------
@@ -242,12 +239,6 @@ def test_pdf_has_caution_text_page_and_plots(squad):
     assert n_pages >= 4  # text page + three plots
     # matplotlib writes the Info dictionary uncompressed; the caution is its subject.
     assert b"(" + CAUTION.encode("ascii") + b")" in data
-
-
-def test_render_time_within_budget(squad):
-    *_, elapsed = squad
-    # target <= 1 s per athlete (issue 8); the bound is 3x that so a slow CI machine does not fail spuriously.
-    assert elapsed / 2 < 3.0
 
 
 @pytest.mark.slow
