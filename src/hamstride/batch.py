@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import datetime as dt
+import functools
 import hashlib
 import io as _io
 import json
@@ -231,8 +232,20 @@ def file_sha256(path: str | Path) -> str:
     return h.hexdigest()
 
 
+@functools.lru_cache(maxsize=1)
+def code_fingerprint() -> str:
+    """Hash of the analysis code itself, so a cache never outlives a change of the model (even within a version)."""
+    h = hashlib.sha256()
+    for path in sorted(Path(__file__).parent.glob("*.py")):
+        if path.name not in ("report.py", "cli.py"):  # presentation only: does not change the cached tables
+            h.update(path.name.encode())
+            h.update(path.read_bytes())
+    return h.hexdigest()[:16]
+
+
 def _cache_key(job: TrialJob, config: RunConfig, sha: str, static_sha: str | None, markers_sha: str | None) -> str:
     payload = json.dumps({"sha": sha, "static": static_sha, "markers": markers_sha, "version": __version__,
+                          "code": code_fingerprint(),
                           "analysis": _jsonable(asdict(config.analysis)), "athlete": _jsonable(asdict(job.info))},
                          sort_keys=True)
     return hashlib.sha256(payload.encode()).hexdigest()[:32]
