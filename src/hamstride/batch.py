@@ -407,7 +407,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     write_table(out, "summary", summary)
     write_table(out, "flags", flags)
     manifest = {
-        "software": "hamstride", "version": __version__, "squad": str(root),
+        "software": "hamstride", "version": __version__, "code_fingerprint": code_fingerprint(), "squad": str(root),
         "configuration": config.as_dict(), "markers": str(markers) if markers else None,
         "athletes_csv_sha256": file_sha256(root / "athletes.csv") if (root / "athletes.csv").exists() else None,
         "counts": counts,
