@@ -55,7 +55,7 @@ def mutate(data: bytes, rng: np.random.Generator) -> tuple[str, bytes]:
     n = len(b)
     head = min(n, 512 * (data[0] + 4))
     kind = ["header_word", "header_bytes", "param_bytes", "param_chunk", "record_field", "truncate", "bit_flips",
-            "insert_delete", "data_values"][rng.integers(0, 9)]
+            "insert_delete", "data_values", "param_value"][rng.integers(0, 10)]
     if kind == "header_word":
         i = 2 * int(rng.integers(0, 12))
         b[i:i + 2] = struct.pack("<H", int(rng.choice([0, 1, 2, 255, 32767, 65535, rng.integers(0, 65536)])))
@@ -96,6 +96,17 @@ def mutate(data: bytes, rng: np.random.Generator) -> tuple[str, bytes]:
             del b[i:i + k]
         else:
             b[i:i] = rng.integers(0, 256, size=k, dtype=np.uint8).tobytes()
+    elif kind == "param_value":  # a consistent record with an extreme number (USED, RATE, FRAMES, SCALE, ...)
+        numeric = []
+        for pos, name_len, ident in _records(data):
+            body = pos + 4 + name_len
+            if ident > 0 and data[body] in (2, 4) and all(data[body + 2:body + 2 + data[body + 1]]):
+                numeric.append((body + 2 + data[body + 1], data[body]))
+        at, dtype = numeric[int(rng.integers(0, len(numeric)))]
+        if dtype == 2:
+            b[at:at + 2] = struct.pack("<h", int(rng.choice([0, -1, 1, 32767, -32768, rng.integers(-32768, 32768)])))
+        else:
+            b[at:at + 4] = struct.pack("<f", float(rng.choice([0.0, -1.0, np.nan, np.inf, 1e30, 1e-30, 1.0])))
     else:  # data_values: NaN, inf, huge and negative-residual floats in the point data
         data_start = 512 * (struct.unpack("<H", data[16:18])[0] - 1)
         for _ in range(int(rng.integers(1, 40))):
@@ -122,6 +133,7 @@ def _child(seed: int, start: int, stop: int, source_dir: str, work_dir: str) -> 
         kind, data = mutate_case(sources, seed, case)
         path.write_bytes(data)
         print(json.dumps({"case": case, "kind": kind, "stage": "start"}), flush=True)
+        t0 = time.perf_counter()
         try:
             trial = read_c3d(path)
             result = {"status": "ok", "frames": trial.n_frames}
@@ -129,6 +141,7 @@ def _child(seed: int, start: int, stop: int, source_dir: str, work_dir: str) -> 
             result = {"status": "error", "code": exc.code, "message": exc.message}
         except BaseException as exc:  # noqa: BLE001 - the point is to catch anything that is not ours
             result = {"status": "unhandled", "code": type(exc).__name__, "message": str(exc)[:200]}
+        result["seconds"] = time.perf_counter() - t0
         print(json.dumps({"case": case, "kind": kind, "stage": "done", **result}), flush=True)
 
 
@@ -188,6 +201,9 @@ def _check_outcomes(report: dict, n_cases: int) -> dict[str, int]:
     results = report["results"]
     assert not report["crashes"], f"the native reader crashed on cases {report['crashes']}"
     assert sorted(results) == list(range(n_cases)), "every case must report an outcome"
+    # A case that takes seconds means the native reader was led into a huge allocation (a memory bomb).
+    slow = [r for r in results.values() if r.get("seconds", 0.0) > 3.0]
+    assert not slow, f"cases that took more than 3 s: {slow[:5]}"
     unhandled = [r for r in results.values() if r["status"] == "unhandled"]
     assert not unhandled, f"exceptions that are not HamstrideError: {unhandled[:5]}"
     for r in results.values():
@@ -204,7 +220,7 @@ def _check_outcomes(report: dict, n_cases: int) -> dict[str, int]:
 def test_mutator_is_deterministic_and_varied(sources):
     blobs = [p.read_bytes() for p in sorted(sources.glob("*.c3d"))]
     kinds = {mutate_case(blobs, 7, i)[0] for i in range(200)}
-    assert len(kinds) == 9
+    assert len(kinds) == 10
     assert mutate_case(blobs, 7, 11) == mutate_case(blobs, 7, 11)
     assert sum(mutate_case(blobs, 7, i)[1] != blobs[i % 3] for i in range(50)) >= 45
 

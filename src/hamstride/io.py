@@ -311,6 +311,15 @@ def check_c3d_header(path: str | Path) -> C3DLayout:
         raise bad(f"POINT:USED says {int(used[0])} markers but the header says {n_points}")
     if n_points == 0:
         raise FileFormatError("the file holds no marker points", trial=name, code="no_markers")
+    rotation = groups.get("ROTATION", {})  # rotation data (an ezc3d extension) sit after the points, RATIO per frame
+    rotation_used = _param_numbers(rotation.get("USED"), processor)
+    rotation_ratio = _param_numbers(rotation.get("RATIO"), processor)
+    if rotation_ratio.size and not 0 <= rotation_ratio[0] <= 1000:
+        raise bad(f"ROTATION:RATIO is {int(rotation_ratio[0])}; the file is corrupt")
+    if rotation_used.size and rotation_used[0] != 0:
+        rotation_bytes = abs(rotation_used[0]) * max(rotation_ratio[0] if rotation_ratio.size else 1, 1) * 64
+        if rotation_used[0] < 0 or rotation_bytes * (int(last) - int(first) + 1) > size:
+            raise bad(f"ROTATION:USED ({int(rotation_used[0])}) promises more rotation data than the file holds")
     analog_rate = _param_numbers(groups.get("ANALOG", {}).get("RATE"), processor)
     if analog_rate.size and not (np.isfinite(analog_rate[0]) and analog_rate[0] >= 0):
         raise bad(f"ANALOG:RATE is {float(analog_rate[0]):g}")
