@@ -551,6 +551,9 @@ def _connect_cluster(cluster):
                               f"`dask scheduler --scheduler-file {target}` first")
         else:
             client = Client(target, timeout=CLUSTER_CONNECT_TIMEOUT_S)
+    except ValueError as exc:
+        raise ConfigError(f"--cluster expects a scheduler address such as tcp://10.0.0.5:8786 or a scheduler file; "
+                          f"{target!r} is neither ({exc})") from None
     except (OSError, TimeoutError) as exc:
         raise ConfigError(f"could not reach the Dask scheduler at {target} within {CLUSTER_CONNECT_TIMEOUT_S:g} s "
                           f"({type(exc).__name__}); check that `dask scheduler` is running and the address/port is "
