@@ -134,6 +134,8 @@ def test_unreachable_scheduler_is_a_config_error(squad, tmp_path, monkeypatch):
         run_squad(squad, tmp_path, cluster=f"tcp://127.0.0.1:{port}", report=False)
     with pytest.raises(ConfigError, match="scheduler file"):
         run_squad(squad, tmp_path, cluster=str(tmp_path / "no_such_scheduler.json"), report=False)
+    with pytest.raises(ConfigError, match="expects a scheduler address"):
+        run_squad(squad, tmp_path, cluster="headnode-without-port", report=False)
 
 
 def test_missing_dask_extra_tells_how_to_install(squad, tmp_path, monkeypatch):
