@@ -69,7 +69,8 @@ def _cached(out: Path) -> int:
 def _run_and_kill(root: Path, out: Path, when, report: bool = False, timeout: float = 120.0) -> bool:
     """Start a squad run in its own process group and SIGKILL the whole group as soon as ``when(out)`` holds.
     Returns False when the run finished before the condition was seen (nothing was killed)."""
-    proc = subprocess.Popen(_command(root, out, report), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+    log = open(out.parent / f"{out.name}.log", "w+b")
+    proc = subprocess.Popen(_command(root, out, report), stdout=log, stderr=subprocess.STDOUT,
                             start_new_session=True)
     deadline = time.monotonic() + timeout
     try:
@@ -79,6 +80,8 @@ def _run_and_kill(root: Path, out: Path, when, report: bool = False, timeout: fl
                 proc.wait(timeout=30)
                 return True
             if proc.poll() is not None:
+                log.seek(0)
+                assert proc.returncode == 0, log.read().decode(errors="replace")[-2000:]
                 return False
             time.sleep(0.02)
         raise AssertionError("the run neither reached the kill point nor finished")
@@ -86,6 +89,7 @@ def _run_and_kill(root: Path, out: Path, when, report: bool = False, timeout: fl
         if proc.poll() is None:
             os.killpg(proc.pid, signal.SIGKILL)
             proc.wait(timeout=30)
+        log.close()
 
 
 def _partials(out: Path) -> list[Path]:
