@@ -516,3 +516,13 @@ def test_side_check_holds_in_every_lab_convention(variant, tmp_path):
     with pytest.raises(HamstrideError) as info:
         trial_kinematics(bad, FAST)
     assert info.value.code == "sides_swapped"
+
+
+def test_broken_static_trial_is_named_in_the_sprint_failure(corpus):
+    """A session's static calibration trial that cannot be read fails its sprints with the static file named."""
+    case = _case(corpus, "valid")
+    with pytest.raises(HamstrideError) as info:
+        analyse_trial(case.path, FAST, athlete=ATHLETE, static_path=_case(corpus, "truncated_07").path)
+    assert info.value.code == "truncated"
+    assert info.value.message.startswith("trial valid:") and "static calibration trial truncated_07" in \
+        info.value.message

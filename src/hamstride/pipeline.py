@@ -112,10 +112,14 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     warnings: list[TrialWarning] = list(check_marker_trial(trial, marker_map.landmarks.values()))
     calibration = None
     if static_path is not None:
-        static = read_c3d(static_path)
-        static_lm = resolve_landmarks(static, marker_map)
-        static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
-        calibration = calibrate(static_lm)
+        try:
+            static = read_c3d(static_path)
+            static_lm = resolve_landmarks(static, marker_map)
+            static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
+            calibration = calibrate(static_lm)
+        except HamstrideError as exc:  # name the sprint trial and say the problem is in its static trial
+            raise type(exc)(f"its static calibration trial {Path(static_path).name} failed ({exc.message}); fix or "
+                            "remove that file", trial=trial.name, code=exc.code) from None
     lm = resolve_landmarks(trial, marker_map, allow_missing=STATIC_RECOVERABLE if calibration is not None else ())
     if calibration is not None:
         lm = reconstruct_missing(lm, calibration)
