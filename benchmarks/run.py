@@ -2,7 +2,7 @@
 and report time, printed in one run on invented trials.
 
     python benchmarks/run.py            # full run (several minutes: 48-trial speedup and 500-trial memory runs)
-    python benchmarks/run.py --quick    # small sizes, about a minute
+    python benchmarks/run.py --quick    # small sizes, one to two minutes
     python benchmarks/run.py --help     # every size is a flag
 
 Targets (issue 8; printed beside each figure, not asserted): full analysis <= 4x the ezc3d read time (aim 3x);
@@ -183,7 +183,7 @@ def section(title: str) -> None:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--quick", action="store_true", help="small sizes (about a minute)")
+    ap.add_argument("--quick", action="store_true", help="small sizes (one to two minutes)")
     ap.add_argument("--base-s", type=float, default=2.0, help="base trial length in s (scaled 1x, 4x, 16x)")
     ap.add_argument("--repeats", type=int, default=None, help="repeats per timing (median; default 5, quick 2)")
     ap.add_argument("--squad-trials", type=int, default=None, help="trials in the speedup squad (default 48)")
