@@ -293,7 +293,7 @@ def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: 
         with cf.ProcessPoolExecutor(max_workers=min(jobs, len(pending))) as pool:
             futures = {pool.submit(_analyse_job, job, options): (job, key) for job, key in pending}
             for future in cf.as_completed(futures):
-                job, key = futures[future]
+                job, key = futures.pop(future)  # drop the finished result: memory stays flat
                 try:
                     on_done(job, key, future.result())
                 except cf.process.BrokenProcessPool:
@@ -371,6 +371,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
 
     stride_tables, failed = [], []
     curve_files: list[Path] = []
+    curve_files_by_athlete: dict[str, list[Path]] = {}
     for job in all_jobs:
         rec = records[job.path]
         meta = json.loads((cache / f"{rec['cache_key']}.json").read_text(encoding="utf-8"))
@@ -386,6 +387,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
                                                                                                "session": str,
                                                                                                "trial": str}))
             curve_files.append(cache / f"{rec['cache_key']}.curves.csv")
+            curve_files_by_athlete.setdefault(job.athlete, []).append(curve_files[-1])
         else:
             rec["code"] = meta.get("code", "error")
             rec["reason"] = meta.get("reason", "")
@@ -419,7 +421,9 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         from .report import render_squad
         run_info = {"version": __version__, "configuration": config.as_dict(), "failed": failed,
                     "tendon_note": _tendon_note()}
-        run.report_paths = render_squad(out, strides, _read_curves(curve_files), flags, summary, athletes, run_info)
+        # Curves are loaded one athlete at a time while the pages render, so memory does not grow with the squad.
+        curves_of = functools.partial(_athlete_curves, curve_files_by_athlete)
+        run.report_paths = render_squad(out, strides, curves_of, flags, summary, athletes, run_info)
     return run
 
 
@@ -450,6 +454,10 @@ def _stream_curves(target: Path, files: list[Path]) -> None:
                 src.readline()
                 for chunk in iter(lambda: src.read(1 << 20), b""):
                     fh.write(chunk)
+
+
+def _athlete_curves(files_by_athlete: Mapping[str, list[Path]], athlete: str) -> pd.DataFrame:
+    return _read_curves(files_by_athlete.get(athlete, []))
 
 
 def _read_curves(files: list[Path]) -> pd.DataFrame:

@@ -167,11 +167,9 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
         "warning_codes": list(kin.warning_codes), "software_version": __version__,
         "hip_method": kin.body.hip_method,
     }
-    stride_rows, curve_frames = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
-                                               kin.speed_m_s, info)
+    stride_rows, curves_df = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
+                                            kin.speed_m_s, info)
     strides_df = pd.DataFrame(stride_rows, columns=STRIDE_COLUMNS)
-    curves_df = pd.concat(curve_frames, ignore_index=True)[CURVE_COLUMNS] if curve_frames else pd.DataFrame(
-        columns=CURVE_COLUMNS)
     if options.strict:
         failure = strict_failure(map(TrialWarning, info["warning_codes"], info["warnings"]), trial.name)
         if failure is not None:
@@ -179,7 +177,17 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
     return TrialResult(trial.name, strides_df, curves_df, info)
 
 
+def _late_swing_start_frame(s, rate: float) -> int:
+    """First frame of late swing (swing-phase peak knee flexion), or toe-off when knee angles were missing."""
+    if np.isfinite(s.late_swing_start_pct):
+        late = int(round(s.foot_strike_s * rate + s.late_swing_start_pct / 100.0 * s.stride_time_s * rate))
+    else:
+        late = int(round(s.toe_off_s * rate))
+    return min(max(late, s.start_frame), s.end_frame)
+
+
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
+    """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
     from .dynamics import leg_inertia, muscle_forces, negative_positive_work, swing_inverse_dynamics
     from .metrics import peak_in_window
     from .muscles import MUSCLES, MuscleDims, monte_carlo_lengths, muscle_states
@@ -188,8 +196,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     rate = trial.rate_hz
     n_frames = trial.n_frames
     stride_rows: list[dict] = []
-    curve_frames: list[pd.DataFrame] = []
-    pct = np.linspace(0.0, 100.0, 101)
+    curve_blocks: list[np.ndarray] = []  # per stride: [101, 5 + 6 x muscles]
+    curve_keys: list[tuple[str, int]] = []
     dims_body = body.dims
     unmet_total = 0
     for side in SIDES:
@@ -202,7 +210,11 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                           thigh_length_m=dims_body.thigh_length_m[side], shank_length_m=dims_body.shank_length_m[side])
         states = muscle_states(joint, rate, dims, body_mass_kg=body_mass,
                                scale_force_to_mass=options.scale_force_to_mass)
-        bands = monte_carlo_lengths(joint, dims, n_samples=options.monte_carlo_samples, seed=0) \
+        late_frames = {id(s): (_late_swing_start_frame(s, rate), s.end_frame) for s in side_strides}
+        # The band is only read at late-swing peaks: sample the model on those frames alone (same draws).
+        band_frames = np.unique(np.concatenate([np.arange(lo, hi + 1) for lo, hi in late_frames.values()]))
+        bands = monte_carlo_lengths({k: v[band_frames] for k, v in joint.items()}, dims,
+                                    n_samples=options.monte_carlo_samples, seed=0) \
             if options.monte_carlo_samples > 0 else {}
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
         hip_moment = np.full(n_frames, np.nan)
@@ -227,15 +239,20 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             for m in MUSCLES:
                 if m in forces_side:
                     forces[m] = np.where(swing, forces_side[m], np.nan)
+        hip_deg = _deg(a["hip_flexion"])
+        knee_deg = _deg(a["knee_flexion"])
+        strain_pct = {m: 100.0 * states[m].strain for m in MUSCLES}
+        power = {m: -forces[m] * states[m].velocity_m_per_s for m in MUSCLES}  # delivered; negative = absorbing
+        columns = [hip_deg, _deg(a["hip_adduction"]), knee_deg, hip_moment, knee_moment]
+        for m in MUSCLES:
+            st = states[m]
+            columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
+                        power[m]]
+        signals = np.column_stack(columns)
         for s in side_strides:
-            start = s.start_frame
-            stop = s.end_frame
-            late = int(round(s.foot_strike_s * rate + s.late_swing_start_pct / 100.0 * s.stride_time_s * rate)) \
-                if np.isfinite(s.late_swing_start_pct) else int(round(s.toe_off_s * rate))
-            late = min(max(late, start), stop)
+            start, stop = s.start_frame, s.end_frame
+            late = late_frames[id(s)][0]
             swing_lo = min(max(int(np.ceil(s.toe_off_s * rate)), start), stop)
-            hip_deg = _deg(a["hip_flexion"])
-            knee_deg = _deg(a["knee_flexion"])
             met_pct = float(100.0 * np.mean(~unmet[late:stop + 1])) if body_mass else np.nan
             base = {"athlete": athlete.athlete, "session": athlete.session, "trial": trial.name, "side": side,
                     "stride": s.index + 1, "foot_strike_s": s.foot_strike_s, "toe_off_s": s.toe_off_s,
@@ -245,12 +262,10 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                     "peak_hip_flexion_deg": float(np.nanmax(hip_deg[start:stop + 1])),
                     "peak_knee_flexion_deg": float(np.nanmax(knee_deg[swing_lo:stop + 1])),
                     "late_swing_moments_met_pct": met_pct}
-            norm_angles = normalise(np.column_stack([hip_deg, _deg(a["hip_adduction"]), knee_deg, hip_moment,
-                                                     knee_moment]), s, rate)
+            b_lo, b_hi = np.searchsorted(band_frames, late), np.searchsorted(band_frames, stop, side="right")
             for m in MUSCLES:
                 st = states[m]
-                strain_pct = 100.0 * st.strain
-                peak_strain, i_peak = peak_in_window(strain_pct, late, stop)
+                peak_strain, i_peak = peak_in_window(strain_pct[m], late, stop)
                 peak_lopt, _ = peak_in_window(st.fibre_length_lopt, late, stop)
                 peak_vel, _ = peak_in_window(st.velocity_lopt_per_s, swing_lo, stop)
                 row = dict(base, muscle=m, peak_strain_pct=peak_strain,
@@ -259,32 +274,50 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                            peak_fibre_length_lopt=peak_lopt, peak_lengthening_velocity_lopt_per_s=peak_vel)
                 if m in bands:
                     strain_s, lopt_s = bands[m]
-                    ps = np.nanmax(strain_s[:, late:stop + 1], axis=1) * 100.0
-                    pl = np.nanmax(lopt_s[:, late:stop + 1], axis=1)
-                    row.update(peak_strain_p5_pct=float(np.percentile(ps, 5)),
-                               peak_strain_p95_pct=float(np.percentile(ps, 95)),
-                               peak_fibre_length_lopt_p5=float(np.percentile(pl, 5)),
-                               peak_fibre_length_lopt_p95=float(np.percentile(pl, 95)))
-                force = forces[m]
-                power = -force * st.velocity_m_per_s  # power delivered by the muscle; negative while absorbing
+                    ps = np.nanmax(strain_s[:, b_lo:b_hi], axis=1) * 100.0
+                    pl = np.nanmax(lopt_s[:, b_lo:b_hi], axis=1)
+                    p_strain = np.percentile(ps, (5, 95))
+                    p_lopt = np.percentile(pl, (5, 95))
+                    row.update(peak_strain_p5_pct=float(p_strain[0]), peak_strain_p95_pct=float(p_strain[1]),
+                               peak_fibre_length_lopt_p5=float(p_lopt[0]), peak_fibre_length_lopt_p95=float(p_lopt[1]))
                 if body_mass:
+                    force = forces[m]
                     neg, posw = negative_positive_work(np.nan_to_num(force), st.velocity_m_per_s, rate, swing_lo, stop)
                     row.update(peak_force_n=float(np.nanmax(force[swing_lo:stop + 1])), negative_work_j=float(neg),
                                positive_work_j=float(posw))
                 stride_rows.append(row)
-                curves = normalise(np.column_stack([st.length_m, strain_pct, st.fibre_length_lopt,
-                                                    st.velocity_lopt_per_s, force, power]), s, rate)
-                frame = pd.DataFrame({
-                    "athlete": athlete.athlete, "session": athlete.session, "trial": trial.name, "side": side,
-                    "stride": s.index + 1, "muscle": m, "pct": pct,
-                    "hip_flexion_deg": norm_angles[:, 0], "hip_adduction_deg": norm_angles[:, 1],
-                    "knee_flexion_deg": norm_angles[:, 2], "length_m": curves[:, 0], "strain_pct": curves[:, 1],
-                    "fibre_length_lopt": curves[:, 2], "velocity_lopt_per_s": curves[:, 3], "force_n": curves[:, 4],
-                    "power_w": curves[:, 5], "hip_moment_nm_per_kg": norm_angles[:, 3],
-                    "knee_moment_nm_per_kg": norm_angles[:, 4]})
-                curve_frames.append(frame)
+            curve_blocks.append(normalise(signals, s, rate))
+            curve_keys.append((side, s.index + 1))
+    curves = _curve_frame(curve_blocks, curve_keys, athlete, trial.name, MUSCLES)
     info["frames_moments_not_met"] = unmet_total
     if not body_mass:
         info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
         info["warning_codes"].append("no_body_mass")
-    return stride_rows, curve_frames
+    return stride_rows, curves
+
+
+def _curve_frame(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlete, trial: str, muscles) -> pd.DataFrame:
+    """One long table for the trial: a row per stride, muscle and percent of the cycle (built once, not per stride)."""
+    if not blocks:
+        return pd.DataFrame(columns=CURVE_COLUMNS)
+    n_pct, n_mus = 101, len(muscles)
+    data = np.stack(blocks)  # [stride, 101, 5 + 6 x muscles]
+    n_str = data.shape[0]
+    shared = np.repeat(data[:, None, :, :5], n_mus, axis=1)  # [stride, muscle, 101, 5]
+    per_muscle = data[:, :, 5:].reshape(n_str, n_pct, n_mus, 6).transpose(0, 2, 1, 3)  # [stride, muscle, 101, 6]
+    rows = n_str * n_mus * n_pct
+    frame = pd.DataFrame({
+        "athlete": athlete.athlete, "session": athlete.session, "trial": trial,
+        "side": np.repeat([k[0] for k in keys], n_mus * n_pct),
+        "stride": np.repeat([k[1] for k in keys], n_mus * n_pct),
+        "muscle": np.tile(np.repeat(list(muscles), n_pct), n_str),
+        "pct": np.tile(np.linspace(0.0, 100.0, n_pct), n_str * n_mus),
+    }, index=pd.RangeIndex(rows))
+    names_shared = ["hip_flexion_deg", "hip_adduction_deg", "knee_flexion_deg", "hip_moment_nm_per_kg",
+                    "knee_moment_nm_per_kg"]
+    names_muscle = ["length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w"]
+    for k, name in enumerate(names_shared):
+        frame[name] = shared[..., k].reshape(rows)
+    for k, name in enumerate(names_muscle):
+        frame[name] = per_muscle[..., k].reshape(rows)
+    return frame[CURVE_COLUMNS]

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import base64
 import hashlib
+import functools
 import html
 import io
 import math
@@ -1258,16 +1259,20 @@ def _failed_trials_html(run_info: Mapping | None) -> str:
                                                                 "out of every table and plot).")
 
 
-def render_squad(out_dir: Path, strides: pd.DataFrame, curves: pd.DataFrame, flags: pd.DataFrame,
+def render_squad(out_dir: Path, strides: pd.DataFrame, curves, flags: pd.DataFrame,
                  summary: pd.DataFrame, athletes: pd.DataFrame, run_info: dict) -> list[Path]:
     """Write ``index.html`` plus ``athletes/<name>.html`` and ``.pdf`` per athlete; returns the written paths.
+
+    ``curves`` is the curves table, or a function athlete -> that athlete's curves (loaded while the page renders,
+    so a large squad never holds every curve in memory).
 
     Pages are self-contained (plots embedded as PNG data URIs) and every file is written atomically.
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    groups = {name: _by_athlete(df) for name, df in
-              (("strides", strides), ("curves", curves), ("flags", flags), ("summary", summary))}
+    curve_loader = curves if callable(curves) else None  # athlete -> DataFrame, loaded while that page renders
+    tables = (("strides", strides), ("flags", flags), ("summary", summary))
+    groups = {name: _by_athlete(df) for name, df in (tables if curve_loader else tables + (("curves", curves),))}
     names = sorted(set().union(*(g.keys() for g in groups.values())), key=str)
     files = _unique_files(names)
     written: list[Path] = []
@@ -1277,7 +1282,8 @@ def render_squad(out_dir: Path, strides: pd.DataFrame, curves: pd.DataFrame, fla
         pdf_path = _inside(out_dir, out_dir / "athletes" / f"{files[athlete]}.pdf")
         jobs.append((athlete,
                      groups["strides"].get(athlete, _empty_like(strides)),
-                     groups["curves"].get(athlete, _empty_like(curves)),
+                     functools.partial(curve_loader, athlete) if curve_loader
+                     else groups["curves"].get(athlete, _empty_like(curves)),
                      groups["flags"].get(athlete, _empty_like(flags)),
                      groups["summary"].get(athlete, _empty_like(summary)),
                      _athlete_info(athletes, athlete), run_info, html_path, pdf_path))
@@ -1315,7 +1321,8 @@ def _render_athlete(job: tuple) -> float:
     was_enabled = gc.isenabled()
     gc.disable()  # the page builds many short-lived objects; collecting mid-render only costs time
     try:
-        _athlete_page(*job)
+        athlete, strides, curves, *rest = job
+        _athlete_page(athlete, strides, curves() if callable(curves) else curves, *rest)
     finally:
         if was_enabled:
             gc.enable()
