@@ -183,6 +183,10 @@ def fill_gaps(x: np.ndarray, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES) -> tu
 def residuals(x: np.ndarray, rate_hz: float, cutoffs_hz: np.ndarray) -> np.ndarray:
     """Winter's residual R(fc) = sqrt(mean((x - x_filtered)**2)) for each cutoff and column: shape [n_cutoffs, C].
 
+    Computed in the frequency domain, all cutoffs at once: by Parseval, R(fc)^2 = sum_f (1 - G(f))^2 |X(f)|^2 / N^2
+    with G the gain of the dual-pass filter (2nd-order Butterworth, bilinear design at the Robertson & Dowling 2003
+    corrected cutoff: G = 1 / (1 + (C tan(pi f / fs) / tan(pi fc / fs))^4)). The straight line through the first and
+    last frames is removed first (the filter passes it unchanged) so the FFT's periodic extension has no jump.
     Only columns without NaN are used (the rest are NaN in the result).
     """
     x2 = np.asarray(x, dtype=float).reshape(len(x), -1)
@@ -191,9 +195,20 @@ def residuals(x: np.ndarray, rate_hz: float, cutoffs_hz: np.ndarray) -> np.ndarr
     if not whole.any():
         return out
     data = x2[:, whole]
-    for i, fc in enumerate(cutoffs_hz):
-        b, a = _coefficients(rate_hz, float(fc))
-        out[i, whole] = np.sqrt(np.mean((data - _filter_columns(data, b, a, rate_hz, float(fc))) ** 2, axis=0))
+    n = data.shape[0]
+    ramp = np.linspace(0.0, 1.0, n)[:, None]
+    detrended = data - (data[0] + (data[-1] - data[0]) * ramp)
+    power = np.abs(np.fft.rfft(detrended, axis=0)) ** 2  # [n_freq, C]
+    weight = np.full(power.shape[0], 2.0)  # one-sided spectrum: count each frequency twice but DC and Nyquist
+    weight[0] = 1.0
+    if n % 2 == 0:
+        weight[-1] = 1.0
+    freqs = np.fft.rfftfreq(n, 1.0 / rate_hz)
+    correction = dual_pass_correction(2, FILTER_ORDER)
+    ratio = correction * np.tan(np.pi * freqs[None, :] / rate_hz) / np.tan(
+        np.pi * np.asarray(cutoffs_hz, dtype=float)[:, None] / rate_hz)
+    gain = 1.0 / (1.0 + ratio ** (2 * FILTER_ORDER))  # [n_cutoffs, n_freq]
+    out[:, whole] = np.sqrt(((weight * (1.0 - gain) ** 2) @ power) / n ** 2)
     return out
 
 
