@@ -270,6 +270,50 @@ def test_faster_sprint_gives_more_hip_flexion_and_faster_late_swing_knee_extensi
     assert out[9.5][1] > out[7.0][1]
 
 
+def _swing_moments_per_kg(truth, side):
+    """Swing inverse dynamics of the truth frames (hamstride.dynamics, called as in tests/test_dynamics.py)."""
+    from hamstride import dynamics as dyn
+    from hamstride.segments import Frames
+
+    b, rate, n = truth.body, truth.rate_hz, truth.time_s.size
+    seg = {s: Frames(truth.origins[f"{side}_{s}"], truth.axes[f"{side}_{s}"]) for s in dyn.SEGMENTS}
+    swing = dyn.swing_mask_from_events(n, rate, truth.toe_offs_s[side], truth.foot_strikes_s[side])
+    moments = dyn.swing_inverse_dynamics(
+        seg["thigh"], seg["shank"], seg["foot"], truth.joint_centres[f"{side}_hip"],
+        truth.joint_centres[f"{side}_knee"], truth.joint_centres[f"{side}_ankle"],
+        truth.landmarks_lab[f"{side}_heel"], truth.landmarks_lab[f"{side}_toe_tip"], rate,
+        dyn.leg_inertia(b.mass_kg, b.sex, b.thigh_length_m, b.shank_length_m, b.foot_length_m),
+        swing_mask=swing, pelvis=Frames(truth.origins["pelvis"], truth.axes["pelvis"]), side=side)
+    return moments.hip_flexion_nm / b.mass_kg, moments.knee_flexion_nm / b.mass_kg
+
+
+def test_terminal_swing_joint_moments_are_of_published_sprint_size_without_a_landing_spike():
+    # Net joint moments that the truth kinematics ask for in swing (inverse dynamics, no ground force), at 9 m/s.
+    # Published sprint values, from memory (e.g. Schache et al. 2011, 2012, Med Sci Sports Exerc): peak terminal-swing
+    # hip extension moment about 3-5 N m/kg, knee flexion moment about 1-2 N m/kg. Bounds 5.0 and 2.2 N m/kg (the
+    # upper ends, with 10 % on the knee; common practice); lower bounds 2.5 and 1.0 N m/kg so that a swing that asks
+    # for almost nothing fails too. The last 10 ms before foot strike must stay inside the same bounds in both
+    # directions: a landing that stops the leg abruptly shows up there as a spike.
+    _, _, truth = _sim_kw(speed_m_s=9.0, seed=4, noise_mm=0.0, n_gaps=0)
+    t = truth.time_s
+    n_swings = 0
+    for side in SIDES:
+        hip, knee = _swing_moments_per_kg(truth, side)
+        fs = truth.foot_strikes_s[side]
+        for to in truth.toe_offs_s[side]:
+            nxt = fs[fs > to]
+            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
+                continue  # swing cut by the trial ends
+            late = (t >= to + 0.5 * (nxt[0] - to)) & (t <= nxt[0])
+            last = (t > nxt[0] - 0.010) & (t <= nxt[0])
+            assert np.isfinite(hip[late]).all() and last.sum() >= 2
+            assert 2.5 <= -hip[late].min() <= 5.0  # peak hip extension moment (negative flexion moment)
+            assert 1.0 <= knee[late].max() <= 2.2  # peak knee flexion moment
+            assert np.abs(hip[last]).max() <= 5.0 and np.abs(knee[last]).max() <= 2.2
+            n_swings += 1
+    assert n_swings >= 4
+
+
 def test_asymmetry_reduces_late_swing_hip_flexion_and_knee_extension_on_one_side():
     kw = dict(speed_m_s=8.0, seed=9, stride_jitter=0.0)
     base = _sim_kw(**kw)[2]
@@ -289,6 +333,20 @@ def test_asymmetry_reduces_late_swing_hip_flexion_and_knee_extension_on_one_side
     hip_a, knee_a = late_swing(asym, "right")
     assert 9.0 < hip_b - hip_a < 15.0  # about the 12 deg asked for
     assert 7.0 < knee_a - knee_b < 13.0  # about the 10 deg asked for
+    # the hip deficit holds through late swing: about 12 deg less hip flexion at the instant the biceps femoris long
+    # head is longest (its peak stretch, hamstride.muscles) in each stride of the unaffected run
+    from hamstride.muscles import MuscleDims, muscle_states
+
+    b = base.body
+    angles = {k: base.angles["right"][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
+    length = muscle_states(angles, base.rate_hz, MuscleDims(b.pelvis_width_m, b.pelvis_depth_m, b.thigh_length_m,
+                                                            b.shank_length_m))["bflh"].length_m
+    t = base.time_s
+    for fs, nxt in _strides(base, "right"):
+        i = np.flatnonzero((t >= fs) & (t < nxt))
+        i_peak = i[np.argmax(length[i])]
+        deficit = _deg(base.angles["right"]["hip_flexion"][i_peak] - asym.angles["right"]["hip_flexion"][i_peak])
+        assert 10.5 < deficit < 13.5
     assert np.allclose(late_swing(base, "left"), late_swing(asym, "left"), atol=1.0)  # the other leg unchanged
 
 

@@ -10,15 +10,23 @@ metatarsal heads at one height in the foot frame.
 Model: each leg is a planar hip-knee-ankle chain (thigh, shank, foot share the lab's medio-lateral Z axis) in the
 vertical plane through its hip centre; the pelvis translates, tilts, rolls and yaws (so hip adduction and rotation,
 a few degrees, come from pelvic obliquity and rotation; knee and ankle are hinges) and shifts sideways so that the
-stance hip stays over the planted foot. Swing: hip flexion, knee
-flexion and ankle angle are C2 cubic splines of swing phase through sprint key values (references.md, "Typical sprint
-kinematics" [M]; stance about 22 % of the stride, Mann & Hagy 1980). Stance: the toe tip is pinned to the ground
-(treadmill: moves backward at belt speed) while the foot pitch follows a prescribed roll-over; thigh and shank come
-from planar two-link inverse kinematics. The swing joins stance with matched angle rates at toe-off (the toe
-lifts with an acceleration step, a jerk peak) and through a short quintic (C2) landing of the toe before foot
-strike (a sharp upward-acceleration peak, as at a real touchdown). Foot strike / toe-off truth = the instants the
-toe tip reaches / leaves the ground. Strides vary slightly (seeded jitter of timing and key angles); an asymmetric
-leg gets less late-swing hip flexion and knee extension (and lands with the knee flexed by the same deficit).
+stance hip stays over the planted foot. The hips fly ballistically between contacts (vertical acceleration -g).
+Stance (about 22 % of the stride, Mann & Hagy 1980): the toe tip is pinned to the ground (treadmill: moves backward
+at belt speed) while the foot pitch follows a roll-over (the heel drops at strike); thigh and shank come from
+planar two-link inverse kinematics. Swing is built so that the net joint moments it asks for (swing inverse
+dynamics) stay of published sprint size: hip and knee angles are piecewise constant-acceleration curves (C2 bridges
+at the switches) - hip flexion speeds up, slows to its peak (s_hip_peak of the swing), then extends into the strike
+under the least constant acceleration that joins the peak to the strike state; knee flexion speeds up and slows to
+its early-swing peak, then extends and flexes again into the strike under two equal constant accelerations (the
+least that cover the range). The swing ends in the stance's first state (angles and rates; the heel-drop rate at
+strike is set per step so the thigh arrives at the rate the hip peak timing asks for, and the foot's acceleration
+so the thigh's angular acceleration carries on into stance), so there is no impact in thigh and shank; in the last
+6 ms the light foot turns toe-up and stops the toe's descent (a sharp upward-acceleration peak at touchdown, as at
+a real one). Swing joins stance at toe-off with matched rates (the toe lifts with an acceleration step, a jerk
+peak). Key values: references.md "Typical sprint kinematics" [M]. Foot strike / toe-off truth = the instants the
+toe tip reaches / leaves the ground. Strides vary slightly (seeded jitter of timing and key angles). An asymmetric
+leg has less hip flexion from its peak through late swing (released over the last 60 ms before strike) and less
+knee extension from its knee peak on (it lands with the knee flexed by that deficit).
 
 Internal lab frame: x forward (travel), y to the athlete's left, z up, metres. Files may be Y-up, travel along -x,
 and in mm, cm or m.
@@ -32,10 +40,12 @@ from typing import Callable, Mapping
 
 import numpy as np
 from scipy.interpolate import CubicSpline
+from scipy.optimize import brentq
 
 from .errors import ConfigError, HamstrideError
 
 SIDES = ("left", "right")
+GRAVITY = 9.81  # m/s^2
 _RIGHT_SIGN = {"right": 1.0, "left": -1.0}  # lateral direction along the segment +Z (which points right)
 _DEG = np.pi / 180.0
 ANGLE_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion", "ankle_dorsiflexion")
@@ -180,22 +190,85 @@ def _rot2(pitch: np.ndarray, local: np.ndarray) -> np.ndarray:
     return np.stack([local[0] * c - local[1] * s, local[0] * s + local[1] * c], axis=-1)
 
 
-def _hermite5(u: np.ndarray, p0, v0, a0, p1, v1, a1, dt: float) -> np.ndarray:
-    """Quintic Hermite (position, velocity, acceleration at both ends) at normalised time u in [0, 1]."""
-    u = np.asarray(u)[..., None] if np.ndim(p0) else np.asarray(u)
-    u2, u3, u4, u5 = u * u, u ** 3, u ** 4, u ** 5
-    h0 = 1 - 10 * u3 + 15 * u4 - 6 * u5
-    h1 = u - 6 * u3 + 8 * u4 - 3 * u5
-    h2 = 0.5 * u2 - 1.5 * u3 + 1.5 * u4 - 0.5 * u5
-    h3 = 0.5 * u3 - u4 + 0.5 * u5
-    h4 = -4 * u3 + 7 * u4 - 3 * u5
-    h5 = 10 * u3 - 15 * u4 + 6 * u5
-    return p0 * h0 + v0 * dt * h1 + a0 * dt * dt * h2 + a1 * dt * dt * h3 + v1 * dt * h4 + p1 * h5
-
-
 def _smoothstep5(u: np.ndarray) -> np.ndarray:
     u = np.clip(u, 0.0, 1.0)
     return u ** 3 * (10 - 15 * u + 6 * u * u)
+
+
+class _QuinticKeys:
+    """C2 curve through key points with given value, slope and curvature: one quintic Hermite per interval."""
+
+    def __init__(self, s, value, slope, curvature):
+        self.s = np.asarray(s, dtype=float)
+        self.keys = np.array([value, slope, curvature], dtype=float)  # [3, n]
+
+    def __call__(self, s: np.ndarray) -> np.ndarray:
+        s = np.asarray(s, dtype=float)
+        i = np.clip(np.searchsorted(self.s, s, side="right") - 1, 0, self.s.size - 2)
+        h = self.s[i + 1] - self.s[i]
+        p0, v0, a0 = self.keys[:, i]
+        p1, v1, a1 = self.keys[:, i + 1]
+        u = (s - self.s[i]) / h
+        u2, u3, u4, u5 = u * u, u ** 3, u ** 4, u ** 5
+        return (p0 * (1 - 10 * u3 + 15 * u4 - 6 * u5) + v0 * h * (u - 6 * u3 + 8 * u4 - 3 * u5)
+                + a0 * h * h * (0.5 * u2 - 1.5 * u3 + 1.5 * u4 - 0.5 * u5) + a1 * h * h * (0.5 * u3 - u4 + 0.5 * u5)
+                + v1 * h * (-4 * u3 + 7 * u4 - 3 * u5) + p1 * (10 * u3 - 15 * u4 + 6 * u5))
+
+
+class _Parabolas:
+    """Piecewise constant-acceleration curve of x; each corner is bridged by a C2 quintic ``bridge`` wide.
+
+    ``pieces`` = [(x_start, value, rate, acceleration), ...] in increasing x_start; piece i holds up to the next
+    piece's start (the caller makes value and rate continuous there)."""
+
+    def __init__(self, pieces, bridge):
+        self.x = np.array([p[0] for p in pieces])
+        self.coef = np.array([p[1:] for p in pieces], dtype=float)  # [n, 3]
+        self.half = 0.5 * np.broadcast_to(np.asarray(bridge, dtype=float), (len(pieces) - 1,))
+        self.bridges = []
+        for k in range(1, len(pieces)):
+            a, b = self.x[k] - self.half[k - 1], self.x[k] + self.half[k - 1]
+            left, right = self._piece(np.array([a]), k - 1), self._piece(np.array([b]), k)
+            self.bridges.append(_QuinticKeys([a, b], [left[0][0], right[0][0]], [left[1][0], right[1][0]],
+                                             [left[2][0], right[2][0]]))
+
+    def _piece(self, x, i):
+        x0, (p, v, a) = self.x[i], self.coef[i]
+        dx = x - x0
+        return p + v * dx + 0.5 * a * dx * dx, v + a * dx, a + 0.0 * dx
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        x = np.asarray(x, dtype=float)
+        i = np.clip(np.searchsorted(self.x, x, side="right") - 1, 0, self.x.size - 1)
+        out = np.choose(i, [self._piece(x, k)[0] for k in range(self.x.size)]) if self.x.size > 1 else \
+            self._piece(x, 0)[0]
+        for k, bridge in enumerate(self.bridges, start=1):
+            near = np.abs(x - self.x[k]) < self.half[k - 1]
+            if np.any(near):
+                out = np.where(near, bridge(x), out)
+        return out
+
+
+def _bang_bang(p0: float, v0: float, p1: float, duration: float, ratio: float = 1.0):
+    """Switch time T and the two accelerations of a move from (p0, rate v0) to (p1, rate 0) in ``duration`` D: a
+    constant acceleration A up to T, then a constant deceleration ``ratio`` * A (if the start is already too fast
+    for that, two accelerations switching at D / 2).
+
+    With peak rate V: A = (V - v0 + V / ratio) / D and p1 - p0 = D ((V^2 - v0^2) + V^2 / ratio) / (2 (V - v0 + V /
+    ratio)), a quadratic in V (kinematics of constant acceleration)."""
+    delta, c = p1 - p0, 1.0 + 1.0 / ratio
+    disc = (delta / duration) ** 2 - (2.0 * delta * v0 - duration * v0 * v0) / (duration * c)
+    peak = delta / duration + np.sign(delta) * np.sqrt(max(disc, 0.0))
+    acc = (peak - v0 + peak / ratio) / duration
+    if disc >= 0.0 and abs(peak) >= abs(v0) and np.sign(peak - v0) == np.sign(delta):
+        t_sw = (peak - v0) / acc
+        return t_sw, acc, -ratio * acc
+    # already moving too fast for that: two accelerations switching half-way (a linear system)
+    t_sw = 0.5 * duration
+    rest = duration - t_sw
+    a1, a2 = np.linalg.solve([[t_sw, rest], [0.5 * t_sw ** 2 + t_sw * rest, 0.5 * rest ** 2]],
+                             [-v0, delta - v0 * duration])
+    return t_sw, a1, a2
 
 
 def _derivatives(fun: Callable[[np.ndarray], np.ndarray], t0: float, eps: float = 2e-5):
@@ -282,39 +355,42 @@ class _Design:
     pitch_to: float
     hip_peak: float
     knee_peak: float
-    knee_min: float
-    toe_velocity_td: tuple[float, float]
-    stance_dip: float
-    flight_rise: float
-    s_hip_peak: float = 0.62  # swing phase (0 = toe-off, 1 = foot strike) of the swing key points
-    s_knee_peak: float = 0.38
-    s_knee_min: float = 0.93
-    landing_window: float = 0.006  # toe comes to rest in the last 6 ms before foot strike
+    s_hip_peak: float = 0.57  # swing phase (0 = toe-off, 1 = foot strike) of the hip-flexion peak
+    s_knee_peak: float = 0.35  # ... and of the knee-flexion peak
+    hip_brake_ratio: float = 0.9  # early swing: hip flexion slows to its peak at this fraction of its speed-up
+    knee_brake_ratio: float = 1.2  # early swing: knee flexion slows to its peak at this fraction of its speed-up
+    knee_switch_s: float = 0.07  # early swing: the knee's flexion turns from speeding up to slowing down over 70 ms
+    switch_s: float = 0.04  # other changes of a joint's angular acceleration take 40 ms (C2 bridges)
+    ankle_acc_td: float = 800.0  # rad/s^2: at least this ankle dorsiflexion acceleration before strike
+    ankle_floor: float = -35.0 * _DEG  # late-swing plantar flexion stays above this
+    heel_drop_rate: float = 12.0  # rad/s foot pitch rate (heel dropping) at strike, first guess (solved per step)
+    landing_window: float = 0.006  # the toe's descent stops over the last 6 ms (the foot turns toe-up onto it)
+    touchdown_foot_rate: float = 8.0  # rad/s the foot turns faster (toe up) in stance than at the end of swing
+    deficit_release_s: float = 0.06  # an asymmetric leg's hip-flexion deficit is released over the last 60 ms
 
 
 def _design(speed: float, leg_length_m: float = 0.886) -> _Design:
     """Sprint key values as a function of speed (7-9.5 m/s).
 
     Stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]; peak hip flexion 65-80 deg, knee 15-30 deg at foot
-    strike, peak knee flexion 120-135 deg, late-swing knee extension to 10-30 deg [M, references.md]. Faster running:
-    shorter stride time, more hip flexion, more late-swing knee extension (common practice). Stride time scales
-    with the square root of leg length (dynamic similarity; 0.886 m = hip-to-ankle of a 1.80 m man).
+    strike, peak knee flexion 120-135 deg, late-swing knee extension to 10-30 deg (here the late-swing minimum follows
+    from the knee's constant-acceleration design, about 5-8 deg below the strike value) [M, references.md].
+    Faster running: shorter stride time, more hip flexion, more late-swing knee extension (common practice). Stride
+    time scales with the square root of leg length (dynamic similarity; 0.886 m = hip-to-ankle of a 1.80 m man).
+    Strike: knee 27 deg and the hip a little further back at toe-off (pitch -53 deg, hip 25 mm below its strike
+    height) so that a less straight landing leg keeps the contact time (invented, within the ranges above).
     """
     k = float(np.clip((speed - 7.0) / 2.5, -0.4, 1.4))
     return _Design(
         stride_time=(0.470 - 0.036 * k) * np.sqrt(leg_length_m / 0.886),
         pelvis_tilt=-12.0 * _DEG,
         hip_td=(37.0 + 2.0 * k) * _DEG,
-        knee_td=23.0 * _DEG,
+        knee_td=27.0 * _DEG,
         pitch_td=-14.0 * _DEG,
         knee_to=(20.0 - 4.0 * k) * _DEG,
-        pitch_to=-52.0 * _DEG,
+        pitch_to=-53.0 * _DEG,
         hip_peak=(70.0 + 6.0 * k) * _DEG,
         knee_peak=(124.0 + 6.0 * k) * _DEG,
-        knee_min=(22.0 - 8.0 * k) * _DEG,
-        toe_velocity_td=(1.0, -1.5),  # toe still moving forward/down just before touchdown (invented)
-        stance_dip=0.035,
-        flight_rise=0.012,
     )
 
 
@@ -347,10 +423,11 @@ class _Step:
     strike: float
     toe_off: float
     contact_x: float = np.nan  # where the toe tip is pinned (ground frame)
-    stance_pitch: CubicSpline | None = None  # foot pitch over stance fraction 0..1
+    stance_pitch: Callable[[np.ndarray], np.ndarray] | None = None  # foot pitch over stance fraction 0..1
     hip_peak: float = np.nan  # swing targets of the swing that follows this stance (rad)
+    hip_deficit: float = 0.0  # asymmetry: less hip flexion / knee extension in late swing (rad)
+    knee_deficit: float = 0.0
     knee_peak: float = np.nan
-    knee_min: float = np.nan
     ankle_peak: float = np.nan
 
 
@@ -369,15 +446,16 @@ class _Gait:
         # with a knee-extension deficit also lands with a more flexed knee.
         pitch_at_strike = d.pelvis_tilt + 1.5 * _DEG  # pelvis pitch is phase-locked: same at every strike
         lt, ls = self.body.thigh_length_m, self.body.shank_length_m
-        self.knee_td, self.td_reach, self.h_td, self.h_to, self.contact_time = {}, {}, {}, {}, {}
+        self.hip_td, self.knee_td, self.td_reach, self.h_td, self.h_to, self.contact_time = {}, {}, {}, {}, {}, {}
         for side in SIDES:
-            deficit = spec.knee_extension_deficit_deg if spec.asymmetry_side == side else 0.0
-            self.knee_td[side] = d.knee_td + deficit * _DEG
-            phi_t = pitch_at_strike + d.hip_td
+            asym = spec.asymmetry_side == side
+            self.hip_td[side] = d.hip_td
+            self.knee_td[side] = d.knee_td + (spec.knee_extension_deficit_deg * _DEG if asym else 0.0)
+            phi_t = pitch_at_strike + self.hip_td[side]
             _, _, toe = _planar_leg(phi_t, phi_t - self.knee_td[side], d.pitch_td, self.body, self.toe_local[side])
             self.td_reach[side] = toe  # (x ahead of, z below) the hip at foot strike
             self.h_td[side] = -toe[1]
-            self.h_to[side] = self.h_td[side] - 0.010
+            self.h_to[side] = self.h_td[side] - 0.025
             # Contact time from the toe-off geometry: knee at knee_to with the foot pitched to pitch_to.
             reach = np.sqrt(lt * lt + ls * ls + 2 * lt * ls * np.cos(d.knee_to))
             toe_from_ankle = _rot2(np.array(d.pitch_to), self.toe_local[side])
@@ -397,30 +475,43 @@ class _Gait:
         strikes = np.array([s.strike for s in steps])
         self.phase = CubicSpline(strikes, 0.5 * np.arange(len(steps)))  # right strides; right strike = integer
 
-        # Pelvis vertical: knots at strike, mid-stance, toe-off and mid-flight for the stance side's hip height.
-        knots_t, knots_z = [], []
-        for i, st in enumerate(steps[:-1]):
-            nxt = steps[i + 1].strike
-            h_td, h_to = self.h_td[st.side], self.h_to[st.side]
-            h_flight = 0.5 * (self.h_td["left"] + self.h_td["right"]) + d.flight_rise
-            for tk, hz, sd in ((st.strike, h_td, st.side),
-                               (0.5 * (st.strike + st.toe_off), h_td - d.stance_dip, st.side),
-                               (st.toe_off, h_to, st.side),
-                               (0.5 * (st.toe_off + nxt), h_flight, None)):
-                offset = self._hip_offset(np.array([tk]), sd)[0, 2]
-                knots_t.append(tk)
-                knots_z.append(hz - offset)
-        self.pelvis_z = CubicSpline(np.array(knots_t), np.array(knots_z))
+        # Pelvis vertical: the stance side's hip height at strike, mid-stance and toe-off; ballistic flight in
+        # between (vertical acceleration -g, so the hip falls into each strike as a body in flight does).
+        knots_t, knots_z, knots_v, knots_a = [], [], [], []
+        off = lambda tk, sd: self._hip_offset(np.array([tk]), sd)[0, 2]
+        v_td = None
+        for st, nxt in zip(steps[:-1], steps[1:]):
+            z_td = self.h_td[st.side] - off(st.strike, st.side)
+            z_to = self.h_to[st.side] - off(st.toe_off, st.side)
+            z_next = self.h_td[nxt.side] - off(nxt.strike, nxt.side)
+            flight = nxt.strike - st.toe_off
+            v_to = (z_next - z_to) / flight + 0.5 * GRAVITY * flight
+            if v_td is None:
+                v_td = v_to - GRAVITY * flight
+            # first half of stance: the upward acceleration grows linearly from -g and stops the fall at mid-stance
+            half = 0.5 * (st.toe_off - st.strike)
+            a_mid = -2.0 * v_td / half + GRAVITY
+            dip = -(v_td * half + (a_mid - 2.0 * GRAVITY) / 6.0 * half * half)
+            knots_t += [st.strike, st.strike + half, st.toe_off]
+            knots_z += [z_td, z_td - dip, z_to]
+            knots_v += [v_td, 0.0, v_to]
+            knots_a += [-GRAVITY, a_mid, -GRAVITY]
+            v_td = v_to - GRAVITY * flight  # arriving at the next strike
+        last = steps[-1]
+        knots_t.append(last.strike)
+        knots_z.append(self.h_td[last.side] - off(last.strike, last.side))
+        knots_v.append(v_td)
+        knots_a.append(-GRAVITY)
+        self.pelvis_z = _QuinticKeys(knots_t, knots_z, knots_v, knots_a)
 
         # Per-stride swing targets with natural variation; asymmetry on one side.
         for st in steps:
-            hip_peak, knee_min = d.hip_peak, d.knee_min
-            if spec.asymmetry_side == st.side:
-                hip_peak -= spec.hip_flexion_deficit_deg * _DEG
-                knee_min += spec.knee_extension_deficit_deg * _DEG
-            st.hip_peak = hip_peak + 1.2 * _DEG * jitter * rng.standard_normal()
+            asym = spec.asymmetry_side == st.side
+            st.hip_deficit = spec.hip_flexion_deficit_deg * _DEG if asym else 0.0
+            st.knee_deficit = spec.knee_extension_deficit_deg * _DEG if asym else 0.0
+            st.hip_peak = d.hip_peak + 1.2 * _DEG * jitter * rng.standard_normal()
             st.knee_peak = d.knee_peak + 2.0 * _DEG * jitter * rng.standard_normal()
-            st.knee_min = knee_min + 1.2 * _DEG * jitter * rng.standard_normal()
+            rng.standard_normal()  # (was the late-swing knee minimum's variation; keeps the random stream)
             st.ankle_peak = 8.0 * _DEG + 1.5 * _DEG * jitter * rng.standard_normal()
         self._build_legs()
 
@@ -479,74 +570,139 @@ class _Gait:
         phi_t, phi_s = _two_link_ik(ankle - hip[:, [0, 2]], self.body)
         return np.stack([phi_t, phi_s, phi_f], axis=-1)
 
+    def _stance_roll(self, st: _Step, heel_drop_rate: float, heel_drop_acc: float) -> "_QuinticKeys":
+        """Foot pitch over stance fraction 0..1: at strike the heel drops at ``heel_drop_rate`` (rad/s) with the
+        given angular acceleration (held for the first 15 % of stance), then the roll-over key values to toe-off."""
+        d = self.design
+        knots = [0.0, 0.4, 0.75, 1.0]
+        roll = CubicSpline(knots, [d.pitch_td, -6.0 * _DEG, -22.0 * _DEG, d.pitch_to])
+        ct = st.toe_off - st.strike
+        w0, a0, tau = heel_drop_rate * ct, heel_drop_acc * ct * ct, 0.15
+        return _QuinticKeys([0.0, tau] + knots[1:], [d.pitch_td, d.pitch_td + w0 * tau + 0.5 * a0 * tau * tau]
+                            + list(roll(knots[1:])), [w0, w0 + a0 * tau] + list(roll(knots[1:], 1)),
+                            [a0, a0] + list(roll(knots[1:], 2)))
+
     def _build_legs(self):
         d = self.design
-        # Stance: contact point from the strike configuration, foot pitch roll-over spline.
+        # Stance: contact point from the strike configuration, foot pitch roll-over.
         for st in self.steps:
             st.contact_x = self.hip(np.array([st.strike]), st.side)[0, 0] + self.td_reach[st.side][0]
-            st.stance_pitch = CubicSpline([0.0, 0.4, 0.75, 1.0],
-                                          [d.pitch_td, -6.0 * _DEG, -22.0 * _DEG, d.pitch_to])
-        # Swing: from each toe-off to the same side's next strike.
+            st.stance_pitch = self._stance_roll(st, d.heel_drop_rate, 0.0)
+        # Swing: from each toe-off to the same side's next strike. The hip extends from its peak to the strike at
+        # a constant angular acceleration; the coming stance starts with that acceleration of the thigh (set by
+        # the foot's acceleration at strike, in which the thigh's is linear: two trials).
         self.swings = []
         by_side = {s: [st for st in self.steps if st.side == s] for s in SIDES}
+        thigh_acc = lambda st: _derivatives(lambda t: self._stance_pitches(t, st), st.strike)[2][0]
         for side in SIDES:
             seq = by_side[side]
             for st, nxt in zip(seq[:-1], seq[1:]):
+                # heel-drop rate at strike that gives the thigh the rate for a hip-flexion peak at s_hip_peak of
+                # the swing (the hip rate at strike is linear in it: two trials)
+                delta = st.hip_peak - self._hip_plan(st, nxt)[0]
+                target_rate = -2.0 * delta / ((1.0 - d.s_hip_peak) * (nxt.strike - st.toe_off))
+                rates = []
+                for trial in (8.0, 16.0):
+                    nxt.stance_pitch = self._stance_roll(nxt, trial, 0.0)
+                    rates.append(self._hip_plan(st, nxt)[1])
+                drop = float(np.clip(8.0 + 8.0 * (target_rate - rates[0]) / (rates[1] - rates[0]), 4.0, 24.0))
+                target = self._hip_plan(st, nxt)[2] + _derivatives(
+                    lambda t: self.pelvis_angles(np.asarray(t))[0], nxt.strike)[2]
+                trials = []
+                for trial in (0.0, -1000.0):
+                    nxt.stance_pitch = self._stance_roll(nxt, drop, trial)
+                    trials.append(thigh_acc(nxt))
+                acc = -1000.0 * (target - trials[0]) / (trials[1] - trials[0])
+                nxt.stance_pitch = self._stance_roll(nxt, drop, acc)
                 self.swings.append(self._swing(st, nxt))
 
+    def _hip_plan(self, st: _Step, nxt: _Step):
+        """Hip flexion at strike, its rate there and the constant acceleration from the swing's peak to strike."""
+        pelvis_pitch = lambda t: self.pelvis_angles(np.asarray(t))[0]
+        p1, dp1, _ = _derivatives(lambda t: self._stance_pitches(t, nxt), nxt.strike)
+        pp1, dpp1, _ = _derivatives(pelvis_pitch, nxt.strike)
+        hip_td, rate_td = p1[0] - pp1, dp1[0] - dpp1
+        return hip_td, rate_td, -rate_td ** 2 / (2.0 * (st.hip_peak - hip_td))
+
     def _swing(self, st: _Step, nxt: _Step):
-        d, body = self.design, self.body
+        d = self.design
         t0, t1 = st.toe_off, nxt.strike
         dur = t1 - t0
         pelvis_pitch = lambda t: self.pelvis_angles(np.asarray(t))[0]
-        # start: stance state at toe-off (angles relative, and their rates) -> C1 join
+        # start: stance state at toe-off (hip, knee and ankle angles and their rates, rad/s): a C1 join, the
+        # acceleration steps there (the toe's lift, a jerk peak)
         p, dp, _ = _derivatives(lambda t: self._stance_pitches(t, st), t0)
         pp, dpp, _ = _derivatives(pelvis_pitch, t0)
         start = np.array([p[0] - pp, p[0] - p[1], p[2] - p[1]])
-        start_rate = np.array([dp[0] - dpp, dp[0] - dp[1], dp[2] - dp[1]]) * dur
-        # end: strike configuration; rates so that the toe moves at toe_velocity_td (ground frame)
+        rate0 = np.array([dp[0] - dpp, dp[0] - dp[1], dp[2] - dp[1]])
+        # end: the strike configuration with the rates the stance starts with (toe pinned, the stance's foot
+        # pitch), so thigh and shank run on into stance; only the foot turns toe-up faster in stance than at the
+        # end of swing, which brings the toe down onto the ground (see _landing_pitches)
         pp1, dpp1, _ = _derivatives(pelvis_pitch, t1)
-        phi_t = pp1 + d.hip_td
-        knee_td = self.knee_td[st.side]
-        phi_s = phi_t - knee_td
-        _, dfoot, _ = _derivatives(
-            lambda t: nxt.stance_pitch((np.asarray(t) - nxt.strike) / (nxt.toe_off - nxt.strike)), t1)
-        hip_v = _derivatives(lambda t: self.hip(t, st.side), t1)[1][[0, 2]]
-        lt, ls = body.thigh_length_m, body.shank_length_m
-        toe_l = self.toe_local[st.side]
-        c, s = np.cos(d.pitch_td), np.sin(d.pitch_td)
-        foot_term = np.array([-toe_l[0] * s - toe_l[1] * c, toe_l[0] * c - toe_l[1] * s]) * dfoot
-        target = np.asarray(d.toe_velocity_td) - hip_v - foot_term
-        jac = np.array([[lt * np.cos(phi_t), ls * np.cos(phi_s)], [lt * np.sin(phi_t), ls * np.sin(phi_s)]])
-        w_t, w_s = np.linalg.solve(jac, target)
-        end = np.array([d.hip_td, knee_td, d.pitch_td - phi_s])
-        end_rate = np.array([w_t - dpp1, w_t - w_s, dfoot - w_s]) * dur
+        p1, dp1, _ = _derivatives(lambda t: self._stance_pitches(t, nxt), t1)
+        end = np.array([p1[0] - pp1, p1[0] - p1[1], p1[2] - p1[1]])
+        end_rate = np.array([dp1[0] - dpp1, dp1[0] - dp1[1], dp1[2] - d.touchdown_foot_rate - dp1[1]])
 
-        def between(s_a, v_a, m_a, s_b, v_b, m_b, n=3):
-            """Cubic-Hermite samples strictly between (s_a, v_a, slope m_a) and (s_b, v_b, slope m_b)."""
-            u = np.linspace(0.0, 1.0, n + 2)[1:-1]
-            h = s_b - s_a
-            vals = ((2 * u ** 3 - 3 * u ** 2 + 1) * v_a + (u ** 3 - 2 * u ** 2 + u) * h * m_a
-                    + (-2 * u ** 3 + 3 * u ** 2) * v_b + (u ** 3 - u ** 2) * h * m_b)
-            return list(zip(s_a + u * h, vals))
+        # Time x since toe-off (s). Hip flexion: up to its peak under a constant acceleration then an equal
+        # deceleration, then extends into the strike at the constant acceleration that joins the peak to the strike
+        # state (the least that does).
+        bridge = d.switch_s
+        hip_td, hip_rate_td, hip_acc = self._hip_plan(st, nxt)
+        x_hip = dur - hip_rate_td / hip_acc
+        t_sw, acc, brake = _bang_bang(start[0], rate0[0], st.hip_peak, x_hip, d.hip_brake_ratio)
+        hip_x = _Parabolas([(0.0, start[0], rate0[0], acc),
+                            (t_sw, start[0] + rate0[0] * t_sw + 0.5 * acc * t_sw ** 2, rate0[0] + acc * t_sw, brake),
+                            (x_hip, st.hip_peak, 0.0, hip_acc)], bridge)
+        # knee flexion: up to its early-swing peak the same way, then extends and flexes again into the strike
+        # under two constant accelerations of equal size (extension speeding up, then slowing down and turning
+        # into the flexion rate the stance starts with): the least acceleration that covers the range in the time
+        knee_td, knee_rate_td = end[1] - st.knee_deficit, max(end_rate[1], 1.0)
+        x_pk = d.s_knee_peak * dur
+        tau_pk = x_pk - dur
 
-        def spline(points, rate0, rate1):
-            s_k, v_k = zip(*points)
-            return CubicSpline(np.array(s_k), np.array(v_k), bc_type=((1, rate0), (1, rate1)))
+        def mismatch(tau_v):
+            acc_ = -knee_rate_td / (2.0 * tau_v - tau_pk)
+            return (st.knee_peak - 0.5 * acc_ * (tau_v - tau_pk) ** 2
+                    - (knee_td + knee_rate_td * tau_v + 0.5 * acc_ * tau_v * tau_v))
 
-        # hip flexion: rises from toe-off to its late-swing peak, then extends to the strike value
-        s_pk = d.s_hip_peak
-        hip = spline([(0.0, start[0])] + between(0.0, start[0], start_rate[0], s_pk, st.hip_peak, 0.0)
-                     + [(s_pk, st.hip_peak)] + between(s_pk, st.hip_peak, 0.0, 1.0, end[0], end_rate[0])
-                     + [(1.0, end[0])], start_rate[0], end_rate[0])
-        # knee flexion: peak in early/mid swing, extension to the late-swing minimum, slight flexion to strike
-        k_pk, k_mn = d.s_knee_peak, d.s_knee_min
-        knee = spline([(0.0, start[1])] + between(0.0, start[1], start_rate[1], k_pk, st.knee_peak, 0.0)
-                      + [(k_pk, st.knee_peak)] + between(k_pk, st.knee_peak, 0.0, k_mn, st.knee_min, 0.0)
-                      + [(k_mn, st.knee_min)] + between(k_mn, st.knee_min, 0.0, 1.0, end[1], end_rate[1], n=1)
-                      + [(1.0, end[1])], start_rate[1], end_rate[1])
-        ankle = spline([(0.0, start[2]), (0.3, 0.0), (0.6, st.ankle_peak), (0.85, 0.6 * st.ankle_peak),
-                        (1.0, end[2])], start_rate[2], end_rate[2])
+        tau_v = brentq(mismatch, tau_pk * (1 - 1e-9), 0.5 * tau_pk * (1 + 1e-6))
+        knee_acc = -knee_rate_td / (2.0 * tau_v - tau_pk)
+        t_k, acc_k, brake_k = _bang_bang(start[1], rate0[1], st.knee_peak, x_pk, d.knee_brake_ratio)
+        knee_x = _Parabolas([(0.0, start[1], rate0[1], acc_k),
+                             (t_k, start[1] + rate0[1] * t_k + 0.5 * acc_k * t_k ** 2, rate0[1] + acc_k * t_k, brake_k),
+                             (x_pk, st.knee_peak, 0.0, -knee_acc),
+                             (dur + tau_v, knee_td + knee_rate_td * tau_v + 0.5 * knee_acc * tau_v ** 2,
+                              knee_rate_td + knee_acc * tau_v, knee_acc)],
+                            [min(d.knee_switch_s, 1.8 * min(t_k, x_pk - t_k - 0.5 * bridge)), bridge, bridge])
+        # ankle (relative foot pitch): plantar flexion eases off to a small dorsiflexion peak in mid swing, then
+        # plantar flexes to a late minimum from which it dorsiflexes into the strike at a constant acceleration
+        ankle_rate_td = end_rate[2]
+        ankle_acc = max(d.ankle_acc_td, ankle_rate_td ** 2 / (2.0 * (end[2] - d.ankle_floor)))
+        x_amin = dur - ankle_rate_td / ankle_acc
+        ankle_min = end[2] - ankle_rate_td ** 2 / (2.0 * ankle_acc)
+        early_ankle = CubicSpline([0.0, 0.3 * dur, 0.6 * dur], [start[2], 0.0, st.ankle_peak],
+                                  bc_type=((1, rate0[2]), (1, 0.0)))
+        mid_ankle = _QuinticKeys([0.6 * dur, x_amin], [st.ankle_peak, ankle_min], [0.0, 0.0],
+                                 [float(early_ankle(0.6 * dur, 2)), ankle_acc])
+
+        def ankle_x(x):
+            x = np.asarray(x, dtype=float)
+            late = end[2] + ankle_rate_td * (x - dur) + 0.5 * ankle_acc * (x - dur) ** 2
+            return np.where(x < 0.6 * dur, early_ankle(x), np.where(x < x_amin, mid_ankle(x), late))
+
+        # asymmetry: the hip-flexion deficit holds from the hip's peak through late swing and is released just
+        # before strike (the leg lands as the other one does); the knee-extension deficit holds from the knee's
+        # peak on (the leg lands with the knee flexed by it)
+        def hip_deficit(x):
+            rise = _smoothstep5((x - 0.15 * dur) / (x_hip - 0.15 * dur))
+            return st.hip_deficit * rise * (1.0 - _smoothstep5((x - dur + d.deficit_release_s) / d.deficit_release_s))
+
+        def knee_deficit(x):
+            return st.knee_deficit * _smoothstep5((x - x_pk) / (0.6 * dur - x_pk))
+
+        hip = lambda s_: hip_x(np.asarray(s_) * dur) - hip_deficit(np.asarray(s_) * dur)
+        knee = lambda s_: knee_x(np.asarray(s_) * dur) + knee_deficit(np.asarray(s_) * dur)
+        ankle = lambda s_: ankle_x(np.asarray(s_) * dur)
         return {"side": st.side, "t0": t0, "t1": t1, "hip": hip, "knee": knee, "ankle": ankle, "next": nxt}
 
     def _swing_pitches(self, t, sw):
@@ -557,22 +713,20 @@ class _Gait:
         return np.stack([phi_t, phi_s, phi_s + sw["ankle"](s)], axis=-1)
 
     def _landing_pitches(self, t, sw, window: float):
-        """Last ``window`` s before strike: quintic toe path to rest at the contact point, then IK."""
-        nxt = sw["next"]
-        side = sw["side"]
-        t_a = sw["t1"] - window
-        toe_fun = lambda tt: self.hip(tt, side)[:, [0, 2]] + _planar_leg(
-            *self._swing_pitches(tt, sw).T, self.body, self.toe_local[side])[2]
-        p0, v0, a0 = _derivatives(toe_fun, t_a)
-        f0, fv0, fa0 = _derivatives(lambda tt: self._swing_pitches(tt, sw)[:, 2], t_a)
-        pitch_fun = lambda tt: nxt.stance_pitch((np.asarray(tt) - nxt.strike) / (nxt.toe_off - nxt.strike))
-        f1, fv1, fa1 = _derivatives(pitch_fun, nxt.strike)
-        u = (np.asarray(t, dtype=float) - t_a) / window
-        toe = _hermite5(u, p0, v0, a0, np.array([nxt.contact_x, 0.0]), np.zeros(2), np.zeros(2), window)
-        phi_f = _hermite5(u, f0, fv0, fa0, f1, fv1, fa1, window)
-        ankle = toe - _rot2(phi_f, self.toe_local[side])
-        phi_t, phi_s = _two_link_ik(ankle - self.hip(t, side)[:, [0, 2]], self.body)
-        return np.stack([phi_t, phi_s, phi_f], axis=-1)
+        """Last ``window`` s before strike: the toe height blends (quintic smoothstep) from the swing's to zero and
+        the foot pitch is solved from it, thigh and shank staying on their swing paths (which end in the stance's
+        state). The light foot turns toe-up onto the ground: the toe's descent stops sharply (a clear upward
+        acceleration peak at touchdown) without an impact in thigh and shank."""
+        t = np.asarray(t, dtype=float)
+        toe_l = self.toe_local[sw["side"]]
+        swing = self._swing_pitches(t, sw)
+        hip_z = self.hip(t, sw["side"])[:, 2]
+        _, ankle, toe = _planar_leg(*swing.T, self.body, toe_l)
+        toe_height = (1.0 - _smoothstep5((t - (sw["t1"] - window)) / window)) * (hip_z + toe[:, 1])
+        # toe height = ankle_z + toe_x sin(phi) + toe_y cos(phi) = ankle_z + R sin(phi + delta)
+        radius, delta = np.hypot(toe_l[0], toe_l[1]), np.arctan2(toe_l[1], toe_l[0])
+        phi_f = np.arcsin(np.clip((toe_height - hip_z - ankle[:, 1]) / radius, -1.0, 1.0)) - delta
+        return np.stack([swing[:, 0], swing[:, 1], phi_f], axis=-1)
 
     def leg_pitches(self, t, side):
         """Absolute thigh, shank and foot pitch [n, 3] of one leg at times t (ground frame)."""
