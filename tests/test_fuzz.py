@@ -321,8 +321,16 @@ def test_native_crash_becomes_a_failed_trial(sources, tmp_path, monkeypatch):
     source_layout = real_check(sources / "a_zup_events.c3d")  # same points and frames as the crafted file
     monkeypatch.setattr(hio, "check_c3d_header",
                         lambda path: source_layout if Path(path).name == "sprint_02.c3d" else real_check(path))
-    for jobs in (1, 2):
-        run = run_squad(root, tmp_path / f"out{jobs}", jobs=jobs, report=False)
+    import faulthandler
+
+    was_enabled = faulthandler.is_enabled()
+    faulthandler.disable()  # forked workers inherit it: the deliberate crash would print a stack dump into the log
+    try:
+        runs = [run_squad(root, tmp_path / f"out{jobs}", jobs=jobs, report=False) for jobs in (1, 2)]
+    finally:
+        if was_enabled:
+            faulthandler.enable()
+    for run in runs:
         manifest = json.loads((run.out / "manifest.json").read_text())
         status = {Path(r["file"]).name: (r["status"], r.get("code")) for r in manifest["inputs"]}
         assert status == {"sprint_01.c3d": ("ok", None), "sprint_02.c3d": ("failed", "reader_crash")}, status
