@@ -446,8 +446,9 @@ def test_less_hip_flexion_gives_lower_strain_beyond_the_uncertainty_band():
 
 
 def test_synth_hip_flexion_deficit_is_lower_and_beyond_the_paired_band():
-    # hamstride.synth with 12 deg less late-swing hip flexion on the left: lower left peak strain, and the paired
-    # (same-seed) Monte Carlo difference right - left stays above zero from the 5th percentile.
+    # hamstride.synth with 12 deg less late-swing hip flexion on the left: lower left peak strain, the paired
+    # (same-seed) Monte Carlo difference right - left stays above zero from the 5th percentile, and the two sides'
+    # 5-95 % bands do not overlap.
     synth = pytest.importorskip("hamstride.synth")
     _, _, truth = synth.simulate_sprint(synth.SprintSpec(asymmetry_side="left", hip_flexion_deficit_deg=12.0,
                                                          stride_jitter=0.0))
@@ -466,6 +467,10 @@ def test_synth_hip_flexion_deficit_is_lower_and_beyond_the_paired_band():
         low, _ = M.peak_difference_band(bands["right"][muscle][0], windows["right"], bands["left"][muscle][0],
                                         windows["left"])
         assert low > 0.0, muscle
+        # ... and the per-side 5-95 % bands of the peak do not overlap (issue 4 acceptance)
+        _, left_p95 = M.peak_band(bands["left"][muscle][0], *windows["left"])
+        right_p5, _ = M.peak_band(bands["right"][muscle][0], *windows["right"])
+        assert left_p95 < right_p5, (muscle, left_p95, right_p5)
 
 
 def test_monte_carlo_shapes_reproducibility_and_band_contains_nominal():
