@@ -420,7 +420,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     if report:
         from .report import render_squad
         run_info = {"version": __version__, "configuration": config.as_dict(), "failed": failed,
-                    "tendon_note": _tendon_note()}
+                    "tendon_note": _tendon_note(), "report_jobs": jobs}  # athlete pages render in parallel too
         # Curves are loaded one athlete at a time while the pages render, so memory does not grow with the squad.
         curves_of = functools.partial(_athlete_curves, curve_files_by_athlete)
         run.report_paths = render_squad(out, strides, curves_of, flags, summary, athletes, run_info)
