@@ -16,6 +16,8 @@ from hamstride import dynamics as dyn
 from hamstride.segments import Frames, frames_from_x_y, frames_from_y_z
 from hamstride.signal import lowpass, residual_cutoff
 
+from _truth import truth_swing_moments  # tests/_truth.py
+
 # --------------------------------------------------------------------------- de Leva table, cell by cell
 # de Leva P. 1996, J Biomech 29:1223-1230, Table 4 (as transcribed in references.md, status [V]):
 # mass fraction, CoM from the proximal endpoint, r_sagittal, r_transverse, r_longitudinal.
@@ -504,14 +506,8 @@ def _sprint_swings(speed_m_s, side="right"):
 
     spec = synth.SprintSpec(speed_m_s=speed_m_s, noise_mm=0.0, n_gaps=0, seed=4, duration_s=2.0)
     _, _, tr = synth.simulate_sprint(spec)
-    b, rate, n = tr.body, tr.rate_hz, len(tr.time_s)
-    seg = {s: Frames(tr.origins[f"{side}_{s}"], tr.axes[f"{side}_{s}"]) for s in dyn.SEGMENTS}
-    swing = dyn.swing_mask_from_events(n, rate, tr.toe_offs_s[side], tr.foot_strikes_s[side])
-    moments = dyn.swing_inverse_dynamics(
-        seg["thigh"], seg["shank"], seg["foot"], tr.joint_centres[f"{side}_hip"], tr.joint_centres[f"{side}_knee"],
-        tr.joint_centres[f"{side}_ankle"], tr.landmarks_lab[f"{side}_heel"], tr.landmarks_lab[f"{side}_toe_tip"],
-        rate, dyn.leg_inertia(b.mass_kg, b.sex, b.thigh_length_m, b.shank_length_m, b.foot_length_m),
-        swing_mask=swing, pelvis=Frames(tr.origins["pelvis"], tr.axes["pelvis"]), side=side)
+    b, rate = tr.body, tr.rate_hz
+    moments = truth_swing_moments(tr, side)
     angles = {k: tr.angles[side][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
     states = muscle_states(angles, rate, MuscleDims(b.pelvis_width_m, b.pelvis_depth_m, b.thigh_length_m,
                                                     b.shank_length_m), body_mass_kg=b.mass_kg)
@@ -696,13 +692,7 @@ def symmetric_pair():
     spec = synth.SprintSpec(speed_m_s=8.8, noise_mm=0.0, n_gaps=0, seed=4, duration_s=2.0)
     _, _, tr = synth.simulate_sprint(spec)
     b, rate, n = tr.body, tr.rate_hz, len(tr.time_s)
-    seg = {s: Frames(tr.origins[f"{side}_{s}"], tr.axes[f"{side}_{s}"]) for s in dyn.SEGMENTS}
-    swing = dyn.swing_mask_from_events(n, rate, tr.toe_offs_s[side], tr.foot_strikes_s[side])
-    moments = dyn.swing_inverse_dynamics(
-        seg["thigh"], seg["shank"], seg["foot"], tr.joint_centres[f"{side}_hip"], tr.joint_centres[f"{side}_knee"],
-        tr.joint_centres[f"{side}_ankle"], tr.landmarks_lab[f"{side}_heel"], tr.landmarks_lab[f"{side}_toe_tip"],
-        rate, dyn.leg_inertia(b.mass_kg, b.sex, b.thigh_length_m, b.shank_length_m, b.foot_length_m),
-        swing_mask=swing, pelvis=Frames(tr.origins["pelvis"], tr.axes["pelvis"]), side=side)
+    moments = truth_swing_moments(tr, side)
     angles = {k: tr.angles[side][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
     dims = MuscleDims(b.pelvis_width_m, b.pelvis_depth_m, b.thigh_length_m, b.shank_length_m)
     rng = np.random.default_rng(1)

@@ -8,8 +8,6 @@ pytest. Default run: 600 cases; ``pytest -m slow``: 5,000 cases and a squad-leve
 from __future__ import annotations
 
 import json
-import os
-import shutil
 import struct
 import subprocess
 import sys

@@ -7,7 +7,6 @@ the named ways. Byte offsets follow the C3D layout of the c3d.org user guide (he
 from __future__ import annotations
 
 import json
-import math
 import os
 import struct
 import subprocess

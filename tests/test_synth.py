@@ -271,20 +271,11 @@ def test_faster_sprint_gives_more_hip_flexion_and_faster_late_swing_knee_extensi
 
 
 def _swing_moments_per_kg(truth, side):
-    """Swing inverse dynamics of the truth frames (hamstride.dynamics, called as in tests/test_dynamics.py)."""
-    from hamstride import dynamics as dyn
-    from hamstride.segments import Frames
+    """Swing inverse dynamics of the truth frames, per kg of body mass (hip flexion, knee flexion)."""
+    from _truth import truth_swing_moments
 
-    b, rate, n = truth.body, truth.rate_hz, truth.time_s.size
-    seg = {s: Frames(truth.origins[f"{side}_{s}"], truth.axes[f"{side}_{s}"]) for s in dyn.SEGMENTS}
-    swing = dyn.swing_mask_from_events(n, rate, truth.toe_offs_s[side], truth.foot_strikes_s[side])
-    moments = dyn.swing_inverse_dynamics(
-        seg["thigh"], seg["shank"], seg["foot"], truth.joint_centres[f"{side}_hip"],
-        truth.joint_centres[f"{side}_knee"], truth.joint_centres[f"{side}_ankle"],
-        truth.landmarks_lab[f"{side}_heel"], truth.landmarks_lab[f"{side}_toe_tip"], rate,
-        dyn.leg_inertia(b.mass_kg, b.sex, b.thigh_length_m, b.shank_length_m, b.foot_length_m),
-        swing_mask=swing, pelvis=Frames(truth.origins["pelvis"], truth.axes["pelvis"]), side=side)
-    return moments.hip_flexion_nm / b.mass_kg, moments.knee_flexion_nm / b.mass_kg
+    moments = truth_swing_moments(truth, side)
+    return moments.hip_flexion_nm / truth.body.mass_kg, moments.knee_flexion_nm / truth.body.mass_kg
 
 
 def test_terminal_swing_joint_moments_are_of_published_sprint_size_without_a_landing_spike():

@@ -228,7 +228,7 @@ def timeline_cmd(
     Example: `hamstride timeline demo_trials --athlete RB12 --out reports/`
     """
     from .batch import build_timeline, load_config, run_squad
-    from .report import render_timeline, safe_component
+    from .report import render_timeline
 
     try:
         cfg = load_config(config)

@@ -8,8 +8,8 @@ imbalances of 15 % and 20 % raised hamstring strain risk 2.4- and 3.4-fold.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field, fields
-from typing import Iterable, Mapping
+from dataclasses import dataclass, fields
+from typing import Mapping
 
 import numpy as np
 import pandas as pd
