@@ -633,55 +633,20 @@ _STRETCH_ROWS = (
 _FORCE_ROWS = (("force_n", "muscle force (N)"), ("power_w", "muscle power (W)"))
 
 
-def _stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
-    stats, groups = _curve_stats(curves, [r[0] for r in _STRETCH_ROWS]), _stride_groups(strides)
+def _muscle_grid(fig, rows: Sequence[tuple[str, str]], muscles: Sequence[str], curves: pd.DataFrame,
+                 strides: pd.DataFrame, decorate) -> np.ndarray:
+    """One column per muscle and one row per curve column, left and right overlaid, late swing shaded.
+
+    ``decorate(ax, column, muscle, drawn)`` adds what is particular to a row (reference lines, peak marks)."""
+    stats = _curve_stats(curves, [r[0] for r in rows])
     starts, toe_off = _window_starts(strides), _toe_off(strides)
-    n = max(1, len(muscles))
-    fig = _new_figure(2.9 * n + 0.6, 7.6)
-    axes = fig.subplots(len(_STRETCH_ROWS), n, sharex=True, sharey="row", squeeze=False)
+    axes = fig.subplots(len(rows), max(1, len(muscles)), sharex=True, sharey="row", squeeze=False)
     for j, muscle in enumerate(muscles):
-        for i, (col, ylabel, peak, lo, hi, peak_t) in enumerate(_STRETCH_ROWS):
+        for i, (col, ylabel) in enumerate(rows):
             ax = axes[i, j]
             _shade_window(ax, starts, toe_off)
             drawn = _plot_side_curves(ax, stats, muscle, col)
-            if col == "fibre_length_lopt":
-                ax.axhline(1.0, color=PALETTE["reference"], ls=":", lw=1.0, zorder=1)
-                ax.text(1.5, 1.0, "optimal length", fontsize=7, color=PALETTE["reference"], va="bottom")
-            if col == "velocity_lopt_per_s":
-                ax.axhline(0.0, color=PALETTE["reference"], ls="-", lw=0.6, zorder=1)
-            if drawn:
-                _mark_peaks(ax, drawn, groups, muscle, peak, lo, hi, peak_t)
-            else:
-                ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
-            if i == 0:
-                ax.set_title(_mpl_text(MUSCLE_NAMES.get(muscle, muscle)), fontsize=9)
-                _label_window(ax, starts, toe_off)
-            if j == 0:
-                ax.set_ylabel(ylabel, fontsize=8.5)
-            if i == len(_STRETCH_ROWS) - 1:
-                ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-            _cycle_axes(ax)
-    _headroom(axes[0, 0])
-    _header(fig, title, _side_handles())
-    _margins(fig, top_in=0.85, left_in=0.75, bottom_in=0.5)
-    return fig
-
-
-def _force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
-    stats, groups = _curve_stats(curves, [r[0] for r in _FORCE_ROWS]), _stride_groups(strides)
-    starts, toe_off = _window_starts(strides), _toe_off(strides)
-    n = max(1, len(muscles))
-    fig = _new_figure(2.9 * n + 0.6, 5.2)
-    axes = fig.subplots(len(_FORCE_ROWS), n, sharex=True, sharey="row", squeeze=False)
-    for j, muscle in enumerate(muscles):
-        for i, (col, ylabel) in enumerate(_FORCE_ROWS):
-            ax = axes[i, j]
-            _shade_window(ax, starts, toe_off)
-            drawn = _plot_side_curves(ax, stats, muscle, col)
-            if col == "force_n" and drawn:
-                _mark_peaks(ax, drawn, groups, muscle, "peak_force_n", None, None, None)
-            if col == "power_w":
-                ax.axhline(0.0, color=PALETTE["reference"], ls="-", lw=0.6, zorder=1)
+            decorate(ax, col, muscle, drawn)
             if not drawn:
                 ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
             if i == 0:
@@ -689,12 +654,46 @@ def _force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence
                 _label_window(ax, starts, toe_off)
             if j == 0:
                 ax.set_ylabel(ylabel, fontsize=8.5)
-            if i == len(_FORCE_ROWS) - 1:
+            if i == len(rows) - 1:
                 ax.set_xlabel("gait cycle (%)", fontsize=8.5)
             _cycle_axes(ax)
+    _headroom(axes[0, 0])
+    return axes
+
+
+def _stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
+    groups = _stride_groups(strides)
+    peaks = {r[0]: r[2:] for r in _STRETCH_ROWS}
+
+    def decorate(ax, col, muscle, drawn):
+        if col == "fibre_length_lopt":
+            ax.axhline(1.0, color=PALETTE["reference"], ls=":", lw=1.0, zorder=1)
+            ax.text(1.5, 1.0, "optimal length", fontsize=7, color=PALETTE["reference"], va="bottom")
+        if col == "velocity_lopt_per_s":
+            ax.axhline(0.0, color=PALETTE["reference"], ls="-", lw=0.6, zorder=1)
+        if drawn:
+            _mark_peaks(ax, drawn, groups, muscle, *peaks[col])
+
+    fig = _new_figure(2.9 * max(1, len(muscles)) + 0.6, 7.6)
+    _muscle_grid(fig, [r[:2] for r in _STRETCH_ROWS], muscles, curves, strides, decorate)
+    _header(fig, title, _side_handles())
+    _margins(fig, top_in=0.85, left_in=0.75, bottom_in=0.5)
+    return fig
+
+
+def _force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
     from matplotlib.lines import Line2D
 
-    _headroom(axes[0, 0])
+    groups = _stride_groups(strides)
+
+    def decorate(ax, col, muscle, drawn):
+        if col == "force_n" and drawn:
+            _mark_peaks(ax, drawn, groups, muscle, "peak_force_n", None, None, None)
+        if col == "power_w":
+            ax.axhline(0.0, color=PALETTE["reference"], ls="-", lw=0.6, zorder=1)
+
+    fig = _new_figure(2.9 * max(1, len(muscles)) + 0.6, 5.2)
+    _muscle_grid(fig, _FORCE_ROWS, muscles, curves, strides, decorate)
     star = Line2D([], [], color="black", marker="*", ls="none", markersize=9, label="mean of stride peak forces")
     _header(fig, title, _side_handles(with_peak=False) + [star])
     _margins(fig, top_in=0.85, left_in=0.75, bottom_in=0.5)
