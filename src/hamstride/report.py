@@ -626,8 +626,9 @@ def _mark_peaks(ax, drawn: Mapping[str, tuple], groups: Mapping, muscle: str, va
 _STRETCH_ROWS = (
     ("strain_pct", "stretch vs upright (%)", "peak_strain_pct", "peak_strain_p5_pct", "peak_strain_p95_pct",
      "peak_strain_time_pct"),
+    # rigid tendon: fibre length rises with musculotendon length, so its late-swing peak comes with the strain peak
     ("fibre_length_lopt", "fibre length l/l_opt (–)", "peak_fibre_length_lopt", "peak_fibre_length_lopt_p5",
-     "peak_fibre_length_lopt_p95", None),
+     "peak_fibre_length_lopt_p95", "peak_strain_time_pct"),
     ("velocity_lopt_per_s", "lengthening velocity (l_opt/s)", None, None, None, None),
 )
 _FORCE_ROWS = (("force_n", "muscle force (N)"), ("power_w", "muscle power (W)"))
