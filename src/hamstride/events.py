@@ -358,16 +358,23 @@ def _strike_fallback(lowest: np.ndarray, lowest_vz: np.ndarray, lo: int, hi: int
 def _toe_off_fallback(
     toe_rel: np.ndarray, knee_flexion: np.ndarray | None, lo: int, hi: int, start: int, end: int
 ) -> float | None:
-    """Fellin et al. 2010: toe-off at peak knee extension; without knee angles, the toe leaving its floor level."""
-    if knee_flexion is not None:
-        k = np.asarray(knee_flexion, float)
-        # peak knee extension in the second half of the contact and just after it
-        a = start + (end - start) // 2
-        seg = k[a:hi]
-        if seg.size >= 3 and np.isfinite(seg).all():
-            i = int(np.argmin(seg))
-            return _parabolic_peak(-k, a + i)
-    return _first_crossing_up(toe_rel, 0.005, lo, hi)
+    """Second toe-off rule: the toe marker rising 5 mm off its floor level (the definition of toe-off, read from
+    position rather than jerk); when that marker gives nothing, peak knee extension (Fellin et al. 2010).
+
+    Peak knee extension comes first only for distance running: in sprinting the knee's extension minimum is shallow
+    and can lead toe-off by tens of ms, so it is kept as the last resort, not the check.
+    """
+    toe = _first_crossing_up(toe_rel, 0.005, lo, hi)
+    if toe is not None or knee_flexion is None:
+        return toe
+    k = np.asarray(knee_flexion, float)
+    # peak knee extension in the second half of the contact and just after it
+    a = start + (end - start) // 2
+    seg = k[a:hi]
+    if seg.size >= 3 and np.isfinite(seg).all():
+        i = int(np.argmin(seg))
+        return _parabolic_peak(-k, a + i)
+    return None
 
 
 # --------------------------------------------------------------------------------------------
