@@ -42,16 +42,16 @@ def landmarks_cmd(
 ) -> None:
     """Show how each anatomical landmark resolved in a trial (label used, % valid frames).
 
-    Example: `hamstride landmarks demo_trials/KT07/2026-03-02_week0/sprint_01.c3d`
+    Example: `hamstride landmarks demo_trials/KT07/2026-03-02_testing/sprint_01.c3d`
 
     Exit code 0 when every required landmark resolves, 1 otherwise.
     """
-    from .io import read_c3d
+    from .io import read_c3d_isolated
     from .landmarks import LandmarkError, load_marker_map, plain_name, resolve_landmarks
 
     try:
         marker_map = load_marker_map(markers)
-        data = read_c3d(trial)
+        data = read_c3d_isolated(trial)
     except HamstrideError as exc:
         _fail(exc)
     try:
@@ -137,15 +137,18 @@ def analyze_cmd(
 ) -> None:
     """Analyse one trial and write its strides.csv and curves.csv.
 
-    Example: `hamstride analyze demo_trials/KT07/2026-03-02_week0/sprint_01.c3d --body-mass 74 --out reports/one`
+    Example: `hamstride analyze demo_trials/KT07/2026-03-02_testing/sprint_01.c3d --body-mass 74 --out reports/one`
     """
     from .batch import table_csv
-    from .io import atomic_write_text
+    from .io import atomic_write_text, read_c3d_isolated
     from .pipeline import AnalysisOptions, AthleteInfo, analyse_trial
 
     info = AthleteInfo(athlete=trial.parent.parent.name, session=trial.parent.name, body_mass_kg=body_mass,
                        sex="female" if sex.lower().startswith("f") else "male")
     try:
+        for path in (trial, static):
+            if path is not None:
+                read_c3d_isolated(path)  # a native reader crash becomes an error message, not a dead process
         result = analyse_trial(trial, AnalysisOptions(cutoff_hz=cutoff, strict=strict), athlete=info, static_path=static,
                                markers=markers)
     except HamstrideError as exc:

@@ -445,6 +445,22 @@ def _trial_from_ezc3d(c, path: Path, layout: C3DLayout) -> MarkerTrial:
                        events=events, meta=meta, units_in_file=units, lab=lab)
 
 
+def read_c3d_isolated(path: str | Path) -> MarkerTrial:
+    """:func:`read_c3d` in a child process, so a crash of the native reader becomes a FileFormatError.
+
+    For single-trial commands; squad runs get the same protection from their worker pool.
+    """
+    import concurrent.futures as cf
+
+    check_c3d_header(path)  # the common problems are found here, without starting a process
+    with cf.ProcessPoolExecutor(max_workers=1) as pool:
+        try:
+            return pool.submit(read_c3d, path).result()
+        except cf.process.BrokenProcessPool:
+            raise FileFormatError("the C3D reader crashed on this file; it is probably corrupt; re-export it from "
+                                  "the capture software", trial=Path(path).name, code="reader_crash") from None
+
+
 def _first(values, default):
     try:
         return values[0] if len(values) else default
