@@ -332,3 +332,36 @@ def test_native_crash_becomes_a_failed_trial(sources, tmp_path, monkeypatch):
         manifest = json.loads((run.out / "manifest.json").read_text())
         status = {Path(r["file"]).name: (r["status"], r.get("code")) for r in manifest["inputs"]}
         assert status == {"sprint_01.c3d": ("ok", None), "sprint_02.c3d": ("failed", "reader_crash")}, status
+
+
+def test_single_trial_read_survives_a_native_crash(sources, tmp_path, monkeypatch):
+    """`hamstride analyze` / `landmarks` read through read_c3d_isolated: a file that crashes the native reader
+    (validator switched off in the child, as above) gives a reader_crash error instead of killing the command."""
+    import faulthandler
+    import multiprocessing
+
+    if multiprocessing.get_start_method(allow_none=False) != "fork":
+        pytest.skip("the validator can only be switched off in fork-started children")
+    import hamstride.io as hio
+
+    data = bytearray((sources / "a_zup_events.c3d").read_bytes())
+    labels = data.index(b"LABELS", data.index(b"ROTATION"))
+    data[labels + 6 + 2 + 1] = 211  # the 211-dimension record that segfaults ezc3d 1.7
+    crafted = tmp_path / "crash.c3d"
+    crafted.write_bytes(bytes(data))
+    probe = subprocess.run([sys.executable, "-c", "import ezc3d, sys; ezc3d.c3d(sys.argv[1], "
+                            "extract_forceplat_data=False)", str(crafted)], capture_output=True)
+    if probe.returncode >= 0:
+        pytest.skip("this ezc3d version does not crash on the crafted file")
+    layout = hio.check_c3d_header(sources / "a_zup_events.c3d")
+    monkeypatch.setattr(hio, "check_c3d_header", lambda path: layout)
+    was_enabled = faulthandler.is_enabled()
+    faulthandler.disable()
+    try:
+        with pytest.raises(HamstrideError) as info:
+            hio.read_c3d_isolated(crafted)
+    finally:
+        if was_enabled:
+            faulthandler.enable()
+    assert info.value.code == "reader_crash" and "crash.c3d" in info.value.message
+    assert hio.read_c3d_isolated(sources / "a_zup_events.c3d").n_frames > 0
