@@ -11,11 +11,15 @@ time ~ frames^k with k <= 1.1; --jobs 2 speedup >= 1.7 on 48 trials; peak memory
 """
 from __future__ import annotations
 
+import os
+
+for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_variable, "1")  # as the hamstride command does: parallelism is per trial
+
 import argparse
 import contextlib
 import filecmp
 import importlib
-import os
 import resource
 import shutil
 import statistics
