@@ -5,7 +5,7 @@ The same function serves the CLI, the squad batch and a notebook.
 """
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping
 
@@ -47,9 +47,6 @@ class AnalysisOptions:
     min_speed_m_s: float = 4.0  # slower is a jog, not a sprint (checks.MIN_SPRINT_SPEED_M_S; common practice)
     strict: bool = False  # --strict: any warning fails the trial
 
-    def key(self) -> dict:
-        return asdict(self)
-
 
 @dataclass(frozen=True)
 class AthleteInfo:
@@ -67,10 +64,6 @@ class TrialResult:
     strides: pd.DataFrame
     curves: pd.DataFrame
     info: Mapping[str, object] = field(default_factory=dict)
-
-
-def _deg(x):
-    return np.degrees(x)
 
 
 @dataclass(frozen=True)
@@ -239,11 +232,11 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             for m in MUSCLES:
                 if m in forces_side:
                     forces[m] = np.where(swing, forces_side[m], np.nan)
-        hip_deg = _deg(a["hip_flexion"])
-        knee_deg = _deg(a["knee_flexion"])
+        hip_deg = np.degrees(a["hip_flexion"])
+        knee_deg = np.degrees(a["knee_flexion"])
         strain_pct = {m: 100.0 * states[m].strain for m in MUSCLES}
         power = {m: -forces[m] * states[m].velocity_m_per_s for m in MUSCLES}  # delivered; negative = absorbing
-        columns = [hip_deg, _deg(a["hip_adduction"]), knee_deg, hip_moment, knee_moment]
+        columns = [hip_deg, np.degrees(a["hip_adduction"]), knee_deg, hip_moment, knee_moment]
         for m in MUSCLES:
             st = states[m]
             columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
