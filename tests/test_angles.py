@@ -87,6 +87,13 @@ def _angles(override=None):
     return joint_angles(build_body(_landmarks(override)))
 
 
+def _assert_pure(ang, moving: str, theta: float, still: tuple[str, ...]) -> None:
+    """A pure motion: ``moving`` equals theta and every angle in ``still`` stays zero (to 1e-9 rad)."""
+    assert np.allclose(ang[moving], theta, atol=1e-9)
+    for name in still:
+        assert np.allclose(ang[name], 0.0, atol=1e-9), name
+
+
 @pytest.mark.parametrize("side", ["left", "right"])
 def test_pure_hip_flexion_is_positive_on_both_sides(side):
     # Anatomy: hip flexion moves the knee forward (+x); sign convention hip flexion + (references.md, ISB).
@@ -96,10 +103,7 @@ def test_pure_hip_flexion_is_positive_on_both_sides(side):
     lat = _standing_limb(side)["lat_dir"]
     ang = _angles({side: {"knee": knee, "ankle": knee + 0.4 * np.array([np.sin(theta), 0, -np.cos(theta)]),
                           "lat_dir": lat}})[side]
-    assert np.allclose(ang["hip_flexion"], theta, atol=1e-9)
-    assert np.allclose(ang["hip_adduction"], 0.0, atol=1e-9)
-    assert np.allclose(ang["hip_rotation"], 0.0, atol=1e-9)
-    assert np.allclose(ang["knee_flexion"], 0.0, atol=1e-9)
+    _assert_pure(ang, "hip_flexion", theta, ("hip_adduction", "hip_rotation", "knee_flexion"))
 
 
 @pytest.mark.parametrize("side", ["left", "right"])
@@ -112,9 +116,7 @@ def test_pure_hip_adduction_is_positive_on_both_sides(side):
     lat_dir = np.array([0.0, -medial * np.cos(theta), -medial * np.sin(theta)])
     knee = hjc + 0.45 * down
     ang = _angles({side: {"knee": knee, "ankle": knee + 0.4 * down, "lat_dir": lat_dir}})[side]
-    assert np.allclose(ang["hip_adduction"], theta, atol=1e-9)
-    assert np.allclose(ang["hip_flexion"], 0.0, atol=1e-9)
-    assert np.allclose(ang["hip_rotation"], 0.0, atol=1e-9)
+    _assert_pure(ang, "hip_adduction", theta, ("hip_flexion", "hip_rotation"))
 
 
 @pytest.mark.parametrize("side", ["left", "right"])
@@ -126,10 +128,7 @@ def test_pure_hip_internal_rotation_is_positive_on_both_sides(side):
     lat = np.cos(theta) * lat0 + np.sin(theta) * np.array([1.0, 0.0, 0.0])
     fwd = np.cos(theta) * np.array([1.0, 0.0, 0.0]) - np.sin(theta) * lat0
     ang = _angles({side: {"lat_dir": lat, "foot_fwd": fwd}})[side]
-    assert np.allclose(ang["hip_rotation"], theta, atol=1e-9)
-    assert np.allclose(ang["hip_flexion"], 0.0, atol=1e-9)
-    assert np.allclose(ang["hip_adduction"], 0.0, atol=1e-9)
-    assert np.allclose(ang["knee_rotation"], 0.0, atol=1e-9)
+    _assert_pure(ang, "hip_rotation", theta, ("hip_flexion", "hip_adduction", "knee_rotation"))
 
 
 @pytest.mark.parametrize("side", ["left", "right"])
@@ -139,10 +138,7 @@ def test_pure_knee_flexion_is_positive_on_both_sides(side):
     theta = np.radians(60)
     ankle = limb["knee"] + 0.4 * np.array([-np.sin(theta), 0.0, -np.cos(theta)])
     ang = _angles({side: {"ankle": ankle}})[side]
-    assert np.allclose(ang["knee_flexion"], theta, atol=1e-9)
-    assert np.allclose(ang["hip_flexion"], 0.0, atol=1e-9)
-    assert np.allclose(ang["knee_adduction"], 0.0, atol=1e-9)
-    assert np.allclose(ang["knee_rotation"], 0.0, atol=1e-9)
+    _assert_pure(ang, "knee_flexion", theta, ("hip_flexion", "knee_adduction", "knee_rotation"))
 
 
 @pytest.mark.parametrize("side", ["left", "right"])
