@@ -22,7 +22,6 @@ import io
 import math
 import os
 import re
-import tempfile
 import textwrap
 import time
 import unicodedata
@@ -33,6 +32,8 @@ from urllib.parse import quote
 
 import numpy as np
 import pandas as pd
+
+from .io import atomic_path, atomic_write_bytes
 
 CAUTION = (
     "hamstride is a screening and monitoring aid, not a diagnosis; decisions about an athlete's care belong to "
@@ -205,18 +206,8 @@ def _inside(root: Path, path: Path) -> Path:
 
 
 def _write_atomic(path: Path, data: bytes | str) -> Path:
-    """Write bytes or UTF-8 text to ``path`` via a temporary file in the same folder and os.replace."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    payload = data.encode("utf-8") if isinstance(data, str) else data
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(payload)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    return path
+    """Write bytes or UTF-8 text through io's atomic writer (temporary file in the same folder, then rename)."""
+    return atomic_write_bytes(path, data.encode("utf-8") if isinstance(data, str) else data)
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -1155,20 +1146,13 @@ def _write_pdf(path: Path, athlete: str, info: Mapping, sessions: Sequence[str],
     for term, text in GLOSSARY:
         lines += _wrap(f"{term}: {text}")
 
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    os.close(fd)
-    try:
+    with atomic_path(path) as tmp:
         with PdfPages(tmp, metadata={"Title": f"hamstride report {athlete}", "Subject": CAUTION,
                                      "Creator": "hamstride"}) as pdf:
             for i, page in enumerate(_paginate(lines)):
                 _text_page(pdf, page, f"hamstride · athlete {athlete}" + (" (continued)" if i else ""))
             for raster, title, caption in figures:
                 _image_page(pdf, raster, f"{athlete} · {title}", caption)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
 
 
 # ----------------------------------------------------------------------------------------------------------------
