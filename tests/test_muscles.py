@@ -8,7 +8,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy.interpolate import CubicSpline
-from scipy.optimize import minimize
+from scipy.optimize import brentq, minimize
 from scipy.spatial.transform import Rotation
 
 from hamstride import muscles as M
@@ -494,6 +494,82 @@ def test_monte_carlo_shapes_reproducibility_and_band_contains_nominal():
             assert (l_high - l_low) > (s_high - s_low)
     with pytest.raises(HamstrideError):
         M.peak_band(a["bflh"][0], 10, 10)
+
+
+def test_fibre_length_never_falls_as_the_unit_lengthens():
+    # Constant thickness (Zajac 1989, from memory) has l = sqrt((L - L_ts)^2 + t^2), which would grow again as the
+    # unit shortens below its tendon slack length. A slack tendon leaves the fibres at their shortest instead:
+    # l = t = l_opt sin(alpha_opt), pennation 90 deg, and l is non-decreasing in L over the whole range.
+    arch = M.ARCHITECTURE["sm"]
+    slack = 0.30
+    mtu = np.linspace(slack - 0.06, slack + 0.10, 801)
+    fibre, alpha = M.fibre_length(mtu, slack, arch.optimal_fibre_length_m, arch.pennation_rad)
+    thickness = arch.optimal_fibre_length_m * np.sin(arch.pennation_rad)
+    assert np.all(np.diff(fibre) >= 0.0)
+    below = mtu <= slack
+    np.testing.assert_allclose(fibre[below], thickness, rtol=1e-15)
+    np.testing.assert_allclose(alpha[below], np.pi / 2, rtol=1e-15)
+    np.testing.assert_allclose(fibre[~below], np.hypot(mtu[~below] - slack, thickness), rtol=1e-15)
+
+
+def _stride_windows(pct, n_strides):
+    per = len(pct) // n_strides
+    return [(k * per + int(np.searchsorted(pct[:per], 50.0)), (k + 1) * per) for k in range(n_strides)]
+
+
+@pytest.mark.parametrize("margin_m", [M.PEAK_SEARCH_MARGIN_M, 0.0])
+def test_monte_carlo_peaks_equal_the_peaks_of_the_full_band(margin_m):
+    # The fast per-window search must give exactly the peaks of the full [S, F] band with the same draws; a zero
+    # margin searches only the nominal peak frame, so every sample that peaks elsewhere goes through the fallback.
+    _, pct, angles = sprint_angles(3)
+    windows = _stride_windows(pct, 3)
+    full = M.monte_carlo_lengths(angles, DIMS, n_samples=64, seed=3)
+    fast = M.monte_carlo_peaks(angles, windows, DIMS, n_samples=64, seed=3, margin_m=margin_m)
+    for muscle in M.MUSCLES:
+        for j in (0, 1):
+            expected = np.stack([np.nanmax(full[muscle][j][:, a:b], axis=1) for a, b in windows], axis=1)
+            np.testing.assert_array_equal(fast[muscle][j], expected)
+
+
+def test_monte_carlo_peaks_find_a_second_peak_outside_the_searched_frames():
+    # A window with two stretch humps: a wide one with more hip flexion and a narrow one with more knee extension,
+    # tuned so the narrow hump is 0.05 mm longer for the nominal BFlh. Samples that weigh hip against knee
+    # differently peak on the wide hump, outside the frames searched with a 0.01 mm margin; the edge check must send
+    # them to the full search, so the result equals the full band.
+    n = 200
+    t = np.linspace(0.0, 1.0, n)
+    wide, narrow = np.exp(-((t - 0.3) / 0.08) ** 2), np.exp(-((t - 0.75) / 0.02) ** 2)
+
+    def angles_for(knee_dip_deg):
+        return {"hip_flexion": np.deg2rad(70.0 + 8.0 * wide), "hip_adduction": np.zeros(n),
+                "hip_rotation": np.zeros(n), "knee_flexion": np.deg2rad(40.0 - 20.0 * wide - knee_dip_deg * narrow)}
+
+    def narrow_minus_wide(knee_dip_deg):
+        length = M.musculotendon_length("bflh", *angles_for(knee_dip_deg).values(), DIMS)
+        return length[t > 0.5].max() - length[t < 0.5].max()
+
+    angles = angles_for(brentq(lambda d: narrow_minus_wide(d) - 5e-5, 10.0, 39.0))
+    full = M.monte_carlo_lengths(angles, DIMS, n_samples=128, seed=1)
+    on_wide = t[np.argmax(full["bflh"][0], axis=1)] < 0.5
+    assert 10 < on_wide.sum() < 118  # the case under test: samples split between the humps
+    fast = M.monte_carlo_peaks(angles, [(0, n)], DIMS, n_samples=128, seed=1, margin_m=1e-5)  # narrow hump only
+    for muscle in M.MUSCLES:
+        for j in (0, 1):
+            np.testing.assert_array_equal(fast[muscle][j][:, 0], np.nanmax(full[muscle][j], axis=1))
+
+
+def test_monte_carlo_peaks_ignore_missing_frames_and_empty_windows():
+    _, pct, angles = sprint_angles(2)
+    holed = {k: v.copy() for k, v in angles.items()}
+    windows = _stride_windows(pct, 2)
+    a, b = windows[0]
+    holed["knee_flexion"][a + 5:b - 5] = np.nan  # a gap over most of the first window
+    full = M.monte_carlo_lengths(holed, DIMS, n_samples=32, seed=2)
+    fast = M.monte_carlo_peaks(holed, windows + [(10, 10)], DIMS, n_samples=32, seed=2)
+    for muscle in M.MUSCLES:
+        expected = np.stack([np.nanmax(full[muscle][0][:, lo:hi], axis=1) for lo, hi in windows], axis=1)
+        np.testing.assert_array_equal(fast[muscle][0][:, :2], expected)
+        assert np.all(np.isnan(fast[muscle][0][:, 2]))
 
 
 def test_muscle_states_fields_and_mirror_use():

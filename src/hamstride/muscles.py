@@ -330,9 +330,12 @@ def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flex
 def fibre_length(mtu_length_m, tendon_slack_length_m, optimal_fibre_length_m, pennation_at_optimal_rad):
     """Fibre length (m) and pennation (rad) with a rigid tendon and constant muscle thickness
     (``l sin(alpha) = l_opt sin(alpha_opt)``; the planimetric model used in Hill-type muscle models, e.g.
-    Zajac 1989, from memory): ``l = sqrt((L - L_ts)^2 + (l_opt sin alpha_opt)^2)``."""
+    Zajac 1989, from memory): ``l = sqrt((L - L_ts)^2 + (l_opt sin alpha_opt)^2)``.
+
+    A unit shorter than its tendon slack length has a slack tendon and fibres at their shortest (``L - L_ts`` taken
+    as 0: l = thickness, pennation 90 deg), so fibre length never falls as the unit lengthens."""
     thickness = optimal_fibre_length_m * np.sin(pennation_at_optimal_rad)
-    along = np.asarray(mtu_length_m) - tendon_slack_length_m
+    along = np.clip(np.asarray(mtu_length_m) - tendon_slack_length_m, 0.0, None)
     length = np.sqrt(along * along + thickness * thickness)
     return length, np.arctan2(thickness, along)
 
@@ -507,21 +510,26 @@ def _truncated_normal(rng, mean, sd, low, high, size):
     return np.clip(rng.normal(mean, sd, size), low, high)
 
 
-def monte_carlo_lengths(angles: dict[str, np.ndarray], dims: MuscleDims, n_samples: int = 200,
-                        seed: int = 0, *, include_hip_centre_error: bool = False
-                        ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-    """Monte Carlo strain and l/l_opt, each [S, F], per muscle (vectorised over samples and frames).
+@dataclass(frozen=True)
+class _SampledMuscle:
+    """One muscle's Monte Carlo draws: paths [S, 1, 3] and per-sample l_opt, pennation, slack, upright length [S, 1]."""
 
-    Varied: attachment points (``sample_paths``), optimal fibre length and pennation (Ward et al. 2009 SDs,
-    clipped to 0.5-1.5 x mean and 0-30 deg), and the reference fibre strain of the slack-length assumption
-    (Wan et al. 2017 SDs). The tendon slack length is re-derived for each sample by the same rule.
-    The same ``seed`` gives the same draws for both legs, so samples are paired (see ``peak_difference_band``).
-    """
+    paths: MusclePath
+    optimal_fibre_length_m: np.ndarray
+    pennation_rad: np.ndarray
+    slack_length_m: np.ndarray
+    upright_length_m: np.ndarray
+
+    def strain_and_lopt(self, length_m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        fibre, _ = fibre_length(length_m, self.slack_length_m, self.optimal_fibre_length_m, self.pennation_rad)
+        return length_m / self.upright_length_m - 1.0, fibre / self.optimal_fibre_length_m
+
+
+def _draw_samples(dims: MuscleDims, n_samples: int, seed: int, include_hip_centre_error: bool):
+    """The draws of every muscle, in a fixed order from one generator (so a seed fixes the whole band)."""
     if n_samples < 1:
         raise MuscleModelError("the Monte Carlo band needs at least one sample")
-    arrays = _angle_arrays(angles)
     rng = np.random.default_rng(seed)
-    out = {}
     for muscle in MUSCLES:
         arch = ARCHITECTURE[muscle]
         paths = sample_paths(muscle, dims, n_samples, rng, include_hip_centre_error=include_hip_centre_error)
@@ -532,13 +540,105 @@ def monte_carlo_lengths(angles: dict[str, np.ndarray], dims: MuscleDims, n_sampl
                                   (n_samples, 1))
         ref_mean, ref_sd = REFERENCE_FIBRE_STRAIN[muscle]
         ref_strain = _truncated_normal(rng, ref_mean, ref_sd, -0.3, 0.4, (n_samples, 1))
-        length = _path_length(paths, *arrays)  # [S, F]
-        upright = _path_length(paths, 0.0, 0.0, 0.0, 0.0)  # [S, 1]
         slack = tendon_slack_length(muscle, dims, geometry=paths, optimal_fibre_length_m=l_opt,
                                     pennation_rad=alpha, reference_strain=ref_strain)
-        fibre, _ = fibre_length(length, slack, l_opt, alpha)
-        out[muscle] = (length / upright - 1.0, fibre / l_opt)
+        upright = _path_length(paths, 0.0, 0.0, 0.0, 0.0)  # [S, 1]
+        yield muscle, _SampledMuscle(paths, l_opt, alpha, slack, upright)
+
+
+def monte_carlo_lengths(angles: dict[str, np.ndarray], dims: MuscleDims, n_samples: int = 200,
+                        seed: int = 0, *, include_hip_centre_error: bool = False
+                        ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Monte Carlo strain and l/l_opt, each [S, F], per muscle (vectorised over samples and frames).
+
+    Varied: attachment points (``sample_paths``), optimal fibre length and pennation (Ward et al. 2009 SDs,
+    clipped to 0.5-1.5 x mean and 0-30 deg), and the reference fibre strain of the slack-length assumption
+    (Wan et al. 2017 SDs). The tendon slack length is re-derived for each sample by the same rule.
+    The same ``seed`` gives the same draws for both legs, so samples are paired (see ``peak_difference_band``).
+    """
+    arrays = _angle_arrays(angles)
+    return {muscle: sampled.strain_and_lopt(_path_length(sampled.paths, *arrays))
+            for muscle, sampled in _draw_samples(dims, n_samples, seed, include_hip_centre_error)}
+
+
+#: Frames whose nominal length is within this of the window's nominal peak are searched for each sample's peak.
+#: Attachment and architecture draws move a sample's peak by at most 0.4 mm of nominal length on the demo and
+#: benchmark sprints (measured over 200 samples, every stride); the margin is about four times that, and
+#: ``monte_carlo_peaks`` still searches the whole window whenever a sample's peak lands on the searched frames' edge.
+PEAK_SEARCH_MARGIN_M = 0.0015
+
+
+def monte_carlo_peaks(angles: dict[str, np.ndarray], windows, dims: MuscleDims, n_samples: int = 200,
+                      seed: int = 0, *, nominal_lengths_m: dict[str, np.ndarray] | None = None,
+                      include_hip_centre_error: bool = False, margin_m: float = PEAK_SEARCH_MARGIN_M
+                      ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Each sample's peak strain and peak l/l_opt in each frame window ``[start, stop)``, each [S, W] per muscle.
+
+    The same draws and numbers as the peaks of ``monte_carlo_lengths`` over each window, at a fraction of the
+    cost: strain and l/l_opt never fall as the musculotendon length rises (``fibre_length``), so a sample peaks where
+    its length peaks, and that is next to the nominal peak. Samples are evaluated only on frames whose nominal length
+    is within ``margin_m`` of the window's nominal maximum; a window is searched in full when a sample's maximum sits
+    on an inner edge of those frames.
+    ``nominal_lengths_m`` (per muscle, [F]) saves recomputing the nominal lengths (e.g. from ``muscle_states``).
+    """
+    arrays = _angle_arrays(angles)
+    n_frames = arrays[0].size
+    windows = [(max(int(a), 0), min(int(b), n_frames)) for a, b in windows]
+    out = {}
+    for muscle, sampled in _draw_samples(dims, n_samples, seed, include_hip_centre_error):
+        if nominal_lengths_m is not None and muscle in nominal_lengths_m:
+            nominal = np.asarray(nominal_lengths_m[muscle], dtype=float)
+        else:
+            nominal = _path_length(muscle_path(muscle, dims), *arrays)
+        searched = [_peak_search_frames(nominal, a, b, margin_m) for a, b in windows]
+        strain, lopt, suspect = _window_peaks(sampled, arrays, nominal, windows, searched)
+        full = [w for w in np.flatnonzero(suspect) if windows[w][1] > windows[w][0]]
+        if full:
+            strain[:, full], lopt[:, full], _ = _window_peaks(sampled, arrays, nominal, [windows[w] for w in full],
+                                                              [np.arange(*windows[w]) for w in full])
+        out[muscle] = (strain, lopt)
     return out
+
+
+def _peak_search_frames(nominal: np.ndarray, start: int, stop: int, margin_m: float) -> np.ndarray:
+    window = nominal[start:stop]
+    finite = np.isfinite(window)
+    if not finite.any():
+        return np.arange(start, stop)
+    return start + np.flatnonzero(finite & (window >= np.max(window[finite]) - margin_m))
+
+
+def _window_peaks(sampled: _SampledMuscle, arrays, nominal: np.ndarray, windows: list[tuple[int, int]],
+                  frames_per_window: list[np.ndarray]):
+    """Peaks over the given frames of each window ([S, W] strain and l/l_opt) and, per window, whether a sample's
+    length peaks on an open edge of those frames (a finite neighbour inside the window left out)."""
+    n_windows = len(frames_per_window)
+    n_samples = sampled.upright_length_m.shape[0]
+    strain = np.full((n_samples, n_windows), np.nan)
+    lopt = np.full((n_samples, n_windows), np.nan)
+    suspect = np.zeros(n_windows, dtype=bool)
+    counts = np.array([f.size for f in frames_per_window])
+    used = np.flatnonzero(counts)
+    if used.size == 0:
+        return strain, lopt, suspect
+    frames = np.concatenate([frames_per_window[w] for w in used])
+    offsets = np.concatenate([[0], np.cumsum(counts[used])[:-1]])
+    length = _path_length(sampled.paths, *(a[frames] for a in arrays))  # [S, N]
+    s, l = sampled.strain_and_lopt(length)
+    strain[:, used] = np.fmax.reduceat(s, offsets, axis=1)
+    lopt[:, used] = np.fmax.reduceat(l, offsets, axis=1)
+    owner = np.repeat(np.arange(used.size), counts[used])
+    starts = np.array([windows[w][0] for w in used])[owner]
+    stops = np.array([windows[w][1] for w in used])[owner]
+    finite = np.concatenate([[False], np.isfinite(nominal), [False]])  # index frame + 1
+    contiguous = (frames[1:] == frames[:-1] + 1) & (owner[1:] == owner[:-1])
+    open_before = ~np.concatenate([[False], contiguous]) & (frames - 1 >= starts) & finite[frames]
+    open_after = ~np.concatenate([contiguous, [False]]) & (frames + 1 < stops) & finite[frames + 2]
+    peak_length = np.fmax.reduceat(length, offsets, axis=1)[:, owner]
+    at_peak = length == peak_length
+    bad = at_peak & (open_before | open_after)[None, :]
+    suspect[used] = np.logical_or.reduceat(bad.any(axis=0), offsets)
+    return strain, lopt, suspect
 
 
 def peak_band(samples: np.ndarray, start: int, stop: int, q=(5, 95)) -> tuple[float, float]:

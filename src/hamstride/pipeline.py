@@ -183,7 +183,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
     from .dynamics import leg_inertia, muscle_forces, negative_positive_work, swing_inverse_dynamics
     from .metrics import peak_in_window
-    from .muscles import MUSCLES, MuscleDims, monte_carlo_lengths, muscle_states
+    from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states
     from .strides import normalise
 
     rate = trial.rate_hz
@@ -204,11 +204,14 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         states = muscle_states(joint, rate, dims, body_mass_kg=body_mass,
                                scale_force_to_mass=options.scale_force_to_mass)
         late_frames = {id(s): (_late_swing_start_frame(s, rate), s.end_frame) for s in side_strides}
-        # The band is only read at late-swing peaks: sample the model on those frames alone (same draws).
-        band_frames = np.unique(np.concatenate([np.arange(lo, hi + 1) for lo, hi in late_frames.values()]))
-        bands = monte_carlo_lengths({k: v[band_frames] for k, v in joint.items()}, dims,
-                                    n_samples=options.monte_carlo_samples, seed=0) \
-            if options.monte_carlo_samples > 0 else {}
+        # The band is only read at late-swing peaks: each sample's peak per stride, 5th/95th percentiles over samples.
+        bands = {}
+        if options.monte_carlo_samples > 0:
+            windows = [(late_frames[id(s)][0], s.end_frame + 1) for s in side_strides]
+            peaks = monte_carlo_peaks(joint, windows, dims, n_samples=options.monte_carlo_samples, seed=0,
+                                      nominal_lengths_m={m: states[m].length_m for m in MUSCLES})
+            bands = {m: (np.percentile(100.0 * strain, (5, 95), axis=0), np.percentile(lopt, (5, 95), axis=0))
+                     for m, (strain, lopt) in peaks.items()}  # each [2, strides]
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
         hip_moment = np.full(n_frames, np.nan)
         knee_moment = np.full(n_frames, np.nan)
@@ -242,7 +245,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
                         power[m]]
         signals = np.column_stack(columns)
-        for s in side_strides:
+        for k_stride, s in enumerate(side_strides):
             start, stop = s.start_frame, s.end_frame
             late = late_frames[id(s)][0]
             swing_lo = min(max(int(np.ceil(s.toe_off_s * rate)), start), stop)
@@ -255,7 +258,6 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                     "peak_hip_flexion_deg": float(np.nanmax(hip_deg[start:stop + 1])),
                     "peak_knee_flexion_deg": float(np.nanmax(knee_deg[swing_lo:stop + 1])),
                     "late_swing_moments_met_pct": met_pct}
-            b_lo, b_hi = np.searchsorted(band_frames, late), np.searchsorted(band_frames, stop, side="right")
             for m in MUSCLES:
                 st = states[m]
                 peak_strain, i_peak = peak_in_window(strain_pct[m], late, stop)
@@ -266,11 +268,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                            if i_peak >= 0 else np.nan,
                            peak_fibre_length_lopt=peak_lopt, peak_lengthening_velocity_lopt_per_s=peak_vel)
                 if m in bands:
-                    strain_s, lopt_s = bands[m]
-                    ps = np.nanmax(strain_s[:, b_lo:b_hi], axis=1) * 100.0
-                    pl = np.nanmax(lopt_s[:, b_lo:b_hi], axis=1)
-                    p_strain = np.percentile(ps, (5, 95))
-                    p_lopt = np.percentile(pl, (5, 95))
+                    p_strain, p_lopt = bands[m][0][:, k_stride], bands[m][1][:, k_stride]
                     row.update(peak_strain_p5_pct=float(p_strain[0]), peak_strain_p95_pct=float(p_strain[1]),
                                peak_fibre_length_lopt_p5=float(p_lopt[0]), peak_fibre_length_lopt_p95=float(p_lopt[1]))
                 if body_mass:
