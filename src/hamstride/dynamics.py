@@ -321,59 +321,92 @@ def swing_mask_from_events(
 
 
 # --------------------------------------------------------------------------- static optimisation
-def _exact_step(s, c, lam, direction, grad_dot_d, reserve):
-    """Maximiser t >= 0 of the dual along lam + t d: its slope is piecewise linear in t with kinks where a muscle's
-    s_i + t c_i crosses 0 or 1, so evaluate it at every kink and interpolate inside the bracketing piece."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        kinks = np.concatenate([-s / c, (1.0 - s) / c], axis=1)
-    kinks = np.where(np.isfinite(kinks) & (kinks > 0), kinks, np.inf)
-    t = np.concatenate([np.zeros((len(s), 1)), np.sort(kinks, axis=1)], axis=1)  # [F, K]
-    t_eval = np.where(np.isfinite(t), t, 0.0)
-    act = np.clip(s[:, None, :] + t_eval[:, :, None] * c[:, None, :], 0.0, 1.0)  # [F, K, m]
-    act0 = np.clip(s, 0.0, 1.0)
-    dd = np.einsum("fj,fj->f", direction, direction)
-    # slope(t) = slope(0) - sum_i c_i (a_i(t) - a_i(0)) - reserve t |d|^2
-    slope = grad_dot_d[:, None] - np.einsum("fkm,fm->fk", act - act0[:, None, :], c) - reserve[:, None] * t_eval * dd[:, None]
-    finite = np.isfinite(t)
-    turned = finite & (slope <= 0)
-    k = np.argmax(turned, axis=1)  # first kink where the slope is no longer positive
+def _exact_step(s, c, grad_dot_d, reserve_dd):
+    """Maximiser t >= 0 of the dual along lam + t d.
+
+    Its slope, ``grad.d - sum_i c_i (a_i(t) - a_i(0)) - reserve t |d|^2`` with ``a_i(t) = clip(s_i + t c_i, 0, 1)``,
+    is piecewise linear in t with kinks where a muscle's s_i + t c_i crosses 0 or 1: between kinks it falls at the
+    rate ``sum_free c_i^2 + reserve |d|^2``, and each kink adds (muscle becomes free) or removes (it saturates) one
+    c_i^2. So the slope at every kink follows from a cumulative sum over the sorted kinks, and the maximiser lies by
+    linear interpolation inside the first piece where the slope turns non-positive.
+    """
     rows = np.arange(len(s))
+    c2 = c * c
+    with np.errstate(divide="ignore", invalid="ignore"):
+        kinks = np.concatenate([-s / c, (1.0 - s) / c], axis=1)  # crossing 0, crossing 1
+    # crossing 0 upwards (c > 0) frees the muscle, downwards saturates it; crossing 1 the other way round
+    change = np.concatenate([np.sign(c) * c2, -np.sign(c) * c2], axis=1)
+    kinks = np.where(np.isfinite(kinks) & (kinks > 0), kinks, np.inf)
+    order = np.argsort(kinks, axis=1)
+    kinks = np.take_along_axis(kinks, order, axis=1)
+    change = np.take_along_axis(change, order, axis=1)
+    free0 = ((s > 0) & (s < 1)) | ((s == 0) & (c > 0)) | ((s == 1) & (c < 0))
+    rate0 = np.where(free0, c2, 0.0).sum(axis=1) + reserve_dd  # fall rate of the slope just after t = 0
+    finite = np.isfinite(kinks)
+    t = np.concatenate([np.zeros((len(s), 1)), np.where(finite, kinks, 0.0)], axis=1)  # [F, K + 1]
+    rate = rate0[:, None] + np.concatenate([np.zeros((len(s), 1)), np.cumsum(np.where(finite, change, 0.0),
+                                                                                   axis=1)], axis=1)
+    widths = np.where(finite, np.diff(t, axis=1), 0.0)
+    slope = grad_dot_d[:, None] - np.concatenate([np.zeros((len(s), 1)), np.cumsum(rate[:, :-1] * widths, axis=1)],
+                                                 axis=1)
+    known = np.concatenate([np.ones((len(s), 1), dtype=bool), finite], axis=1)
+    turned = known & (slope <= 0)
     never = ~turned.any(axis=1)
-    k = np.where(never, 1, np.maximum(k, 1))
-    t_lo, t_hi = t_eval[rows, k - 1], t_eval[rows, k]
+    k = np.where(never, 1, np.maximum(np.argmax(turned, axis=1), 1))
+    k = np.minimum(k, t.shape[1] - 1)
+    t_lo, t_hi = t[rows, k - 1], t[rows, k]
     s_lo, s_hi = slope[rows, k - 1], slope[rows, k]
     with np.errstate(divide="ignore", invalid="ignore"):
         inside = t_lo + s_lo * (t_hi - t_lo) / (s_lo - s_hi)
-        # beyond the last kink the slope falls only through the reserve term (or stays: the dual is unbounded)
-        last = t_eval.max(axis=1)
-        s_last = slope[rows, finite.sum(axis=1) - 1]
-        beyond = np.where(reserve * dd > 0, last + s_last / (reserve * dd), np.maximum(2.0 * last, 1.0))
+        # beyond the last kink the slope falls at the final rate (only the reserve term, or zero: unbounded dual)
+        n_known = known.sum(axis=1) - 1
+        last, s_last, r_last = t[rows, n_known], slope[rows, n_known], rate[rows, n_known]
+        beyond = np.where(r_last > 0, last + s_last / r_last, np.maximum(2.0 * last, 1.0))
     step = np.where(never, beyond, inside)
     return np.where(np.isfinite(step) & (step >= 0), step, 0.0)
 
 
+def _transpose_times(a_mat, lam):
+    """A^T lam for every frame: [F, 2, m] x [F, 2] -> [F, m]."""
+    return a_mat[:, 0, :] * lam[:, 0, None] + a_mat[:, 1, :] * lam[:, 1, None]
+
+
+def _solve_2x2(h00, h01, h11, g):
+    """Solution of the symmetric positive definite systems [[h00, h01], [h01, h11]] x = g, every frame."""
+    det = h00 * h11 - h01 * h01
+    return np.stack([(h11 * g[:, 0] - h01 * g[:, 1]) / det, (h00 * g[:, 1] - h01 * g[:, 0]) / det], axis=1)
+
+
 def _solve_dual(a_mat, b, lam, reserve, max_iter, tol, scale):
-    """Semi-smooth Newton ascent with exact line search on the concave dual, all frames at once.
+    """Semi-smooth Newton ascent with exact line search on the concave dual, all unconverged frames at once.
 
     Dual of min 1/2 |a|^2 + |e|^2 / (2 reserve) s.t. A a + e = b, 0 <= a <= 1: a = clip(A^T lam), e = reserve lam;
     gradient b - A a - reserve lam; generalised Hessian A_F A_F^T + reserve I over the free (unbounded) muscles F.
+    Frames are independent, so each iteration works only on the frames not yet converged.
     """
-    eye = np.eye(2)
+    lam = lam.copy()
+    active = np.arange(len(lam))
+    ridge = reserve + 1e-10 * scale
+    a_scale = np.abs(a_mat).max(axis=(1, 2))
     for _ in range(max_iter):
-        s = np.einsum("fjm,fj->fm", a_mat, lam)
-        grad = b - np.einsum("fjm,fm->fj", a_mat, np.clip(s, 0.0, 1.0)) - reserve[:, None] * lam
+        a_act, l_act, r_act = a_mat[active], lam[active], reserve[active]
+        s = _transpose_times(a_act, l_act)
+        grad = b[active] - np.einsum("fjm,fm->fj", a_act, np.clip(s, 0.0, 1.0)) - r_act[:, None] * l_act
         # rounding floor: s = A^T lam loses about 1e-16 |A| |lam| when lam is large (frames far beyond capacity)
-        floor = 1e-13 * np.abs(lam).max(axis=1) * np.abs(a_mat).max(axis=(1, 2))
+        floor = 1e-13 * np.abs(l_act).max(axis=1) * a_scale[active]
         todo = np.abs(grad).max(axis=1) > tol + floor
         if not todo.any():
             break
-        free = ((s > 0) & (s < 1)).astype(float)
-        hess = (np.einsum("fjm,fkm,fm->fjk", a_mat, a_mat, free) + (reserve[:, None, None] + 1e-10 * scale) * eye)
-        direction = np.linalg.solve(hess[todo], grad[todo][:, :, None])[:, :, 0]
-        c = np.einsum("fjm,fj->fm", a_mat[todo], direction)
-        step = _exact_step(s[todo], c, lam[todo], direction, np.einsum("fj,fj->f", grad[todo], direction),
-                           reserve[todo])
-        lam[todo] = lam[todo] + step[:, None] * direction
+        active, a_act, l_act, s, grad = active[todo], a_act[todo], l_act[todo], s[todo], grad[todo]
+        free = (s > 0) & (s < 1)
+        a0, a1 = np.where(free, a_act[:, 0, :], 0.0), np.where(free, a_act[:, 1, :], 0.0)
+        diag = ridge[active]
+        direction = _solve_2x2((a0 * a0).sum(axis=1) + diag, (a0 * a1).sum(axis=1), (a1 * a1).sum(axis=1) + diag,
+                               grad)
+        c = _transpose_times(a_act, direction)
+        step = _exact_step(s, c, (grad * direction).sum(axis=1),
+                           reserve[active] * (direction * direction).sum(axis=1))
+        lam[active] = l_act + step[:, None] * direction
     return lam
 
 
@@ -425,23 +458,24 @@ def share_forces(
     if not weight > 0:
         raise HamstrideError(f"residual weight {weight!r} must be positive", code="config")
     usable = np.isfinite(b).all(axis=1) & np.isfinite(r).all(axis=(1, 2))
-    r = np.where(np.isfinite(r), r, 0.0)
-    a_nm = np.swapaxes(r * cap[:, :, None], 1, 2)  # [F, 2, m], N m per unit activation
+    forces = np.full(cap.shape, np.nan)
+    met = np.zeros(len(b), dtype=bool)
+    r, cap_u, b = r[usable], cap[usable], b[usable]  # frames are independent: solve the usable ones only
+    a_nm = np.swapaxes(r * cap_u[:, :, None], 1, 2)  # [F, 2, m], N m per unit activation
     # S: one scale for both joints, so the residual is measured in N m alike at hip and knee (closest moments in
     # the Euclidean sense); +1 N m keeps frames without any capacity finite
     joint_scale = np.abs(a_nm).sum(axis=(1, 2))[:, None] + 1.0
     a_mat = a_nm / joint_scale[:, :, None]
-    bb = np.where(usable[:, None], b, 0.0) / joint_scale
+    bb = b / joint_scale
     reserve = np.full(len(bb), 1.0 / weight)
-    gram = np.einsum("fjm,fkm->fjk", a_mat, a_mat)
-    scale = np.einsum("fjj->f", gram)[:, None, None] + 1.0
-    lam0 = np.linalg.solve(gram + reserve[:, None, None] * np.eye(2), bb[:, :, None])[:, :, 0]
+    g00, g01, g11 = ((a_mat[:, j] * a_mat[:, k]).sum(axis=1) for j, k in ((0, 0), (0, 1), (1, 1)))
+    scale = g00 + g11 + 1.0
+    lam0 = _solve_2x2(g00 + reserve, g01, g11 + reserve, bb)
     lam = _solve_dual(a_mat, bb, lam0, reserve, max_iter, 1e-9, scale)
-    act = np.clip(np.einsum("fjm,fj->fm", a_mat, lam), 0.0, 1.0)
+    act = np.clip(_transpose_times(a_mat, lam), 0.0, 1.0)
     residual = np.abs(bb - np.einsum("fjm,fm->fj", a_mat, act))  # fraction of the total capacity S
-    met = usable & (residual <= tolerance).all(axis=1)
-    forces = act * cap
-    forces[~usable] = np.nan
+    met[usable] = (residual <= tolerance).all(axis=1)
+    forces[usable] = act * cap_u
     return forces, met
 
 
