@@ -318,8 +318,8 @@ def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flex
                                    (hip_flexion, hip_adduction, hip_rotation, knee_flexion)))
     columns = []
     for j in range(4):
-        stepped = [a.astype(complex) for a in angles]
-        stepped[j] = stepped[j] + 1j * _COMPLEX_STEP
+        stepped = list(angles)  # only the differentiated angle is complex: the rest stays cheap real arithmetic
+        stepped[j] = angles[j] + 1j * _COMPLEX_STEP
         columns.append(0.0 - np.imag(_path_length(path, *stepped)) / _COMPLEX_STEP)  # 0.0 - avoids "-0"
     return np.stack(np.broadcast_arrays(*columns), axis=-1)
 
