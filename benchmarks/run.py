@@ -50,7 +50,7 @@ STAGES = [
     ("events", "running_speed", "events"),
     ("strides", "cut_strides", "strides"),
     ("muscles", "muscle_states", "muscle states"),
-    ("muscles", "monte_carlo_lengths", "Monte Carlo band"),
+    ("muscles", "monte_carlo_peaks", "Monte Carlo band"),
     ("dynamics", "swing_inverse_dynamics", "inverse dynamics"),
     ("dynamics", "muscle_forces", "force sharing"),
     ("strides", "normalise", "normalise to cycle"),

@@ -85,7 +85,7 @@ def _fill_nan(x: np.ndarray) -> np.ndarray:
 
 
 def _derivative(x: np.ndarray, order: int, rate_hz: float) -> np.ndarray:
-    """Zero-phase derivative by a symmetric Savitzky-Golay kernel (Savitzky & Golay 1964)."""
+    """Zero-phase derivative along the last axis by a symmetric Savitzky-Golay kernel (Savitzky & Golay 1964)."""
     window = int(round(DERIVATIVE_WINDOW_S * rate_hz)) | 1
     window = max(window, 5 if order < 3 else 7)
     poly = 3 if order < 3 else 4
@@ -270,14 +270,15 @@ def _detect_side(
     rel = _heights_above_floor(heights)
     lowest = rel.min(axis=0)
     mask = _low_foot_mask(lowest, rate_hz)
-    vz = np.stack([_derivative(z, 1, rate_hz) for z in heights.values()])
+    # one filter call per derivative order, over all the signals that need it
+    velocities = _derivative(np.stack([*heights.values(), lowest]), 1, rate_hz)
+    vz, lowest_vz = velocities[:-1], velocities[-1]
     contacts = _runs(mask)
-    acc = {m: _derivative(heights[m], 2, rate_hz) for m in STRIKE_MARKERS}
+    acc = dict(zip(STRIKE_MARKERS, _derivative(np.stack([heights[m] for m in STRIKE_MARKERS]), 2, rate_hz)))
     toe = _toe_name(heights)
     toe_z = heights[toe]
     toe_jerk = _derivative(toe_z, 3, rate_hz)
     toe_rel = toe_z - np.percentile(toe_z, FLOOR_PERCENTILE)
-    lowest_vz = _derivative(lowest, 1, rate_hz)
 
     before_fs, after_fs = (int(round(s * rate_hz)) for s in STRIKE_SEARCH_S)
     before_to, after_to = (int(round(s * rate_hz)) for s in TOE_OFF_SEARCH_S)
