@@ -317,6 +317,8 @@ def test_native_crash_becomes_a_failed_trial(sources, tmp_path, monkeypatch):
     assert info.value.code == "bad_parameters"
     real_check = hio.check_c3d_header
     source_layout = real_check(sources / "a_zup_events.c3d")  # same points and frames as the crafted file
+    # The native reader only sees files the numpy reader leaves to it (DEC/MIPS, rotation blocks); send this one there.
+    monkeypatch.setattr(hio, "NUMPY_READER", False)
     monkeypatch.setattr(hio, "check_c3d_header",
                         lambda path: source_layout if Path(path).name == "sprint_02.c3d" else real_check(path))
     import faulthandler
@@ -355,6 +357,7 @@ def test_single_trial_read_survives_a_native_crash(sources, tmp_path, monkeypatc
         pytest.skip("this ezc3d version does not crash on the crafted file")
     layout = hio.check_c3d_header(sources / "a_zup_events.c3d")
     monkeypatch.setattr(hio, "check_c3d_header", lambda path: layout)
+    monkeypatch.setattr(hio, "NUMPY_READER", False)  # as above: a file for the native reader
     was_enabled = faulthandler.is_enabled()
     faulthandler.disable()
     try:

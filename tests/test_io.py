@@ -140,3 +140,93 @@ def test_truncated_file_detected_before_native_reader(tmp_path):
     with pytest.raises(FileFormatError) as info:
         check_c3d_header(cut)
     assert info.value.code == "truncated" and "cut short" in info.value.message
+
+
+# ------------------------------------------------------------------ numpy reader against the native reader (ezc3d)
+def _both_readers(path, monkeypatch):
+    import hamstride.io as hio
+
+    fast = read_c3d(path)
+    with monkeypatch.context() as m:
+        m.setattr(hio, "NUMPY_READER", False)
+        native = read_c3d(path)
+    return fast, native
+
+
+def _assert_same_trial(fast, native):
+    assert fast.labels == native.labels
+    assert fast.rate_hz == native.rate_hz and fast.first_frame == native.first_frame
+    assert fast.units_in_file == native.units_in_file and fast.meta == native.meta
+    assert fast.events == native.events
+    np.testing.assert_array_equal(fast.lab.file_to_lab, native.lab.file_to_lab)
+    np.testing.assert_array_equal(fast.xyz, native.xyz)  # NaN in the same places, values bit for bit
+
+
+def test_numpy_reader_equals_native_reader_on_the_demo_squad(monkeypatch):
+    from pathlib import Path
+
+    files = sorted((Path(__file__).resolve().parents[1] / "demo_trials").rglob("*.c3d"))
+    assert len(files) >= 20
+    for path in files:
+        _assert_same_trial(*_both_readers(path, monkeypatch))
+
+
+@pytest.mark.parametrize("analog", [False, True])
+@pytest.mark.parametrize("scale", [0.05, -0.05])  # positive: 16-bit integers x scale; negative: floats (c3d.org)
+def test_numpy_reader_equals_native_and_independent_readers_on_integer_and_float_files(tmp_path, monkeypatch, scale,
+                                                                                         analog):
+    # Written by the independent `c3d` package, optionally with 6 analog channels at 4 samples per frame interleaved
+    # after the points, with invalid points (residual -1) and a point at exactly zero (also invalid for us).
+    labels, xyz = _walker(n_frames=120, n_extra=3, seed=4)
+    rng = np.random.default_rng(1)
+    writer = c3d.Writer(point_rate=200.0, analog_rate=800.0 if analog else 0.0, point_scale=scale)
+    frames = []
+    for f in range(xyz.shape[0]):
+        points = np.zeros((xyz.shape[1], 5))
+        points[:, :3] = xyz[f]
+        if 30 <= f < 35:
+            points[2, 3] = -1.0
+        if f == 50:
+            points[5, :3] = 0.0
+        frames.append((points, rng.normal(0.0, 100.0, (6, 4)) if analog else np.zeros((0, 0))))
+    writer.add_frames(frames)
+    writer.set_point_labels(labels)
+    if analog:
+        writer.set_analog_labels([f"ch{i}" for i in range(6)])
+    path = tmp_path / "written_by_c3d.c3d"
+    with open(path, "wb") as fh, warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # "no analog data"
+        writer.write(fh)
+    if analog:  # ezc3d 1.5-1.7 crash on these files (a segmentation fault): compare with the `c3d` reader only
+        fast = read_c3d(path)
+    else:
+        fast, native = _both_readers(path, monkeypatch)
+        _assert_same_trial(fast, native)
+    assert np.isnan(fast.xyz[30:35, 2]).all() and np.isnan(fast.xyz[50, 5]).all()
+    _, _, independent = _independent_read(path)
+    back = fast.xyz @ fast.lab.file_to_lab  # internal lab frame -> file axes (rotation: inverse = transpose)
+    read = ~np.isnan(back).any(axis=2)
+    assert np.array_equal(read, (independent[:, :, 3] >= 0) & ~(independent[:, :, :3] == 0).all(axis=2))
+    # the `c3d` package returns float32 (and scales integers in float32): agreement to float32 rounding (2^-23)
+    np.testing.assert_allclose(back[read], independent[read][:, :3] / 1000.0, rtol=2.0 ** -22, atol=1e-9)
+    if scale > 0:  # integer storage: coordinates are multiples of the scale as stored (float32 0.05 mm)
+        steps = back[read] * 1000.0 / float(np.float32(scale))
+        np.testing.assert_allclose(steps, np.round(steps), rtol=0, atol=1e-6)
+
+
+def test_numpy_reader_reads_the_header_event_table_like_the_native_reader(tmp_path, monkeypatch):
+    # c3d.org header: word 150 = 12345 (four-character labels), word 151 = number of events, event times as floats
+    # from byte 304, labels of four characters from byte 396. A file whose only events are in that table.
+    import struct
+
+    labels, xyz = _walker()
+    path = write_c3d(tmp_path / "plain.c3d", labels, xyz, 200.0)
+    data = bytearray(path.read_bytes())
+    data[298:302] = struct.pack("<2H", 12345, 2)
+    data[304:312] = struct.pack("<2f", 0.25, 0.5)
+    data[396:404] = b"RFS LTO "
+    crafted = tmp_path / "header_events.c3d"
+    crafted.write_bytes(bytes(data))
+    fast, native = _both_readers(crafted, monkeypatch)
+    _assert_same_trial(fast, native)
+    assert [(e.label, e.time_s) for e in fast.events] == [("RFS", 0.25), ("LTO", 0.5)]
