@@ -634,9 +634,18 @@ def _read_subject(params: Mapping) -> dict[str, object]:
 
 # --------------------------------------------------------------------------------------------------- lab frame
 
-#: Frames (evenly spread) whose marker-cloud shape decides the vertical axis and up direction: medians over a few
-#: hundred frames are as decisive as over all, at a fraction of the cost.
+#: Frames (evenly spread, with the first and last) whose marker cloud decides the vertical axis, up direction and
+#: travel: medians and the path of the cloud's centre over a few hundred frames are as decisive as over all.
 LAB_FRAME_SAMPLE_FRAMES = 200
+
+
+def _nanmedian_axis1(x: np.ndarray) -> np.ndarray:
+    """``np.nanmedian(x, axis=1)`` by one sort (NaN sorts last) and the middle of each row's finite values."""
+    ordered = np.sort(x, axis=1)
+    count = np.isfinite(x).sum(axis=1, keepdims=True)  # [frame, 1, 3]
+    low = np.take_along_axis(ordered, np.maximum((count - 1) // 2, 0), axis=1)
+    high = np.take_along_axis(ordered, np.maximum(count // 2, 0), axis=1)
+    return np.where(count > 0, 0.5 * (low + high), np.nan)[:, 0]
 
 
 def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
@@ -651,18 +660,19 @@ def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
     finite_frames = np.isfinite(xyz).all(axis=2)
     if not finite_frames.any():
         return LabFrame(np.eye(3), "+z", "+x", True)
-    typical = xyz[::max(1, len(xyz) // LAB_FRAME_SAMPLE_FRAMES)]  # the shape statistics need only typical frames
+    step = max(1, len(xyz) // LAB_FRAME_SAMPLE_FRAMES)
+    typical = xyz[np.unique(np.r_[np.arange(0, len(xyz), step), len(xyz) - 1])]  # first, last and evenly between
     with np.errstate(all="ignore"):
         lo = np.nanmin(typical, axis=1)  # [frame, 3]
         hi = np.nanmax(typical, axis=1)
-        med = np.nanmedian(typical, axis=1)
+        med = _nanmedian_axis1(typical)
     spread = np.nanmedian(hi - lo, axis=0)
     vertical = 2 if spread[2] >= spread[1] else 1
     below = np.nanmedian(med[:, vertical] - lo[:, vertical])
     above = np.nanmedian(hi[:, vertical] - med[:, vertical])
     up_sign = 1.0 if below <= above else -1.0
 
-    centre = np.nanmean(xyz, axis=1)  # [frame, 3]
+    centre = np.nanmean(typical, axis=1)  # [frame, 3]: the cloud's path, from the typical frames
     valid = np.isfinite(centre).all(axis=1)
     horizontal = [a for a in range(3) if a != vertical]
     centre_v = centre[valid]
