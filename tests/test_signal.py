@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy.signal import freqz
+from scipy.signal import freqz, savgol_filter
 
 from hamstride.errors import ConfigError
 from hamstride.landmarks import Landmarks
@@ -15,6 +15,7 @@ from hamstride.signal import (
     fill_gaps,
     lowpass,
     residual_cutoff,
+    savgol_derivative,
     smooth_landmarks,
 )
 
@@ -187,3 +188,18 @@ def test_running_ramp_is_not_bent_at_the_trial_ends():
     x = np.arange(600) * 10.0 / RATE
     for cutoff in (4.0, 8.0, 20.0):
         assert np.max(np.abs(lowpass(x, RATE, cutoff) - x)) < 1e-5
+
+
+@pytest.mark.parametrize("window,poly,order", [(5, 3, 1), (7, 3, 2), (7, 4, 3), (15, 3, 1), (3, 2, 1)])
+def test_savgol_derivative_matches_scipy_including_the_fitted_edges(window, poly, order):
+    # Reference: scipy.signal.savgol_filter(mode="interp") (Savitzky & Golay 1964 kernels, polynomial-fit edges).
+    rng = np.random.default_rng(window + order)
+    x = np.cumsum(rng.normal(size=(3, 400)), axis=1)
+    ours = savgol_derivative(x, window, poly, order, 250.0)
+    ref = savgol_filter(x, window, poly, deriv=order, delta=1 / 250.0, mode="interp")
+    np.testing.assert_allclose(ours, ref, rtol=0, atol=1e-12 * np.abs(ref).max())
+    # exact on a polynomial of the filter's degree: d/dt of t^3 sampled at 250 Hz
+    t = np.arange(60) / 250.0
+    cubic = savgol_derivative(t ** 3, window, max(poly, 3), 1, 250.0) if window > 3 else None
+    if cubic is not None:
+        np.testing.assert_allclose(cubic, 3 * t ** 2, rtol=0, atol=1e-9)

@@ -25,9 +25,9 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Iterable, Mapping
 
 import numpy as np
-from scipy.signal import savgol_filter
 
 from .errors import EventError, LandmarkError
+from .signal import savgol_derivative
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from .landmarks import Landmarks
@@ -90,7 +90,7 @@ def _derivative(x: np.ndarray, order: int, rate_hz: float) -> np.ndarray:
     window = max(window, 5 if order < 3 else 7)
     poly = 3 if order < 3 else 4
     poly = min(poly, window - 1)
-    return savgol_filter(x, window, poly, deriv=order, delta=1.0 / rate_hz, mode="interp")
+    return savgol_derivative(x, window, poly, order, rate_hz)
 
 
 def _runs(mask: np.ndarray) -> np.ndarray:

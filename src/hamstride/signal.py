@@ -11,13 +11,15 @@
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy.interpolate import CubicSpline
-from scipy.signal import butter, filtfilt
+from scipy.ndimage import convolve1d
+from scipy.signal import butter, filtfilt, savgol_coeffs, savgol_filter
 
 from .errors import ConfigError
 
@@ -26,6 +28,46 @@ if TYPE_CHECKING:  # pragma: no cover
 
 DEFAULT_MAX_GAP_FRAMES = 10  # common practice (references.md, Filtering)
 FILTER_ORDER = 2
+
+
+# --------------------------------------------------------------------------- Savitzky-Golay derivatives
+@functools.lru_cache(maxsize=32)
+def _savgol_operator(window: int, poly: int, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Interior kernel and the two edge matrices of a Savitzky-Golay derivative (unit frame spacing).
+
+    Edges as scipy's ``mode="interp"``: a degree-``poly`` least-squares polynomial through the first (last)
+    ``window`` samples, differentiated at the first (last) ``window // 2`` positions; being linear in the data, each
+    edge is one fixed matrix.
+    """
+    half = window // 2
+    positions = np.arange(window, dtype=float)
+    fit = np.linalg.pinv(np.vander(positions, poly + 1, increasing=True))  # samples -> polynomial coefficients
+    powers = np.arange(poly + 1)
+    factor = np.array([math.perm(int(k), order) for k in powers], dtype=float)  # d^order t^k = k!/(k-order)! t^(k-order)
+
+    def at(where):
+        exponent = np.clip(powers - order, 0, None)
+        return factor * np.where(powers >= order, where[:, None] ** exponent, 0.0)
+
+    left = at(positions[:half]) @ fit
+    right = at(positions[window - half:]) @ fit
+    return savgol_coeffs(window, poly, deriv=order), left, right
+
+
+def savgol_derivative(x: np.ndarray, window: int, poly: int, order: int, rate_hz: float) -> np.ndarray:
+    """Zero-phase derivative of ``order`` along the last axis by a Savitzky-Golay filter (Savitzky & Golay 1964),
+    edges fitted like scipy's ``savgol_filter(mode="interp")``; the fixed edge matrices are computed once per window,
+    so many short signals cost one convolution and two small matrix products."""
+    x = np.asarray(x, dtype=float)
+    if x.shape[-1] < window:  # scipy explains the problem
+        return savgol_filter(x, window, poly, deriv=order, delta=1.0 / rate_hz, mode="interp")
+    kernel, left, right = _savgol_operator(window, poly, order)
+    half = window // 2
+    y = convolve1d(x, kernel, axis=-1, mode="constant")
+    if half:
+        y[..., :half] = x[..., :window] @ left.T
+        y[..., -half:] = x[..., -window:] @ right.T
+    return y * float(rate_hz) ** order
 
 
 # --------------------------------------------------------------------------- Butterworth
