@@ -212,6 +212,21 @@ def hip_centre_in_pelvis(dims: MuscleDims) -> np.ndarray:
     return np.array([-0.24 * pd_ - 0.0099, -0.30 * pw - 0.0109, 0.33 * pw + 0.0073])
 
 
+#: Muscles whose paths are evaluated together: the same kind of origin (pelvis or femur), so one broadcast call.
+_PATH_GROUPS = (BIARTICULAR, tuple(m for m in MUSCLES if m not in BIARTICULAR))
+
+
+def _stacked_path(muscles: tuple[str, ...], dims: MuscleDims) -> MusclePath:
+    """The paths of ``muscles`` (all with pelvis or all with femur origins) stacked on a leading axis: points
+    [G, 1, 3], radii [G, 1], so lengths come out [G, frames]."""
+    paths = [muscle_path(m, dims) for m in muscles]
+    if len({p.origin_on_femur for p in paths}) != 1:
+        raise MuscleModelError("muscles stacked in one path evaluation must share the kind of origin")
+    return MusclePath(np.stack([p.origin_m for p in paths])[:, None, :],
+                      np.stack([p.insertion_m for p in paths])[:, None, :],
+                      np.array([[p.wrap_radius_m] for p in paths]), dims.thigh_length_m, paths[0].origin_on_femur)
+
+
 def muscle_path(muscle: str, dims: MuscleDims) -> MusclePath:
     """The nominal path of ``muscle`` scaled to the athlete (pelvis points by PW/PD, femur by thigh, tibia by shank)."""
     _check_muscle(muscle)
@@ -466,12 +481,20 @@ def muscle_states(angles: dict[str, np.ndarray], rate_hz: float, dims: MuscleDim
     arrays = _angle_arrays(angles)
     rates = np.stack([np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in arrays], axis=-1)
     states = {}
+    lengths, arms_all, uprights = {}, {}, {}
+    for group in _PATH_GROUPS:  # muscles of one kind of path in one vectorised evaluation
+        path = _stacked_path(group, dims)
+        group_lengths = _path_length(path, *arrays)  # [G, F]
+        group_arms = moment_arms(group[0], *arrays, dims, geometry=path)  # [G, F, 4]
+        group_upright = _path_length(path, 0.0, 0.0, 0.0, 0.0)  # [G, 1]
+        for k, muscle in enumerate(group):
+            lengths[muscle], arms_all[muscle], uprights[muscle] = group_lengths[k], group_arms[k], group_upright[k, 0]
     for muscle in MUSCLES:
         path = muscle_path(muscle, dims)
         arch = ARCHITECTURE[muscle]
-        length = _path_length(path, *arrays)
-        arms = moment_arms(muscle, *arrays, dims, geometry=path)
-        upright = float(_path_length(path, 0.0, 0.0, 0.0, 0.0))
+        length = lengths[muscle]
+        arms = arms_all[muscle]
+        upright = float(uprights[muscle])
         if tendon_slack_lengths_m and muscle in tendon_slack_lengths_m:
             slack = float(tendon_slack_lengths_m[muscle])
         else:
