@@ -586,9 +586,9 @@ def monte_carlo_lengths(angles: dict[str, np.ndarray], dims: MuscleDims, n_sampl
 
 #: Frames whose nominal length is within this of the window's nominal peak are searched for each sample's peak.
 #: Attachment and architecture draws move a sample's peak by at most 0.4 mm of nominal length on the demo and
-#: benchmark sprints (measured over 200 samples, every stride); the margin is about four times that, and
+#: benchmark sprints (measured over 200 samples, every stride); the margin is 2.5 times that, and
 #: ``monte_carlo_peaks`` still searches the whole window whenever a sample's peak lands on the searched frames' edge.
-PEAK_SEARCH_MARGIN_M = 0.0015
+PEAK_SEARCH_MARGIN_M = 0.001
 
 
 def monte_carlo_peaks(angles: dict[str, np.ndarray], windows, dims: MuscleDims, n_samples: int = 200,
