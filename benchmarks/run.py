@@ -52,7 +52,7 @@ STAGES = [
     ("muscles", "muscle_states", "muscle states"),
     ("muscles", "monte_carlo_peaks", "Monte Carlo band"),
     ("dynamics", "swing_inverse_dynamics", "inverse dynamics"),
-    ("dynamics", "muscle_forces", "force sharing"),
+    ("dynamics", "share_swing_moments_of_legs", "force sharing"),
     ("strides", "normalise", "normalise to cycle"),
 ]
 TABLES = ["athlete", "strides", "curves", "summary", "flags"]

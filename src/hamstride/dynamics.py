@@ -15,7 +15,7 @@ Everything is vectorised over frames; moments are NaN outside the swing phases.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Callable, Mapping
+from typing import TYPE_CHECKING, Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -657,10 +657,43 @@ def share_swing_moments(
     Maximum forces: the states' (hamstrings) and PCSA x specific tension x the states' body-mass scaling (others),
     all multiplied by ``strength_scale`` (default ``ATHLETE_STRENGTH_FACTOR``).
     """
+    return share_swing_moments_of_legs([(moments, states, angles, rate_hz)], strength_scale, include_passive)[0]
+
+
+def share_swing_moments_of_legs(
+    legs: Sequence[tuple[JointMoments, Mapping[str, MuscleState], Mapping[str, np.ndarray], float]],
+    strength_scale: float | None = None,
+    include_passive: bool = True,
+) -> list[ForceSharing]:
+    """``share_swing_moments`` for several legs, each (moments, states, angles, rate), with one solve: the problem
+    is separate for every frame, so stacking the legs' frames gives the same forces in fewer solver steps."""
+    problems = [_sharing_problem(*leg, ATHLETE_STRENGTH_FACTOR if strength_scale is None else strength_scale,
+                                 include_passive) for leg in legs]
+    if len({tuple(p[0]) for p in problems}) > 1:
+        raise HamstrideError("legs shared together must have the same muscles", code="config")
+    active, met = share_forces(np.concatenate([p[1] for p in problems]), np.concatenate([p[2] for p in problems]),
+                               np.concatenate([p[4] for p in problems]))
+    out, start = [], 0
+    for names, r, _, fp, target, vel, valid in problems:
+        stop = start + len(target)
+        force = active[start:stop] + fp
+        force[~valid] = np.nan
+        out.append(ForceSharing(
+            force_n={c: force[:, i] for i, c in enumerate(names)},
+            velocity_m_per_s={c: vel[i] for i, c in enumerate(names)},
+            moment_arms_m={c: r[:, i] for i, c in enumerate(names)},
+            unmet=valid & ~met[start:stop],
+            valid=valid,
+        ))
+        start = stop
+    return out
+
+
+def _sharing_problem(moments, states, angles, rate_hz, strength_scale, include_passive):
+    """One leg's sharing problem: muscle names, arms [F,m,2], active capacity [F,m], passive force [F,m], the
+    moments left for the active forces [F,2], velocities and the valid frames."""
     hip = np.asarray(angles["hip_flexion"], dtype=float)
     n = hip.shape[0]
-    if strength_scale is None:
-        strength_scale = ATHLETE_STRENGTH_FACTOR
     others = other_muscle_kinematics(hip, angles["knee_flexion"], rate_hz, strength_scale * _mass_scale(states))
     names, arms, caps, passive, vel = [], [], [], [], []
     for code, st in states.items():
@@ -685,17 +718,8 @@ def share_swing_moments(
     fp = np.nan_to_num(np.stack(passive, axis=1), nan=0.0)
     target = np.stack([moments.hip_flexion_nm, moments.knee_flexion_nm], axis=1)
     target = target - np.einsum("fmj,fm->fj", r, fp)
-    active, met = share_forces(r, cap, target)
-    force = active + fp
     valid = np.asarray(moments.valid, dtype=bool) & np.isfinite(target).all(axis=1)
-    force[~valid] = np.nan
-    return ForceSharing(
-        force_n={c: force[:, i] for i, c in enumerate(names)},
-        velocity_m_per_s={c: vel[i] for i, c in enumerate(names)},
-        moment_arms_m={c: r[:, i] for i, c in enumerate(names)},
-        unmet=valid & ~met,
-        valid=valid,
-    )
+    return names, r, cap, fp, target, vel, valid
 
 
 def muscle_forces(

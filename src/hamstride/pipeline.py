@@ -181,7 +181,7 @@ def _late_swing_start_frame(s, rate: float) -> int:
 
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
-    from .dynamics import leg_inertia, muscle_forces, negative_positive_work, swing_inverse_dynamics
+    from .dynamics import leg_inertia, negative_positive_work, share_swing_moments_of_legs, swing_inverse_dynamics
     from .metrics import peak_in_window
     from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states
     from .strides import normalise
@@ -193,6 +193,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     curve_keys: list[tuple[str, int]] = []
     dims_body = body.dims
     unmet_total = 0
+    legs = {}  # per side: what the tables need, gathered first so both legs share one force-sharing solve
     for side in SIDES:
         side_strides = [s for s in valid if s.side == side]
         if not side_strides:
@@ -212,12 +213,9 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                                       nominal_lengths_m={m: states[m].length_m for m in MUSCLES})
             bands = {m: (np.percentile(100.0 * strain, (5, 95), axis=0), np.percentile(lopt, (5, 95), axis=0))
                      for m, (strain, lopt) in peaks.items()}  # each [2, strides]
-        forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
-        hip_moment = np.full(n_frames, np.nan)
-        knee_moment = np.full(n_frames, np.nan)
-        unmet = np.zeros(n_frames, dtype=bool)
+        swing = np.zeros(n_frames, dtype=bool)
+        moments = None
         if body_mass:
-            swing = np.zeros(n_frames, dtype=bool)
             for s in side_strides:
                 lo = int(np.ceil(s.toe_off_s * rate))
                 hi = int(np.floor(s.next_foot_strike_s * rate))
@@ -228,9 +226,20 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                                              body.hip_centre[side], body.knee_centre[side], body.ankle_centre[side],
                                              body.heel[side], body.toe[side], rate, inertia, swing_mask=swing,
                                              pelvis=body.pelvis, side=side)
+        legs[side] = (side_strides, joint, states, late_frames, bands, swing, moments)
+    with_moments = [side for side, leg in legs.items() if leg[6] is not None]
+    shared = dict(zip(with_moments, share_swing_moments_of_legs(
+        [(legs[side][6], legs[side][2], legs[side][1], rate) for side in with_moments]))) if with_moments else {}
+    for side, (side_strides, joint, states, late_frames, bands, swing, moments) in legs.items():
+        a = angles[side]
+        forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
+        hip_moment = np.full(n_frames, np.nan)
+        knee_moment = np.full(n_frames, np.nan)
+        unmet = np.zeros(n_frames, dtype=bool)
+        if side in shared:
             hip_moment = moments.hip_flexion_nm / body_mass
             knee_moment = moments.knee_flexion_nm / body_mass
-            forces_side, unmet = muscle_forces(moments, states, joint, rate)
+            forces_side, unmet = shared[side].force_n, shared[side].unmet
             unmet_total += int(np.sum(unmet))
             for m in MUSCLES:
                 if m in forces_side:
