@@ -330,18 +330,30 @@ def _exact_step(s, c, grad_dot_d, reserve_dd):
     c_i^2. So the slope at every kink follows from a cumulative sum over the sorted kinks, and the maximiser lies by
     linear interpolation inside the first piece where the slope turns non-positive.
     """
-    rows = np.arange(len(s))
     c2 = c * c
     with np.errstate(divide="ignore", invalid="ignore"):
         kinks = np.concatenate([-s / c, (1.0 - s) / c], axis=1)  # crossing 0, crossing 1
+    kinks = np.where(np.isfinite(kinks) & (kinks > 0), kinks, np.inf)
+    free0 = ((s > 0) & (s < 1)) | ((s == 0) & (c > 0)) | ((s == 1) & (c < 0))
+    rate0 = np.where(free0, c2, 0.0).sum(axis=1) + reserve_dd  # fall rate of the slope just after t = 0
+    # Most frames (a Newton step whose free set stays free) peak before the first kink: t = slope(0) / rate(0).
+    with np.errstate(divide="ignore", invalid="ignore"):
+        first_piece = grad_dot_d / rate0
+    step = np.where(np.isfinite(first_piece) & (first_piece >= 0), first_piece, 0.0)
+    later = ~((rate0 > 0) & (first_piece <= kinks.min(axis=1)))
+    if later.any():
+        step[later] = _step_past_kinks(s[later], c[later], c2[later], kinks[later], grad_dot_d[later], rate0[later])
+    return step
+
+
+def _step_past_kinks(s, c, c2, kinks, grad_dot_d, rate0):
+    """``_exact_step`` for frames whose maximiser lies beyond the first kink: the slope at every sorted kink."""
+    rows = np.arange(len(s))
     # crossing 0 upwards (c > 0) frees the muscle, downwards saturates it; crossing 1 the other way round
     change = np.concatenate([np.sign(c) * c2, -np.sign(c) * c2], axis=1)
-    kinks = np.where(np.isfinite(kinks) & (kinks > 0), kinks, np.inf)
     order = np.argsort(kinks, axis=1)
     kinks = np.take_along_axis(kinks, order, axis=1)
     change = np.take_along_axis(change, order, axis=1)
-    free0 = ((s > 0) & (s < 1)) | ((s == 0) & (c > 0)) | ((s == 1) & (c < 0))
-    rate0 = np.where(free0, c2, 0.0).sum(axis=1) + reserve_dd  # fall rate of the slope just after t = 0
     finite = np.isfinite(kinks)
     t = np.concatenate([np.zeros((len(s), 1)), np.where(finite, kinks, 0.0)], axis=1)  # [F, K + 1]
     rate = rate0[:, None] + np.concatenate([np.zeros((len(s), 1)), np.cumsum(np.where(finite, change, 0.0),
