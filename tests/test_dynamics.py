@@ -729,3 +729,17 @@ def test_adductor_magnus_is_a_hip_extensor_growing_with_flexion():
     arms = m.hip_moment_arm(np.radians([0.0, 45.0, 90.0]))
     assert (arms < 0).all() and arms[0] > arms[1] > arms[2]
     assert (m.knee_moment_arm(np.radians([0.0, 90.0])) == 0).all()
+
+
+def test_window_work_equals_negative_positive_work_for_every_window():
+    rng = np.random.default_rng(0)
+    force, velocity = rng.normal(size=(300, 4)), rng.normal(size=(300, 4))
+    velocity[60, 2] = np.nan  # makes the windows containing frame 60 NaN in that column only
+    starts, stops = np.array([0, 40, 55, 100, 298, 10]), np.array([30, 90, 70, 101, 300, 11])
+    absorbed, produced = dyn.window_work(force, velocity, 250.0, starts, stops)
+    for w, (a, b) in enumerate(zip(starts, stops)):
+        for c in range(4):
+            ref = dyn.negative_positive_work(force[:, c], velocity[:, c], 250.0, a, b)
+            np.testing.assert_allclose([absorbed[w, c], produced[w, c]], ref, rtol=1e-13, equal_nan=True)
+    assert np.isnan(absorbed[2, 2]) and np.isfinite(absorbed[2, 1])
+    assert np.isnan(absorbed[3]).all() and np.isnan(absorbed[5]).all()  # one frame: no interval to integrate

@@ -111,3 +111,24 @@ def test_work_asymmetry_message_says_when_forces_are_capacity_limited():
     strides["late_swing_moments_met_pct"] = 90.0
     flags = compute_flags(summarise(strides), None)
     assert not flags["message"].str.contains("late-swing frames").any()
+
+
+def test_window_peaks_equal_peak_in_window_for_every_window_and_column():
+    from hamstride.metrics import peak_in_window, window_peaks
+
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=(300, 4))
+    x[50:80, 1] = np.nan  # a gap inside one column's window
+    x[100:140] = np.nan  # a window with nothing finite
+    x[210, 3] = x[205, 3] = 9.0  # a tie: the first frame wins, as with nanargmax
+    starts, stops = np.array([0, 40, 95, 100, 200, 250, 299]), np.array([30, 90, 145, 139, 299, 260, 299])
+    peaks, index = window_peaks(x, starts, stops)
+    assert peaks.shape == index.shape == (7, 4)
+    for w, (a, b) in enumerate(zip(starts, stops)):
+        for c in range(4):
+            value, at = peak_in_window(x[:, c], a, b)
+            assert at == index[w, c]
+            assert (np.isnan(value) and np.isnan(peaks[w, c])) or value == peaks[w, c]
+    assert index[4, 3] == 205
+    one, at_one = window_peaks(x[:, 0], starts[:2], stops[:2])  # 1-D values give 1-D results
+    assert one.shape == at_one.shape == (2,)

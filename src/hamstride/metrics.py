@@ -77,6 +77,27 @@ def peak_in_window(values: np.ndarray, start: int, stop: int) -> tuple[float, in
     return float(window[i]), start + i
 
 
+def window_peaks(values: np.ndarray, starts, stops) -> tuple[np.ndarray, np.ndarray]:
+    """``peak_in_window`` for many windows ``[start, stop]`` (inclusive) at once, on every column of ``values``
+    [F] or [F, C]: peaks [W] or [W, C] and their frame indices (NaN and -1 where a window holds no finite value)."""
+    x = np.asarray(values, dtype=float)
+    flat = x.reshape(len(x), -1)
+    starts = np.asarray(starts, dtype=int)
+    stops = np.minimum(np.asarray(stops, dtype=int), len(x) - 1)
+    width = int(max(np.max(stops - starts + 1, initial=0), 0))
+    frames = starts[:, None] + np.arange(width)[None, :]  # [W, L]
+    inside = frames <= stops[:, None]
+    windows = np.where(inside[:, :, None], flat[np.clip(frames, 0, len(x) - 1)], np.nan)  # [W, L, C]
+    ranked = np.where(np.isnan(windows), -np.inf, windows)  # as nanargmax: first maximum, NaN never wins
+    first = np.argmax(ranked, axis=1) if width else np.zeros((len(starts), flat.shape[1]), dtype=int)
+    empty = ~np.isfinite(windows).any(axis=1) if width else np.ones((len(starts), flat.shape[1]), dtype=bool)
+    peak = np.take_along_axis(windows, first[:, None, :], axis=1)[:, 0, :] if width else np.full(empty.shape, np.nan)
+    peak = np.where(empty, np.nan, peak)
+    index = np.where(empty, -1, starts[:, None] + first)
+    shape = (len(starts),) + x.shape[1:]
+    return peak.reshape(shape), index.reshape(shape)
+
+
 def _cv(sd: float, mean: float) -> float:
     return float(sd / abs(mean) * 100.0) if np.isfinite(mean) and mean != 0 and np.isfinite(sd) else float("nan")
 

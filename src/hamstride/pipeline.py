@@ -160,9 +160,8 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
         "warning_codes": list(kin.warning_codes), "software_version": __version__,
         "hip_method": kin.body.hip_method,
     }
-    stride_rows, curves_df = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
-                                            kin.speed_m_s, info)
-    strides_df = pd.DataFrame(stride_rows, columns=STRIDE_COLUMNS)
+    strides_df, curves_df = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
+                                           kin.speed_m_s, info)
     if options.strict:
         failure = strict_failure(map(TrialWarning, info["warning_codes"], info["warnings"]), trial.name)
         if failure is not None:
@@ -181,14 +180,13 @@ def _late_swing_start_frame(s, rate: float) -> int:
 
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
-    from .dynamics import leg_inertia, negative_positive_work, share_swing_moments_of_legs, swing_inverse_dynamics
-    from .metrics import peak_in_window
+    from .dynamics import leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics
     from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states
     from .strides import normalise
 
     rate = trial.rate_hz
     n_frames = trial.n_frames
-    stride_rows: list[dict] = []
+    stride_columns: list[dict[str, np.ndarray]] = []
     curve_blocks: list[np.ndarray] = []  # per stride: [101, 5 + 6 x muscles]
     curve_keys: list[tuple[str, int]] = []
     dims_body = body.dims
@@ -254,38 +252,9 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
                         power[m]]
         signals = np.column_stack(columns)
-        for k_stride, s in enumerate(side_strides):
-            start, stop = s.start_frame, s.end_frame
-            late = late_frames[id(s)][0]
-            swing_lo = min(max(int(np.ceil(s.toe_off_s * rate)), start), stop)
-            met_pct = float(100.0 * np.mean(~unmet[late:stop + 1])) if body_mass else np.nan
-            base = {"athlete": athlete.athlete, "session": athlete.session, "trial": trial.name, "side": side,
-                    "stride": s.index + 1, "foot_strike_s": s.foot_strike_s, "toe_off_s": s.toe_off_s,
-                    "next_foot_strike_s": s.next_foot_strike_s, "stride_time_s": s.stride_time_s,
-                    "toe_off_pct": s.toe_off_pct, "late_swing_start_pct": s.late_swing_start_pct,
-                    "speed_m_s": speed,
-                    "peak_hip_flexion_deg": float(np.nanmax(hip_deg[start:stop + 1])),
-                    "peak_knee_flexion_deg": float(np.nanmax(knee_deg[swing_lo:stop + 1])),
-                    "late_swing_moments_met_pct": met_pct}
-            for m in MUSCLES:
-                st = states[m]
-                peak_strain, i_peak = peak_in_window(strain_pct[m], late, stop)
-                peak_lopt, _ = peak_in_window(st.fibre_length_lopt, late, stop)
-                peak_vel, _ = peak_in_window(st.velocity_lopt_per_s, swing_lo, stop)
-                row = dict(base, muscle=m, peak_strain_pct=peak_strain,
-                           peak_strain_time_pct=100.0 * (i_peak / rate - s.foot_strike_s) / s.stride_time_s
-                           if i_peak >= 0 else np.nan,
-                           peak_fibre_length_lopt=peak_lopt, peak_lengthening_velocity_lopt_per_s=peak_vel)
-                if m in bands:
-                    p_strain, p_lopt = bands[m][0][:, k_stride], bands[m][1][:, k_stride]
-                    row.update(peak_strain_p5_pct=float(p_strain[0]), peak_strain_p95_pct=float(p_strain[1]),
-                               peak_fibre_length_lopt_p5=float(p_lopt[0]), peak_fibre_length_lopt_p95=float(p_lopt[1]))
-                if body_mass:
-                    force = forces[m]
-                    neg, posw = negative_positive_work(np.nan_to_num(force), st.velocity_m_per_s, rate, swing_lo, stop)
-                    row.update(peak_force_n=float(np.nanmax(force[swing_lo:stop + 1])), negative_work_j=float(neg),
-                               positive_work_j=float(posw))
-                stride_rows.append(row)
+        stride_columns.append(_stride_columns(side, side_strides, late_frames, rate, signals, bands, unmet,
+                                              bool(body_mass), forces, states, speed, athlete, trial.name))
+        for s in side_strides:
             curve_blocks.append(normalise(signals, s, rate))
             curve_keys.append((side, s.index + 1))
     curves = _curve_frame(curve_blocks, curve_keys, athlete, trial.name, MUSCLES)
@@ -293,7 +262,68 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     if not body_mass:
         info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
         info["warning_codes"].append("no_body_mass")
-    return stride_rows, curves
+    strides = pd.DataFrame({name: np.concatenate([c[name] for c in stride_columns]) for name in STRIDE_COLUMNS},
+                           columns=STRIDE_COLUMNS)
+    return strides, curves
+
+
+def _stride_columns(side, side_strides, late_frames, rate, signals, bands, unmet, with_mass, forces, states, speed,
+                    athlete, trial_name) -> dict[str, np.ndarray]:
+    """The strides table of one leg as columns: a row per stride and muscle (stride-major), all windows at once."""
+    from .dynamics import window_work
+    from .metrics import window_peaks
+    from .muscles import MUSCLES
+
+    n_str, n_mus = len(side_strides), len(MUSCLES)
+    start = np.array([s.start_frame for s in side_strides])
+    stop = np.array([s.end_frame for s in side_strides])
+    late = np.array([late_frames[id(s)][0] for s in side_strides])
+    swing_lo = np.minimum(np.maximum(np.ceil(np.array([s.toe_off_s for s in side_strides]) * rate).astype(int),
+                                     start), stop)
+    foot_strike = np.array([s.foot_strike_s for s in side_strides])
+    stride_time = np.array([s.stride_time_s for s in side_strides])
+    per_muscle = signals[:, 5:].reshape(len(signals), n_mus, 6)  # length, strain %, l/l_opt, velocity, force, power
+    peak_strain, i_peak = window_peaks(per_muscle[:, :, 1], late, stop)  # [stride, muscle]
+    peak_lopt, _ = window_peaks(per_muscle[:, :, 2], late, stop)
+    peak_vel, _ = window_peaks(per_muscle[:, :, 3], swing_lo, stop)
+    with np.errstate(invalid="ignore"):
+        peak_time = np.where(i_peak >= 0, 100.0 * (i_peak / rate - foot_strike[:, None]) / stride_time[:, None],
+                             np.nan)
+    met = np.concatenate([[0], np.cumsum(~unmet)])
+    nan = np.full((n_str, n_mus), np.nan)
+
+    def per_stride(values):
+        return np.repeat(np.asarray(values), n_mus)
+
+    columns = {
+        "athlete": per_stride([athlete.athlete] * n_str), "session": per_stride([athlete.session] * n_str),
+        "trial": per_stride([trial_name] * n_str), "side": per_stride([side] * n_str),
+        "stride": per_stride([s.index + 1 for s in side_strides]),
+        "muscle": np.tile(np.array(MUSCLES), n_str),
+        "foot_strike_s": per_stride(foot_strike), "toe_off_s": per_stride([s.toe_off_s for s in side_strides]),
+        "next_foot_strike_s": per_stride([s.next_foot_strike_s for s in side_strides]),
+        "stride_time_s": per_stride(stride_time), "toe_off_pct": per_stride([s.toe_off_pct for s in side_strides]),
+        "late_swing_start_pct": per_stride([s.late_swing_start_pct for s in side_strides]),
+        "speed_m_s": per_stride([speed] * n_str),
+        "peak_hip_flexion_deg": per_stride(window_peaks(signals[:, 0], start, stop)[0]),
+        "peak_knee_flexion_deg": per_stride(window_peaks(signals[:, 2], swing_lo, stop)[0]),
+        "late_swing_moments_met_pct": per_stride(100.0 * ((met[stop + 1] - met[late]) / (stop + 1 - late))
+                                                 if with_mass else np.full(n_str, np.nan)),
+        "peak_strain_pct": peak_strain.ravel(), "peak_strain_time_pct": peak_time.ravel(),
+        "peak_fibre_length_lopt": peak_lopt.ravel(), "peak_lengthening_velocity_lopt_per_s": peak_vel.ravel(),
+    }
+    for name, source, q in (("peak_strain_p5_pct", 0, 0), ("peak_strain_p95_pct", 0, 1),
+                            ("peak_fibre_length_lopt_p5", 1, 0), ("peak_fibre_length_lopt_p95", 1, 1)):
+        columns[name] = (np.column_stack([bands[m][source][q] for m in MUSCLES]) if bands else nan).ravel()
+    if with_mass:
+        force = np.column_stack([forces[m] for m in MUSCLES])
+        velocity = np.column_stack([states[m].velocity_m_per_s for m in MUSCLES])
+        absorbed, produced = window_work(np.nan_to_num(force), velocity, rate, swing_lo, stop)
+        columns.update(peak_force_n=window_peaks(force, swing_lo, stop)[0].ravel(), negative_work_j=absorbed.ravel(),
+                       positive_work_j=produced.ravel())
+    else:
+        columns.update(peak_force_n=nan.ravel(), negative_work_j=nan.ravel(), positive_work_j=nan.ravel())
+    return columns
 
 
 def _curve_frame(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlete, trial: str, muscles) -> pd.DataFrame:
