@@ -53,7 +53,7 @@ STAGES = [
     ("muscles", "monte_carlo_peaks", "Monte Carlo band"),
     ("dynamics", "swing_inverse_dynamics", "inverse dynamics"),
     ("dynamics", "share_swing_moments_of_legs", "force sharing"),
-    ("strides", "normalise", "normalise to cycle"),
+    ("strides", "normalise_strides", "normalise to cycle"),
 ]
 TABLES = ["athlete", "strides", "curves", "summary", "flags"]
 CLOCKS = {"cpu": time.process_time, "wall": time.perf_counter}

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from hamstride.events import GaitEvents
-from hamstride.strides import Stride, cut_strides, normalise
+from hamstride.strides import Stride, cut_strides, normalise, normalise_strides
 
 RATE = 250.0
 
@@ -98,6 +98,27 @@ def test_normalise_nan_column_falls_back_to_linear():
     assert out[0, 0] == pytest.approx(20.5) and out[0, 1] == pytest.approx(20.5)
     assert out[-1, 1] == pytest.approx(120.5)
     assert np.isnan(out[:, 1]).any() and np.isfinite(out[:, 0]).all()
+
+
+def test_normalise_strides_matches_the_analytic_signal_and_the_single_stride_version():
+    t = np.arange(600) / RATE
+    sig = np.stack([np.sin(2 * np.pi * 2.3 * t + k) for k in range(4)], axis=1)
+    sig[:, 3][(t > 1.0) & (t < 1.1)] = np.nan  # a column with a gap: goes stride by stride
+    strides = [_stride(0.1013, 0.5447), _stride(0.5447, 0.9911), _stride(1.2, 1.61)]
+    out = normalise_strides(sig, strides, RATE)
+    assert out.shape == (3, 101, 4)
+    for k, stride in enumerate(strides):
+        times = np.linspace(stride.foot_strike_s, stride.next_foot_strike_s, 101)
+        truth = np.sin(2 * np.pi * 2.3 * times[:, None] + np.arange(3))
+        np.testing.assert_allclose(out[k, :, :3], truth, atol=1e-6)  # cubic spline of a 2.3 Hz sine at 250 Hz
+        # one spline through the whole trial or one per stride: the same interpolant to well below 1e-6
+        np.testing.assert_allclose(out[k, :, :3], normalise(sig[:, :3], stride, RATE), atol=1e-7)
+        np.testing.assert_array_equal(out[k, :, 3], normalise(sig[:, 3:], stride, RATE)[:, 0])
+    at_frames = normalise_strides(sig, [_stride(20 / RATE, 120 / RATE)], RATE)[0]
+    np.testing.assert_allclose(at_frames[::1, :3], sig[20:121, :3], atol=1e-12)  # through every sample
+    with pytest.raises(ValueError):
+        normalise_strides(sig, [_stride(2.3, 2.5)], RATE)
+    assert normalise_strides(sig, [], RATE).shape == (0, 101, 4)
 
 
 def test_late_swing_start_and_toe_off_pct_on_a_generated_sprint():

@@ -182,7 +182,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
     from .dynamics import leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics
     from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states
-    from .strides import normalise
+    from .strides import normalise_strides
 
     rate = trial.rate_hz
     n_frames = trial.n_frames
@@ -254,9 +254,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         signals = np.column_stack(columns)
         stride_columns.append(_stride_columns(side, side_strides, late_frames, rate, signals, bands, unmet,
                                               bool(body_mass), forces, states, speed, athlete, trial.name))
-        for s in side_strides:
-            curve_blocks.append(normalise(signals, s, rate))
-            curve_keys.append((side, s.index + 1))
+        curve_blocks.extend(normalise_strides(signals, side_strides, rate))
+        curve_keys.extend((side, s.index + 1) for s in side_strides)
     curves = _curve_frame(curve_blocks, curve_keys, athlete, trial.name, MUSCLES)
     info["frames_moments_not_met"] = unmet_total
     if not body_mass:

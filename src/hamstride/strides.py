@@ -136,3 +136,31 @@ def normalise(signal: np.ndarray, stride: Stride, rate_hz: float, n_points: int 
         cols = window[:, ~finite]
         out[:, ~finite] = cols[i0] * (1 - frac) + cols[i0 + 1] * frac
     return out.reshape((n_points,) + x.shape[1:])
+
+
+def normalise_strides(signal: np.ndarray, strides, rate_hz: float, n_points: int = 101) -> np.ndarray:
+    """Time-normalise ``signal`` [F, ...] over many strides at once -> [strides, n_points, ...].
+
+    Columns finite over the whole trial are sampled from one cubic spline through every frame (not-a-knot ends,
+    away from the strides), evaluated at every stride's fractional event times; the other columns go stride by
+    stride through :func:`normalise` (cubic spline where the stride is gap-free, otherwise linear).
+    """
+    x = np.asarray(signal, float)
+    n = x.shape[0]
+    flat = x.reshape(n, -1)
+    strides = list(strides)
+    queries = np.array([np.linspace(s.foot_strike_s, s.next_foot_strike_s, n_points) * rate_hz for s in strides])
+    out = np.empty((len(strides), n_points, flat.shape[1]))
+    if not strides:
+        return out.reshape((0, n_points) + x.shape[1:])
+    if queries[:, 0].min() < 0 or queries[:, -1].max() > n - 1:
+        raise ValueError("stride extends beyond the signal")
+    whole = np.isfinite(flat).all(axis=0) if n >= 4 else np.zeros(flat.shape[1], dtype=bool)
+    if whole.any():
+        spline = CubicSpline(np.arange(n, dtype=float), flat[:, whole], axis=0)
+        out[:, :, whole] = spline(queries.ravel()).reshape(len(strides), n_points, -1)
+    rest = np.flatnonzero(~whole)
+    if rest.size:
+        for k, stride in enumerate(strides):
+            out[k][:, rest] = normalise(flat[:, rest], stride, rate_hz, n_points)
+    return out.reshape((len(strides), n_points) + x.shape[1:])
