@@ -335,18 +335,17 @@ def _curve_frame(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlete,
     shared = np.repeat(data[:, None, :, :5], n_mus, axis=1)  # [stride, muscle, 101, 5]
     per_muscle = data[:, :, 5:].reshape(n_str, n_pct, n_mus, 6).transpose(0, 2, 1, 3)  # [stride, muscle, 101, 6]
     rows = n_str * n_mus * n_pct
-    frame = pd.DataFrame({
-        "athlete": athlete.athlete, "session": athlete.session, "trial": trial,
-        "side": np.repeat([k[0] for k in keys], n_mus * n_pct),
-        "stride": np.repeat([k[1] for k in keys], n_mus * n_pct),
-        "muscle": np.tile(np.repeat(list(muscles), n_pct), n_str),
-        "pct": np.tile(np.linspace(0.0, 100.0, n_pct), n_str * n_mus),
-    }, index=pd.RangeIndex(rows))
     names_shared = ["hip_flexion_deg", "hip_adduction_deg", "knee_flexion_deg", "hip_moment_nm_per_kg",
                     "knee_moment_nm_per_kg"]
     names_muscle = ["length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w"]
-    for k, name in enumerate(names_shared):
-        frame[name] = shared[..., k].reshape(rows)
-    for k, name in enumerate(names_muscle):
-        frame[name] = per_muscle[..., k].reshape(rows)
-    return frame[CURVE_COLUMNS]
+    columns = {
+        "athlete": np.full(rows, athlete.athlete, dtype=object), "session": np.full(rows, athlete.session, dtype=object),
+        "trial": np.full(rows, trial, dtype=object),
+        "side": np.repeat(np.array([k[0] for k in keys], dtype=object), n_mus * n_pct),
+        "stride": np.repeat([k[1] for k in keys], n_mus * n_pct),
+        "muscle": np.tile(np.repeat(np.array(list(muscles), dtype=object), n_pct), n_str),
+        "pct": np.tile(np.linspace(0.0, 100.0, n_pct), n_str * n_mus),
+    }
+    columns.update((name, shared[..., k].reshape(rows)) for k, name in enumerate(names_shared))
+    columns.update((name, per_muscle[..., k].reshape(rows)) for k, name in enumerate(names_muscle))
+    return pd.DataFrame({name: columns[name] for name in CURVE_COLUMNS}, index=pd.RangeIndex(rows))
