@@ -707,27 +707,27 @@ def _sharing_problem(moments, states, angles, rate_hz, strength_scale, include_p
     hip = np.asarray(angles["hip_flexion"], dtype=float)
     n = hip.shape[0]
     others = other_muscle_kinematics(hip, angles["knee_flexion"], rate_hz, strength_scale * _mass_scale(states))
-    names, arms, caps, passive, vel = [], [], [], [], []
-    for code, st in states.items():
-        fmax = float(st.max_isometric_force_n) * strength_scale
-        l_norm = np.asarray(st.fibre_length_lopt, dtype=float)
-        v_norm = np.asarray(st.velocity_lopt_per_s, dtype=float)
-        names.append(code)
-        arms.append(np.asarray(st.moment_arms_m, dtype=float)[:, [0, 3]])
-        caps.append(fmax * np.clip(mus.active_force_length(l_norm) * mus.force_velocity(v_norm), 0.0, None))
-        passive.append(fmax * mus.passive_force_length(l_norm) if include_passive else np.zeros(n))
-        vel.append(np.asarray(st.velocity_m_per_s, dtype=float))
-    for code, ok in others.items():
-        m = OTHER_MUSCLES[code]
-        names.append(code)
-        arms.append(ok.moment_arms_m)
-        v_norm = ok.velocity_m_per_s / m.optimal_fibre_length_m
-        caps.append(ok.max_isometric_force_n * np.clip(mus.force_velocity(v_norm), 0.0, None))
-        passive.append(np.zeros(n))
-        vel.append(ok.velocity_m_per_s)
+    hamstrings = list(states.values())
+    names = [*states, *others]
+    arms = [np.asarray(st.moment_arms_m, dtype=float)[:, [0, 3]] for st in hamstrings]
+    arms += [ok.moment_arms_m for ok in others.values()]
+    vel = [np.asarray(st.velocity_m_per_s, dtype=float) for st in hamstrings]
+    vel += [ok.velocity_m_per_s for ok in others.values()]
+    # capacities of all muscles at once (the curves are elementwise): [F, muscles]
+    fmax = np.array([float(st.max_isometric_force_n) for st in hamstrings]) * strength_scale
+    l_norm = np.stack([np.asarray(st.fibre_length_lopt, dtype=float) for st in hamstrings], axis=1)
+    v_norm = np.stack([np.asarray(st.velocity_lopt_per_s, dtype=float) for st in hamstrings], axis=1)
+    caps = [fmax * np.clip(mus.active_force_length(l_norm) * mus.force_velocity(v_norm), 0.0, None)]
+    passive = [fmax * mus.passive_force_length(l_norm) if include_passive else np.zeros((n, len(hamstrings)))]
+    if others:
+        other_v = np.stack([ok.velocity_m_per_s / OTHER_MUSCLES[code].optimal_fibre_length_m
+                            for code, ok in others.items()], axis=1)
+        other_fmax = np.array([ok.max_isometric_force_n for ok in others.values()])
+        caps.append(other_fmax * np.clip(mus.force_velocity(other_v), 0.0, None))
+        passive.append(np.zeros((n, len(others))))
     r = np.stack(arms, axis=1)  # [F,m,2]
-    cap = np.stack(caps, axis=1)
-    fp = np.nan_to_num(np.stack(passive, axis=1), nan=0.0)
+    cap = np.concatenate(caps, axis=1)
+    fp = np.nan_to_num(np.concatenate(passive, axis=1), nan=0.0)
     target = np.stack([moments.hip_flexion_nm, moments.knee_flexion_nm], axis=1)
     target = target - np.einsum("fmj,fm->fj", r, fp)
     valid = np.asarray(moments.valid, dtype=bool) & np.isfinite(target).all(axis=1)

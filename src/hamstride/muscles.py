@@ -331,8 +331,12 @@ def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flex
     path = geometry if geometry is not None else muscle_path(muscle, dims)
     angles = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in
                                    (hip_flexion, hip_adduction, hip_rotation, knee_flexion)))
+    femur_origin = np.ndim(path.origin_on_femur) == 0 and bool(path.origin_on_femur)
     columns = []
     for j in range(4):
+        if femur_origin and j < 3:  # a path from femur to tibia does not depend on the hip angles
+            columns.append(np.zeros(()))
+            continue
         stepped = list(angles)  # only the differentiated angle is complex: the rest stays cheap real arithmetic
         stepped[j] = angles[j] + 1j * _COMPLEX_STEP
         columns.append(0.0 - np.imag(_path_length(path, *stepped)) / _COMPLEX_STEP)  # 0.0 - avoids "-0"

@@ -209,8 +209,10 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             windows = [(late_frames[id(s)][0], s.end_frame + 1) for s in side_strides]
             peaks = monte_carlo_peaks(joint, windows, dims, n_samples=options.monte_carlo_samples, seed=0,
                                       nominal_lengths_m={m: states[m].length_m for m in MUSCLES})
-            bands = {m: (np.percentile(100.0 * strain, (5, 95), axis=0), np.percentile(lopt, (5, 95), axis=0))
-                     for m, (strain, lopt) in peaks.items()}  # each [2, strides]
+            # 5th/95th percentiles of every muscle's peaks in one call: [2 (p5, p95), muscle, strain | l/l_opt, stride]
+            q = np.percentile(np.stack([np.stack([100.0 * peaks[m][0], peaks[m][1]], axis=1) for m in MUSCLES],
+                                       axis=1), (5, 95), axis=0)
+            bands = {m: (q[:, k, 0], q[:, k, 1]) for k, m in enumerate(MUSCLES)}  # each [2, strides]
         swing = np.zeros(n_frames, dtype=bool)
         moments = None
         if body_mass:
