@@ -157,9 +157,15 @@ def angular_velocity(axes: np.ndarray, rate_hz: float) -> np.ndarray:
     removes the non-orthogonal error of numerical differentiation.
     """
     r_dot = _derivative(axes, rate_hz)
-    w = np.einsum("fij,fkj->fik", r_dot, axes)
-    w = 0.5 * (w - np.swapaxes(w, 1, 2))
-    return np.stack([w[:, 2, 1], w[:, 0, 2], w[:, 1, 0]], axis=1)
+    w = r_dot @ np.swapaxes(axes, 1, 2)
+    return 0.5 * np.stack([w[:, 2, 1] - w[:, 1, 2], w[:, 0, 2] - w[:, 2, 0], w[:, 1, 0] - w[:, 0, 1]], axis=1)
+
+
+def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise cross product of [F, 3] arrays (np.cross without its generality overhead)."""
+    ax, ay, az = a[:, 0], a[:, 1], a[:, 2]
+    bx, by, bz = b[:, 0], b[:, 1], b[:, 2]
+    return np.stack([ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx], axis=1)
 
 
 # --------------------------------------------------------------------------- inverse dynamics
@@ -226,13 +232,13 @@ def _segment_step(
     acc = _derivative(_derivative(com, rate_hz), rate_hz)
     omega = angular_velocity(axes, rate_hz)
     alpha = _derivative(omega, rate_hz)
-    i_lab = np.einsum("fij,jk,flk->fil", axes, inertia.inertia_local, axes)
-    h_dot = np.einsum("fij,fj->fi", i_lab, alpha) + np.cross(omega, np.einsum("fij,fj->fi", i_lab, omega))
+    i_lab = axes @ inertia.inertia_local @ np.swapaxes(axes, 1, 2)
+    h_dot = (i_lab @ alpha[:, :, None])[:, :, 0] + _cross(omega, (i_lab @ omega[:, :, None])[:, :, 0])
     force = inertia.mass_kg * (acc - gravity_vec)
-    moment = h_dot - np.cross(proximal - com, force)
+    moment = h_dot - _cross(proximal - com, force)
     if distal_force is not None:
         force = force + distal_force
-        moment = moment - np.cross(proximal - com, distal_force) + distal_moment + np.cross(distal - com, distal_force)
+        moment = moment - _cross(proximal - com, distal_force) + distal_moment + _cross(distal - com, distal_force)
     return force, moment
 
 
@@ -243,7 +249,7 @@ def _side_sign(side: str) -> float:
 
 
 def _anatomical(moment_lab: np.ndarray, prox_axes: np.ndarray, side: str, flexion_sign: float) -> np.ndarray:
-    local = np.einsum("fji,fj->fi", prox_axes, moment_lab)  # components along the proximal segment's X, Y, Z
+    local = (np.swapaxes(prox_axes, 1, 2) @ moment_lab[:, :, None])[:, :, 0]  # along the proximal X, Y, Z
     s = _side_sign(side)
     return np.stack([flexion_sign * local[:, 2], s * local[:, 0], s * local[:, 1]], axis=1)
 
