@@ -49,7 +49,7 @@ STAGES = [
     ("events", "is_treadmill", "events"),
     ("events", "running_speed", "events"),
     ("strides", "cut_strides", "strides"),
-    ("muscles", "muscle_states", "muscle states"),
+    ("muscles", "muscle_states_of_legs", "muscle states"),
     ("muscles", "monte_carlo_peaks", "Monte Carlo band"),
     ("dynamics", "swing_inverse_dynamics", "inverse dynamics"),
     ("dynamics", "share_swing_moments_of_legs", "force sharing"),

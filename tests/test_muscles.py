@@ -601,3 +601,26 @@ def test_muscle_table_and_plot(tmp_path):
     assert bf["knee_flexion_arm_mm"] == pytest.approx(1000 * M.moment_arms("bflh", 70 * DEG, 0, 0, 30 * DEG, DIMS)[3])
     png = M.plot_moment_arms(tmp_path / "arms.png", DIMS)
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.stat().st_size > 10_000
+
+
+def test_muscle_states_of_two_legs_equal_each_leg_alone():
+    _, _, right = sprint_angles(2)
+    _, _, left = sprint_angles(2, hip_peak_reduction_deg=8.0)
+    small = M.MuscleDims.from_height(1.70)
+    both = M.muscle_states_of_legs([(right, DIMS), (left, small)], RATE_HZ, body_mass_kg=80.0,
+                                   scale_force_to_mass=True, tendon_slack_lengths_m={"st": 0.25})
+    for (angles, dims), together in zip([(right, DIMS), (left, small)], both):
+        alone = M.muscle_states(angles, RATE_HZ, dims, body_mass_kg=80.0, scale_force_to_mass=True,
+                                tendon_slack_lengths_m={"st": 0.25})
+        assert list(together) == list(M.MUSCLES)
+        for muscle in M.MUSCLES:
+            a, b = together[muscle], alone[muscle]
+            for name in ("length_m", "strain", "fibre_length_lopt", "velocity_m_per_s", "velocity_lopt_per_s",
+                         "moment_arms_m", "pennation_rad"):
+                np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=f"{muscle} {name}")
+            assert (a.tendon_slack_length_m, a.upright_length_m, a.max_isometric_force_n) == (
+                b.tendon_slack_length_m, b.upright_length_m, b.max_isometric_force_n)
+    assert both[0]["st"].tendon_slack_length_m == 0.25
+    assert both[0]["bflh"].tendon_slack_length_m == pytest.approx(M.tendon_slack_length("bflh", DIMS), abs=1e-15)
+    with pytest.raises(HamstrideError):
+        M.muscle_states_of_legs([(right, DIMS), ({k: v[:10] for k, v in left.items()}, small)], RATE_HZ)

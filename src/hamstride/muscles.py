@@ -29,6 +29,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
@@ -216,9 +217,15 @@ def hip_centre_in_pelvis(dims: MuscleDims) -> np.ndarray:
 _PATH_GROUPS = (BIARTICULAR, tuple(m for m in MUSCLES if m not in BIARTICULAR))
 
 
-def _stacked_path(muscles: tuple[str, ...], dims: MuscleDims) -> MusclePath:
+def _stacked_path(muscles: tuple[str, ...], dims: MuscleDims | Sequence[MuscleDims]) -> MusclePath:
     """The paths of ``muscles`` (all with pelvis or all with femur origins) stacked on a leading axis: points
-    [G, 1, 3], radii [G, 1], so lengths come out [G, frames]."""
+    [G, 1, 3], radii [G, 1], so lengths come out [G, frames]; for a list of athlete dimensions (legs) one more
+    leading axis: points [L, G, 1, 3], radii [L, G, 1], thigh lengths [L, 1, 1]."""
+    if not isinstance(dims, MuscleDims):
+        legs = [_stacked_path(muscles, d) for d in dims]
+        return MusclePath(np.stack([p.origin_m for p in legs]), np.stack([p.insertion_m for p in legs]),
+                          np.stack([p.wrap_radius_m for p in legs]),
+                          np.array([p.thigh_length_m for p in legs])[:, None, None], legs[0].origin_on_femur)
     paths = [muscle_path(m, dims) for m in muscles]
     if len({p.origin_on_femur for p in paths}) != 1:
         raise MuscleModelError("muscles stacked in one path evaluation must share the kind of origin")
@@ -480,41 +487,61 @@ def muscle_states(angles: dict[str, np.ndarray], rate_hz: float, dims: MuscleDim
     Velocity from the excursion identity ``v = -sum_j r_j dtheta_j/dt`` with dtheta/dt from ``np.gradient``.
     ``tendon_slack_lengths_m`` overrides the default slack-length assumption per muscle.
     """
+    return muscle_states_of_legs([(angles, dims)], rate_hz, body_mass_kg=body_mass_kg,
+                                 scale_force_to_mass=scale_force_to_mass,
+                                 tendon_slack_lengths_m=tendon_slack_lengths_m)[0]
+
+
+def muscle_states_of_legs(legs, rate_hz: float, *, body_mass_kg: float | None = None,
+                          scale_force_to_mass: bool = False,
+                          tendon_slack_lengths_m: dict[str, float] | None = None) -> list[dict[str, MuscleState]]:
+    """``muscle_states`` for several legs of one trial, each (angles, dims), evaluated together: every leg and
+    muscle of a kind of path in one broadcast call ([leg, muscle, frame]), the same numbers as leg by leg."""
     if not rate_hz or rate_hz <= 0:
         raise MuscleModelError(f"frame rate must be positive, got {rate_hz}")
-    arrays = _angle_arrays(angles)
-    rates = np.stack([np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in arrays], axis=-1)
-    states = {}
-    lengths, arms_all, uprights = {}, {}, {}
+    per_leg = [_angle_arrays(angles) for angles, _ in legs]
+    if len({leg[0].size for leg in per_leg}) > 1:
+        raise MuscleModelError("legs evaluated together must have the same number of frames")
+    all_dims = [dims for _, dims in legs]
+    arrays = [np.stack([leg[j] for leg in per_leg])[:, None, :] for j in range(4)]  # [L, 1, F]
+    n_frames = per_leg[0][0].size
+    rates = np.stack([np.gradient(a, 1.0 / rate_hz, axis=-1) if n_frames > 1 else np.zeros_like(a)
+                      for a in arrays], axis=-1)  # [L, 1, F, 4]
+    forces = {m: max_isometric_force(m, body_mass_kg=body_mass_kg, scale_force_to_mass=scale_force_to_mass)
+              for m in MUSCLES}
+    states: list[dict[str, MuscleState]] = [{} for _ in legs]
     for group in _PATH_GROUPS:  # muscles of one kind of path in one vectorised evaluation
-        path = _stacked_path(group, dims)
-        group_lengths = _path_length(path, *arrays)  # [G, F]
-        group_arms = moment_arms(group[0], *arrays, dims, geometry=path)  # [G, F, 4]
-        group_upright = _path_length(path, 0.0, 0.0, 0.0, 0.0)  # [G, 1]
+        path = _stacked_path(group, all_dims)
+        length = _path_length(path, *arrays)  # [L, G, F]
+        arms = moment_arms(group[0], *arrays, all_dims[0], geometry=path)  # [L, G, F, 4]
+        upright = _path_length(path, 0.0, 0.0, 0.0, 0.0)  # [L, G, 1]
+        reference = _path_length(path, *SLACK_REFERENCE_POSTURE_RAD)  # [L, G, 1]
+        arch = [ARCHITECTURE[m] for m in group]
+        l_opt = np.array([a.optimal_fibre_length_m for a in arch])[:, None]  # [G, 1]
+        alpha = np.array([a.pennation_rad for a in arch])[:, None]
+        # tendon_slack_length, for every leg and muscle at once (same arithmetic)
+        fibre_ref = (1.0 + np.array([REFERENCE_FIBRE_STRAIN[m][0] for m in group])[:, None]) * l_opt
+        thickness = l_opt * np.sin(alpha)
+        slack = reference - np.sqrt(fibre_ref * fibre_ref - thickness * thickness)
         for k, muscle in enumerate(group):
-            lengths[muscle], arms_all[muscle], uprights[muscle] = group_lengths[k], group_arms[k], group_upright[k, 0]
-    for muscle in MUSCLES:
-        path = muscle_path(muscle, dims)
-        arch = ARCHITECTURE[muscle]
-        length = lengths[muscle]
-        arms = arms_all[muscle]
-        upright = float(uprights[muscle])
-        if tendon_slack_lengths_m and muscle in tendon_slack_lengths_m:
-            slack = float(tendon_slack_lengths_m[muscle])
-        else:
-            slack = float(tendon_slack_length(muscle, dims, geometry=path))
-        fibre, pennation = fibre_length(length, slack, arch.optimal_fibre_length_m, arch.pennation_rad)
+            if tendon_slack_lengths_m and muscle in tendon_slack_lengths_m:
+                slack[:, k] = float(tendon_slack_lengths_m[muscle])
+        fibre, pennation = fibre_length(length, slack, l_opt, alpha)
         velocity = -np.sum(arms * rates, axis=-1)
         fibre_velocity = velocity * np.cos(pennation)
-        states[muscle] = MuscleState(
-            muscle=muscle, length_m=length, strain=length / upright - 1.0,
-            fibre_length_lopt=fibre / arch.optimal_fibre_length_m, velocity_m_per_s=velocity,
-            velocity_lopt_per_s=fibre_velocity / arch.optimal_fibre_length_m, moment_arms_m=arms,
-            max_isometric_force_n=max_isometric_force(muscle, body_mass_kg=body_mass_kg,
-                                                      scale_force_to_mass=scale_force_to_mass),
-            tendon_slack_length_m=slack, upright_length_m=upright,
-            optimal_fibre_length_m=arch.optimal_fibre_length_m, pennation_rad=pennation)
-    return states
+        fibre_lopt = fibre / l_opt
+        velocity_lopt = fibre_velocity / l_opt
+        strain = length / upright - 1.0
+        for leg in range(len(legs)):
+            for k, muscle in enumerate(group):
+                states[leg][muscle] = MuscleState(
+                    muscle=muscle, length_m=length[leg, k], strain=strain[leg, k],
+                    fibre_length_lopt=fibre_lopt[leg, k], velocity_m_per_s=velocity[leg, k],
+                    velocity_lopt_per_s=velocity_lopt[leg, k], moment_arms_m=arms[leg, k],
+                    max_isometric_force_n=forces[muscle], tendon_slack_length_m=float(slack[leg, k, 0]),
+                    upright_length_m=float(upright[leg, k, 0]), optimal_fibre_length_m=arch[k].optimal_fibre_length_m,
+                    pennation_rad=pennation[leg, k])
+    return [{m: leg_states[m] for m in MUSCLES} for leg_states in states]
 
 
 # --------------------------------------------------------------------------------------------------------------

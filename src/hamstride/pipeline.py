@@ -181,7 +181,7 @@ def _late_swing_start_frame(s, rate: float) -> int:
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
     from .dynamics import leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics
-    from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states
+    from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states_of_legs
     from .strides import normalise_strides
 
     rate = trial.rate_hz
@@ -191,17 +191,19 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     curve_keys: list[tuple[str, int]] = []
     dims_body = body.dims
     unmet_total = 0
+    sides = [side for side in SIDES if any(s.side == side for s in valid)]
+    joints = {side: {k: angles[side][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
+              for side in sides}
+    leg_dims = {side: MuscleDims(pelvis_width_m=dims_body.pelvis_width_m, pelvis_depth_m=dims_body.pelvis_depth_m,
+                                 thigh_length_m=dims_body.thigh_length_m[side],
+                                 shank_length_m=dims_body.shank_length_m[side]) for side in sides}
+    leg_states = dict(zip(sides, muscle_states_of_legs([(joints[side], leg_dims[side]) for side in sides], rate,
+                                                       body_mass_kg=body_mass,
+                                                       scale_force_to_mass=options.scale_force_to_mass)))
     legs = {}  # per side: what the tables need, gathered first so both legs share one force-sharing solve
-    for side in SIDES:
+    for side in sides:
         side_strides = [s for s in valid if s.side == side]
-        if not side_strides:
-            continue
-        a = angles[side]
-        joint = {k: a[k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
-        dims = MuscleDims(pelvis_width_m=dims_body.pelvis_width_m, pelvis_depth_m=dims_body.pelvis_depth_m,
-                          thigh_length_m=dims_body.thigh_length_m[side], shank_length_m=dims_body.shank_length_m[side])
-        states = muscle_states(joint, rate, dims, body_mass_kg=body_mass,
-                               scale_force_to_mass=options.scale_force_to_mass)
+        joint, dims, states = joints[side], leg_dims[side], leg_states[side]
         late_frames = {id(s): (_late_swing_start_frame(s, rate), s.end_frame) for s in side_strides}
         # The band is only read at late-swing peaks: each sample's peak per stride, 5th/95th percentiles over samples.
         bands = {}
