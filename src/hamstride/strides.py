@@ -161,6 +161,16 @@ def normalise_strides(signal: np.ndarray, strides, rate_hz: float, n_points: int
         out[:, :, whole] = spline(queries.ravel()).reshape(len(strides), n_points, -1)
     rest = np.flatnonzero(~whole)
     if rest.size:
-        for k, stride in enumerate(strides):
-            out[k][:, rest] = normalise(flat[:, rest], stride, rate_hz, n_points)
+        # as normalise(): a window of the stride's frames plus two each side; linear where it holds a gap
+        lo = np.maximum(np.floor(queries[:, 0]).astype(int) - 2, 0)
+        hi = np.minimum(np.ceil(queries[:, -1]).astype(int) + 2, n - 1)
+        gaps = np.concatenate([np.zeros((1, rest.size), dtype=int), np.cumsum(~np.isfinite(flat[:, rest]), axis=0)])
+        gap_free = ((gaps[hi + 1] - gaps[lo]) == 0) & ((hi - lo + 1) >= 4)[:, None]  # [stride, column]
+        index = np.clip(np.floor(queries).astype(int), lo[:, None], hi[:, None] - 1)  # [stride, point]
+        frac = (queries - index)[:, :, None]
+        linear = flat[:, rest][index] * (1 - frac) + flat[:, rest][index + 1] * frac
+        out[:, :, rest] = linear
+        for k in np.flatnonzero(gap_free.any(axis=1)):  # strides where some of these columns have no gap: spline
+            columns = rest[gap_free[k]]
+            out[k][:, columns] = normalise(flat[:, columns], strides[k], rate_hz, n_points)
     return out.reshape((len(strides), n_points) + x.shape[1:])
