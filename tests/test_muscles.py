@@ -624,3 +624,30 @@ def test_muscle_states_of_two_legs_equal_each_leg_alone():
     assert both[0]["bflh"].tendon_slack_length_m == pytest.approx(M.tendon_slack_length("bflh", DIMS), abs=1e-15)
     with pytest.raises(HamstrideError):
         M.muscle_states_of_legs([(right, DIMS), ({k: v[:10] for k, v in left.items()}, small)], RATE_HZ)
+
+
+def test_band_draws_are_numpy_normal_draws_in_a_fixed_order():
+    # The band's draws come from one generator per seed, muscle by muscle: origin and insertion offsets (SD 2 mm
+    # per axis), then l_opt, pennation and reference strain as numpy normal(mean, SD) clipped to their ranges.
+    # Drawn here the plain way and compared with what the model uses (cached once per process).
+    rng = np.random.default_rng(11)
+    drawn = dict(M._draw_samples(DIMS, 16, 11, False))
+    for muscle in M.MUSCLES:
+        arch = M.ARCHITECTURE[muscle]
+        nominal = M.muscle_path(muscle, DIMS)
+        origin = nominal.origin_m + rng.normal(size=(16, 1, 3)) * M.ATTACHMENT_SD_M
+        insertion = nominal.insertion_m + rng.normal(size=(16, 1, 3)) * M.ATTACHMENT_SD_M
+        l_opt = np.clip(rng.normal(arch.optimal_fibre_length_m, arch.optimal_fibre_length_sd_m, (16, 1)),
+                        0.5 * arch.optimal_fibre_length_m, 1.5 * arch.optimal_fibre_length_m)
+        alpha = np.clip(rng.normal(arch.pennation_rad, arch.pennation_sd_rad, (16, 1)), 0.0, np.deg2rad(30.0))
+        ref = np.clip(rng.normal(*M.REFERENCE_FIBRE_STRAIN[muscle], (16, 1)), -0.3, 0.4)
+        got = drawn[muscle]
+        np.testing.assert_array_equal(got.paths.origin_m, origin)
+        np.testing.assert_array_equal(got.paths.insertion_m, insertion)
+        np.testing.assert_array_equal(got.optimal_fibre_length_m, l_opt)
+        np.testing.assert_array_equal(got.pennation_rad, alpha)
+        slack = M.tendon_slack_length(muscle, DIMS, geometry=got.paths, optimal_fibre_length_m=l_opt,
+                                      pennation_rad=alpha, reference_strain=ref)
+        np.testing.assert_allclose(got.slack_length_m, slack, rtol=0, atol=1e-15)
+        np.testing.assert_allclose(got.upright_length_m, M.musculotendon_length(muscle, 0, 0, 0, 0, DIMS, got.paths),
+                                   rtol=0, atol=1e-15)

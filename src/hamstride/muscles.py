@@ -27,6 +27,7 @@ arctangent quadrant) is chosen from real parts so the path function stays comple
 """
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Sequence
@@ -551,17 +552,39 @@ def sample_paths(muscle: str, dims: MuscleDims, n_samples: int, rng: np.random.G
                  include_hip_centre_error: bool = False) -> MusclePath:
     """``n_samples`` perturbed paths with a leading sample axis ([S, 1, 3] points): attachment points with SD
     ``ATTACHMENT_SD_M`` per axis and, optionally for pelvis origins, the hip-centre error of Harrington et al. 2007."""
+    return _perturbed_path(muscle, dims, rng.standard_normal((n_samples, 1, 3)), rng.standard_normal((n_samples, 1, 3)),
+                           include_hip_centre_error)
+
+
+def _perturbed_path(muscle: str, dims: MuscleDims, origin_z: np.ndarray, insertion_z: np.ndarray,
+                    include_hip_centre_error: bool) -> MusclePath:
     nominal = muscle_path(muscle, dims)
     origin_sd = np.full(3, ATTACHMENT_SD_M)
     if include_hip_centre_error and not nominal.origin_on_femur:  # origin is relative to the hip centre
         origin_sd = np.hypot(origin_sd, HIP_CENTRE_SD_M)
-    origin = nominal.origin_m + rng.normal(size=(n_samples, 1, 3)) * origin_sd
-    insertion = nominal.insertion_m + rng.normal(size=(n_samples, 1, 3)) * ATTACHMENT_SD_M
+    origin = nominal.origin_m + origin_z * origin_sd
+    insertion = nominal.insertion_m + insertion_z * ATTACHMENT_SD_M
     return MusclePath(origin, insertion, nominal.wrap_radius_m, nominal.thigh_length_m, nominal.origin_on_femur)
 
 
-def _truncated_normal(rng, mean, sd, low, high, size):
-    return np.clip(rng.normal(mean, sd, size), low, high)
+@functools.lru_cache(maxsize=8)
+def _standard_draws(n_samples: int, seed: int) -> dict[str, tuple[np.ndarray, ...]]:
+    """The generator's standard normal draws of every muscle, in the band's fixed order: origin [S, 1, 3],
+    insertion [S, 1, 3], then l_opt, pennation and reference strain [S, 1]. The same for every leg and trial with
+    this seed (that is what pairs the legs), so they are drawn once per process; read-only."""
+    rng = np.random.default_rng(seed)
+    draws = {}
+    for muscle in MUSCLES:
+        shapes = ((n_samples, 1, 3), (n_samples, 1, 3), (n_samples, 1), (n_samples, 1), (n_samples, 1))
+        draws[muscle] = tuple(rng.standard_normal(shape) for shape in shapes)
+        for z in draws[muscle]:
+            z.flags.writeable = False
+    return draws
+
+
+def _truncated_normal(mean, sd, low, high, z):
+    """``mean + sd z`` clipped to [low, high] (numpy's ``normal(mean, sd)`` is ``mean + sd * standard normal``)."""
+    return np.clip(mean + sd * z, low, high)
 
 
 @dataclass(frozen=True)
@@ -583,20 +606,22 @@ def _draw_samples(dims: MuscleDims, n_samples: int, seed: int, include_hip_centr
     """The draws of every muscle, in a fixed order from one generator (so a seed fixes the whole band)."""
     if n_samples < 1:
         raise MuscleModelError("the Monte Carlo band needs at least one sample")
-    rng = np.random.default_rng(seed)
+    draws = _standard_draws(int(n_samples), seed)
     for muscle in MUSCLES:
         arch = ARCHITECTURE[muscle]
-        paths = sample_paths(muscle, dims, n_samples, rng, include_hip_centre_error=include_hip_centre_error)
-        l_opt = _truncated_normal(rng, arch.optimal_fibre_length_m, arch.optimal_fibre_length_sd_m,
-                                  0.5 * arch.optimal_fibre_length_m, 1.5 * arch.optimal_fibre_length_m,
-                                  (n_samples, 1))
-        alpha = _truncated_normal(rng, arch.pennation_rad, arch.pennation_sd_rad, 0.0, np.deg2rad(30.0),
-                                  (n_samples, 1))
+        origin_z, insertion_z, lopt_z, alpha_z, ref_z = draws[muscle]
+        paths = _perturbed_path(muscle, dims, origin_z, insertion_z, include_hip_centre_error)
+        l_opt = _truncated_normal(arch.optimal_fibre_length_m, arch.optimal_fibre_length_sd_m,
+                                  0.5 * arch.optimal_fibre_length_m, 1.5 * arch.optimal_fibre_length_m, lopt_z)
+        alpha = _truncated_normal(arch.pennation_rad, arch.pennation_sd_rad, 0.0, np.deg2rad(30.0), alpha_z)
         ref_mean, ref_sd = REFERENCE_FIBRE_STRAIN[muscle]
-        ref_strain = _truncated_normal(rng, ref_mean, ref_sd, -0.3, 0.4, (n_samples, 1))
-        slack = tendon_slack_length(muscle, dims, geometry=paths, optimal_fibre_length_m=l_opt,
-                                    pennation_rad=alpha, reference_strain=ref_strain)
-        upright = _path_length(paths, 0.0, 0.0, 0.0, 0.0)  # [S, 1]
+        ref_strain = _truncated_normal(ref_mean, ref_sd, -0.3, 0.4, ref_z)
+        # the slack rule's reference posture and upright, in one evaluation: [S, 2]
+        both = _path_length(paths, *(np.array([angle, 0.0]) for angle in SLACK_REFERENCE_POSTURE_RAD))
+        reference_length, upright = both[:, :1], both[:, 1:]
+        fibre = (1.0 + ref_strain) * l_opt  # tendon_slack_length's rule, per sample
+        thickness = l_opt * np.sin(alpha)
+        slack = reference_length - np.sqrt(fibre * fibre - thickness * thickness)
         yield muscle, _SampledMuscle(paths, l_opt, alpha, slack, upright)
 
 
