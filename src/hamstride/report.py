@@ -442,15 +442,19 @@ def _header(fig, title: str, handles: list) -> None:
                ncol=len(handles), fontsize=7.5, frameon=False, borderaxespad=0.0, handlelength=2.6)
 
 
+_GRID_COLOUR = "#e5e5e5"
+_CYCLE_TICKS = (0, 25, 50, 75, 100)
+
+
 def _cycle_axes(ax) -> None:
     """Gait-cycle x axis 0..100 % with few ticks (tick objects dominate drawing time), light grid."""
     from matplotlib.ticker import FixedLocator, MaxNLocator
 
     ax.set_xlim(0, 100)
-    ax.xaxis.set_major_locator(FixedLocator([0, 25, 50, 75, 100]))
+    ax.xaxis.set_major_locator(FixedLocator(_CYCLE_TICKS))
     ax.yaxis.set_major_locator(MaxNLocator(nbins=5))
     ax.tick_params(labelsize=7.5)
-    ax.grid(True, color="#e5e5e5", lw=0.5)
+    ax.grid(True, color=_GRID_COLOUR, lw=0.5)
 
 
 def _headroom(ax, fraction: float = 0.16) -> None:
@@ -632,7 +636,7 @@ def _muscle_grid(fig, rows: Sequence[tuple[str, str]], muscles: Sequence[str], c
     ``decorate(ax, column, muscle, drawn)`` adds what is particular to a row (reference lines, peak marks)."""
     stats = _curve_stats(curves, [r[0] for r in rows])
     starts, toe_off = _window_starts(strides), _toe_off(strides)
-    axes = fig.subplots(len(rows), max(1, len(muscles)), sharex=True, sharey="row", squeeze=False)
+    axes = fig.subplots(len(rows), max(1, len(muscles)), squeeze=False)
     for j, muscle in enumerate(muscles):
         for i, (col, ylabel) in enumerate(rows):
             ax = axes[i, j]
@@ -648,9 +652,39 @@ def _muscle_grid(fig, rows: Sequence[tuple[str, str]], muscles: Sequence[str], c
                 ax.set_ylabel(ylabel, fontsize=8.5)
             if i == len(rows) - 1:
                 ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-            _cycle_axes(ax)
-    _headroom(axes[0, 0])
+    _share_rows(axes)
     return axes
+
+
+def _share_rows(axes: np.ndarray) -> None:
+    """One y range per row and one x range for all (as shared axes), headroom on the top row for the window labels;
+    tick labels only on the left column and the bottom row. Inner panels get plain grid lines instead of ticks:
+    tick objects dominate drawing time, and inner tick labels would be hidden anyway."""
+    from matplotlib.ticker import NullLocator
+
+    n_rows, n_cols = axes.shape
+    for i in range(n_rows):
+        limits = np.array([axes[i, j].get_ylim() for j in range(n_cols)])
+        lo, hi = float(limits[:, 0].min()), float(limits[:, 1].max())
+        if i == 0:
+            hi += 0.16 * (hi - lo)  # _headroom
+        for j in range(n_cols):
+            ax = axes[i, j]
+            ax.set_ylim(lo, hi)
+            _cycle_axes(ax)
+            if j:
+                ax.yaxis.set_major_locator(NullLocator())
+            if i < n_rows - 1:
+                ax.xaxis.set_major_locator(NullLocator())
+        y_grid = [v for v in axes[i, 0].yaxis.get_major_locator().tick_values(lo, hi) if lo <= v <= hi]
+        for j in range(n_cols):
+            ax = axes[i, j]
+            if j:
+                for v in y_grid:
+                    ax.axhline(v, color=_GRID_COLOUR, lw=0.5, zorder=1.5)  # where ax.grid draws
+            if i < n_rows - 1:
+                for v in _CYCLE_TICKS:
+                    ax.axvline(v, color=_GRID_COLOUR, lw=0.5, zorder=1.5)  # where ax.grid draws
 
 
 def _stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
@@ -945,16 +979,17 @@ def _stride_table(strides: pd.DataFrame, muscles: Sequence[str], has_work: bool)
     for col in values:
         label = "peak stretch (%)" if col == "peak_strain_pct" else "negative work (J)"
         headers += [f"{label} {_muscle_label(m)}" for m in muscles]
+    # every looked-up value as one array per table (row by row .loc lookups were most of this table's time)
+    base = {col: first[col].to_numpy() if col in first.columns else np.full(len(first), np.nan)
+            for col, _, _ in base_cols}
+    muscle_values = {col: (per_muscle[col].reindex(index=first.index, columns=list(muscles)).to_numpy(dtype=float)
+                           if col in per_muscle else np.full((len(first), len(muscles)), np.nan)) for col in values}
     rows_html = []
-    for idx, rec in first.iterrows():
+    for row, idx in enumerate(first.index):
         cells = [_td(idx[0]), _td(idx[1]), _td(idx[2]), _td(idx[3], 0, text=str(idx[3]))]
-        for col, _, digits in base_cols:
-            cells.append(_td(rec.get(col), digits))
+        cells += [_td(base[col][row], digits) for col, _, digits in base_cols]
         for col in values:
-            table = per_muscle.get(col)
-            for m in muscles:
-                v = table.loc[idx, m] if (table is not None and m in table.columns and idx in table.index) else np.nan
-                cells.append(_td(v, 1))
+            cells += [_td(v, 1) for v in muscle_values[col][row]]
         rows_html.append("<tr>" + "".join(cells) + "</tr>")
     return _table("strides", headers, rows_html, caption="Every stride used. Click a column heading to sort.")
 
