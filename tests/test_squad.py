@@ -9,8 +9,11 @@ import json
 import shutil
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from typer.testing import CliRunner
 
 from hamstride.cli import app
@@ -117,3 +120,34 @@ def test_timeline_reads_cache_and_leaves_squad_tables_alone(squad_run):
     assert (out / f"timeline_{returning}.png").exists() and (out / f"timeline_{returning}.html").exists()
     for name, data in before.items():
         assert (out / name).read_bytes() == data, name
+
+
+# The fast CSV writer must give exactly pandas' text (the reference: DataFrame.to_csv with the same settings).
+_PANDAS_CSV = {"index": False, "lineterminator": "\n", "float_format": "%.6g"}
+
+
+def test_table_csv_is_pandas_to_csv_on_awkward_cells():
+    from hamstride.batch import table_csv
+
+    table = pd.DataFrame({
+        "text": ["a,b", 'say "hi"', "two\nlines", None, "ü ñ 漢", " lead", "", "cr\rhere"],
+        "number": [1.5, np.nan, np.inf, -0.0, 1e-300, 123456789.0, -np.inf, 0.1 + 0.2],
+        "count": [1, 2, 3, 4, 5, 6, 7, -8],
+        "flag": [True, False, True, True, False, False, True, False],
+        "label": pd.array(["s", None, "t", "u", "v", "w", "x", "y"], dtype="str"),
+    })
+    assert table_csv(table) == table.to_csv(**_PANDAS_CSV)
+    mixed = pd.DataFrame({"anything": [1, "x", 2.5]})  # not handled by the fast path: pandas writes it
+    assert table_csv(mixed) == mixed.to_csv(**_PANDAS_CSV)
+    assert table_csv(table.iloc[:0]) == table.iloc[:0].to_csv(**_PANDAS_CSV)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.one_of(st.none(), st.text(max_size=12)),
+                          st.floats(allow_nan=True, allow_infinity=True), st.integers(-10**12, 10**12),
+                          st.booleans()), min_size=1, max_size=15))
+def test_table_csv_is_pandas_to_csv_for_any_cells(rows):
+    from hamstride.batch import table_csv
+
+    table = pd.DataFrame(rows, columns=["text", "number", "count", "flag"])
+    assert table_csv(table) == table.to_csv(**_PANDAS_CSV)
