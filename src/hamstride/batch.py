@@ -391,10 +391,13 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     if progress:
         progress(done[0], total, failures[0])
 
+    parsed: dict[str, pd.DataFrame] = {}  # strides tables read while the workers run (the parent is idle then)
+
     def on_done(job: TrialJob, key: str, result: dict) -> None:
         if result["status"] == "ok":
             atomic_write_text(cache / f"{key}.strides.csv", result["strides"])
             atomic_write_text(cache / f"{key}.curves.csv", result["curves"])
+            parsed[key] = _read_strides(_io.StringIO(result["strides"]))  # the same text as the cache file
         else:
             failures[0] += 1
         meta = {k: v for k, v in result.items() if k not in ("strides", "curves")}
@@ -419,9 +422,8 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
             rec["cutoff_hz"] = meta.get("info", {}).get("cutoff_hz")
             rec["speed_m_s"] = meta.get("info", {}).get("speed_m_s")
             rec["n_strides"] = meta.get("info", {}).get("n_strides")
-            stride_tables.append(pd.read_csv(cache / f"{rec['cache_key']}.strides.csv", dtype={"athlete": str,
-                                                                                               "session": str,
-                                                                                               "trial": str}))
+            key = rec["cache_key"]
+            stride_tables.append(parsed.pop(key) if key in parsed else _read_strides(cache / f"{key}.strides.csv"))
             curve_files.append(cache / f"{rec['cache_key']}.curves.csv")
             curve_files_by_athlete.setdefault(job.athlete, []).append(curve_files[-1])
         else:
@@ -461,6 +463,11 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         curves_of = functools.partial(_athlete_curves, curve_files_by_athlete)
         run.report_paths = render_squad(out, strides, curves_of, flags, summary, athletes, run_info)
     return run
+
+
+def _read_strides(source) -> pd.DataFrame:
+    """A trial's strides table from its CSV (cache file or the worker's text): codes stay text."""
+    return pd.read_csv(source, dtype={"athlete": str, "session": str, "trial": str})
 
 
 def _tendon_note() -> str:

@@ -131,24 +131,27 @@ def summarise(strides: pd.DataFrame, athletes: pd.DataFrame | None = None) -> pd
     involved = {}
     if athletes is not None and not athletes.empty and "involved_side" in athletes:
         involved = {str(a): str(s).strip().lower() for a, s in zip(athletes["athlete"], athletes["involved_side"])}
-    for name, metric in SYMMETRY_METRICS.items():
-        summary[f"{name}_symmetry_index_pct"] = float("nan")
-    for name in LSI_METRICS:
-        summary[f"{name}_lsi_pct"] = float("nan")
-    for (athlete, session, muscle), group in summary.groupby(["athlete", "session", "muscle"], sort=False):
-        by_side = {r.side: r for r in group.itertuples()}
-        if "left" not in by_side or "right" not in by_side:
+    # SI and LSI per athlete/session/muscle, written to both sides' rows (values gathered first, columns set once)
+    symmetry = {name: np.full(len(summary), np.nan) for name in SYMMETRY_METRICS}
+    lsi_values = {name: np.full(len(summary), np.nan) for name in LSI_METRICS}
+    row_of = {(r["athlete"], r["session"], r["muscle"], r["side"]): i for i, r in enumerate(rows)}
+    for (athlete, session, muscle, side), i in row_of.items():
+        if side != "right" or (athlete, session, muscle, "left") not in row_of:
             continue
+        both = {"right": rows[i], "left": rows[row_of[(athlete, session, muscle, "left")]]}
+        at = [i, row_of[(athlete, session, muscle, "left")]]
         for name, metric in SYMMETRY_METRICS.items():
-            si = symmetry_index(getattr(by_side["right"], f"{metric}_mean"), getattr(by_side["left"], f"{metric}_mean"))
-            summary.loc[group.index, f"{name}_symmetry_index_pct"] = si
-        side = involved.get(str(athlete), "none")
-        if side in ("left", "right"):
-            other = "left" if side == "right" else "right"
+            symmetry[name][at] = symmetry_index(both["right"][f"{metric}_mean"], both["left"][f"{metric}_mean"])
+        involved_side = involved.get(str(athlete), "none")
+        if involved_side in ("left", "right"):
+            other = "left" if involved_side == "right" else "right"
             for name, metric in LSI_METRICS.items():
-                lsi = limb_symmetry_index(getattr(by_side[side], f"{metric}_mean"),
-                                          getattr(by_side[other], f"{metric}_mean"))
-                summary.loc[group.index, f"{name}_lsi_pct"] = lsi
+                lsi_values[name][at] = limb_symmetry_index(both[involved_side][f"{metric}_mean"],
+                                                           both[other][f"{metric}_mean"])
+    for name in SYMMETRY_METRICS:
+        summary[f"{name}_symmetry_index_pct"] = symmetry[name]
+    for name in LSI_METRICS:
+        summary[f"{name}_lsi_pct"] = lsi_values[name]
     return summary.reset_index(drop=True)
 
 
