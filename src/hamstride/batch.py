@@ -314,20 +314,49 @@ class SquadRun:
     report_paths: list[Path] = field(default_factory=list)
 
 
+def _load_stages() -> None:
+    """Import every pipeline stage (and scipy's parts they use) in this process."""
+    import importlib
+
+    for stage in ("angles", "checks", "dynamics", "events", "io", "landmarks", "muscles", "segments", "signal",
+                  "strides"):
+        importlib.import_module(f"{__package__}.{stage}")
+
+
+def _write_cache_entry(cache: Path, key: str, result: dict) -> None:
+    """A trial's cache entry: its tables, then the record (whose presence marks the entry complete)."""
+    if result["status"] == "ok":
+        atomic_write_text(cache / f"{key}.strides.csv", result["strides"])
+        atomic_write_text(cache / f"{key}.curves.csv", result["curves"])
+    meta = {k: v for k, v in result.items() if k not in ("strides", "curves")}
+    atomic_write_text(cache / f"{key}.json", json.dumps(meta, sort_keys=True, indent=1))
+
+
+def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path, key: str) -> dict:
+    """Local-pool worker: analyse one trial and write its cache entry itself, so the curves never cross the pipe
+    and the writes run in parallel; returns the record and the strides text, marked as already cached."""
+    result = _analyse_job(job, options)
+    _write_cache_entry(cache, key, result)
+    return {k: v for k, v in result.items() if k != "curves"} | {"cached_by_worker": True}
+
+
 def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
-              on_done: Callable[[TrialJob, str, dict], None], cluster=None) -> None:
-    """Run jobs in a process pool (or on a Dask cluster); a worker that dies (native crash) becomes a failed-trial record."""
+              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None) -> None:
+    """Run jobs in a process pool (or on a Dask cluster); a worker that dies (native crash) becomes a failed-trial record.
+    Local workers write their trial's entry under ``cache`` themselves; cluster results are written by ``on_done``."""
     if not todo:
         return
     if cluster is not None:
         run_on_cluster(todo, options, cluster, on_done)
         return
     # Even with one job the trials run in a worker process: a native crash must never take the squad run down.
+    _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
     pending = list(todo)
     while pending:
         crashed: list[tuple[TrialJob, str]] = []
         with cf.ProcessPoolExecutor(max_workers=min(jobs, len(pending))) as pool:
-            futures = {pool.submit(_analyse_job, job, options): (job, key) for job, key in pending}
+            futures = {pool.submit(_analyse_job_into_cache, job, options, cache, key): (job, key)
+                       for job, key in pending}
             for future in cf.as_completed(futures):
                 job, key = futures.pop(future)  # drop the finished result: memory stays flat
                 try:
@@ -394,19 +423,17 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     parsed: dict[str, pd.DataFrame] = {}  # strides tables read while the workers run (the parent is idle then)
 
     def on_done(job: TrialJob, key: str, result: dict) -> None:
+        if not result.pop("cached_by_worker", False):
+            _write_cache_entry(cache, key, result)
         if result["status"] == "ok":
-            atomic_write_text(cache / f"{key}.strides.csv", result["strides"])
-            atomic_write_text(cache / f"{key}.curves.csv", result["curves"])
             parsed[key] = _read_strides(_io.StringIO(result["strides"]))  # the same text as the cache file
         else:
             failures[0] += 1
-        meta = {k: v for k, v in result.items() if k not in ("strides", "curves")}
-        atomic_write_text(cache / f"{key}.json", json.dumps(meta, sort_keys=True, indent=1))
         done[0] += 1
         if progress:
             progress(done[0], total, failures[0])
 
-    _run_pool(todo, config.analysis, jobs, on_done, cluster=cluster)
+    _run_pool(todo, config.analysis, jobs, on_done, cache, cluster=cluster)
 
     stride_tables, failed = [], []
     curve_files: list[Path] = []
