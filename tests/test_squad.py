@@ -139,6 +139,8 @@ def test_table_csv_is_pandas_to_csv_on_awkward_cells():
     assert table_csv(table) == table.to_csv(**_PANDAS_CSV)
     mixed = pd.DataFrame({"anything": [1, "x", 2.5]})  # not handled by the fast path: pandas writes it
     assert table_csv(mixed) == mixed.to_csv(**_PANDAS_CSV)
+    long_mixed = pd.DataFrame({"text": ["a"] * 5000 + [7] * 3, "x": np.linspace(0, 1, 5003)})  # blocks of both kinds
+    assert table_csv(long_mixed) == long_mixed.to_csv(**_PANDAS_CSV)
     assert table_csv(table.iloc[:0]) == table.iloc[:0].to_csv(**_PANDAS_CSV)
 
 

@@ -61,14 +61,30 @@ def table_csv(df: pd.DataFrame) -> str:
     times faster: each column is formatted as a whole (floats with ``%.6g``, missing values empty) and the rows go
     through the same ``csv`` writer pandas uses (minimal quoting). Tables with other kinds of columns take pandas.
     """
-    columns = [_csv_column(df[name]) for name in df.columns] if df.columns.is_unique else [None]
-    if any(c is None for c in columns):
-        return df.to_csv(index=False, lineterminator="\n", float_format="%.6g")
     text = _io.StringIO()
-    writer = csv.writer(text, lineterminator="\n")
-    writer.writerow([str(name) for name in df.columns])
-    writer.writerows(zip(*columns))
+    _write_csv(df, text)
     return text.getvalue()
+
+
+def _write_csv(df: pd.DataFrame, handle) -> None:
+    """``table_csv`` into an open text file, block by block (the formatted cells of a block are many small
+    objects; the whole table's text is never held in memory)."""
+    pandas_csv = {"index": False, "lineterminator": "\n", "float_format": "%.6g"}
+    if not df.columns.is_unique:
+        handle.write(df.to_csv(**pandas_csv))
+        return
+    writer = csv.writer(handle, lineterminator="\n")
+    writer.writerow([str(name) for name in df.columns])
+    for start in range(0, len(df), _CSV_ROWS):
+        block = df.iloc[start:start + _CSV_ROWS]
+        columns = [_csv_column(block[name]) for name in df.columns]
+        if any(c is None for c in columns):  # cells of a kind not handled here: pandas writes this block
+            handle.write(block.to_csv(header=False, **pandas_csv))
+        else:
+            writer.writerows(zip(*columns))
+
+
+_CSV_ROWS = 2048
 
 
 def _csv_column(series: pd.Series) -> list[str] | None:
@@ -95,7 +111,12 @@ def _csv_column(series: pd.Series) -> list[str] | None:
 
 
 def write_table(out: Path, name: str, df: pd.DataFrame) -> list[Path]:
-    paths = [atomic_write_text(out / f"{name}.csv", table_csv(df))]
+    with atomic_path(out / f"{name}.csv") as tmp:
+        with open(tmp, "w", encoding="utf-8", newline="") as fh:
+            _write_csv(df, fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+    paths = [out / f"{name}.csv"]
     try:
         import pyarrow  # noqa: F401
     except ImportError:
@@ -420,13 +441,21 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     if progress:
         progress(done[0], total, failures[0])
 
-    parsed: dict[str, pd.DataFrame] = {}  # strides tables read while the workers run (the parent is idle then)
+    # Strides tables are read while the workers run (the parent is idle then) and gathered into chunks, so a long
+    # run holds a few tables, not one per trial (each small table costs far more memory than its rows).
+    parsed_keys: set[str] = set()
+    parsed_chunks: list[pd.DataFrame] = []
+    parsed_recent: list[pd.DataFrame] = []
 
     def on_done(job: TrialJob, key: str, result: dict) -> None:
         if not result.pop("cached_by_worker", False):
             _write_cache_entry(cache, key, result)
         if result["status"] == "ok":
-            parsed[key] = _read_strides(_io.StringIO(result["strides"]))  # the same text as the cache file
+            parsed_recent.append(_read_strides(_io.StringIO(result["strides"])))  # the same text as the cache file
+            parsed_keys.add(key)
+            if len(parsed_recent) >= _STRIDES_CHUNK:
+                parsed_chunks.append(pd.concat(parsed_recent, ignore_index=True))
+                parsed_recent.clear()
         else:
             failures[0] += 1
         done[0] += 1
@@ -450,14 +479,19 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
             rec["speed_m_s"] = meta.get("info", {}).get("speed_m_s")
             rec["n_strides"] = meta.get("info", {}).get("n_strides")
             key = rec["cache_key"]
-            stride_tables.append(parsed.pop(key) if key in parsed else _read_strides(cache / f"{key}.strides.csv"))
+            if key not in parsed_keys:
+                stride_tables.append(_read_strides(cache / f"{key}.strides.csv"))
             curve_files.append(cache / f"{rec['cache_key']}.curves.csv")
             curve_files_by_athlete.setdefault(job.athlete, []).append(curve_files[-1])
         else:
             rec["code"] = meta.get("code", "error")
             rec["reason"] = meta.get("reason", "")
             failed.append(rec)
+    stride_tables = parsed_chunks + parsed_recent + stride_tables  # order is fixed by the sort just below
+    parsed_chunks.clear()
+    parsed_recent.clear()
     strides = pd.concat(stride_tables, ignore_index=True) if stride_tables else pd.DataFrame(columns=STRIDE_COLUMNS)
+    del stride_tables  # one copy of the rows from here on
     strides = strides.sort_values(["athlete", "session", "trial", "side", "stride", "muscle"], kind="stable")
     summary = summarise(strides, athletes)
     flags = compute_flags(summary, athletes, config.flags)
@@ -490,6 +524,9 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         curves_of = functools.partial(_athlete_curves, curve_files_by_athlete)
         run.report_paths = render_squad(out, strides, curves_of, flags, summary, athletes, run_info)
     return run
+
+
+_STRIDES_CHUNK = 64  # trials' strides tables joined into one while a squad runs
 
 
 def _read_strides(source) -> pd.DataFrame:
