@@ -240,17 +240,19 @@ def residuals(x: np.ndarray, rate_hz: float, cutoffs_hz: np.ndarray) -> np.ndarr
     n = data.shape[0]
     ramp = np.linspace(0.0, 1.0, n)[:, None]
     detrended = data - (data[0] + (data[-1] - data[0]) * ramp)
-    power = np.abs(np.fft.rfft(detrended, axis=0)) ** 2  # [n_freq, C]
+    spectrum = np.fft.rfft(detrended, axis=0)
+    power = spectrum.real ** 2 + spectrum.imag ** 2  # |X(f)|^2, [n_freq, C]
     weight = np.full(power.shape[0], 2.0)  # one-sided spectrum: count each frequency twice but DC and Nyquist
     weight[0] = 1.0
     if n % 2 == 0:
         weight[-1] = 1.0
     freqs = np.fft.rfftfreq(n, 1.0 / rate_hz)
     correction = dual_pass_correction(2, FILTER_ORDER)
-    ratio = correction * np.tan(np.pi * freqs[None, :] / rate_hz) / np.tan(
+    ratio = (correction * np.tan(np.pi * freqs / rate_hz))[None, :] / np.tan(
         np.pi * np.asarray(cutoffs_hz, dtype=float)[:, None] / rate_hz)
-    gain = 1.0 / (1.0 + ratio ** (2 * FILTER_ORDER))  # [n_cutoffs, n_freq]
-    out[:, whole] = np.sqrt(((weight * (1.0 - gain) ** 2) @ power) / n ** 2)
+    stop = (ratio * ratio) ** FILTER_ORDER  # ratio^(2 order); numpy squares fast
+    rejected = stop / (1.0 + stop)  # 1 - G without the cancellation of 1 - 1 / (1 + ...), [n_cutoffs, n_freq]
+    out[:, whole] = np.sqrt(((weight * rejected * rejected) @ power) / n ** 2)
     return out
 
 
