@@ -5,6 +5,7 @@ with a right-side deficit that shrinks over three sessions, and symmetric athlet
 """
 from __future__ import annotations
 
+import io
 import json
 import shutil
 from pathlib import Path
@@ -153,3 +154,24 @@ def test_table_csv_is_pandas_to_csv_for_any_cells(rows):
 
     table = pd.DataFrame(rows, columns=["text", "number", "count", "flag"])
     assert table_csv(table) == table.to_csv(**_PANDAS_CSV)
+
+
+def test_strides_gatherer_equals_reading_each_text(monkeypatch):
+    # Chunks of trials' strides CSVs are parsed with one read; the rows must be those of reading each text alone,
+    # also across chunk boundaries, with a missing final newline, and with a text written by another version.
+    from hamstride import batch
+
+    monkeypatch.setattr(batch._StridesGatherer, "CHUNK", 3)
+    texts = [f"athlete,session,trial,stride,value\nA{k},s1,0{k},{k},{k / 3:.6g}\nA{k},s1,0{k},{k + 1},nan\n"
+             for k in range(7)]
+    texts[4] = texts[4].rstrip("\n")
+    texts[5] = "athlete,session,trial,stride,value,extra\nA5,s1,05,5,1.5,x\n"
+    gatherer = batch._StridesGatherer()
+    for k, text in enumerate(texts):
+        gatherer.add(f"key{k}", text)
+    assert "key6" in gatherer and "key9" not in gatherer
+    got = pd.concat(gatherer.tables(), ignore_index=True)
+    expected = pd.concat([batch._read_strides(io.StringIO(t)) for t in texts], ignore_index=True)
+    pd.testing.assert_frame_equal(got.sort_values(["athlete", "stride"]).reset_index(drop=True),
+                                  expected.sort_values(["athlete", "stride"]).reset_index(drop=True))
+    assert got["trial"].tolist().count("05") == 1 and got["athlete"].map(type).eq(str).all()

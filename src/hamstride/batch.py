@@ -441,21 +441,13 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     if progress:
         progress(done[0], total, failures[0])
 
-    # Strides tables are read while the workers run (the parent is idle then) and gathered into chunks, so a long
-    # run holds a few tables, not one per trial (each small table costs far more memory than its rows).
-    parsed_keys: set[str] = set()
-    parsed_chunks: list[pd.DataFrame] = []
-    parsed_recent: list[pd.DataFrame] = []
+    gathered = _StridesGatherer()  # strides texts parsed in chunks while the workers run (the parent is idle then)
 
     def on_done(job: TrialJob, key: str, result: dict) -> None:
         if not result.pop("cached_by_worker", False):
             _write_cache_entry(cache, key, result)
         if result["status"] == "ok":
-            parsed_recent.append(_read_strides(_io.StringIO(result["strides"])))  # the same text as the cache file
-            parsed_keys.add(key)
-            if len(parsed_recent) >= _STRIDES_CHUNK:
-                parsed_chunks.append(pd.concat(parsed_recent, ignore_index=True))
-                parsed_recent.clear()
+            gathered.add(key, result["strides"])  # the same text as the cache file
         else:
             failures[0] += 1
         done[0] += 1
@@ -464,7 +456,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
 
     _run_pool(todo, config.analysis, jobs, on_done, cache, cluster=cluster)
 
-    stride_tables, failed = [], []
+    failed = []
     curve_files: list[Path] = []
     curve_files_by_athlete: dict[str, list[Path]] = {}
     for job in all_jobs:
@@ -479,19 +471,17 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
             rec["speed_m_s"] = meta.get("info", {}).get("speed_m_s")
             rec["n_strides"] = meta.get("info", {}).get("n_strides")
             key = rec["cache_key"]
-            if key not in parsed_keys:
-                stride_tables.append(_read_strides(cache / f"{key}.strides.csv"))
+            if key not in gathered:
+                gathered.add(key, (cache / f"{key}.strides.csv").read_text(encoding="utf-8"))
             curve_files.append(cache / f"{rec['cache_key']}.curves.csv")
             curve_files_by_athlete.setdefault(job.athlete, []).append(curve_files[-1])
         else:
             rec["code"] = meta.get("code", "error")
             rec["reason"] = meta.get("reason", "")
             failed.append(rec)
-    stride_tables = parsed_chunks + parsed_recent + stride_tables  # order is fixed by the sort just below
-    parsed_chunks.clear()
-    parsed_recent.clear()
+    stride_tables = gathered.tables()  # in no particular order: the sort just below fixes it
     strides = pd.concat(stride_tables, ignore_index=True) if stride_tables else pd.DataFrame(columns=STRIDE_COLUMNS)
-    del stride_tables  # one copy of the rows from here on
+    del stride_tables, gathered  # one copy of the rows from here on
     strides = strides.sort_values(["athlete", "session", "trial", "side", "stride", "muscle"], kind="stable")
     summary = summarise(strides, athletes)
     flags = compute_flags(summary, athletes, config.flags)
@@ -526,12 +516,44 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     return run
 
 
-_STRIDES_CHUNK = 64  # trials' strides tables joined into one while a squad runs
-
-
 def _read_strides(source) -> pd.DataFrame:
-    """A trial's strides table from its CSV (cache file or the worker's text): codes stay text."""
+    """Strides table(s) from CSV (a file or text): codes stay text."""
     return pd.read_csv(source, dtype={"athlete": str, "session": str, "trial": str})
+
+
+class _StridesGatherer:
+    """Trials' strides CSV texts, parsed a chunk at a time with one read (per-call overhead dominates a small
+    table) and kept as a few tables (a small table costs far more memory than its rows)."""
+
+    CHUNK = 64
+
+    def __init__(self) -> None:
+        self._keys: set[str] = set()
+        self._texts: list[str] = []
+        self._tables: list[pd.DataFrame] = []
+
+    def __contains__(self, key: str) -> bool:
+        return key in self._keys
+
+    def add(self, key: str, text: str) -> None:
+        self._keys.add(key)
+        self._texts.append(text if text.endswith("\n") else text + "\n")
+        if len(self._texts) >= self.CHUNK:
+            self._parse()
+
+    def tables(self) -> list[pd.DataFrame]:
+        self._parse()
+        return self._tables
+
+    def _parse(self) -> None:
+        if not self._texts:
+            return
+        header = self._texts[0].split("\n", 1)[0] + "\n"
+        if all(t.startswith(header) for t in self._texts):  # one table: drop the repeated header lines
+            self._tables.append(_read_strides(_io.StringIO(header + "".join(t[len(header):] for t in self._texts))))
+        else:  # written by different versions: each on its own
+            self._tables.extend(_read_strides(_io.StringIO(t)) for t in self._texts)
+        self._texts.clear()
 
 
 def _tendon_note() -> str:
