@@ -164,8 +164,8 @@ def test_strides_gatherer_equals_reading_each_text(monkeypatch):
     monkeypatch.setattr(batch._StridesGatherer, "CHUNK", 3)
     texts = [f"athlete,session,trial,stride,value\nA{k},s1,0{k},{k},{k / 3:.6g}\nA{k},s1,0{k},{k + 1},nan\n"
              for k in range(7)]
-    texts[4] = texts[4].rstrip("\n")
-    texts[5] = "athlete,session,trial,stride,value,extra\nA5,s1,05,5,1.5,x\n"
+    texts[3] = texts[3].rstrip("\n")  # joined with the next text of its chunk
+    texts[1] = "athlete,session,trial,stride,value,extra\nA1,s1,01,1,1.5,x\n"  # its chunk is read text by text
     gatherer = batch._StridesGatherer()
     for k, text in enumerate(texts):
         gatherer.add(f"key{k}", text)
@@ -174,4 +174,4 @@ def test_strides_gatherer_equals_reading_each_text(monkeypatch):
     expected = pd.concat([batch._read_strides(io.StringIO(t)) for t in texts], ignore_index=True)
     pd.testing.assert_frame_equal(got.sort_values(["athlete", "stride"]).reset_index(drop=True),
                                   expected.sort_values(["athlete", "stride"]).reset_index(drop=True))
-    assert got["trial"].tolist().count("05") == 1 and got["athlete"].map(type).eq(str).all()
+    assert got["trial"].tolist().count("01") == 1 and got["athlete"].map(type).eq(str).all()
