@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Mapping
+from typing import Mapping, NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -178,6 +178,18 @@ def _late_swing_start_frame(s, rate: float) -> int:
     return min(max(late, s.start_frame), s.end_frame)
 
 
+class _Leg(NamedTuple):
+    """What one leg's tables need, gathered before the legs share one force-sharing solve."""
+
+    strides: list
+    joint: dict
+    states: dict
+    late_frames: dict
+    bands: dict
+    swing: np.ndarray
+    moments: object  # dynamics.JointMoments, or None without body mass
+
+
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
     from .dynamics import leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics
@@ -228,10 +240,11 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                                              body.hip_centre[side], body.knee_centre[side], body.ankle_centre[side],
                                              body.heel[side], body.toe[side], rate, inertia, swing_mask=swing,
                                              pelvis=body.pelvis, side=side)
-        legs[side] = (side_strides, joint, states, late_frames, bands, swing, moments)
-    with_moments = [side for side, leg in legs.items() if leg[6] is not None]
+        legs[side] = _Leg(side_strides, joint, states, late_frames, bands, swing, moments)
+    with_moments = [side for side, leg in legs.items() if leg.moments is not None]
     shared = dict(zip(with_moments, share_swing_moments_of_legs(
-        [(legs[side][6], legs[side][2], legs[side][1], rate) for side in with_moments]))) if with_moments else {}
+        [(legs[side].moments, legs[side].states, legs[side].joint, rate) for side in with_moments]))) \
+        if with_moments else {}
     for side, (side_strides, joint, states, late_frames, bands, swing, moments) in legs.items():
         a = angles[side]
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
