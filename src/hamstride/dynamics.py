@@ -740,22 +740,6 @@ def _sharing_problem(moments, states, angles, rate_hz, strength_scale, include_p
     return names, r, cap, fp, target, vel, valid
 
 
-def muscle_forces(
-    moments: JointMoments,
-    states: Mapping[str, MuscleState],
-    angles: Mapping[str, np.ndarray],
-    rate_hz: float,
-    strength_scale: float | None = None,
-    include_passive: bool = True,
-) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """Forces (N) [F] of every muscle in the sharing problem and the swing frames whose moments were not met.
-
-    See ``share_swing_moments``; ``angles`` as given to ``muscles.muscle_states`` (rad).
-    """
-    res = share_swing_moments(moments, states, angles, rate_hz, strength_scale, include_passive)
-    return res.force_n, res.unmet
-
-
 # --------------------------------------------------------------------------- power and work
 def negative_positive_work(
     force_n: np.ndarray, velocity_m_per_s: np.ndarray, rate_hz: float, start: int, stop: int
