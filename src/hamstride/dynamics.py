@@ -15,7 +15,7 @@ Everything is vectorised over frames; moments are NaN outside the swing phases.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Callable, Mapping, Sequence
+from typing import TYPE_CHECKING, Callable, Mapping, NamedTuple, Sequence
 
 import numpy as np
 
@@ -687,29 +687,42 @@ def share_swing_moments_of_legs(
     is separate for every frame, so stacking the legs' frames gives the same forces in fewer solver steps."""
     problems = [_sharing_problem(*leg, ATHLETE_STRENGTH_FACTOR if strength_scale is None else strength_scale,
                                  include_passive) for leg in legs]
-    if len({tuple(p[0]) for p in problems}) > 1:
+    if len({tuple(p.names) for p in problems}) > 1:
         raise HamstrideError("legs shared together must have the same muscles", code="config")
-    active, met = share_forces(np.concatenate([p[1] for p in problems]), np.concatenate([p[2] for p in problems]),
-                               np.concatenate([p[4] for p in problems]))
+    active, met = share_forces(np.concatenate([p.arms for p in problems]),
+                               np.concatenate([p.capacity for p in problems]),
+                               np.concatenate([p.target for p in problems]))
     out, start = [], 0
-    for names, r, _, fp, target, vel, valid in problems:
-        stop = start + len(target)
-        force = active[start:stop] + fp
-        force[~valid] = np.nan
+    for p in problems:
+        stop = start + len(p.target)
+        force = active[start:stop] + p.passive
+        force[~p.valid] = np.nan
         out.append(ForceSharing(
-            force_n={c: force[:, i] for i, c in enumerate(names)},
-            velocity_m_per_s={c: vel[i] for i, c in enumerate(names)},
-            moment_arms_m={c: r[:, i] for i, c in enumerate(names)},
-            unmet=valid & ~met[start:stop],
-            valid=valid,
+            force_n={c: force[:, i] for i, c in enumerate(p.names)},
+            velocity_m_per_s={c: p.velocities[i] for i, c in enumerate(p.names)},
+            moment_arms_m={c: p.arms[:, i] for i, c in enumerate(p.names)},
+            unmet=p.valid & ~met[start:stop],
+            valid=p.valid,
         ))
         start = stop
     return out
 
 
-def _sharing_problem(moments, states, angles, rate_hz, strength_scale, include_passive):
-    """One leg's sharing problem: muscle names, arms [F,m,2], active capacity [F,m], passive force [F,m], the
-    moments left for the active forces [F,2], velocities and the valid frames."""
+class _SharingProblem(NamedTuple):
+    """One leg's sharing problem (see ``_sharing_problem``)."""
+
+    names: list[str]
+    arms: np.ndarray  # [F, m, 2] hip flexion, knee flexion
+    capacity: np.ndarray  # [F, m] active force capacity (N)
+    passive: np.ndarray  # [F, m] passive force (N)
+    target: np.ndarray  # [F, 2] moments left for the active forces (N m)
+    velocities: list[np.ndarray]
+    valid: np.ndarray  # [F]
+
+
+def _sharing_problem(moments, states, angles, rate_hz, strength_scale, include_passive) -> _SharingProblem:
+    """One leg's sharing problem: the hamstrings (from the muscles stage) and the other muscles, with the passive
+    forces' moments taken off the targets."""
     hip = np.asarray(angles["hip_flexion"], dtype=float)
     n = hip.shape[0]
     others = other_muscle_kinematics(hip, angles["knee_flexion"], rate_hz, strength_scale * _mass_scale(states))
@@ -737,7 +750,7 @@ def _sharing_problem(moments, states, angles, rate_hz, strength_scale, include_p
     target = np.stack([moments.hip_flexion_nm, moments.knee_flexion_nm], axis=1)
     target = target - np.einsum("fmj,fm->fj", r, fp)
     valid = np.asarray(moments.valid, dtype=bool) & np.isfinite(target).all(axis=1)
-    return names, r, cap, fp, target, vel, valid
+    return _SharingProblem(names, r, cap, fp, target, vel, valid)
 
 
 # --------------------------------------------------------------------------- power and work
