@@ -376,9 +376,15 @@ def tendon_slack_length(muscle: str, dims: MuscleDims, *, geometry: MusclePath |
     alpha = arch.pennation_rad if pennation_rad is None else pennation_rad
     strain = REFERENCE_FIBRE_STRAIN[muscle][0] if reference_strain is None else reference_strain
     reference_length = musculotendon_length(muscle, *SLACK_REFERENCE_POSTURE_RAD, dims, geometry)
-    fibre = (1.0 + strain) * l_opt
-    thickness = l_opt * np.sin(alpha)
-    return reference_length - np.sqrt(fibre * fibre - thickness * thickness)
+    return _slack_rule(reference_length, l_opt, alpha, strain)
+
+
+def _slack_rule(reference_length_m, optimal_fibre_length_m, pennation_rad, reference_strain):
+    """The slack length that puts the fibres at ``(1 + reference strain) l_opt`` when the unit has its reference
+    length (rigid tendon, constant thickness ``l_opt sin(alpha_opt)``); broadcasts over legs, muscles, samples."""
+    fibre = (1.0 + reference_strain) * optimal_fibre_length_m
+    thickness = optimal_fibre_length_m * np.sin(pennation_rad)
+    return reference_length_m - np.sqrt(fibre * fibre - thickness * thickness)
 
 
 ACTIVE_FORCE_LENGTH_HALF_WIDTH = 0.5  # active range 0.5-1.5 l_opt: common practice (references.md)
@@ -520,10 +526,7 @@ def muscle_states_of_legs(legs, rate_hz: float, *, body_mass_kg: float | None = 
         arch = [ARCHITECTURE[m] for m in group]
         l_opt = np.array([a.optimal_fibre_length_m for a in arch])[:, None]  # [G, 1]
         alpha = np.array([a.pennation_rad for a in arch])[:, None]
-        # tendon_slack_length, for every leg and muscle at once (same arithmetic)
-        fibre_ref = (1.0 + np.array([REFERENCE_FIBRE_STRAIN[m][0] for m in group])[:, None]) * l_opt
-        thickness = l_opt * np.sin(alpha)
-        slack = reference - np.sqrt(fibre_ref * fibre_ref - thickness * thickness)
+        slack = _slack_rule(reference, l_opt, alpha, np.array([REFERENCE_FIBRE_STRAIN[m][0] for m in group])[:, None])
         for k, muscle in enumerate(group):
             if tendon_slack_lengths_m and muscle in tendon_slack_lengths_m:
                 slack[:, k] = float(tendon_slack_lengths_m[muscle])
@@ -573,9 +576,9 @@ def _standard_draws(n_samples: int, seed: int) -> dict[str, tuple[np.ndarray, ..
     insertion [S, 1, 3], then l_opt, pennation and reference strain [S, 1]. The same for every leg and trial with
     this seed (that is what pairs the legs), so they are drawn once per process; read-only."""
     rng = np.random.default_rng(seed)
+    shapes = ((n_samples, 1, 3), (n_samples, 1, 3), (n_samples, 1), (n_samples, 1), (n_samples, 1))
     draws = {}
     for muscle in MUSCLES:
-        shapes = ((n_samples, 1, 3), (n_samples, 1, 3), (n_samples, 1), (n_samples, 1), (n_samples, 1))
         draws[muscle] = tuple(rng.standard_normal(shape) for shape in shapes)
         for z in draws[muscle]:
             z.flags.writeable = False
@@ -619,9 +622,7 @@ def _draw_samples(dims: MuscleDims, n_samples: int, seed: int, include_hip_centr
         # the slack rule's reference posture and upright, in one evaluation: [S, 2]
         both = _path_length(paths, *(np.array([angle, 0.0]) for angle in SLACK_REFERENCE_POSTURE_RAD))
         reference_length, upright = both[:, :1], both[:, 1:]
-        fibre = (1.0 + ref_strain) * l_opt  # tendon_slack_length's rule, per sample
-        thickness = l_opt * np.sin(alpha)
-        slack = reference_length - np.sqrt(fibre * fibre - thickness * thickness)
+        slack = _slack_rule(reference_length, l_opt, alpha, ref_strain)
         yield muscle, _SampledMuscle(paths, l_opt, alpha, slack, upright)
 
 
