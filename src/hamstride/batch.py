@@ -27,7 +27,7 @@ import pandas as pd
 
 from . import __version__
 from .errors import ConfigError, HamstrideError
-from .io import atomic_path, atomic_write_bytes, atomic_write_text
+from .io import atomic_open, atomic_write_bytes, atomic_write_text
 from .metrics import FlagConfig, compute_flags, flag_config_toml, summarise
 from .pipeline import CURVE_COLUMNS, STRIDE_COLUMNS, AnalysisOptions, AthleteInfo, analyse_trial
 
@@ -111,11 +111,8 @@ def _csv_column(series: pd.Series) -> list[str] | None:
 
 
 def write_table(out: Path, name: str, df: pd.DataFrame) -> list[Path]:
-    with atomic_path(out / f"{name}.csv") as tmp:
-        with open(tmp, "w", encoding="utf-8", newline="") as fh:
-            _write_csv(df, fh)
-            fh.flush()
-            os.fsync(fh.fileno())
+    with atomic_open(out / f"{name}.csv", "w", encoding="utf-8", newline="") as fh:
+        _write_csv(df, fh)
     paths = [out / f"{name}.csv"]
     try:
         import pyarrow  # noqa: F401
@@ -576,7 +573,7 @@ def _rel(path: str | None, root: Path) -> str | None:
 
 def _stream_curves(target: Path, files: list[Path]) -> None:
     """Concatenate per-trial curve CSVs into one file without holding them in memory, atomically."""
-    with atomic_path(target) as tmp, open(tmp, "wb") as fh:
+    with atomic_open(target) as fh:
         fh.write((",".join(CURVE_COLUMNS) + "\n").encode())
         for path in files:
             with open(path, "rb") as src:

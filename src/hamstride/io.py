@@ -764,13 +764,21 @@ def atomic_path(path: str | Path, suffix: str = ".partial"):
             os.unlink(tmp)
 
 
-def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
-    """Write ``data`` to ``path`` through a temporary file in the same folder and an atomic rename."""
+@contextlib.contextmanager
+def atomic_open(path: str | Path, mode: str = "wb", **open_kwargs):
+    """Open a temporary file beside ``path`` for writing; when the block ends it is flushed to disk and renamed
+    over ``path`` (on failure it is removed, ``path`` untouched). For writers that stream their output."""
     with atomic_path(path) as tmp:
-        with open(tmp, "wb") as fh:
-            fh.write(data)
+        with open(tmp, mode, **open_kwargs) as fh:
+            yield fh
             fh.flush()
             os.fsync(fh.fileno())
+
+
+def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and an atomic rename."""
+    with atomic_open(path) as fh:
+        fh.write(data)
     return Path(path)
 
 
