@@ -184,7 +184,7 @@ class _Leg(NamedTuple):
     strides: list
     joint: dict
     states: dict
-    late_frames: dict
+    late_starts: np.ndarray  # first frame of late swing, per stride
     bands: dict
     swing: np.ndarray
     moments: object  # dynamics.JointMoments, or None without body mass
@@ -216,11 +216,11 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     for side in sides:
         side_strides = [s for s in valid if s.side == side]
         joint, dims, states = joints[side], leg_dims[side], leg_states[side]
-        late_frames = {id(s): (_late_swing_start_frame(s, rate), s.end_frame) for s in side_strides}
+        late_starts = np.array([_late_swing_start_frame(s, rate) for s in side_strides])
         # The band is only read at late-swing peaks: each sample's peak per stride, 5th/95th percentiles over samples.
         bands = {}
         if options.monte_carlo_samples > 0:
-            windows = [(late_frames[id(s)][0], s.end_frame + 1) for s in side_strides]
+            windows = [(late, s.end_frame + 1) for late, s in zip(late_starts, side_strides)]
             peaks = monte_carlo_peaks(joint, windows, dims, n_samples=options.monte_carlo_samples, seed=0,
                                       nominal_lengths_m={m: states[m].length_m for m in MUSCLES})
             # 5th/95th percentiles of every muscle's peaks in one call: [2 (p5, p95), muscle, strain | l/l_opt, stride]
@@ -240,12 +240,12 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                                              body.hip_centre[side], body.knee_centre[side], body.ankle_centre[side],
                                              body.heel[side], body.toe[side], rate, inertia, swing_mask=swing,
                                              pelvis=body.pelvis, side=side)
-        legs[side] = _Leg(side_strides, joint, states, late_frames, bands, swing, moments)
+        legs[side] = _Leg(side_strides, joint, states, late_starts, bands, swing, moments)
     with_moments = [side for side, leg in legs.items() if leg.moments is not None]
     shared = dict(zip(with_moments, share_swing_moments_of_legs(
         [(legs[side].moments, legs[side].states, legs[side].joint, rate) for side in with_moments]))) \
         if with_moments else {}
-    for side, (side_strides, joint, states, late_frames, bands, swing, moments) in legs.items():
+    for side, (side_strides, joint, states, late_starts, bands, swing, moments) in legs.items():
         a = angles[side]
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
         hip_moment = np.full(n_frames, np.nan)
@@ -269,7 +269,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
                         power[m]]
         signals = np.column_stack(columns)
-        stride_columns.append(_stride_columns(side, side_strides, late_frames, rate, signals, bands, unmet,
+        stride_columns.append(_stride_columns(side, side_strides, late_starts, rate, signals, bands, unmet,
                                               bool(body_mass), forces, states, speed, athlete, trial.name))
         curve_blocks.extend(normalise_strides(signals, side_strides, rate))
         curve_keys.extend((side, s.index + 1) for s in side_strides)
@@ -283,7 +283,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     return strides, curves
 
 
-def _stride_columns(side, side_strides, late_frames, rate, signals, bands, unmet, with_mass, forces, states, speed,
+def _stride_columns(side, side_strides, late, rate, signals, bands, unmet, with_mass, forces, states, speed,
                     athlete, trial_name) -> dict[str, np.ndarray]:
     """The strides table of one leg as columns: a row per stride and muscle (stride-major), all windows at once."""
     from .dynamics import window_work
@@ -293,7 +293,6 @@ def _stride_columns(side, side_strides, late_frames, rate, signals, bands, unmet
     n_str, n_mus = len(side_strides), len(MUSCLES)
     start = np.array([s.start_frame for s in side_strides])
     stop = np.array([s.end_frame for s in side_strides])
-    late = np.array([late_frames[id(s)][0] for s in side_strides])
     swing_lo = np.minimum(np.maximum(np.ceil(np.array([s.toe_off_s for s in side_strides]) * rate).astype(int),
                                      start), stop)
     foot_strike = np.array([s.foot_strike_s for s in side_strides])
