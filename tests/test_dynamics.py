@@ -743,3 +743,5 @@ def test_window_work_equals_negative_positive_work_for_every_window():
             np.testing.assert_allclose([absorbed[w, c], produced[w, c]], ref, rtol=1e-13, equal_nan=True)
     assert np.isnan(absorbed[2, 2]) and np.isfinite(absorbed[2, 1])
     assert np.isnan(absorbed[3]).all() and np.isnan(absorbed[5]).all()  # one frame: no interval to integrate
+    empty = dyn.window_work(force, velocity, 250.0, [5, 9], [5, 9])  # only empty windows (a stride without swing)
+    assert all(np.isnan(part).all() and part.shape == (2, 4) for part in empty)

@@ -131,4 +131,6 @@ def test_window_peaks_equal_peak_in_window_for_every_window_and_column():
             assert (np.isnan(value) and np.isnan(peaks[w, c])) or value == peaks[w, c]
     assert index[4, 3] == 205
     one, at_one = window_peaks(x[:, 0], starts[:2], stops[:2])  # 1-D values give 1-D results
+    none, at_none = window_peaks(x, [10, 20], [9, 19])  # only empty windows
+    assert np.isnan(none).all() and (at_none == -1).all() and none.shape == (2, 4)
     assert one.shape == at_one.shape == (2,)

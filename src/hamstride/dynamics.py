@@ -778,27 +778,25 @@ def window_work(force_n: np.ndarray, velocity_m_per_s: np.ndarray, rate_hz: floa
     """``negative_positive_work`` for many windows of frames ``start..stop-1`` at once, on every column of [F] or
     [F, C] force and velocity: (absorbed, produced) each [W] or [W, C], trapezoidal rule, NaN where a window has
     fewer than two frames or a non-finite force or velocity."""
+    from .strides import window_frames
+
     f = np.asarray(force_n, dtype=float)
     v = np.asarray(velocity_m_per_s, dtype=float)
     rate = f * v
     flat = rate.reshape(len(rate), -1)
-    starts = np.asarray(starts, dtype=int)
-    stops = np.minimum(np.asarray(stops, dtype=int), len(rate))
-    width = int(max(np.max(stops - starts, initial=0), 0))
-    frames = starts[:, None] + np.arange(width)[None, :]
-    inside = frames < stops[:, None]
-    windows = flat[np.clip(frames, 0, max(len(rate) - 1, 0))] if len(rate) else np.zeros(frames.shape + flat.shape[1:])
-    windows = np.where(inside[:, :, None], windows, 0.0)  # [W, L, C]
+    frames, inside = window_frames(starts, stops, len(rate))
+    windows = np.where(inside[:, :, None], flat[frames], 0.0)  # [W, L, C]
+    n_inside = inside.sum(axis=1)
     # trapezoid weights: dt inside, dt / 2 at both ends of each window
     weight = inside.astype(float)
-    weight[:, 0] *= 0.5
-    weight[np.arange(len(starts)), np.clip(stops - starts - 1, 0, None)] *= 0.5
-    finite = np.isfinite(np.where(inside[:, :, None], windows, 0.0)).all(axis=1)
-    ok = finite & ((stops - starts) >= 2)[:, None]
+    if weight.shape[1]:
+        weight[:, 0] *= 0.5
+        weight[np.arange(len(weight)), np.clip(n_inside - 1, 0, None)] *= 0.5
+    ok = np.isfinite(windows).all(axis=1) & (n_inside >= 2)[:, None]
     dt = 1.0 / rate_hz
     absorbed = np.einsum("wl,wlc->wc", weight, np.clip(np.nan_to_num(windows), 0.0, None)) * dt
     produced = np.einsum("wl,wlc->wc", weight, np.clip(-np.nan_to_num(windows), 0.0, None)) * dt
-    shape = (len(starts),) + rate.shape[1:]
+    shape = (len(weight),) + rate.shape[1:]
     return (np.where(ok, absorbed, np.nan).reshape(shape), np.where(ok, produced, np.nan).reshape(shape))
 
 

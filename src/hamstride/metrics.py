@@ -80,14 +80,14 @@ def peak_in_window(values: np.ndarray, start: int, stop: int) -> tuple[float, in
 def window_peaks(values: np.ndarray, starts, stops) -> tuple[np.ndarray, np.ndarray]:
     """``peak_in_window`` for many windows ``[start, stop]`` (inclusive) at once, on every column of ``values``
     [F] or [F, C]: peaks [W] or [W, C] and their frame indices (NaN and -1 where a window holds no finite value)."""
+    from .strides import window_frames
+
     x = np.asarray(values, dtype=float)
     flat = x.reshape(len(x), -1)
     starts = np.asarray(starts, dtype=int)
-    stops = np.minimum(np.asarray(stops, dtype=int), len(x) - 1)
-    width = int(max(np.max(stops - starts + 1, initial=0), 0))
-    frames = starts[:, None] + np.arange(width)[None, :]  # [W, L]
-    inside = frames <= stops[:, None]
-    windows = np.where(inside[:, :, None], flat[np.clip(frames, 0, len(x) - 1)], np.nan)  # [W, L, C]
+    frames, inside = window_frames(starts, np.asarray(stops, dtype=int) + 1, len(x))  # [W, L]
+    width = frames.shape[1]
+    windows = np.where(inside[:, :, None], flat[frames], np.nan)  # [W, L, C]
     ranked = np.where(np.isnan(windows), -np.inf, windows)  # as nanargmax: first maximum, NaN never wins
     first = np.argmax(ranked, axis=1) if width else np.zeros((len(starts), flat.shape[1]), dtype=int)
     empty = ~np.isfinite(windows).any(axis=1) if width else np.ones((len(starts), flat.shape[1]), dtype=bool)

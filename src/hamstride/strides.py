@@ -174,3 +174,13 @@ def normalise_strides(signal: np.ndarray, strides, rate_hz: float, n_points: int
             columns = rest[gap_free[k]]
             out[k][:, columns] = normalise(flat[:, columns], strides[k], rate_hz, n_points)
     return out.reshape((len(strides), n_points) + x.shape[1:])
+
+
+def window_frames(starts, stops, n_frames: int) -> tuple[np.ndarray, np.ndarray]:
+    """Frames of many half-open windows ``[start, stop)`` as one padded index matrix [W, L] (L the longest window,
+    indices kept inside 0..n_frames-1) and the mask of the frames that belong to each window."""
+    starts = np.asarray(starts, dtype=int)
+    stops = np.minimum(np.asarray(stops, dtype=int), n_frames)
+    width = int(max(np.max(stops - starts, initial=0), 0))
+    frames = starts[:, None] + np.arange(width)[None, :]
+    return np.clip(frames, 0, max(n_frames - 1, 0)), frames < stops[:, None]
