@@ -180,6 +180,25 @@ def test_moment_arms_equal_central_finite_difference(muscle):
         assert np.max(np.abs(fd - r[:, j])) < 1e-6, (muscle, M.ANGLE_NAMES[j])
 
 
+@pytest.mark.parametrize("muscle", M.MUSCLES)
+def test_moment_arms_equal_complex_step_derivative(muscle):
+    # Complex-step differentiation (Squire & Trapp 1998, SIAM Rev 40:110): dL/dtheta = Im L(theta + i h) / h with
+    # no subtractive cancellation, exact to rounding for any tiny h; the path function is complex-analytic. The
+    # analytic end-point gradient behind moment_arms must agree to rounding (1e-15 m/rad, about 1e-13 of the arm),
+    # on both sides of the wrap (each branch occurs in these postures).
+    postures = random_postures(4000, seed=3)
+    path = M.muscle_path(muscle, DIMS)
+    r = M.moment_arms(muscle, *postures, DIMS)
+    wraps = M.wrap_arc_rad(muscle, *postures, DIMS) > 0
+    assert 0 < wraps.sum() < wraps.size
+    step = 1e-30
+    for j in range(4):
+        stepped = list(postures)
+        stepped[j] = postures[j] + 1j * step
+        complex_step = -np.imag(M._path_length(path, *stepped)) / step
+        np.testing.assert_allclose(r[:, j], complex_step, rtol=0, atol=1e-15, err_msg=f"{muscle} {M.ANGLE_NAMES[j]}")
+
+
 def test_straight_path_matches_scipy_rotation_convention():
     # Independent: femur pose by scipy's intrinsic Z-X-Y Euler (Grood & Suntay JCS), then the plain 3-D distance
     # origin-insertion wherever the path does not touch the condylar cylinder.

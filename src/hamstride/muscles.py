@@ -22,8 +22,9 @@ Only the right side is modelled; with the contract's sign conventions the left s
 same lengths (mirror symmetry), so the same functions serve both legs.
 
 Moment arms come from the tendon-excursion identity ``r_j = -dL/dtheta_j`` (Spoor & van Leeuwen 1992), evaluated
-exactly by complex-step differentiation (Squire & Trapp 1998, SIAM Rev 40:110); every branch (wrapping on/off,
-arctangent quadrant) is chosen from real parts so the path function stays complex-analytic and vectorised.
+exactly from the gradient of the path length at its end points (``_length_and_moment_arms``). The path function is
+also complex-analytic (every branch, wrapping on/off and arctangent quadrant, is chosen from real parts), so
+complex-step differentiation (Squire & Trapp 1998, SIAM Rev 40:110) checks those moment arms to rounding.
 """
 from __future__ import annotations
 
@@ -263,31 +264,42 @@ def _atan2(y, x):
     return np.where(use_x, from_x, from_y)
 
 
-def _endpoints(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, knee_flexion):
-    """Origin and insertion in femur axes relative to the knee centre (m): (ox, oy, oz, ix, iy, iz)."""
+def _endpoints(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, knee_flexion, *, tangents: bool = False):
+    """Origin and insertion in femur axes relative to the knee centre (m): (ox, oy, oz, ix, iy, iz).
+
+    ``tangents=True`` also returns their angle derivatives: the origin's ``(d/d flexion, d/d adduction,
+    d/d rotation)``, each an (x, y, z) triple (None for a femur origin), and the insertion's (x, y) d/d knee flexion.
+    """
     o = np.asarray(path.origin_m)
     ox, oy, oz = o[..., 0], o[..., 1], o[..., 2]
+    origin_tangents = None
     if not path.origin_on_femur:
         # origin into femur axes: R^T = Ry(-rot) Rx(-add) Rz(-flex), applied right to left
-        c, s = np.cos(hip_flexion), np.sin(hip_flexion)
-        ox, oy = c * ox + s * oy, -s * ox + c * oy
-        c, s = np.cos(hip_adduction), np.sin(hip_adduction)
-        oy, oz = c * oy + s * oz, -s * oy + c * oz
-        c, s = np.cos(hip_rotation), np.sin(hip_rotation)
-        ox, oz = c * ox - s * oz, s * ox + c * oz
-        oy = oy + path.thigh_length_m
+        cf, sf = np.cos(hip_flexion), np.sin(hip_flexion)
+        x1, y1 = cf * ox + sf * oy, -sf * ox + cf * oy
+        ca, sa = np.cos(hip_adduction), np.sin(hip_adduction)
+        y2, z2 = ca * y1 + sa * oz, -sa * y1 + ca * oz
+        cr, sr = np.cos(hip_rotation), np.sin(hip_rotation)
+        ox, oz = cr * x1 - sr * z2, sr * x1 + cr * z2
+        if tangents:  # each elementary rotation's derivative, carried through the rotations after it
+            origin_tangents = ((cr * y1 - sr * sa * x1, -ca * x1, sr * y1 + cr * sa * x1),
+                               (sr * y2, z2, -cr * y2),
+                               (-oz, 0.0, ox))
+        oy = y2 + path.thigh_length_m
     i = np.asarray(path.insertion_m)
     c, s = np.cos(knee_flexion), np.sin(knee_flexion)
     ix = c * i[..., 0] + s * i[..., 1]  # Rz(-knee_flexion)
     iy = -s * i[..., 0] + c * i[..., 1]
+    if tangents:
+        return ox, oy, oz, ix, iy, i[..., 2], origin_tangents, (iy, -ix)
     return ox, oy, oz, ix, iy, i[..., 2]
 
 
 def _wrap(radius, ox, oy, ix, iy):
     """Sagittal wrap over the condylar cylinder (centre at the knee centre), seen with X anterior to the right and
     Y up: the path leaves the origin's tangent point T1 and runs counter-clockwise over the posterior condyles to
-    the insertion's tangent point T2. Returns (arc angle T1->T2, origin tangent length, insertion tangent length);
-    the path touches the cylinder when the arc is positive."""
+    the insertion's tangent point T2. Returns (arc angle T1->T2, origin tangent length, insertion tangent length,
+    (T1x, T1y), (T2x, T2y)); the path touches the cylinder when the arc is positive."""
     r2 = radius * radius
     ro2 = ox * ox + oy * oy
     ri2 = ix * ix + iy * iy
@@ -295,7 +307,7 @@ def _wrap(radius, ox, oy, ix, iy):
     hi = np.sqrt(ri2 - r2)
     t1x, t1y = (r2 * ox - radius * ho * oy) / ro2, (r2 * oy + radius * ho * ox) / ro2
     t2x, t2y = (r2 * ix + radius * hi * iy) / ri2, (r2 * iy - radius * hi * ix) / ri2
-    return _atan2(t1x * t2y - t1y * t2x, t1x * t2x + t1y * t2y), ho, hi
+    return _atan2(t1x * t2y - t1y * t2x, t1x * t2x + t1y * t2y), ho, hi, (t1x, t1y), (t2x, t2y)
 
 
 def _path_length(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, knee_flexion):
@@ -304,9 +316,45 @@ def _path_length(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, kne
     dz2 = (oz - iz) ** 2
     straight = np.sqrt((ox - ix) ** 2 + (oy - iy) ** 2 + dz2)
     radius = path.wrap_radius_m
-    arc, ho, hi = _wrap(radius, ox, oy, ix, iy)
+    arc, ho, hi, _, _ = _wrap(radius, ox, oy, ix, iy)
     wrapped = np.sqrt((ho + radius * arc + hi) ** 2 + dz2)  # cylinder geodesic: constant pitch along the path
     return np.where(np.real(arc) > 0.0, wrapped, straight)
+
+
+def _length_and_moment_arms(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, knee_flexion):
+    """Length (m) and moment arms ``r_j = -dL/dtheta_j`` ([..., 4], ``ANGLE_NAMES`` order) in one real evaluation.
+
+    dL/dtheta = (gradient of L at the origin) . d(origin)/dtheta + (gradient at the insertion) . d(insertion)/dtheta.
+    The gradient of a shortest path's length with respect to an end point is the unit vector along the path's
+    last straight piece, pointing out of the path (first variation of arc length; for the wrapped path the contact
+    points slide but the arc adds no first-order term). For the helical wrap ``L = sqrt(s**2 + dz**2)`` that
+    gives ``(s / L) (O - T1) / |O - T1|`` in the sagittal plane and ``dz / L`` along the cylinder axis.
+    The same numbers as complex-step differentiation of ``_path_length`` to rounding (tested).
+    """
+    ox, oy, oz, ix, iy, iz, origin_tangents, insertion_tangent = _endpoints(
+        path, hip_flexion, hip_adduction, hip_rotation, knee_flexion, tangents=True)
+    dx, dy, dz = ox - ix, oy - iy, oz - iz
+    straight = np.sqrt(dx * dx + dy * dy + dz * dz)
+    radius = path.wrap_radius_m
+    arc, ho, hi, (t1x, t1y), (t2x, t2y) = _wrap(radius, ox, oy, ix, iy)
+    in_plane = ho + radius * arc + hi
+    wrapped = np.sqrt(in_plane * in_plane + dz * dz)
+    wraps = arc > 0.0
+    length = np.where(wraps, wrapped, straight)
+    pitch = in_plane / wrapped
+    # gradients of the length with respect to the origin (g_o) and the insertion (g_i), sagittal x, y and axial z
+    g_oz = dz / length
+    g_ox = np.where(wraps, pitch * (ox - t1x) / ho, dx / straight)
+    g_oy = np.where(wraps, pitch * (oy - t1y) / ho, dy / straight)
+    g_ix = np.where(wraps, pitch * (ix - t2x) / hi, -dx / straight)
+    g_iy = np.where(wraps, pitch * (iy - t2y) / hi, -dy / straight)
+    zero = np.zeros(np.shape(length))
+    if origin_tangents is None:
+        hip_arms = [zero, zero, zero]  # a path from femur to tibia does not depend on the hip angles
+    else:
+        hip_arms = [0.0 - (g_ox * tx + g_oy * ty + g_oz * tz) for tx, ty, tz in origin_tangents]
+    knee_arm = 0.0 - (g_ix * insertion_tangent[0] + g_iy * insertion_tangent[1])
+    return length, np.stack(np.broadcast_arrays(*hip_arms, knee_arm), axis=-1)
 
 
 def wrap_arc_rad(muscle, hip_flexion, hip_adduction, hip_rotation, knee_flexion, dims, geometry=None) -> np.ndarray:
@@ -326,29 +374,18 @@ def musculotendon_length(muscle: str, hip_flexion, hip_adduction, hip_rotation, 
     return _path_length(path, hip_flexion, hip_adduction, hip_rotation, knee_flexion)
 
 
-_COMPLEX_STEP = 1e-30  # complex step: no subtractive cancellation, any tiny step is exact (Squire & Trapp 1998)
-
-
 def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flexion, dims: MuscleDims,
                 geometry: MusclePath | None = None) -> np.ndarray:
     """Moment arms r_j = -dL/dtheta_j (m per rad), shape [..., 4] in the order of ``ANGLE_NAMES``.
 
-    Exact to rounding by complex-step differentiation (Squire & Trapp 1998). Hamstrings give r < 0 at hip flexion
-    (hip extensors) and r > 0 at knee flexion (knee flexors); the short head has zero hip moment arms.
+    Exact (analytic gradient of the path length, ``_length_and_moment_arms``; equal to complex-step
+    differentiation, Squire & Trapp 1998, to rounding). Hamstrings give r < 0 at hip flexion (hip extensors) and
+    r > 0 at knee flexion (knee flexors); the short head has zero hip moment arms.
     """
     path = geometry if geometry is not None else muscle_path(muscle, dims)
     angles = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in
                                    (hip_flexion, hip_adduction, hip_rotation, knee_flexion)))
-    femur_origin = np.ndim(path.origin_on_femur) == 0 and bool(path.origin_on_femur)
-    columns = []
-    for j in range(4):
-        if femur_origin and j < 3:  # a path from femur to tibia does not depend on the hip angles
-            columns.append(np.zeros(()))
-            continue
-        stepped = list(angles)  # only the differentiated angle is complex: the rest stays cheap real arithmetic
-        stepped[j] = angles[j] + 1j * _COMPLEX_STEP
-        columns.append(0.0 - np.imag(_path_length(path, *stepped)) / _COMPLEX_STEP)  # 0.0 - avoids "-0"
-    return np.stack(np.broadcast_arrays(*columns), axis=-1)
+    return _length_and_moment_arms(path, *angles)[1]
 
 
 # --------------------------------------------------------------------------------------------------------------
@@ -519,8 +556,7 @@ def muscle_states_of_legs(legs, rate_hz: float, *, body_mass_kg: float | None = 
     states: list[dict[str, MuscleState]] = [{} for _ in legs]
     for group in _PATH_GROUPS:  # muscles of one kind of path in one vectorised evaluation
         path = _stacked_path(group, all_dims)
-        length = _path_length(path, *arrays)  # [L, G, F]
-        arms = moment_arms(group[0], *arrays, all_dims[0], geometry=path)  # [L, G, F, 4]
+        length, arms = _length_and_moment_arms(path, *arrays)  # [L, G, F], [L, G, F, 4]
         upright = _path_length(path, 0.0, 0.0, 0.0, 0.0)  # [L, G, 1]
         reference = _path_length(path, *SLACK_REFERENCE_POSTURE_RAD)  # [L, G, 1]
         arch = [ARCHITECTURE[m] for m in group]
