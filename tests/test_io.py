@@ -230,3 +230,39 @@ def test_numpy_reader_reads_the_header_event_table_like_the_native_reader(tmp_pa
     fast, native = _both_readers(crafted, monkeypatch)
     _assert_same_trial(fast, native)
     assert [(e.label, e.time_s) for e in fast.events] == [("RFS", 0.25), ("LTO", 0.5)]
+
+
+@pytest.mark.parametrize("axis", [0, 1])
+def test_lab_frame_median_equals_numpy_nanmedian(axis):
+    # io._nanmedian is a faster np.nanmedian (reference: numpy) for the lab-frame detection, NaN-aware per line,
+    # with all-NaN lines giving NaN; odd and even counts of finite values both occur.
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=(61, 7, 3))
+    x[rng.random(x.shape) < 0.3] = np.nan
+    x[:, 2, :] = np.nan  # an all-NaN line along axis 0 ...
+    x[5] = np.nan  # ... and along axis 1
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        expected = np.nanmedian(x, axis=axis)
+    from hamstride import io
+
+    np.testing.assert_array_equal(io._nanmedian(x, axis), expected)
+
+
+def test_point_masks_equal_numpy_reductions_over_xyz():
+    # io.all_xyz / any_xyz / finite_points replace numpy's all/any over a last axis of length 3 (reference: numpy);
+    # the absurd-coordinate rule |x| >= limit must equal isinf | (isfinite & |x| >= limit), NaN being a gap.
+    from hamstride import io
+
+    rng = np.random.default_rng(8)
+    x = rng.normal(scale=1e4, size=(40, 9, 3))
+    for value, share in ((np.nan, 0.1), (np.inf, 0.03), (-np.inf, 0.03), (2e4, 0.05), (0.0, 0.2)):
+        x[rng.random(x.shape) < share] = value
+    np.testing.assert_array_equal(io.finite_points(x), np.isfinite(x).all(axis=-1))
+    np.testing.assert_array_equal(io.all_xyz(x == 0.0), np.all(x == 0.0, axis=-1))
+    limit = io.MAX_ABS_COORDINATE_M * 1e-3  # so that finite values beyond it occur
+    with np.errstate(invalid="ignore"):
+        expected = np.any(np.isinf(x) | (np.isfinite(x) & (np.abs(x) >= limit)), axis=-1)
+        got = io.any_xyz(np.abs(x) >= limit)
+    assert expected.any() and not expected.all()
+    np.testing.assert_array_equal(got, expected)

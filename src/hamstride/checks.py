@@ -17,7 +17,7 @@ from typing import Iterable, Mapping
 import numpy as np
 
 from .errors import EventError, LandmarkError, PlausibilityError, TrialWarning
-from .io import UNIT_TO_METRES, MarkerTrial
+from .io import UNIT_TO_METRES, MarkerTrial, finite_points
 from .landmarks import REQUIRED_LANDMARKS, Landmarks, MarkerMap, plain_name
 
 # Sprint foot contacts last about 0.1 s [M, references.md]; below 100 Hz a contact spans fewer than 10 frames and
@@ -88,7 +88,7 @@ def check_marker_trial(trial: MarkerTrial, landmark_labels: Iterable[str] = (), 
             f"{MIN_DURATION_S:g} s is needed. Check the export range in the capture software", trial=name,
             code="too_short")
     warnings: list[TrialWarning] = []
-    visible = np.isfinite(trial.xyz).all(axis=2)  # [frame, marker]
+    visible = finite_points(trial.xyz)  # [frame, marker]
     empty = ~visible.any(axis=1)
     bad = int(trial.meta.get("bad_coordinates", 0) or 0) if isinstance(trial.meta, Mapping) else 0
     n_points = max(trial.xyz.shape[0] * trial.xyz.shape[1], 1)

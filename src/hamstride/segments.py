@@ -23,6 +23,7 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError, PlausibilityError
+from .io import finite_points
 from .landmarks import Landmarks, plain_name
 
 SIDES = ("left", "right")
@@ -157,7 +158,7 @@ def rigid_fit(reference: np.ndarray, observed: np.ndarray, weights: np.ndarray) 
     1 for observed markers and 0 for missing ones. Frames with fewer than three markers, or markers nearly on a
     line, give NaN.
     """
-    w = np.where(np.isfinite(observed).all(axis=2), weights, 0.0)
+    w = np.where(finite_points(observed), weights, 0.0)
     q = np.nan_to_num(observed)
     total = w.sum(axis=1)
     safe = np.where(total > 0, total, 1.0)
