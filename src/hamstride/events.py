@@ -170,7 +170,8 @@ def _toe_name(heights: Mapping[str, np.ndarray]) -> str:
 
 def _heights_above_floor(heights: Mapping[str, np.ndarray]) -> np.ndarray:
     """[landmark, F] height of each foot landmark above its own floor level (marker heights above the sole cancel)."""
-    return np.stack([z - np.percentile(z, FLOOR_PERCENTILE) for z in heights.values()])
+    z = np.stack(list(heights.values()))
+    return z - np.percentile(z, FLOOR_PERCENTILE, axis=1, keepdims=True)
 
 
 def _low_foot_mask(lowest: np.ndarray, rate_hz: float) -> np.ndarray:
@@ -278,7 +279,7 @@ def _detect_side(
     toe = _toe_name(heights)
     toe_z = heights[toe]
     toe_jerk = _derivative(toe_z, 3, rate_hz)
-    toe_rel = toe_z - np.percentile(toe_z, FLOOR_PERCENTILE)
+    toe_rel = rel[list(heights).index(toe)]  # the toe's height above its floor level
 
     before_fs, after_fs = (int(round(s * rate_hz)) for s in STRIKE_SEARCH_S)
     before_to, after_to = (int(round(s * rate_hz)) for s in TOE_OFF_SEARCH_S)
