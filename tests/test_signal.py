@@ -203,3 +203,16 @@ def test_savgol_derivative_matches_scipy_including_the_fitted_edges(window, poly
     cubic = savgol_derivative(t ** 3, window, max(poly, 3), 1, 250.0) if window > 3 else None
     if cubic is not None:
         np.testing.assert_allclose(cubic, 3 * t ** 2, rtol=0, atol=1e-9)
+
+
+@pytest.mark.parametrize("rate_hz, cutoff_hz", [(200.0, 6.0), (250.0, 12.5), (500.0, 30.0), (300.0, 80.0)])
+def test_closed_form_coefficients_equal_scipy_butter(rate_hz, cutoff_hz):
+    # Reference: scipy.signal.butter (bilinear design with pre-warping) at the dual-pass design frequency.
+    from scipy.signal import butter
+
+    from hamstride import signal as sig
+
+    b_ref, a_ref = butter(2, sig.design_cutoff_hz(rate_hz, cutoff_hz), btype="low", fs=rate_hz)
+    b, a = sig._coefficients(rate_hz, cutoff_hz)
+    np.testing.assert_allclose(b, b_ref, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(a, a_ref, rtol=1e-12, atol=1e-15)

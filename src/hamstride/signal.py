@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy.interpolate import CubicSpline
 from scipy.ndimage import convolve1d
-from scipy.signal import butter, filtfilt, savgol_coeffs, savgol_filter
+from scipy.signal import filtfilt, savgol_coeffs, savgol_filter
 
 from .errors import ConfigError
 
@@ -102,8 +102,15 @@ def _check_cutoff(rate_hz: float, cutoff_hz: float) -> None:
 
 
 def _coefficients(rate_hz: float, cutoff_hz: float) -> tuple[np.ndarray, np.ndarray]:
-    b, a = butter(FILTER_ORDER, design_cutoff_hz(rate_hz, cutoff_hz), btype="low", fs=rate_hz)
-    return b, a
+    """One pass of the 2nd-order Butterworth low-pass in closed form: the bilinear transform of
+    1 / (s^2 + sqrt(2) s + 1) at the pre-warped, dual-pass-corrected cutoff K = tan(pi fc / fs) / C gives
+    b = K^2 (1, 2, 1) / D, a = (1, 2 (K^2 - 1) / D, (1 - sqrt(2) K + K^2) / D) with D = 1 + sqrt(2) K + K^2
+    (the textbook biquad; equal to scipy.signal.butter to rounding, tested)."""
+    _check_cutoff(rate_hz, cutoff_hz)
+    k = math.tan(math.pi * cutoff_hz / rate_hz) / dual_pass_correction(2, FILTER_ORDER)
+    k2, root2k = k * k, math.sqrt(2.0) * k
+    d = 1.0 + root2k + k2
+    return np.array([k2, 2.0 * k2, k2]) / d, np.array([1.0, 2.0 * (k2 - 1.0) / d, (1.0 - root2k + k2) / d])
 
 
 def _padlen(n_frames: int, rate_hz: float, cutoff_hz: float) -> int:
