@@ -24,7 +24,7 @@ def jcs_angles(prox_axes: np.ndarray, dist_axes: np.ndarray) -> tuple[np.ndarray
     R = Rz(a) Rx(b) Ry(c) has R[2,1] = sin b, R[0,1] = -sin a cos b, R[1,1] = cos a cos b,
     R[2,0] = -cos b sin c, R[2,2] = cos b cos c; b lies in [-pi/2, pi/2] (same branch as scipy's as_euler("ZXY")).
     """
-    r = np.einsum("...ji,...jk->...ik", prox_axes, dist_axes)
+    r = np.swapaxes(prox_axes, -1, -2) @ dist_axes
     a_z = np.arctan2(-r[..., 0, 1], r[..., 1, 1])
     a_x = np.arctan2(r[..., 2, 1], np.hypot(r[..., 0, 1], r[..., 1, 1]))
     a_y = np.arctan2(-r[..., 2, 0], r[..., 2, 2])

@@ -22,6 +22,7 @@ import numpy as np
 from . import muscles as mus
 from .errors import HamstrideError
 from .muscles import MuscleState
+from .segments import cross_rows
 
 if TYPE_CHECKING:  # pragma: no cover - type hints only
     from .segments import Frames
@@ -161,13 +162,6 @@ def angular_velocity(axes: np.ndarray, rate_hz: float) -> np.ndarray:
     return 0.5 * np.stack([w[:, 2, 1] - w[:, 1, 2], w[:, 0, 2] - w[:, 2, 0], w[:, 1, 0] - w[:, 0, 1]], axis=1)
 
 
-def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise cross product of [F, 3] arrays (np.cross without its generality overhead)."""
-    ax, ay, az = a[:, 0], a[:, 1], a[:, 2]
-    bx, by, bz = b[:, 0], b[:, 1], b[:, 2]
-    return np.stack([ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx], axis=1)
-
-
 # --------------------------------------------------------------------------- inverse dynamics
 @dataclass(frozen=True)
 class JointMoments:
@@ -233,12 +227,13 @@ def _segment_step(
     omega = angular_velocity(axes, rate_hz)
     alpha = _derivative(omega, rate_hz)
     i_lab = axes @ inertia.inertia_local @ np.swapaxes(axes, 1, 2)
-    h_dot = (i_lab @ alpha[:, :, None])[:, :, 0] + _cross(omega, (i_lab @ omega[:, :, None])[:, :, 0])
+    h_dot = (i_lab @ alpha[:, :, None])[:, :, 0] + cross_rows(omega, (i_lab @ omega[:, :, None])[:, :, 0])
     force = inertia.mass_kg * (acc - gravity_vec)
-    moment = h_dot - _cross(proximal - com, force)
+    moment = h_dot - cross_rows(proximal - com, force)
     if distal_force is not None:
         force = force + distal_force
-        moment = moment - _cross(proximal - com, distal_force) + distal_moment + _cross(distal - com, distal_force)
+        moment = (moment - cross_rows(proximal - com, distal_force) + distal_moment
+                  + cross_rows(distal - com, distal_force))
     return force, moment
 
 
