@@ -139,7 +139,7 @@ def check_landmark_gaps(lm: Landmarks, *, max_missing_fraction: float = MAX_MISS
     for landmark in REQUIRED_LANDMARKS:
         if landmark in skip or landmark not in lm.points:
             continue
-        missing = ~np.isfinite(np.asarray(lm.points[landmark], float)).all(axis=1)
+        missing = ~finite_points(np.asarray(lm.points[landmark], float))
         fraction = float(missing.mean()) if missing.size else 1.0
         if fraction > max_missing_fraction:
             length, start = _longest_run(missing)

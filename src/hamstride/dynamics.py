@@ -21,6 +21,7 @@ import numpy as np
 
 from . import muscles as mus
 from .errors import HamstrideError
+from .io import finite_points
 from .muscles import MuscleState
 from .segments import cross_rows
 
@@ -296,7 +297,7 @@ def swing_inverse_dynamics(
     hip = _anatomical(m_hip, hip_axes, side, 1.0)
     knee = _anatomical(m_knee, thigh.axes, side, -1.0)
     ankle = _anatomical(m_ankle, shank.axes, side, 1.0)
-    valid = mask & np.isfinite(hip).all(axis=1) & np.isfinite(knee).all(axis=1) & np.isfinite(ankle).all(axis=1)
+    valid = mask & finite_points(hip) & finite_points(knee) & finite_points(ankle)
     out = [hip, knee, ankle, m_hip, m_knee, m_ankle, f_hip, f_knee, f_ankle]
     for a in out:
         a[~valid] = np.nan

@@ -27,6 +27,7 @@ from typing import TYPE_CHECKING, Iterable, Mapping
 import numpy as np
 
 from .errors import EventError, LandmarkError
+from .io import finite_points
 from .signal import savgol_derivative
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
@@ -143,7 +144,7 @@ def _foot_heights(lm: "Landmarks", side: str) -> dict[str, np.ndarray]:
 def _missing_foot_frames(lm: "Landmarks", side: str) -> np.ndarray:
     """Frames where any of the side's foot landmarks is missing (NaN)."""
     names = [f"{side}_{m}" for m in FOOT_MARKERS if f"{side}_{m}" in lm.points]
-    return np.any([~np.isfinite(np.asarray(lm.points[m], float)).all(axis=1) for m in names], axis=0)
+    return np.any([~finite_points(np.asarray(lm.points[m], float)) for m in names], axis=0)
 
 
 def _drop_events_in_gaps(events: "_SideEvents", missing: np.ndarray, rate_hz: float) -> tuple["_SideEvents", list]:

@@ -15,7 +15,7 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError
-from .io import MarkerTrial
+from .io import MarkerTrial, finite_points
 
 SIDES = ("left", "right")
 REQUIRED_SITES = ("asis", "psis", "lateral_epicondyle", "medial_epicondyle", "lateral_malleolus", "medial_malleolus",
@@ -157,7 +157,7 @@ def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *
         xyz = trial.xyz[:, i, :]
         points[name] = xyz
         used[name] = trial.labels[i]
-        valid = 100.0 * np.isfinite(xyz).all(axis=1).sum() / n
+        valid = 100.0 * finite_points(xyz).sum() / n
         report.append(LandmarkReport(name, trial.labels[i], float(valid), required))
     clusters: dict[str, np.ndarray] = {}
     for name, labels in marker_map.clusters.items():

@@ -285,7 +285,7 @@ def reconstruct_missing(lm: Landmarks, cal: StaticCalibration) -> Landmarks:
             i = rset.members.index(m)
             estimate = np.einsum("fij,j->fi", rot, rset.reference[i]) + trans
             current = points.get(m, np.full((n_frames, 3), np.nan))
-            missing = ~np.isfinite(current).all(axis=1)
+            missing = ~finite_points(current)
             points[m] = np.where(missing[:, None], estimate, current)
     return lm.replace(points=points)
 
