@@ -295,15 +295,11 @@ def _endpoints(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, knee_
     return ox, oy, oz, ix, iy, i[..., 2]
 
 
-def _wrap(radius, ox, oy, ix, iy, *, positive_arcs_only: bool = False):
+def _wrap(radius, ox, oy, ix, iy):
     """Sagittal wrap over the condylar cylinder (centre at the knee centre), seen with X anterior to the right and
     Y up: the path leaves the origin's tangent point T1 and runs counter-clockwise over the posterior condyles to
     the insertion's tangent point T2. Returns (arc angle T1->T2, origin tangent length, insertion tangent length,
-    (T1x, T1y), (T2x, T2y)); the path touches the cylinder when the arc is positive.
-
-    ``positive_arcs_only`` (real inputs): the arc is worked out only where it is positive and 0 elsewhere; the
-    arctangent is the costliest step of a path and most postures of late swing do not wrap.
-    """
+    (T1x, T1y), (T2x, T2y)); the path touches the cylinder when the arc is positive."""
     r2 = radius * radius
     ro2 = ox * ox + oy * oy
     ri2 = ix * ix + iy * iy
@@ -311,15 +307,7 @@ def _wrap(radius, ox, oy, ix, iy, *, positive_arcs_only: bool = False):
     hi = np.sqrt(ri2 - r2)
     t1x, t1y = (r2 * ox - radius * ho * oy) / ro2, (r2 * oy + radius * ho * ox) / ro2
     t2x, t2y = (r2 * ix + radius * hi * iy) / ri2, (r2 * iy - radius * hi * ix) / ri2
-    sine, cosine = t1x * t2y - t1y * t2x, t1x * t2x + t1y * t2y  # of the arc, times r^2
-    if positive_arcs_only and not (np.iscomplexobj(sine) or np.iscomplexobj(cosine)):
-        # atan2(y, x) > 0 exactly when y > 0, or y = 0 with x < 0 (pi)
-        positive = (sine > 0) | ((sine == 0) & (cosine < 0))
-        arc = np.zeros(np.shape(sine))
-        arc[positive] = np.arctan2(sine[positive], cosine[positive])
-    else:
-        arc = _atan2(sine, cosine)
-    return arc, ho, hi, (t1x, t1y), (t2x, t2y)
+    return _atan2(t1x * t2y - t1y * t2x, t1x * t2x + t1y * t2y), ho, hi, (t1x, t1y), (t2x, t2y)
 
 
 def _path_length(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, knee_flexion):
@@ -328,7 +316,7 @@ def _path_length(path: MusclePath, hip_flexion, hip_adduction, hip_rotation, kne
     dz2 = (oz - iz) ** 2
     straight = np.sqrt((ox - ix) ** 2 + (oy - iy) ** 2 + dz2)
     radius = path.wrap_radius_m
-    arc, ho, hi, _, _ = _wrap(radius, ox, oy, ix, iy, positive_arcs_only=True)
+    arc, ho, hi, _, _ = _wrap(radius, ox, oy, ix, iy)
     wrapped = np.sqrt((ho + radius * arc + hi) ** 2 + dz2)  # cylinder geodesic: constant pitch along the path
     return np.where(np.real(arc) > 0.0, wrapped, straight)
 
@@ -348,7 +336,7 @@ def _length_and_moment_arms(path: MusclePath, hip_flexion, hip_adduction, hip_ro
     dx, dy, dz = ox - ix, oy - iy, oz - iz
     straight = np.sqrt(dx * dx + dy * dy + dz * dz)
     radius = path.wrap_radius_m
-    arc, ho, hi, (t1x, t1y), (t2x, t2y) = _wrap(radius, ox, oy, ix, iy, positive_arcs_only=True)
+    arc, ho, hi, (t1x, t1y), (t2x, t2y) = _wrap(radius, ox, oy, ix, iy)
     in_plane = ho + radius * arc + hi
     wrapped = np.sqrt(in_plane * in_plane + dz * dz)
     wraps = arc > 0.0
