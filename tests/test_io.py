@@ -266,3 +266,18 @@ def test_point_masks_equal_numpy_reductions_over_xyz():
         got = io.any_xyz(np.abs(x) >= limit)
     assert expected.any() and not expected.all()
     np.testing.assert_array_equal(got, expected)
+
+
+def test_lab_frame_order_statistics_equal_numpy():
+    # io._nan_order_statistics gives nanmin, nanmedian and nanmax from one sort (reference: numpy).
+    from hamstride import io
+
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(30, 11, 3))
+    x[rng.random(x.shape) < 0.3] = np.nan
+    x[4] = np.nan
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        expected = (np.nanmin(x, axis=0), np.nanmedian(x, axis=0), np.nanmax(x, axis=0))
+    for got, want in zip(io._nan_order_statistics(x, 0), expected):
+        np.testing.assert_array_equal(got, want)

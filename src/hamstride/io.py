@@ -656,14 +656,26 @@ def _read_subject(params: Mapping) -> dict[str, object]:
 LAB_FRAME_SAMPLE_FRAMES = 60
 
 
-def _nanmedian(x: np.ndarray, axis: int) -> np.ndarray:
-    """``np.nanmedian(x, axis)`` by one sort (NaN sorts last) and the middle of each line's finite values (numpy's
-    own takes a slow masked-array path on small arrays)."""
+def _nan_order_statistics(x: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``np.nanmin``, ``np.nanmedian`` and ``np.nanmax`` along ``axis`` from one sort (NaN sorts last): the first,
+    middle and last of each line's finite values, NaN for a line without any (numpy's nanmedian takes a slow
+    masked-array path on small arrays)."""
     ordered = np.sort(x, axis=axis)
     count = np.isfinite(x).sum(axis=axis, keepdims=True)
-    low = np.take_along_axis(ordered, np.maximum((count - 1) // 2, 0), axis=axis)
-    high = np.take_along_axis(ordered, np.maximum(count // 2, 0), axis=axis)
-    return np.squeeze(np.where(count > 0, 0.5 * (low + high), np.nan), axis=axis)
+
+    def at(index):
+        return np.take_along_axis(ordered, np.maximum(index, 0), axis=axis)
+
+    def finite_only(values):
+        return np.squeeze(np.where(count > 0, values, np.nan), axis=axis)
+
+    return (finite_only(at(count * 0)), finite_only(0.5 * (at((count - 1) // 2) + at(count // 2))),
+            finite_only(at(count - 1)))
+
+
+def _nanmedian(x: np.ndarray, axis: int) -> np.ndarray:
+    """``np.nanmedian(x, axis)`` (see ``_nan_order_statistics``)."""
+    return _nan_order_statistics(x, axis)[1]
 
 
 def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
@@ -679,18 +691,20 @@ def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
     if not finite_frames.any():
         return LabFrame(np.eye(3), "+z", "+x", True)
     step = max(1, len(xyz) // LAB_FRAME_SAMPLE_FRAMES)
-    typical = xyz[np.unique(np.r_[np.arange(0, len(xyz), step), len(xyz) - 1])]  # first, last and evenly between
+    typical = xyz[::step]  # the first frame and evenly spread ones, then the last
+    if (len(xyz) - 1) % step:
+        typical = np.concatenate([typical, xyz[-1:]])
     with np.errstate(all="ignore"):
-        lo = np.nanmin(typical, axis=1)  # [frame, 3]
-        hi = np.nanmax(typical, axis=1)
-        med = _nanmedian(typical, axis=1)
+        lo, med, hi = _nan_order_statistics(typical, axis=1)  # each [frame, 3]
     spread = _nanmedian(hi - lo, axis=0)
     vertical = 2 if spread[2] >= spread[1] else 1
-    below = np.nanmedian(med[:, vertical] - lo[:, vertical])
-    above = np.nanmedian(hi[:, vertical] - med[:, vertical])
+    below = _nanmedian(med[:, vertical] - lo[:, vertical], axis=0)
+    above = _nanmedian(hi[:, vertical] - med[:, vertical], axis=0)
     up_sign = 1.0 if below <= above else -1.0
 
-    centre = np.nanmean(typical, axis=1)  # [frame, 3]: the cloud's path, from the typical frames
+    finite = np.isfinite(typical)  # the cloud's path from the typical frames, by nanmean's own steps
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = np.where(finite, typical, 0.0).sum(axis=1) / finite.sum(axis=1)  # [frame, 3], NaN without markers
     valid = np.isfinite(centre).all(axis=1)
     horizontal = [a for a in range(3) if a != vertical]
     centre_v = centre[valid]
@@ -714,7 +728,7 @@ def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
     ez[vertical] = up_sign
     ex = np.zeros(3)
     ex[travel] = sign
-    ey = np.cross(ez, ex)
+    ey = np.array([ez[1] * ex[2] - ez[2] * ex[1], ez[2] * ex[0] - ez[0] * ex[2], ez[0] * ex[1] - ez[1] * ex[0]])
     rot = np.vstack([ex, ey, ez])
     names = "xyz"
     return LabFrame(rot, f"{'+' if up_sign > 0 else '-'}{names[vertical]}", f"{'+' if sign > 0 else '-'}{names[travel]}",
