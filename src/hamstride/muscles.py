@@ -642,24 +642,31 @@ class _SampledMuscle:
 
 
 def _draw_samples(dims: MuscleDims, n_samples: int, seed: int, include_hip_centre_error: bool):
-    """The draws of every muscle, in a fixed order from one generator (so a seed fixes the whole band)."""
+    """The draws of every muscle, in a fixed order from one generator (so a seed fixes the whole band); the slack
+    rule's two postures of all muscles with the same kind of origin in one path evaluation."""
     if n_samples < 1:
         raise MuscleModelError("the Monte Carlo band needs at least one sample")
     draws = _standard_draws(int(n_samples), seed)
-    for muscle in MUSCLES:
-        arch = ARCHITECTURE[muscle]
-        origin_z, insertion_z, lopt_z, alpha_z, ref_z = draws[muscle]
-        paths = _perturbed_path(muscle, dims, origin_z, insertion_z, include_hip_centre_error)
-        l_opt = _truncated_normal(arch.optimal_fibre_length_m, arch.optimal_fibre_length_sd_m,
-                                  0.5 * arch.optimal_fibre_length_m, 1.5 * arch.optimal_fibre_length_m, lopt_z)
-        alpha = _truncated_normal(arch.pennation_rad, arch.pennation_sd_rad, 0.0, np.deg2rad(30.0), alpha_z)
-        ref_mean, ref_sd = REFERENCE_FIBRE_STRAIN[muscle]
-        ref_strain = _truncated_normal(ref_mean, ref_sd, -0.3, 0.4, ref_z)
-        # the slack rule's reference posture and upright, in one evaluation: [S, 2]
-        both = _path_length(paths, *(np.array([angle, 0.0]) for angle in SLACK_REFERENCE_POSTURE_RAD))
-        reference_length, upright = both[:, :1], both[:, 1:]
-        slack = _slack_rule(reference_length, l_opt, alpha, ref_strain)
-        yield muscle, _SampledMuscle(paths, l_opt, alpha, slack, upright)
+    for group in _PATH_GROUPS:
+        drawn = []
+        for muscle in group:
+            arch = ARCHITECTURE[muscle]
+            origin_z, insertion_z, lopt_z, alpha_z, ref_z = draws[muscle]
+            paths = _perturbed_path(muscle, dims, origin_z, insertion_z, include_hip_centre_error)
+            l_opt = _truncated_normal(arch.optimal_fibre_length_m, arch.optimal_fibre_length_sd_m,
+                                      0.5 * arch.optimal_fibre_length_m, 1.5 * arch.optimal_fibre_length_m, lopt_z)
+            alpha = _truncated_normal(arch.pennation_rad, arch.pennation_sd_rad, 0.0, np.deg2rad(30.0), alpha_z)
+            ref_mean, ref_sd = REFERENCE_FIBRE_STRAIN[muscle]
+            drawn.append((muscle, paths, l_opt, alpha, _truncated_normal(ref_mean, ref_sd, -0.3, 0.4, ref_z)))
+        # the slack rule's reference posture and upright of the group's muscles: [S, G, 2]
+        group_paths = MusclePath(np.concatenate([d[1].origin_m for d in drawn], axis=1)[:, :, None],
+                                 np.concatenate([d[1].insertion_m for d in drawn], axis=1)[:, :, None],
+                                 np.array([[d[1].wrap_radius_m] for d in drawn]), dims.thigh_length_m,
+                                 drawn[0][1].origin_on_femur)
+        both = _path_length(group_paths, *(np.array([angle, 0.0]) for angle in SLACK_REFERENCE_POSTURE_RAD))
+        for k, (muscle, paths, l_opt, alpha, ref_strain) in enumerate(drawn):
+            slack = _slack_rule(both[:, k, :1], l_opt, alpha, ref_strain)
+            yield muscle, _SampledMuscle(paths, l_opt, alpha, slack, both[:, k, 1:])
 
 
 def monte_carlo_lengths(angles: dict[str, np.ndarray], dims: MuscleDims, n_samples: int = 200,
