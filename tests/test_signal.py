@@ -216,3 +216,23 @@ def test_closed_form_coefficients_equal_scipy_butter(rate_hz, cutoff_hz):
     b, a = sig._coefficients(rate_hz, cutoff_hz)
     np.testing.assert_allclose(b, b_ref, rtol=1e-12, atol=0)
     np.testing.assert_allclose(a, a_ref, rtol=1e-12, atol=1e-15)
+
+
+def test_smoothing_without_clusters_keeps_the_points_and_the_cutoff():
+    # keep_clusters=False filters the points only; the residual analysis still sees every marker, so the cutoff and
+    # the filtered points are those of the full smoothing.
+    from hamstride.signal import smooth_landmarks
+
+    rng = np.random.default_rng(21)
+    t = np.arange(400) / 250.0
+    base = np.stack([np.sin(2 * np.pi * 2.0 * t), np.cos(2 * np.pi * 1.5 * t), 0.1 * t], axis=1)
+    points = {f"p{k}": base * (k + 1) + rng.normal(0, 1e-3, base.shape) for k in range(4)}
+    cluster = np.stack([base + k + rng.normal(0, 1e-3, base.shape) for k in range(3)], axis=1)
+    cluster[100:104, 1] = np.nan  # a short gap, filled in both runs
+    cluster[:5, 2] = np.nan  # an edge gap, reported in both runs
+    lm = Landmarks(trial="t", rate_hz=250.0, points=points, clusters={"right_thigh_cluster": cluster})
+    full, info_full = smooth_landmarks(lm)
+    points_only, info = smooth_landmarks(lm, keep_clusters=False)
+    assert info == info_full and not points_only.clusters
+    for name in points:
+        np.testing.assert_array_equal(points_only.points[name], full.points[name])

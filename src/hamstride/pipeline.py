@@ -119,7 +119,9 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     check_landmark_gaps(lm, skip=STATIC_RECOVERABLE if calibration is not None else ())
     check_sides(lm, marker_map)
     check_body_size(lm, trial.units_in_file)
-    lm, filter_info = smooth_landmarks(lm, cutoff_hz=options.cutoff_hz, max_gap_frames=options.max_gap_frames)
+    # the clusters have done their work (rebuilding landmarks from the static trial): only the points are filtered
+    lm, filter_info = smooth_landmarks(lm, cutoff_hz=options.cutoff_hz, max_gap_frames=options.max_gap_frames,
+                                       keep_clusters=False)
     warnings.extend(TrialWarning("long_gap", w) for w in filter_info.long_gaps)
     leg_length = athlete.leg_length_m or getattr(calibration, "leg_length_m", None)
     body = build_body(lm, hip_method=options.hip_method, leg_length_m=leg_length)

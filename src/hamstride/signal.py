@@ -370,12 +370,16 @@ def _describe(gaps: tuple[Gap, ...], index, rate_hz: float, max_gap_frames: int)
 
 
 def smooth_landmarks(
-    lm: Landmarks, cutoff_hz: float | None = None, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES
+    lm: Landmarks, cutoff_hz: float | None = None, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES, *,
+    keep_clusters: bool = True,
 ) -> tuple[Landmarks, FilterInfo]:
     """Fill short gaps, then low-pass every point and cluster marker of a trial with one cutoff.
 
     ``cutoff_hz=None`` chooses it by Winter's residual analysis over all marker coordinates (median of the
     per-coordinate cutoffs, see ``residual_cutoff``); the same cutoff is applied to every marker.
+    ``keep_clusters=False`` leaves the cluster markers out of the result (they still count in the residual
+    analysis): they serve only to rebuild landmarks from a static trial, which comes before smoothing, so a sprint
+    trial's clusters need not be filtered.
     """
     stacked, index = _stack(lm)
     filled, report = fill_gaps(stacked, max_gap_frames)
@@ -384,9 +388,11 @@ def smooth_landmarks(
     else:
         _check_cutoff(lm.rate_hz, float(cutoff_hz))
         cutoff, method = float(cutoff_hz), "fixed"
-    smooth = lowpass(filled, lm.rate_hz, cutoff, axis=0) if stacked.shape[1] else filled
+    kept = index if keep_clusters else [entry for entry in index if entry[0] == "point"]  # points come first
+    to_filter = filled[:, :sum(m1 - m0 for _, _, m0, m1 in kept)]
+    smooth = lowpass(to_filter, lm.rate_hz, cutoff, axis=0) if to_filter.shape[1] else to_filter
     points, clusters = {}, {}
-    for kind, name, m0, m1 in index:
+    for kind, name, m0, m1 in kept:
         if kind == "point":
             points[name] = smooth[:, m0]
         else:
