@@ -18,6 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy.interpolate import CubicSpline
+from scipy.linalg import solve_banded
 from scipy.ndimage import convolve1d
 from scipy.signal import filtfilt, savgol_coeffs, savgol_filter
 
@@ -68,6 +69,42 @@ def savgol_derivative(x: np.ndarray, window: int, poly: int, order: int, rate_hz
         y[..., :half] = x[..., :window] @ left.T
         y[..., -half:] = x[..., -window:] @ right.T
     return y * float(rate_hz) ** order
+
+
+# --------------------------------------------------------------------------- cubic spline on frames
+def frame_spline(y: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """The not-a-knot cubic spline through ``y`` [n, C] sampled at frames 0..n-1, evaluated at fractional frames
+    ``t`` [Q] (0 <= t <= n - 1) -> [Q, C]; the same curve as ``scipy.interpolate.CubicSpline`` (tested), without
+    its general-purpose overhead.
+
+    With unit spacing the second derivatives M satisfy M[i-1] + 4 M[i] + M[i+1] = 6 d[i], d[i] = y[i+1] - 2 y[i] +
+    y[i-1] (continuous slope), and not-a-knot (continuous third derivative at the second and last-but-one knots)
+    gives M[0] = 2 M[1] - M[2], so the first equation reduces to M[1] = d[1] (likewise at the end): one tridiagonal
+    solve for the rest (de Boor 1978, A Practical Guide to Splines, ch. IV). The piece on [i, i + 1] at u = t - i:
+    (1 - u) y[i] + u y[i+1] + ((1 - u)^3 - (1 - u)) M[i] / 6 + (u^3 - u) M[i+1] / 6.
+    """
+    y_in = np.asarray(y, dtype=float)
+    t = np.asarray(t, dtype=float)
+    n = y_in.shape[0]
+    y = y_in.reshape(n, -1)
+    if n < 8:  # short series: the general routine (the reduction above needs a few interior knots)
+        return CubicSpline(np.arange(n, dtype=float), y_in, axis=0)(t)
+    d = y[2:] - 2.0 * y[1:-1] + y[:-2]  # d[1..n-2]
+    m = np.empty_like(y)
+    m[1], m[-2] = d[0], d[-1]
+    rhs = 6.0 * d[1:-1]  # equations 2..n-3
+    rhs[0] -= m[1]
+    rhs[-1] -= m[-2]
+    bands = np.empty((3, n - 4))
+    bands[0], bands[1], bands[2] = 1.0, 4.0, 1.0
+    m[2:-2] = solve_banded((1, 1), bands, rhs, overwrite_ab=True, overwrite_b=True, check_finite=False)
+    m[0] = 2.0 * m[1] - m[2]
+    m[-1] = 2.0 * m[-2] - m[-3]
+    i = np.clip(np.floor(t).astype(int), 0, n - 2)
+    u = (t - i)[:, None]
+    v = 1.0 - u
+    out = v * y[i] + u * y[i + 1] + ((v * v * v - v) * m[i] + (u * u * u - u) * m[i + 1]) / 6.0
+    return out.reshape(t.shape + y_in.shape[1:])
 
 
 # --------------------------------------------------------------------------- Butterworth

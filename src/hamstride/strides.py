@@ -9,9 +9,9 @@ from dataclasses import dataclass
 from typing import Mapping
 
 import numpy as np
-from scipy.interpolate import CubicSpline
 
 from .events import SIDES, GaitEvents
+from .signal import frame_spline
 
 DEFAULT_STRIDE_TIME_RANGE_S = (0.3, 0.8)  # issue 3, common practice for sprinting
 DEFAULT_CONTACT_RANGE_S = (0.06, 0.3)     # issue 3, common practice for sprinting
@@ -122,12 +122,11 @@ def normalise(signal: np.ndarray, stride: Stride, rate_hz: float, n_points: int 
         raise ValueError("stride extends beyond the signal")
     lo = max(int(np.floor(t_query[0])) - 2, 0)
     hi = min(int(np.ceil(t_query[-1])) + 2, n - 1)
-    frames = np.arange(lo, hi + 1, dtype=float)
     window = x[lo:hi + 1].reshape(hi - lo + 1, -1)
     out = np.empty((n_points, window.shape[1]))
     finite = np.isfinite(window).all(axis=0)
     if finite.any() and window.shape[0] >= 4:
-        out[:, finite] = CubicSpline(frames, window[:, finite], axis=0)(t_query)
+        out[:, finite] = frame_spline(window[:, finite], t_query - lo)
     else:
         finite[:] = False
     if (~finite).any():
@@ -157,8 +156,7 @@ def normalise_strides(signal: np.ndarray, strides, rate_hz: float, n_points: int
         raise ValueError("stride extends beyond the signal")
     whole = np.isfinite(flat).all(axis=0) if n >= 4 else np.zeros(flat.shape[1], dtype=bool)
     if whole.any():
-        spline = CubicSpline(np.arange(n, dtype=float), flat[:, whole], axis=0)
-        out[:, :, whole] = spline(queries.ravel()).reshape(len(strides), n_points, -1)
+        out[:, :, whole] = frame_spline(flat[:, whole], queries.ravel()).reshape(len(strides), n_points, -1)
     rest = np.flatnonzero(~whole)
     if rest.size:
         # as normalise(): a window of the stride's frames plus two each side; linear where it holds a gap
