@@ -200,7 +200,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
 
     rate = trial.rate_hz
     n_frames = trial.n_frames
-    stride_columns: list[dict[str, np.ndarray]] = []
+    table_legs = []  # per side: what the strides table needs, made into one table for both legs at the end
     curve_blocks: list[np.ndarray] = []  # per stride: [101, 5 + 6 x muscles]
     curve_keys: list[tuple[str, int]] = []
     dims_body = body.dims
@@ -271,42 +271,52 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
                         power[m]]
         signals = np.column_stack(columns)
-        stride_columns.append(_stride_columns(side, side_strides, late_starts, rate, signals, bands, unmet,
-                                              bool(body_mass), forces, states, speed, athlete, trial.name))
+        table_legs.append((side, side_strides, late_starts, signals, bands, unmet,
+                           np.column_stack([states[m].velocity_m_per_s for m in MUSCLES])))
         curve_blocks.extend(normalise_strides(signals, side_strides, rate))
         curve_keys.extend((side, s.index + 1) for s in side_strides)
+    stride_columns = _stride_columns(table_legs, rate, bool(body_mass), speed, athlete, trial.name)
     curves = _curve_frame(curve_blocks, curve_keys, athlete, trial.name, MUSCLES)
     info["frames_moments_not_met"] = unmet_total
     if not body_mass:
         info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
         info["warning_codes"].append("no_body_mass")
-    strides = pd.DataFrame({name: np.concatenate([c[name] for c in stride_columns]) for name in STRIDE_COLUMNS},
-                           columns=STRIDE_COLUMNS)
+    strides = pd.DataFrame({name: stride_columns[name] for name in STRIDE_COLUMNS}, columns=STRIDE_COLUMNS)
     return strides, curves
 
 
-def _stride_columns(side, side_strides, late, rate, signals, bands, unmet, with_mass, forces, states, speed,
-                    athlete, trial_name) -> dict[str, np.ndarray]:
-    """The strides table of one leg as columns: a row per stride and muscle (stride-major), all windows at once."""
+def _stride_columns(legs, rate, with_mass, speed, athlete, trial_name) -> dict[str, np.ndarray]:
+    """The strides table as columns: a row per stride and muscle (stride-major, legs in turn), every window of both
+    legs at once. ``legs``: per side (side, strides, late-swing start frames, signals [F, 5 + 6 x muscles], bands,
+    unmet frames, muscle velocities [F, muscles]); the legs' frames are stacked, each window offset to its leg."""
     from .dynamics import window_work
     from .metrics import window_peaks
     from .muscles import MUSCLES
 
-    n_str, n_mus = len(side_strides), len(MUSCLES)
-    start = np.array([s.start_frame for s in side_strides])
-    stop = np.array([s.end_frame for s in side_strides])
-    swing_lo = np.minimum(np.maximum(np.ceil(np.array([s.toe_off_s for s in side_strides]) * rate).astype(int),
+    n_mus = len(MUSCLES)
+    strides = [s for leg in legs for s in leg[1]]
+    n_str = len(strides)
+    n_frames = legs[0][3].shape[0]
+    offset = np.repeat(np.arange(len(legs)) * n_frames, [len(leg[1]) for leg in legs])  # frame offset per stride
+    start = np.array([s.start_frame for s in strides], dtype=int) + offset
+    stop = np.array([s.end_frame for s in strides], dtype=int) + offset
+    late = np.concatenate([np.asarray(leg[2], dtype=int) for leg in legs]) + offset
+    swing_lo = np.minimum(np.maximum(np.ceil(np.array([s.toe_off_s for s in strides]) * rate).astype(int) + offset,
                                      start), stop)
-    foot_strike = np.array([s.foot_strike_s for s in side_strides])
-    stride_time = np.array([s.stride_time_s for s in side_strides])
+    foot_strike = np.array([s.foot_strike_s for s in strides])
+    stride_time = np.array([s.stride_time_s for s in strides])
+    signals = np.concatenate([leg[3] for leg in legs])  # [legs x F, 5 + 6 x muscles]
     per_muscle = signals[:, 5:].reshape(len(signals), n_mus, 6)  # length, strain %, l/l_opt, velocity, force, power
-    peak_strain, i_peak = window_peaks(per_muscle[:, :, 1], late, stop)  # [stride, muscle]
-    peak_lopt, _ = window_peaks(per_muscle[:, :, 2], late, stop)
-    peak_vel, _ = window_peaks(per_muscle[:, :, 3], swing_lo, stop)
+    # peaks over late swing (strain, l/l_opt), over swing (velocity, knee flexion, force) and over the stride
+    late_peaks, late_at = window_peaks(np.concatenate([per_muscle[:, :, 1], per_muscle[:, :, 2]], axis=1), late, stop)
+    peak_strain, peak_lopt, i_peak = late_peaks[:, :n_mus], late_peaks[:, n_mus:], late_at[:, :n_mus] - offset[:, None]
+    swing_peaks, _ = window_peaks(np.concatenate([per_muscle[:, :, 3], signals[:, 2:3], per_muscle[:, :, 4]], axis=1),
+                                  swing_lo, stop)
+    peak_vel, peak_knee, peak_force = swing_peaks[:, :n_mus], swing_peaks[:, n_mus], swing_peaks[:, n_mus + 1:]
     with np.errstate(invalid="ignore"):
         peak_time = np.where(i_peak >= 0, 100.0 * (i_peak / rate - foot_strike[:, None]) / stride_time[:, None],
                              np.nan)
-    met = np.concatenate([[0], np.cumsum(~unmet)])
+    met = np.concatenate([[0], np.cumsum(~np.concatenate([leg[5] for leg in legs]))])
     nan = np.full((n_str, n_mus), np.nan)
 
     def per_stride(values):
@@ -314,16 +324,16 @@ def _stride_columns(side, side_strides, late, rate, signals, bands, unmet, with_
 
     columns = {
         "athlete": per_stride([athlete.athlete] * n_str), "session": per_stride([athlete.session] * n_str),
-        "trial": per_stride([trial_name] * n_str), "side": per_stride([side] * n_str),
-        "stride": per_stride([s.index + 1 for s in side_strides]),
+        "trial": per_stride([trial_name] * n_str), "side": per_stride([s.side for s in strides]),
+        "stride": per_stride([s.index + 1 for s in strides]),
         "muscle": np.tile(np.array(MUSCLES), n_str),
-        "foot_strike_s": per_stride(foot_strike), "toe_off_s": per_stride([s.toe_off_s for s in side_strides]),
-        "next_foot_strike_s": per_stride([s.next_foot_strike_s for s in side_strides]),
-        "stride_time_s": per_stride(stride_time), "toe_off_pct": per_stride([s.toe_off_pct for s in side_strides]),
-        "late_swing_start_pct": per_stride([s.late_swing_start_pct for s in side_strides]),
+        "foot_strike_s": per_stride(foot_strike), "toe_off_s": per_stride([s.toe_off_s for s in strides]),
+        "next_foot_strike_s": per_stride([s.next_foot_strike_s for s in strides]),
+        "stride_time_s": per_stride(stride_time), "toe_off_pct": per_stride([s.toe_off_pct for s in strides]),
+        "late_swing_start_pct": per_stride([s.late_swing_start_pct for s in strides]),
         "speed_m_s": per_stride([speed] * n_str),
         "peak_hip_flexion_deg": per_stride(window_peaks(signals[:, 0], start, stop)[0]),
-        "peak_knee_flexion_deg": per_stride(window_peaks(signals[:, 2], swing_lo, stop)[0]),
+        "peak_knee_flexion_deg": per_stride(peak_knee),
         "late_swing_moments_met_pct": per_stride(100.0 * ((met[stop + 1] - met[late]) / (stop + 1 - late))
                                                  if with_mass else np.full(n_str, np.nan)),
         "peak_strain_pct": peak_strain.ravel(), "peak_strain_time_pct": peak_time.ravel(),
@@ -331,12 +341,13 @@ def _stride_columns(side, side_strides, late, rate, signals, bands, unmet, with_
     }
     for name, source, q in (("peak_strain_p5_pct", 0, 0), ("peak_strain_p95_pct", 0, 1),
                             ("peak_fibre_length_lopt_p5", 1, 0), ("peak_fibre_length_lopt_p95", 1, 1)):
-        columns[name] = (np.column_stack([bands[m][source][q] for m in MUSCLES]) if bands else nan).ravel()
+        columns[name] = np.concatenate([np.column_stack([leg[4][m][source][q] for m in MUSCLES]) if leg[4]
+                                        else nan[:len(leg[1])] for leg in legs]).ravel()
     if with_mass:
-        force = np.column_stack([forces[m] for m in MUSCLES])
-        velocity = np.column_stack([states[m].velocity_m_per_s for m in MUSCLES])
+        force = per_muscle[:, :, 4]
+        velocity = np.concatenate([leg[6] for leg in legs])
         absorbed, produced = window_work(np.nan_to_num(force), velocity, rate, swing_lo, stop)
-        columns.update(peak_force_n=window_peaks(force, swing_lo, stop)[0].ravel(), negative_work_j=absorbed.ravel(),
+        columns.update(peak_force_n=peak_force.ravel(), negative_work_j=absorbed.ravel(),
                        positive_work_j=produced.ravel())
     else:
         columns.update(peak_force_n=nan.ravel(), negative_work_j=nan.ravel(), positive_work_j=nan.ravel())
