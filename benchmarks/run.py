@@ -51,7 +51,7 @@ STAGES = [
     ("strides", "cut_strides", "strides"),
     ("muscles", "muscle_states_of_legs", "muscle states"),
     ("muscles", "monte_carlo_peaks", "Monte Carlo band"),
-    ("dynamics", "swing_inverse_dynamics", "inverse dynamics"),
+    ("dynamics", "swing_inverse_dynamics_of_legs", "inverse dynamics"),
     ("dynamics", "share_swing_moments_of_legs", "force sharing"),
     ("strides", "normalise_strides", "normalise to cycle"),
 ]

@@ -320,6 +320,27 @@ def test_mirrored_left_leg_gives_the_same_anatomical_moments():
         np.testing.assert_allclose(b, a, atol=1e-9 * np.abs(a).max())
 
 
+def test_both_legs_in_one_pass_equal_leg_by_leg():
+    """swing_inverse_dynamics_of_legs stacks the legs; each leg's moments, forces and valid frames must equal its
+    own swing_inverse_dynamics (a right leg and a mirrored left leg with a different build and swing mask)."""
+    rate = 500.0
+    _, rmats, points = _leg_3d_motion(rate)
+    mirror, keep_z_right = np.diag([1.0, -1.0, 1.0]), np.diag([1.0, 1.0, -1.0])
+    m_points = [p @ mirror for p in points]
+    m_rmats = [mirror @ r @ keep_z_right for r in rmats]
+    heavier = dyn.leg_inertia(82.0, "female", L_THIGH * 1.05, L_SHANK * 0.97, L_FOOT)
+    mask = np.zeros(len(points[0]), dtype=bool)
+    mask[40:300] = True
+    right = dyn.SwingLeg(*[Frames(o, r) for o, r in zip(points[:3], rmats)], *points, INERTIA)
+    left = dyn.SwingLeg(*[Frames(o, r) for o, r in zip(m_points[:3], m_rmats)], *m_points, heavier, mask, "left")
+    together = dyn.swing_inverse_dynamics_of_legs([right, left], rate)
+    for leg, got in zip((right, left), together):
+        alone = dyn.swing_inverse_dynamics(*leg[:8], rate, leg.inertia, swing_mask=leg.swing_mask, side=leg.side)
+        np.testing.assert_array_equal(got.valid, alone.valid)
+        for name in ("hip", "knee", "ankle", "hip_lab", "knee_lab", "ankle_lab", "hip_force_lab"):
+            np.testing.assert_allclose(getattr(got, name), getattr(alone, name), rtol=1e-13, atol=1e-12)
+
+
 def test_3d_chain_power_equals_rate_of_mechanical_energy():
     """Work-energy theorem for an arbitrary 3D motion of the three segments (rotations not confined to a plane):
     dE/dt = F_hip . v_hip + M_hip . w_thigh + M_knee . (w_shank - w_thigh) + M_ankle . (w_foot - w_shank)."""

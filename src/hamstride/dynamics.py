@@ -145,22 +145,23 @@ def leg_inertia(
 
 
 # --------------------------------------------------------------------------- rigid-body kinematics
-def _derivative(x: np.ndarray, rate_hz: float) -> np.ndarray:
+def _derivative(x: np.ndarray, rate_hz: float, frame_axis: int = 0) -> np.ndarray:
     """Central differences along frames (second order, also at the ends)."""
-    if x.shape[0] < 3:
+    if x.shape[frame_axis] < 3:
         return np.full_like(x, np.nan, dtype=float)
-    return np.gradient(x, 1.0 / rate_hz, axis=0, edge_order=2)
+    return np.gradient(x, 1.0 / rate_hz, axis=frame_axis, edge_order=2)
 
 
 def angular_velocity(axes: np.ndarray, rate_hz: float) -> np.ndarray:
-    """Angular velocity in the lab [F,3] from rotation matrices [F,3,3] (segment -> lab).
+    """Angular velocity in the lab [..., F, 3] from rotation matrices [..., F, 3, 3] (segment -> lab).
 
     dR/dt R^T is the skew-symmetric angular-velocity tensor of rigid-body kinematics; keeping only its skew part
     removes the non-orthogonal error of numerical differentiation.
     """
-    r_dot = _derivative(axes, rate_hz)
-    w = r_dot @ np.swapaxes(axes, 1, 2)
-    return 0.5 * np.stack([w[:, 2, 1] - w[:, 1, 2], w[:, 0, 2] - w[:, 2, 0], w[:, 1, 0] - w[:, 0, 1]], axis=1)
+    r_dot = _derivative(axes, rate_hz, frame_axis=-3)
+    w = r_dot @ np.swapaxes(axes, -1, -2)
+    return 0.5 * np.stack([w[..., 2, 1] - w[..., 1, 2], w[..., 0, 2] - w[..., 2, 0], w[..., 1, 0] - w[..., 0, 1]],
+                          axis=-1)
 
 
 # --------------------------------------------------------------------------- inverse dynamics
@@ -213,7 +214,8 @@ def _segment_step(
     com: np.ndarray,
     proximal: np.ndarray,
     distal: np.ndarray | None,
-    inertia: SegmentInertia,
+    mass_kg: np.ndarray | float,
+    inertia_local: np.ndarray,
     rate_hz: float,
     gravity_vec: np.ndarray,
     distal_force: np.ndarray | None,
@@ -223,13 +225,15 @@ def _segment_step(
 
     m a = F_p - F_d + m g;  I w' + w x I w = M_p - M_d + (P - C) x F_p - (D - C) x F_d, where F_d, M_d are what
     this segment exerts on its distal neighbour (Winter 2009, ch. 5; the Euler equations in the lab frame).
+    Points [..., F, 3], axes [..., F, 3, 3]; leading axes (legs) broadcast with ``mass_kg`` [..., 1, 1] and
+    ``inertia_local`` [..., 1, 3, 3].
     """
-    acc = _derivative(_derivative(com, rate_hz), rate_hz)
+    acc = _derivative(_derivative(com, rate_hz, -2), rate_hz, -2)
     omega = angular_velocity(axes, rate_hz)
-    alpha = _derivative(omega, rate_hz)
-    i_lab = axes @ inertia.inertia_local @ np.swapaxes(axes, 1, 2)
-    h_dot = (i_lab @ alpha[:, :, None])[:, :, 0] + cross_rows(omega, (i_lab @ omega[:, :, None])[:, :, 0])
-    force = inertia.mass_kg * (acc - gravity_vec)
+    alpha = _derivative(omega, rate_hz, -2)
+    i_lab = axes @ inertia_local @ np.swapaxes(axes, -1, -2)
+    h_dot = (i_lab @ alpha[..., None])[..., 0] + cross_rows(omega, (i_lab @ omega[..., None])[..., 0])
+    force = mass_kg * (acc - gravity_vec)
     moment = h_dot - cross_rows(proximal - com, force)
     if distal_force is not None:
         force = force + distal_force
@@ -244,10 +248,11 @@ def _side_sign(side: str) -> float:
     return 1.0 if side == "right" else -1.0
 
 
-def _anatomical(moment_lab: np.ndarray, prox_axes: np.ndarray, side: str, flexion_sign: float) -> np.ndarray:
-    local = (np.swapaxes(prox_axes, 1, 2) @ moment_lab[:, :, None])[:, :, 0]  # along the proximal X, Y, Z
-    s = _side_sign(side)
-    return np.stack([flexion_sign * local[:, 2], s * local[:, 0], s * local[:, 1]], axis=1)
+def _anatomical(moment_lab: np.ndarray, prox_axes: np.ndarray, side_sign, flexion_sign: float) -> np.ndarray:
+    """Lab moments [..., F, 3] in the proximal axes with anatomical signs; ``side_sign`` +1 right, -1 left
+    ([..., 1] for stacked legs)."""
+    local = (np.swapaxes(prox_axes, -1, -2) @ moment_lab[..., None])[..., 0]  # along the proximal X, Y, Z
+    return np.stack([flexion_sign * local[..., 2], side_sign * local[..., 0], side_sign * local[..., 1]], axis=-1)
 
 
 def swing_inverse_dynamics(
@@ -275,33 +280,68 @@ def swing_inverse_dynamics(
     when ``pelvis`` is given, otherwise in the thigh axes; knee moments in the thigh axes; ankle in the shank axes.
     Frames outside ``swing_mask`` (default: all frames) are NaN.
     """
+    leg = SwingLeg(thigh, shank, foot, hip_centre, knee_centre, ankle_centre, heel, toe, inertia, swing_mask, side)
+    return swing_inverse_dynamics_of_legs([leg], rate_hz, gravity=gravity, pelvis=pelvis)[0]
+
+
+class SwingLeg(NamedTuple):
+    """One leg's input to ``swing_inverse_dynamics_of_legs`` (the arguments of ``swing_inverse_dynamics``)."""
+
+    thigh: Frames
+    shank: Frames
+    foot: Frames
+    hip_centre: np.ndarray
+    knee_centre: np.ndarray
+    ankle_centre: np.ndarray
+    heel: np.ndarray
+    toe: np.ndarray
+    inertia: Mapping[str, SegmentInertia]
+    swing_mask: np.ndarray | None = None
+    side: str = "right"
+
+
+def swing_inverse_dynamics_of_legs(legs: Sequence[SwingLeg], rate_hz: float, *, gravity: float = GRAVITY_M_PER_S2,
+                                   pelvis: Frames | None = None) -> list[JointMoments]:
+    """``swing_inverse_dynamics`` for several legs of one trial (same frames) in one pass: the legs are stacked on
+    a leading axis, so every step runs once for all of them; the same moments as leg by leg."""
     g = np.array([0.0, 0.0, -gravity])
+
+    def stacked(get):
+        return np.stack([np.asarray(get(leg), dtype=float) for leg in legs])
+
     hip_centre, knee_centre, ankle_centre, heel, toe = (
-        np.asarray(a, dtype=float) for a in (hip_centre, knee_centre, ankle_centre, heel, toe)
-    )
-    com = {
-        "thigh": hip_centre + inertia["thigh"].com_fraction * (knee_centre - hip_centre),
-        "shank": knee_centre + inertia["shank"].com_fraction * (ankle_centre - knee_centre),
-        "foot": heel + inertia["foot"].com_fraction * (toe - heel),
-    }
-    f_ankle, m_ankle = _segment_step(foot.axes, com["foot"], ankle_centre, None, inertia["foot"], rate_hz, g, None, None)
-    f_knee, m_knee = _segment_step(
-        shank.axes, com["shank"], knee_centre, ankle_centre, inertia["shank"], rate_hz, g, f_ankle, m_ankle
-    )
-    f_hip, m_hip = _segment_step(
-        thigh.axes, com["thigh"], hip_centre, knee_centre, inertia["thigh"], rate_hz, g, f_knee, m_knee
-    )
-    n = hip_centre.shape[0]
-    mask = np.ones(n, dtype=bool) if swing_mask is None else np.asarray(swing_mask, dtype=bool)
-    hip_axes = pelvis.axes if pelvis is not None else thigh.axes
-    hip = _anatomical(m_hip, hip_axes, side, 1.0)
-    knee = _anatomical(m_knee, thigh.axes, side, -1.0)
-    ankle = _anatomical(m_ankle, shank.axes, side, 1.0)
+        stacked(lambda leg, k=k: leg[k]) for k in range(3, 8))
+    axes = {seg: stacked(lambda leg, seg=seg: getattr(leg, seg).axes) for seg in SEGMENTS}
+
+    def inertia(seg):  # [L, 1, 1] masses, [L, 1, 3, 3] inertia tensors, [L, 1, 1] centre-of-mass fractions
+        props = [leg.inertia[seg] for leg in legs]
+        return (np.array([p.mass_kg for p in props])[:, None, None], np.stack([p.inertia_local for p in props])[:, None],
+                np.array([p.com_fraction for p in props])[:, None, None])
+
+    (m_foot, i_foot, c_foot), (m_shank, i_shank, c_shank), (m_thigh, i_thigh, c_thigh) = (
+        inertia(seg) for seg in ("foot", "shank", "thigh"))
+    com_thigh = hip_centre + c_thigh * (knee_centre - hip_centre)
+    com_shank = knee_centre + c_shank * (ankle_centre - knee_centre)
+    com_foot = heel + c_foot * (toe - heel)
+    f_ankle, m_ankle = _segment_step(axes["foot"], com_foot, ankle_centre, None, m_foot, i_foot, rate_hz, g, None,
+                                     None)
+    f_knee, m_knee = _segment_step(axes["shank"], com_shank, knee_centre, ankle_centre, m_shank, i_shank, rate_hz, g,
+                                   f_ankle, m_ankle)
+    f_hip, m_hip = _segment_step(axes["thigh"], com_thigh, hip_centre, knee_centre, m_thigh, i_thigh, rate_hz, g,
+                                 f_knee, m_knee)
+    n = hip_centre.shape[1]
+    side_sign = np.array([_side_sign(leg.side) for leg in legs])[:, None]
+    hip_axes = np.asarray(pelvis.axes, dtype=float) if pelvis is not None else axes["thigh"]
+    hip = _anatomical(m_hip, hip_axes, side_sign, 1.0)
+    knee = _anatomical(m_knee, axes["thigh"], side_sign, -1.0)
+    ankle = _anatomical(m_ankle, axes["shank"], side_sign, 1.0)
+    mask = np.stack([np.ones(n, dtype=bool) if leg.swing_mask is None else np.asarray(leg.swing_mask, dtype=bool)
+                     for leg in legs])
     valid = mask & finite_points(hip) & finite_points(knee) & finite_points(ankle)
     out = [hip, knee, ankle, m_hip, m_knee, m_ankle, f_hip, f_knee, f_ankle]
     for a in out:
         a[~valid] = np.nan
-    return JointMoments(*out, valid=valid, rate_hz=float(rate_hz))
+    return [JointMoments(*(a[k] for a in out), valid=valid[k], rate_hz=float(rate_hz)) for k in range(len(legs))]
 
 
 def swing_mask_from_events(

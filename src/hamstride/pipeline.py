@@ -194,7 +194,7 @@ class _Leg(NamedTuple):
 
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
-    from .dynamics import leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics
+    from .dynamics import SwingLeg, leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics_of_legs
     from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states_of_legs
     from .strides import normalise_strides
 
@@ -230,19 +230,20 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                                        axis=1), (5, 95), axis=0)
             bands = {m: (q[:, k, 0], q[:, k, 1]) for k, m in enumerate(MUSCLES)}  # each [2, strides]
         swing = np.zeros(n_frames, dtype=bool)
-        moments = None
         if body_mass:
             for s in side_strides:
                 lo = int(np.ceil(s.toe_off_s * rate))
                 hi = int(np.floor(s.next_foot_strike_s * rate))
                 swing[max(lo, 0):min(hi, n_frames - 1) + 1] = True
-            inertia = leg_inertia(body_mass, athlete.sex, dims_body.thigh_length_m[side],
-                                  dims_body.shank_length_m[side], dims_body.foot_length_m[side])
-            moments = swing_inverse_dynamics(body.thigh[side], body.shank[side], body.foot[side],
-                                             body.hip_centre[side], body.knee_centre[side], body.ankle_centre[side],
-                                             body.heel[side], body.toe[side], rate, inertia, swing_mask=swing,
-                                             pelvis=body.pelvis, side=side)
-        legs[side] = _Leg(side_strides, joint, states, late_starts, bands, swing, moments)
+        legs[side] = _Leg(side_strides, joint, states, late_starts, bands, swing, None)
+    if body_mass:  # both legs' swing inverse dynamics in one pass
+        swinging = [SwingLeg(body.thigh[side], body.shank[side], body.foot[side], body.hip_centre[side],
+                             body.knee_centre[side], body.ankle_centre[side], body.heel[side], body.toe[side],
+                             leg_inertia(body_mass, athlete.sex, dims_body.thigh_length_m[side],
+                                         dims_body.shank_length_m[side], dims_body.foot_length_m[side]),
+                             legs[side].swing, side) for side in sides]
+        for side, moments in zip(sides, swing_inverse_dynamics_of_legs(swinging, rate, pelvis=body.pelvis)):
+            legs[side] = legs[side]._replace(moments=moments)
     with_moments = [side for side, leg in legs.items() if leg.moments is not None]
     shared = dict(zip(with_moments, share_swing_moments_of_legs(
         [(legs[side].moments, legs[side].states, legs[side].joint, rate) for side in with_moments]))) \
