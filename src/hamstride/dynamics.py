@@ -656,15 +656,25 @@ def other_muscle_kinematics(
     """Moment arms and lengthening velocity v = -(r_hip dhip/dt + r_knee dknee/dt) of the non-hamstring muscles."""
     hip = np.asarray(hip_flexion_rad, dtype=float)
     knee = np.asarray(knee_flexion_rad, dtype=float)
-    # angle rates exactly as the muscles stage takes them (np.gradient), so all muscles share one joint velocity
-    hip_rate, knee_rate = (np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in (hip, knee))
-    out = {}
-    for code, m in muscles.items():
-        arms = np.stack([m.hip_moment_arm(hip), m.knee_moment_arm(knee)], axis=1)
-        velocity = -(arms[:, 0] * hip_rate + arms[:, 1] * knee_rate)
-        fmax = m.pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * strength_scale
-        out[code] = OtherMuscleKinematics(code, arms, velocity, fmax)
-    return out
+    arms, velocity = _other_arms_and_velocities(hip, knee, *_angle_rates(hip, knee, rate_hz), muscles)
+    return {code: OtherMuscleKinematics(code, arms[:, k], velocity[:, k],
+                                        m.pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * strength_scale)
+            for k, (code, m) in enumerate(muscles.items())}
+
+
+def _angle_rates(hip: np.ndarray, knee: np.ndarray, rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """Hip and knee flexion rates exactly as the muscles stage takes them (np.gradient), so all muscles share one
+    joint velocity."""
+    return tuple(np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in (hip, knee))
+
+
+def _other_arms_and_velocities(hip, knee, hip_rate, knee_rate, muscles: Mapping[str, OtherMuscle] = OTHER_MUSCLES):
+    """Sagittal moment arms [F, m, 2] and velocities v = -(r_hip dhip/dt + r_knee dknee/dt) [F, m] of ``muscles``."""
+    if not muscles:
+        return np.zeros((hip.size, 0, 2)), np.zeros((hip.size, 0))
+    arms = np.stack([np.stack([m.hip_moment_arm(hip), m.knee_moment_arm(knee)], axis=1) for m in muscles.values()],
+                    axis=1)
+    return arms, -(arms[:, :, 0] * hip_rate[:, None] + arms[:, :, 1] * knee_rate[:, None])
 
 
 def _mass_scale(states: Mapping[str, MuscleState]) -> float:
@@ -721,72 +731,82 @@ def share_swing_moments_of_legs(
 ) -> list[ForceSharing]:
     """``share_swing_moments`` for several legs, each (moments, states, angles, rate), with one solve: the problem
     is separate for every frame, so stacking the legs' frames gives the same forces in fewer solver steps."""
-    problems = [_sharing_problem(*leg, ATHLETE_STRENGTH_FACTOR if strength_scale is None else strength_scale,
-                                 include_passive) for leg in legs]
-    if len({tuple(p.names) for p in problems}) > 1:
+    if len({tuple(states) for _, states, _, _ in legs}) > 1:
         raise HamstrideError("legs shared together must have the same muscles", code="config")
-    active, met = share_forces(np.concatenate([p.arms for p in problems]),
-                               np.concatenate([p.capacity for p in problems]),
-                               np.concatenate([p.target for p in problems]))
-    out, start = [], 0
-    for p in problems:
-        stop = start + len(p.target)
-        force = active[start:stop] + p.passive
-        force[~p.valid] = np.nan
+    p = _sharing_problem(legs, ATHLETE_STRENGTH_FACTOR if strength_scale is None else strength_scale, include_passive)
+    active, met = share_forces(p.arms, p.capacity, p.target)
+    force = active + p.passive
+    force[~p.valid] = np.nan
+    unmet = p.valid & ~met
+    out = []
+    for start, stop in zip(p.leg_starts[:-1], p.leg_starts[1:]):
         out.append(ForceSharing(
-            force_n={c: force[:, i] for i, c in enumerate(p.names)},
-            velocity_m_per_s={c: p.velocities[i] for i, c in enumerate(p.names)},
-            moment_arms_m={c: p.arms[:, i] for i, c in enumerate(p.names)},
-            unmet=p.valid & ~met[start:stop],
-            valid=p.valid,
+            force_n={c: force[start:stop, i] for i, c in enumerate(p.names)},
+            velocity_m_per_s={c: p.velocities[start:stop, i] for i, c in enumerate(p.names)},
+            moment_arms_m={c: p.arms[start:stop, i] for i, c in enumerate(p.names)},
+            unmet=unmet[start:stop],
+            valid=p.valid[start:stop],
         ))
-        start = stop
     return out
 
 
 class _SharingProblem(NamedTuple):
-    """One leg's sharing problem (see ``_sharing_problem``)."""
+    """The legs' sharing problem, frames of the legs one after the other (see ``_sharing_problem``)."""
 
     names: list[str]
     arms: np.ndarray  # [F, m, 2] hip flexion, knee flexion
     capacity: np.ndarray  # [F, m] active force capacity (N)
     passive: np.ndarray  # [F, m] passive force (N)
     target: np.ndarray  # [F, 2] moments left for the active forces (N m)
-    velocities: list[np.ndarray]
+    velocities: np.ndarray  # [F, m] musculotendon lengthening velocity (m/s)
     valid: np.ndarray  # [F]
+    leg_starts: list[int]  # first frame of each leg, then the total
 
 
-def _sharing_problem(moments, states, angles, rate_hz, strength_scale, include_passive) -> _SharingProblem:
-    """One leg's sharing problem: the hamstrings (from the muscles stage) and the other muscles, with the passive
-    forces' moments taken off the targets."""
-    hip = np.asarray(angles["hip_flexion"], dtype=float)
-    n = hip.shape[0]
-    others = other_muscle_kinematics(hip, angles["knee_flexion"], rate_hz, strength_scale * _mass_scale(states))
-    hamstrings = list(states.values())
-    names = [*states, *others]
-    arms = [np.asarray(st.moment_arms_m, dtype=float)[:, [0, 3]] for st in hamstrings]
-    arms += [ok.moment_arms_m for ok in others.values()]
-    vel = [np.asarray(st.velocity_m_per_s, dtype=float) for st in hamstrings]
-    vel += [ok.velocity_m_per_s for ok in others.values()]
-    # capacities of all muscles at once (the curves are elementwise): [F, muscles]
-    fmax = np.array([float(st.max_isometric_force_n) for st in hamstrings]) * strength_scale
-    l_norm = np.stack([np.asarray(st.fibre_length_lopt, dtype=float) for st in hamstrings], axis=1)
-    v_norm = np.stack([np.asarray(st.velocity_lopt_per_s, dtype=float) for st in hamstrings], axis=1)
-    caps = [fmax * np.clip(mus.active_force_length(l_norm) * mus.force_velocity(v_norm), 0.0, None)]
-    passive = [fmax * mus.passive_force_length(l_norm) if include_passive else np.zeros((n, len(hamstrings)))]
-    if others:
-        other_v = np.stack([ok.velocity_m_per_s / OTHER_MUSCLES[code].optimal_fibre_length_m
-                            for code, ok in others.items()], axis=1)
-        other_fmax = np.array([ok.max_isometric_force_n for ok in others.values()])
-        caps.append(other_fmax * np.clip(mus.force_velocity(other_v), 0.0, None))
-        passive.append(np.zeros((n, len(others))))
-    r = np.stack(arms, axis=1)  # [F,m,2]
-    cap = np.concatenate(caps, axis=1)
-    fp = np.nan_to_num(np.concatenate(passive, axis=1), nan=0.0)
-    target = np.stack([moments.hip_flexion_nm, moments.knee_flexion_nm], axis=1)
+def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
+    """The sharing problem of legs (moments, states, angles, rate) with the same muscles: the hamstrings (from the
+    muscles stage) and the other muscles, with the passive forces' moments taken off the targets. Only the angle
+    rates are taken leg by leg; everything else runs once over the legs' stacked frames."""
+    hamstrings = list(legs[0][1])
+    others = list(OTHER_MUSCLES)
+    sizes = [np.asarray(angles["hip_flexion"]).shape[0] for _, _, angles, _ in legs]
+    hip, knee = (np.concatenate([np.asarray(angles[k], dtype=float) for _, _, angles, _ in legs])
+                 for k in ("hip_flexion", "knee_flexion"))
+    rates = [_angle_rates(np.asarray(angles["hip_flexion"], dtype=float), np.asarray(angles["knee_flexion"],
+                                                                                     dtype=float), rate_hz)
+             for _, _, angles, rate_hz in legs]
+    other_arms, other_vel = _other_arms_and_velocities(hip, knee, np.concatenate([r[0] for r in rates]),
+                                                       np.concatenate([r[1] for r in rates]))
+
+    def hamstring_field(get):  # [F, hamstrings] over the stacked legs
+        return np.concatenate([np.stack([np.asarray(get(states[m]), dtype=float) for m in hamstrings], axis=1)
+                               for _, states, _, _ in legs])
+
+    arms = np.concatenate([np.stack([np.asarray(states[m].moment_arms_m, dtype=float)[:, [0, 3]] for m in hamstrings],
+                                    axis=1) for _, states, _, _ in legs])
+    r = np.concatenate([arms, other_arms], axis=1)  # [F, m, 2]
+    velocities = np.concatenate([hamstring_field(lambda st: st.velocity_m_per_s), other_vel], axis=1)
+    # maximum forces per frame (each leg's own scaling), then capacities of all muscles at once: [F, muscles]
+    def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' PCSA x tension, scaled alike
+        other_scale = strength_scale * _mass_scale(states)
+        return ([float(states[m].max_isometric_force_n) * strength_scale for m in hamstrings]
+                + [OTHER_MUSCLES[c].pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * other_scale for c in others])
+
+    fmax = np.repeat([leg_fmax(states) for _, states, _, _ in legs], sizes, axis=0)
+    l_norm = hamstring_field(lambda st: st.fibre_length_lopt)
+    v_norm = np.concatenate([hamstring_field(lambda st: st.velocity_lopt_per_s),
+                             other_vel / np.array([OTHER_MUSCLES[c].optimal_fibre_length_m for c in others])], axis=1)
+    length_factor = np.ones_like(v_norm)  # the other muscles' length-force relation is not modelled
+    length_factor[:, :len(hamstrings)] = mus.active_force_length(l_norm)
+    cap = fmax * np.clip(length_factor * mus.force_velocity(v_norm), 0.0, None)
+    fp = np.zeros_like(cap)
+    if include_passive:
+        fp[:, :len(hamstrings)] = np.nan_to_num(fmax[:, :len(hamstrings)] * mus.passive_force_length(l_norm), nan=0.0)
+    target = np.concatenate([np.stack([m.hip_flexion_nm, m.knee_flexion_nm], axis=1) for m, _, _, _ in legs])
     target = target - np.einsum("fmj,fm->fj", r, fp)
-    valid = np.asarray(moments.valid, dtype=bool) & np.isfinite(target).all(axis=1)
-    return _SharingProblem(names, r, cap, fp, target, vel, valid)
+    valid = np.concatenate([np.asarray(m.valid, dtype=bool) for m, _, _, _ in legs]) & np.isfinite(target).all(axis=1)
+    return _SharingProblem([*hamstrings, *others], r, cap, fp, target, velocities, valid,
+                           [0, *np.cumsum(sizes).tolist()])
 
 
 # --------------------------------------------------------------------------- power and work
