@@ -238,17 +238,23 @@ def test_smoothing_without_clusters_keeps_the_points_and_the_cutoff():
         np.testing.assert_array_equal(points_only.points[name], full.points[name])
 
 
-@pytest.mark.parametrize("n", [5, 8, 9, 40, 500])
-def test_frame_spline_equals_scipy_not_a_knot_spline(n):
-    # Reference: scipy.interpolate.CubicSpline (not-a-knot ends) through the same frames; one and two dimensions,
-    # at the knots, between them and at both ends.
+@pytest.mark.parametrize("n", [4, 5, 8, 9, 40, 500])
+@pytest.mark.parametrize("spacing", ["frames", "gaps"])
+def test_cubic_spline_equals_scipy_not_a_knot_spline(n, spacing):
+    # Reference: scipy.interpolate.CubicSpline (not-a-knot ends) through the same knots, unit-spaced frames or
+    # frames with gaps; one and two dimensions, at the knots, between them and at both ends.
     from scipy.interpolate import CubicSpline
 
-    from hamstride.signal import frame_spline
+    from hamstride.signal import cubic_spline
 
     rng = np.random.default_rng(n)
+    knots = np.arange(n, dtype=float)
+    if spacing == "gaps":
+        knots = np.cumsum(rng.integers(1, 6, n)).astype(float)
     y = np.cumsum(rng.normal(size=(n, 4)), axis=0)
-    t = np.concatenate([[0.0, n - 1.0], np.arange(n, dtype=float), rng.uniform(0, n - 1, 50)])
-    expected = CubicSpline(np.arange(n, dtype=float), y, axis=0)(t)
-    np.testing.assert_allclose(frame_spline(y, t), expected, rtol=0, atol=1e-13 * np.abs(y).max())
-    np.testing.assert_allclose(frame_spline(y[:, 2], t), expected[:, 2], rtol=0, atol=1e-13 * np.abs(y).max())
+    t = np.concatenate([knots, rng.uniform(knots[0], knots[-1], 50)])
+    expected = CubicSpline(knots, y, axis=0)(t)
+    scale = np.abs(y).max()
+    given = None if spacing == "frames" else knots  # None: unit-spaced frames
+    np.testing.assert_allclose(cubic_spline(given, y, t), expected, rtol=0, atol=1e-12 * scale)
+    np.testing.assert_allclose(cubic_spline(given, y[:, 2], t), expected[:, 2], rtol=0, atol=1e-12 * scale)

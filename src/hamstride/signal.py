@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy.interpolate import CubicSpline
-from scipy.linalg import solve_banded
+from scipy.linalg import lapack
 from scipy.ndimage import convolve1d
 from scipy.signal import filtfilt, savgol_coeffs, savgol_filter
 
@@ -71,39 +71,53 @@ def savgol_derivative(x: np.ndarray, window: int, poly: int, order: int, rate_hz
     return y * float(rate_hz) ** order
 
 
-# --------------------------------------------------------------------------- cubic spline on frames
-def frame_spline(y: np.ndarray, t: np.ndarray) -> np.ndarray:
-    """The not-a-knot cubic spline through ``y`` [n, C] sampled at frames 0..n-1, evaluated at fractional frames
-    ``t`` [Q] (0 <= t <= n - 1) -> [Q, C]; the same curve as ``scipy.interpolate.CubicSpline`` (tested), without
-    its general-purpose overhead.
+# --------------------------------------------------------------------------- cubic spline
+def cubic_spline(knots: np.ndarray | None, y: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """The not-a-knot cubic spline through ``y`` [n, ...] at increasing ``knots`` [n] (None: frames 0 .. n-1),
+    evaluated at ``t`` [Q] (inside the knots) -> [Q, ...]; the same curve as ``scipy.interpolate.CubicSpline``
+    (tested) without its general-purpose overhead.
 
-    With unit spacing the second derivatives M satisfy M[i-1] + 4 M[i] + M[i+1] = 6 d[i], d[i] = y[i+1] - 2 y[i] +
-    y[i-1] (continuous slope), and not-a-knot (continuous third derivative at the second and last-but-one knots)
-    gives M[0] = 2 M[1] - M[2], so the first equation reduces to M[1] = d[1] (likewise at the end): one tridiagonal
-    solve for the rest (de Boor 1978, A Practical Guide to Splines, ch. IV). The piece on [i, i + 1] at u = t - i:
-    (1 - u) y[i] + u y[i+1] + ((1 - u)^3 - (1 - u)) M[i] / 6 + (u^3 - u) M[i+1] / 6.
+    Second derivatives M from the continuity of the slope, h[i-1] M[i-1] + 2 (h[i-1] + h[i]) M[i] + h[i] M[i+1] =
+    6 (s[i] - s[i-1]) with h the knot spacings and s the chord slopes; not-a-knot ends (continuous third
+    derivative at the second and last-but-one knots), M[0] = (1 + h0/h1) M[1] - (h0/h1) M[2], are substituted
+    into the first and last equations, leaving one tridiagonal solve (LAPACK gtsv) (de Boor 1978, A Practical
+    Guide to Splines, ch. IV). On [x[i], x[i+1]] with u = t - x[i], w = x[i+1] - t:
+    S = (M[i] w^3 + M[i+1] u^3) / (6 h) + (y[i] / h - M[i] h / 6) w + (y[i+1] / h - M[i+1] h / 6) u.
     """
     y_in = np.asarray(y, dtype=float)
     t = np.asarray(t, dtype=float)
     n = y_in.shape[0]
-    y = y_in.reshape(n, -1)
-    if n < 8:  # short series: the general routine (the reduction above needs a few interior knots)
-        return CubicSpline(np.arange(n, dtype=float), y_in, axis=0)(t)
-    d = y[2:] - 2.0 * y[1:-1] + y[:-2]  # d[1..n-2]
-    m = np.empty_like(y)
-    m[1], m[-2] = d[0], d[-1]
-    rhs = 6.0 * d[1:-1]  # equations 2..n-3
-    rhs[0] -= m[1]
-    rhs[-1] -= m[-2]
-    bands = np.empty((3, n - 4))
-    bands[0], bands[1], bands[2] = 1.0, 4.0, 1.0
-    m[2:-2] = solve_banded((1, 1), bands, rhs, overwrite_ab=True, overwrite_b=True, check_finite=False)
-    m[0] = 2.0 * m[1] - m[2]
-    m[-1] = 2.0 * m[-2] - m[-3]
-    i = np.clip(np.floor(t).astype(int), 0, n - 2)
-    u = (t - i)[:, None]
-    v = 1.0 - u
-    out = v * y[i] + u * y[i + 1] + ((v * v * v - v) * m[i] + (u * u * u - u) * m[i + 1]) / 6.0
+    x = np.arange(n, dtype=float) if knots is None else np.asarray(knots, dtype=float)
+    if n < 4:  # a line or a parabola: the general routine
+        return CubicSpline(x, y_in, axis=0)(t)
+    y2 = y_in.reshape(n, -1)
+    h = np.ones(n - 1) if knots is None else np.diff(x)
+    slope = np.diff(y2, axis=0) if knots is None else np.diff(y2, axis=0) / h[:, None]
+    rhs = 6.0 * np.diff(slope, axis=0)  # equations 1 .. n-2
+    lower, diag, upper = h[1:-1].copy(), 2.0 * (h[:-1] + h[1:]), h[1:-1].copy()
+    diag[0] += h[0] * (1.0 + h[0] / h[1])
+    upper[0] -= h[0] * h[0] / h[1]
+    diag[-1] += h[-1] * (1.0 + h[-1] / h[-2])
+    lower[-1] -= h[-1] * h[-1] / h[-2]
+    m = np.empty_like(y2)
+    *_, m[1:-1], info = lapack.dgtsv(lower, diag, upper, rhs, overwrite_dl=True, overwrite_d=True, overwrite_du=True,
+                                     overwrite_b=True)
+    if info != 0:  # singular only for coincident knots, which callers never pass
+        return CubicSpline(x, y_in, axis=0)(t)
+    m[0] = (1.0 + h[0] / h[1]) * m[1] - (h[0] / h[1]) * m[2]
+    m[-1] = (1.0 + h[-1] / h[-2]) * m[-2] - (h[-1] / h[-2]) * m[-3]
+    if knots is None:  # unit spacing
+        i = np.clip(np.floor(t).astype(int), 0, n - 2)
+        u = (t - i)[:, None]
+        w = 1.0 - u
+        out = w * y2[i] + u * y2[i + 1] + ((w * w * w - w) * m[i] + (u * u * u - u) * m[i + 1]) / 6.0
+    else:
+        i = np.clip(np.searchsorted(x, t, side="right") - 1, 0, n - 2)
+        step = h[i][:, None]
+        u = (t - x[i])[:, None]
+        w = (x[i + 1] - t)[:, None]
+        out = ((m[i] * (w * w * w) + m[i + 1] * (u * u * u)) / (6.0 * step)
+               + (y2[i] / step - m[i] * step / 6.0) * w + (y2[i + 1] / step - m[i + 1] * step / 6.0) * u)
     return out.reshape(t.shape + y_in.shape[1:])
 
 
@@ -257,8 +271,7 @@ def fill_gaps(x: np.ndarray, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES) -> tu
         if ok.sum() < 4:  # a cubic needs four samples; leave it and report below
             long_.extend(g for g in short if g.column in set(group.tolist()))
             continue
-        spline = CubicSpline(frames[ok], x2[ok][:, group], axis=0)
-        x2[np.ix_(to_fill, group)] = spline(frames[to_fill])
+        x2[np.ix_(to_fill, group)] = cubic_spline(frames[ok], x2[ok][:, group], frames[to_fill])
     not_filled = set(long_)
     filled = tuple(g for g in short if g not in not_filled)
     unfilled = tuple(sorted(long_, key=lambda g: (g.column, g.start)))

@@ -11,7 +11,7 @@ from typing import Mapping
 import numpy as np
 
 from .events import SIDES, GaitEvents
-from .signal import frame_spline
+from .signal import cubic_spline
 
 DEFAULT_STRIDE_TIME_RANGE_S = (0.3, 0.8)  # issue 3, common practice for sprinting
 DEFAULT_CONTACT_RANGE_S = (0.06, 0.3)     # issue 3, common practice for sprinting
@@ -126,7 +126,7 @@ def normalise(signal: np.ndarray, stride: Stride, rate_hz: float, n_points: int 
     out = np.empty((n_points, window.shape[1]))
     finite = np.isfinite(window).all(axis=0)
     if finite.any() and window.shape[0] >= 4:
-        out[:, finite] = frame_spline(window[:, finite], t_query - lo)
+        out[:, finite] = cubic_spline(None, window[:, finite], t_query - lo)
     else:
         finite[:] = False
     if (~finite).any():
@@ -156,7 +156,7 @@ def normalise_strides(signal: np.ndarray, strides, rate_hz: float, n_points: int
         raise ValueError("stride extends beyond the signal")
     whole = np.isfinite(flat).all(axis=0) if n >= 4 else np.zeros(flat.shape[1], dtype=bool)
     if whole.any():
-        out[:, :, whole] = frame_spline(flat[:, whole], queries.ravel()).reshape(len(strides), n_points, -1)
+        out[:, :, whole] = cubic_spline(None, flat[:, whole], queries.ravel()).reshape(len(strides), n_points, -1)
     rest = np.flatnonzero(~whole)
     if rest.size:
         # as normalise(): a window of the stride's frames plus two each side; linear where it holds a gap
