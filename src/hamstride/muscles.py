@@ -747,9 +747,10 @@ def _window_peaks(sampled: _SampledMuscle, arrays, nominal: np.ndarray, windows:
     frames = np.concatenate([frames_per_window[w] for w in used])
     offsets = np.concatenate([[0], np.cumsum(counts[used])[:-1]])
     length = _path_length(sampled.paths, *(a[frames] for a in arrays))  # [S, N]
-    s, l = sampled.strain_and_lopt(length)
-    strain[:, used] = np.fmax.reduceat(s, offsets, axis=1)
-    lopt[:, used] = np.fmax.reduceat(l, offsets, axis=1)
+    # Strain and l/l_opt are non-decreasing functions of the length, step by step also in floating point
+    # (``fibre_length``), so each window's peaks are those of its peak length: worked out on [S, W], not [S, N].
+    window_peak_length = np.fmax.reduceat(length, offsets, axis=1)
+    strain[:, used], lopt[:, used] = sampled.strain_and_lopt(window_peak_length)
     owner = np.repeat(np.arange(used.size), counts[used])
     starts = np.array([windows[w][0] for w in used])[owner]
     stops = np.array([windows[w][1] for w in used])[owner]
@@ -757,7 +758,7 @@ def _window_peaks(sampled: _SampledMuscle, arrays, nominal: np.ndarray, windows:
     contiguous = (frames[1:] == frames[:-1] + 1) & (owner[1:] == owner[:-1])
     open_before = ~np.concatenate([[False], contiguous]) & (frames - 1 >= starts) & finite[frames]
     open_after = ~np.concatenate([contiguous, [False]]) & (frames + 1 < stops) & finite[frames + 2]
-    peak_length = np.fmax.reduceat(length, offsets, axis=1)[:, owner]
+    peak_length = window_peak_length[:, owner]
     at_peak = length == peak_length
     bad = at_peak & (open_before | open_after)[None, :]
     suspect[used] = np.logical_or.reduceat(bad.any(axis=0), offsets)
