@@ -74,18 +74,3 @@ def test_events_angles_and_strides_match_truth(tmp_path, name):
     treadmill = is_treadmill(lm)
     assert treadmill == spec.treadmill
     assert running_speed(lm, events, treadmill) == pytest.approx(spec.speed_m_s, rel=0.05)
-
-
-@pytest.mark.parametrize("n_samples", [1, 7, 200])
-def test_band_percentiles_equal_numpy_percentile(n_samples):
-    # pipeline._percentiles is np.percentile(..., axis=0) (linear method) by one sort (reference: numpy), NaN
-    # wherever a column holds NaN.
-    from hamstride.pipeline import _percentiles
-
-    rng = np.random.default_rng(n_samples)
-    x = rng.normal(size=(n_samples, 4, 2, 5))
-    x[:, 1, 0, 2] = np.nan
-    x[0, 2, 1, 1] = np.nan
-    with np.errstate(all="ignore"):
-        expected = np.percentile(x, (5, 95), axis=0)
-    np.testing.assert_array_equal(_percentiles(x, (5, 95)), expected)

@@ -258,3 +258,18 @@ def test_cubic_spline_equals_scipy_not_a_knot_spline(n, spacing):
     given = None if spacing == "frames" else knots  # None: unit-spaced frames
     np.testing.assert_allclose(cubic_spline(given, y, t), expected, rtol=0, atol=1e-12 * scale)
     np.testing.assert_allclose(cubic_spline(given, y[:, 2], t), expected[:, 2], rtol=0, atol=1e-12 * scale)
+
+
+@pytest.mark.parametrize("n_samples", [1, 7, 200])
+def test_percentiles_equal_numpy_percentile(n_samples):
+    # signal.percentiles is np.percentile(..., axis=0) (linear method) by one sort (reference: numpy), NaN
+    # wherever a column holds NaN.
+    from hamstride.signal import percentiles
+
+    rng = np.random.default_rng(n_samples)
+    x = rng.normal(size=(n_samples, 4, 2, 5))
+    x[:, 1, 0, 2] = np.nan
+    x[0, 2, 1, 1] = np.nan
+    with np.errstate(all="ignore"):
+        expected = np.percentile(x, (5, 95), axis=0)
+    np.testing.assert_array_equal(percentiles(x, (5, 95)), expected)

@@ -28,7 +28,7 @@ import numpy as np
 
 from .errors import EventError, LandmarkError
 from .io import finite_points
-from .signal import savgol_derivative
+from .signal import percentiles, savgol_derivative
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from .landmarks import Landmarks
@@ -172,7 +172,7 @@ def _toe_name(heights: Mapping[str, np.ndarray]) -> str:
 def _heights_above_floor(heights: Mapping[str, np.ndarray]) -> np.ndarray:
     """[landmark, F] height of each foot landmark above its own floor level (marker heights above the sole cancel)."""
     z = np.stack(list(heights.values()))
-    return z - np.percentile(z, FLOOR_PERCENTILE, axis=1, keepdims=True)
+    return z - percentiles(z.T, [FLOOR_PERCENTILE]).T
 
 
 def _low_foot_mask(lowest: np.ndarray, rate_hz: float) -> np.ndarray:

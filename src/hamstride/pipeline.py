@@ -180,20 +180,6 @@ def _late_swing_start_frame(s, rate: float) -> int:
     return min(max(late, s.start_frame), s.end_frame)
 
 
-def _percentiles(samples: np.ndarray, q) -> np.ndarray:
-    """``np.percentile(samples, q, axis=0)`` (linear method, Hyndman & Fan type 7) by one sort and numpy's own
-    interpolation steps, without its general-purpose overhead; NaN wherever a column holds NaN (tested)."""
-    ordered = np.sort(samples, axis=0)  # NaN sorts last
-    virtual = (len(ordered) - 1) * (np.asarray(q, dtype=float) / 100.0)
-    below = np.floor(virtual).astype(int)
-    above = np.minimum(below + 1, len(ordered) - 1)
-    gamma = (virtual - below).reshape((-1,) + (1,) * (ordered.ndim - 1))
-    a, b = ordered[below], ordered[above]
-    diff = b - a
-    out = np.where(gamma >= 0.5, b - diff * (1 - gamma), a + diff * gamma)  # numpy's _lerp
-    return np.where(np.isnan(ordered[-1]), np.nan, out)
-
-
 class _Leg(NamedTuple):
     """What one leg's tables need, gathered before the legs share one force-sharing solve."""
 
@@ -210,6 +196,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
     from .dynamics import SwingLeg, leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics_of_legs
     from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states_of_legs
+    from .signal import percentiles
     from .strides import normalise_strides
 
     rate = trial.rate_hz
@@ -240,7 +227,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             peaks = monte_carlo_peaks(joint, windows, dims, n_samples=options.monte_carlo_samples, seed=0,
                                       nominal_lengths_m={m: states[m].length_m for m in MUSCLES})
             # 5th/95th percentiles of every muscle's peaks in one call: [2 (p5, p95), muscle, strain | l/l_opt, stride]
-            q = _percentiles(np.stack([np.stack([100.0 * peaks[m][0], peaks[m][1]], axis=1) for m in MUSCLES],
+            q = percentiles(np.stack([np.stack([100.0 * peaks[m][0], peaks[m][1]], axis=1) for m in MUSCLES],
                                       axis=1), (5, 95))
             bands = {m: (q[:, k, 0], q[:, k, 1]) for k, m in enumerate(MUSCLES)}  # each [2, strides]
         swing = np.zeros(n_frames, dtype=bool)
