@@ -375,7 +375,7 @@ def _exact_step(s, c, grad_dot_d, reserve_dd):
     c2 = c * c
     with np.errstate(divide="ignore", invalid="ignore"):
         kinks = np.concatenate([-s / c, (1.0 - s) / c], axis=1)  # crossing 0, crossing 1
-    kinks = np.where(np.isfinite(kinks) & (kinks > 0), kinks, np.inf)
+    kinks = np.where(kinks > 0, kinks, np.inf)  # NaN and the past never count
     free0 = ((s > 0) & (s < 1)) | ((s == 0) & (c > 0)) | ((s == 1) & (c < 0))
     rate0 = np.where(free0, c2, 0.0).sum(axis=1) + reserve_dd  # fall rate of the slope just after t = 0
     # Most frames (a Newton step whose free set stays free) peak before the first kink: t = slope(0) / rate(0).
@@ -395,8 +395,11 @@ def _step_past_kinks(s, c, c2, kinks, grad_dot_d, rate0):
     change = np.concatenate([np.sign(c) * c2, -np.sign(c) * c2], axis=1)
     order = np.argsort(kinks, axis=1)
     kinks = np.take_along_axis(kinks, order, axis=1)
-    change = np.take_along_axis(change, order, axis=1)
     finite = np.isfinite(kinks)
+    # the infinite kinks sort last and change nothing: keep only as many columns as the most finite ones in a row
+    order = order[:, :max(int(finite.sum(axis=1).max()), 1)]
+    kinks, finite = kinks[:, :order.shape[1]], finite[:, :order.shape[1]]
+    change = np.take_along_axis(change, order, axis=1)
     t = np.concatenate([np.zeros((len(s), 1)), np.where(finite, kinks, 0.0)], axis=1)  # [F, K + 1]
     rate = rate0[:, None] + np.concatenate([np.zeros((len(s), 1)), np.cumsum(np.where(finite, change, 0.0),
                                                                                    axis=1)], axis=1)
@@ -436,31 +439,34 @@ def _solve_dual(a_mat, b, lam, reserve, max_iter, tol, scale):
 
     Dual of min 1/2 |a|^2 + |e|^2 / (2 reserve) s.t. A a + e = b, 0 <= a <= 1: a = clip(A^T lam), e = reserve lam;
     gradient b - A a - reserve lam; generalised Hessian A_F A_F^T + reserve I over the free (unbounded) muscles F.
-    Frames are independent, so each iteration works only on the frames not yet converged.
+    Frames are independent, so each iteration works only on the frames not yet converged (kept packed; each frame's
+    multipliers are written back when it converges). ``reserve`` is one number for all frames.
     """
     lam = lam.copy()
-    active = np.arange(len(lam))
+    index = np.arange(len(lam))
     ridge = reserve + 1e-10 * scale
     a_scale = np.abs(a_mat).max(axis=(1, 2))
+    a_act, b_act, l_act = a_mat, b, lam
     for _ in range(max_iter):
-        a_act, l_act, r_act = a_mat[active], lam[active], reserve[active]
         s = _transpose_times(a_act, l_act)
-        grad = b[active] - np.einsum("fjm,fm->fj", a_act, np.clip(s, 0.0, 1.0)) - r_act[:, None] * l_act
+        grad = b_act - np.einsum("fjm,fm->fj", a_act, np.clip(s, 0.0, 1.0)) - reserve * l_act
         # rounding floor: s = A^T lam loses about 1e-16 |A| |lam| when lam is large (frames far beyond capacity)
-        floor = 1e-13 * np.abs(l_act).max(axis=1) * a_scale[active]
+        floor = 1e-13 * np.abs(l_act).max(axis=1) * a_scale
         todo = np.abs(grad).max(axis=1) > tol + floor
-        if not todo.any():
-            break
-        active, a_act, l_act, s, grad = active[todo], a_act[todo], l_act[todo], s[todo], grad[todo]
+        if not todo.all():
+            lam[index] = l_act
+            if not todo.any():
+                return lam
+            index, a_act, b_act, l_act, s, grad = index[todo], a_act[todo], b_act[todo], l_act[todo], s[todo], grad[todo]
+            ridge, a_scale = ridge[todo], a_scale[todo]
         free = (s > 0) & (s < 1)
         a0, a1 = np.where(free, a_act[:, 0, :], 0.0), np.where(free, a_act[:, 1, :], 0.0)
-        diag = ridge[active]
-        direction = _solve_2x2((a0 * a0).sum(axis=1) + diag, (a0 * a1).sum(axis=1), (a1 * a1).sum(axis=1) + diag,
+        direction = _solve_2x2((a0 * a0).sum(axis=1) + ridge, (a0 * a1).sum(axis=1), (a1 * a1).sum(axis=1) + ridge,
                                grad)
         c = _transpose_times(a_act, direction)
-        step = _exact_step(s, c, (grad * direction).sum(axis=1),
-                           reserve[active] * (direction * direction).sum(axis=1))
-        lam[active] = l_act + step[:, None] * direction
+        step = _exact_step(s, c, (grad * direction).sum(axis=1), reserve * (direction * direction).sum(axis=1))
+        l_act = l_act + step[:, None] * direction
+    lam[index] = l_act
     return lam
 
 
@@ -521,7 +527,7 @@ def share_forces(
     joint_scale = np.abs(a_nm).sum(axis=(1, 2))[:, None] + 1.0
     a_mat = a_nm / joint_scale[:, :, None]
     bb = b / joint_scale
-    reserve = np.full(len(bb), 1.0 / weight)
+    reserve = 1.0 / weight
     g00, g01, g11 = ((a_mat[:, j] * a_mat[:, k]).sum(axis=1) for j, k in ((0, 0), (0, 1), (1, 1)))
     scale = g00 + g11 + 1.0
     lam0 = _solve_2x2(g00 + reserve, g01, g11 + reserve, bb)
