@@ -23,7 +23,7 @@ from . import muscles as mus
 from .errors import HamstrideError
 from .io import finite_points
 from .muscles import MuscleState
-from .segments import cross_rows
+from .segments import cross_rows, dot_rows
 
 if TYPE_CHECKING:  # pragma: no cover - type hints only
     from .segments import Frames
@@ -159,9 +159,11 @@ def angular_velocity(axes: np.ndarray, rate_hz: float) -> np.ndarray:
     removes the non-orthogonal error of numerical differentiation.
     """
     r_dot = _derivative(axes, rate_hz, frame_axis=-3)
-    w = r_dot @ np.swapaxes(axes, -1, -2)
-    return 0.5 * np.stack([w[..., 2, 1] - w[..., 1, 2], w[..., 0, 2] - w[..., 2, 0], w[..., 1, 0] - w[..., 0, 1]],
-                          axis=-1)
+
+    def w(i, j):  # element (i, j) of dR/dt R^T: row i of dR/dt dotted with row j of R
+        return dot_rows(r_dot[..., i, :], axes[..., j, :])
+
+    return 0.5 * np.stack([w(2, 1) - w(1, 2), w(0, 2) - w(2, 0), w(1, 0) - w(0, 1)], axis=-1)
 
 
 # --------------------------------------------------------------------------- inverse dynamics
@@ -231,8 +233,11 @@ def _segment_step(
     acc = _derivative(_derivative(com, rate_hz, -2), rate_hz, -2)
     omega = angular_velocity(axes, rate_hz)
     alpha = _derivative(omega, rate_hz, -2)
-    i_lab = axes @ inertia_local @ np.swapaxes(axes, -1, -2)
-    h_dot = (i_lab @ alpha[..., None])[..., 0] + cross_rows(omega, (i_lab @ omega[..., None])[..., 0])
+    def inertia_times(v):  # I_lab v = R (I_local (R^T v)), without forming I_lab
+        local = np.einsum("...jk,...j->...k", axes, v)
+        return np.einsum("...jk,...k->...j", axes, np.einsum("...jk,...k->...j", inertia_local, local))
+
+    h_dot = inertia_times(alpha) + cross_rows(omega, inertia_times(omega))
     force = mass_kg * (acc - gravity_vec)
     moment = h_dot - cross_rows(proximal - com, force)
     if distal_force is not None:
@@ -251,7 +256,7 @@ def _side_sign(side: str) -> float:
 def _anatomical(moment_lab: np.ndarray, prox_axes: np.ndarray, side_sign, flexion_sign: float) -> np.ndarray:
     """Lab moments [..., F, 3] in the proximal axes with anatomical signs; ``side_sign`` +1 right, -1 left
     ([..., 1] for stacked legs)."""
-    local = (np.swapaxes(prox_axes, -1, -2) @ moment_lab[..., None])[..., 0]  # along the proximal X, Y, Z
+    local = np.einsum("...jk,...j->...k", prox_axes, moment_lab)  # along the proximal X, Y, Z
     return np.stack([flexion_sign * local[..., 2], side_sign * local[..., 0], side_sign * local[..., 1]], axis=-1)
 
 
