@@ -308,7 +308,7 @@ def residuals(x: np.ndarray, rate_hz: float, cutoffs_hz: np.ndarray) -> np.ndarr
     out = np.full((len(cutoffs_hz), x2.shape[1]), np.nan)
     if not whole.any():
         return out
-    data = x2[:, whole]
+    data = x2 if whole.all() else x2[:, whole]
     n = data.shape[0]
     ramp = np.linspace(0.0, 1.0, n)[:, None]
     detrended = data - (data[0] + (data[-1] - data[0]) * ramp)
@@ -363,7 +363,9 @@ def residual_cutoff(
         raise ConfigError(f"residual analysis range {lo:g}-{hi:g} Hz is empty at {rate_hz:g} Hz")
     cutoffs = np.arange(lo, hi + 1e-9, step_hz)
     x2 = _analysis_window(np.asarray(x, dtype=float).reshape(len(x), -1))
-    usable = np.isfinite(x2).all(axis=0) & (np.ptp(np.nan_to_num(x2), axis=0) > 0)
+    with np.errstate(invalid="ignore"):
+        spread = np.ptp(x2, axis=0)  # NaN or infinite for columns with NaN or infinite values
+    usable = np.isfinite(spread) & (spread > 0)
     if not usable.any() or x2.shape[0] < 8:
         return float(lo)
     res = residuals(x2[:, usable], rate_hz, cutoffs)  # [K, C]
