@@ -227,8 +227,12 @@ def main(argv: list[str] | None = None) -> int:
     skip = set(args.skip) | ({"dask"} if args.no_dask else set())
     from hamstride import __version__
 
+    from hamstride.batch import tune_allocator
+
+    # as the hamstride command and its workers do; the ezc3d reads it is compared with run in this process too
+    tuned = tune_allocator()
     print(f"hamstride {__version__} benchmark, python {sys.version.split()[0]}, numpy {np.__version__}, "
-          f"{os.cpu_count()} cores; work folder {work}")
+          f"{os.cpu_count()} cores; allocator tuned as in hamstride's workers: {tuned}; work folder {work}")
     print(load_note())
     results: dict[str, object] = {}
 

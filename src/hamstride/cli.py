@@ -36,6 +36,14 @@ console = Console()
 err_console = Console(stderr=True)
 
 
+@app.callback()
+def _every_command() -> None:
+    # Before any command: let this process reuse freed memory (batch.tune_allocator; no effect without glibc).
+    from .batch import tune_allocator
+
+    tune_allocator()
+
+
 def _fail(exc: HamstrideError, code: int = 1) -> None:
     err_console.print(f"[bold red]error[/] [{exc.code}] {exc.message}", highlight=False, soft_wrap=True)
     raise typer.Exit(code)
