@@ -102,30 +102,42 @@ def _cv(sd: float, mean: float) -> float:
     return float(sd / abs(mean) * 100.0) if np.isfinite(mean) and mean != 0 and np.isfinite(sd) else float("nan")
 
 
+_BAND_COLUMNS = ("peak_strain_p5_pct", "peak_strain_p95_pct", "peak_fibre_length_lopt_p5", "peak_fibre_length_lopt_p95")
+
+
+def _skipna_mean(values: np.ndarray) -> float:
+    """``pd.Series(values).mean()`` by pandas' own steps (missing values set to 0 in the sum, not counted)."""
+    missing = np.isnan(values)
+    count = values.size - int(missing.sum())
+    return float(np.where(missing, 0.0, values).sum() / count) if count else float("nan")
+
+
 def summarise(strides: pd.DataFrame, athletes: pd.DataFrame | None = None) -> pd.DataFrame:
     """One row per athlete/session/side/muscle: n, speed, mean/SD/CV of each metric, SI and LSI."""
     keys = ["athlete", "session", "side", "muscle"]
     if strides.empty:
         return pd.DataFrame(columns=keys + ["n_strides", "speed_m_s"])
+    # Columns as numpy arrays once, groups as row indices: the per-group arithmetic is numpy's (and pandas' skipna
+    # mean's for the plain means) without building a DataFrame per group.
+    columns = {name: strides[name].to_numpy(dtype=float) for name in
+               (*SUMMARY_METRICS, "speed_m_s", "late_swing_moments_met_pct", *_BAND_COLUMNS) if name in strides}
+    trial_of_row = strides["trial"].to_numpy()
     rows = []
-    for key, group in strides.groupby(keys, sort=True):
+    for key, index in sorted(strides.groupby(keys, sort=True).indices.items()):
         row = dict(zip(keys, key))
-        row["n_strides"] = int(len(group))
-        row["n_trials"] = int(group["trial"].nunique())
-        row["speed_m_s"] = float(group["speed_m_s"].mean())
+        row["n_strides"] = int(len(index))
+        row["n_trials"] = int(pd.unique(trial_of_row[index]).size)
+        row["speed_m_s"] = _skipna_mean(columns["speed_m_s"][index])
         for metric in SUMMARY_METRICS:
-            vals = group[metric].to_numpy(dtype=float) if metric in group else np.array([np.nan])
+            vals = columns[metric][index] if metric in columns else np.array([np.nan])
             finite = vals[np.isfinite(vals)]
             mean = float(finite.mean()) if finite.size else float("nan")
             sd = float(finite.std(ddof=1)) if finite.size > 1 else float("nan")
             row[f"{metric}_mean"] = mean
             row[f"{metric}_sd"] = sd
             row[f"{metric}_cv_pct"] = _cv(sd, mean)
-        row["late_swing_moments_met_pct_mean"] = float(group["late_swing_moments_met_pct"].mean()) \
-            if "late_swing_moments_met_pct" in group else float("nan")
-        for band in ("peak_strain_p5_pct", "peak_strain_p95_pct", "peak_fibre_length_lopt_p5",
-                     "peak_fibre_length_lopt_p95"):
-            row[f"{band}_mean"] = float(group[band].mean()) if band in group else float("nan")
+        for name in ("late_swing_moments_met_pct", *_BAND_COLUMNS):
+            row[f"{name}_mean"] = _skipna_mean(columns[name][index]) if name in columns else float("nan")
         rows.append(row)
     summary = pd.DataFrame(rows)
     involved = {}
