@@ -225,8 +225,10 @@ def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: 
                     f"({best:.1f} m/s): hamstring stretch rises with speed, so comparisons with faster sessions are weak.")
 
     stretch = summary[summary["muscle"].isin(config.muscles)]
-    for (athlete, session, muscle), group in stretch.groupby(["athlete", "session", "muscle"], sort=True):
-        by_side = {r["side"]: r for _, r in group.iterrows()}
+    sides_of: dict[tuple, dict[str, dict]] = {}  # (athlete, session, muscle) -> side -> summary row (plain dicts)
+    for record in stretch.to_dict("records"):
+        sides_of.setdefault((record["athlete"], record["session"], record["muscle"]), {})[record["side"]] = record
+    for (athlete, session, muscle), by_side in sorted(sides_of.items()):
         if "left" not in by_side or "right" not in by_side:
             continue
         right, left = by_side["right"], by_side["left"]
