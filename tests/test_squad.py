@@ -156,6 +156,26 @@ def test_table_csv_is_pandas_to_csv_for_any_cells(rows):
     assert table_csv(table) == table.to_csv(**_PANDAS_CSV)
 
 
+def test_columns_csv_is_pandas_to_csv_of_the_same_columns():
+    # batch.columns_csv writes a trial's tables straight from its numpy columns (numpy text arrays included); the
+    # reference is pandas' to_csv of the DataFrame those columns make.
+    from hamstride.batch import columns_csv
+
+    columns = {
+        "text": np.array(["a,b", 'say "hi"', "two\nlines", "ü ñ 漢", " lead", "", "cr\rhere", "x"]),
+        "objects": np.array(["s", None, "t", "u", "v", "w", "x", "y"], dtype=object),
+        "number": np.array([1.5, np.nan, np.inf, -0.0, 1e-300, 123456789.0, -np.inf, 0.1 + 0.2]),
+        "count": np.arange(8) - 3,
+    }
+    assert columns_csv(columns) == pd.DataFrame(columns).to_csv(**_PANDAS_CSV)
+    mixed = {"anything": np.array([1, "x", 2.5], dtype=object), "x": np.arange(3.0)}  # pandas writes this block
+    assert columns_csv(mixed) == pd.DataFrame(mixed).to_csv(**_PANDAS_CSV)
+    long = {"side": np.repeat(np.array(["left", "right"]), 2600), "v": np.linspace(0, 1, 5200)}  # several blocks
+    assert columns_csv(long) == pd.DataFrame(long).to_csv(**_PANDAS_CSV)
+    empty = {name: values[:0] for name, values in columns.items()}
+    assert columns_csv(empty) == pd.DataFrame(empty).to_csv(**_PANDAS_CSV)
+
+
 def test_strides_gatherer_equals_reading_each_text(monkeypatch):
     # Chunks of trials' strides CSVs are parsed with one read; the rows must be those of reading each text alone,
     # also across chunk boundaries, with a missing final newline, and with a text written by another version.

@@ -66,6 +66,22 @@ def table_csv(df: pd.DataFrame) -> str:
     return text.getvalue()
 
 
+def columns_csv(columns: Mapping[str, np.ndarray]) -> str:
+    """``table_csv`` of the table these columns make (in their order), without building it: the same text."""
+    n_rows = len(next(iter(columns.values()))) if columns else 0
+    text = _io.StringIO()
+    writer = csv.writer(text, lineterminator="\n")
+    writer.writerow([str(name) for name in columns])
+    for start in range(0, n_rows, _CSV_ROWS):
+        cells = [_csv_cells(np.asarray(values[start:start + _CSV_ROWS])) for values in columns.values()]
+        if any(c is None for c in cells):  # cells of a kind not handled here: pandas writes this block
+            block = pd.DataFrame({name: values[start:start + _CSV_ROWS] for name, values in columns.items()})
+            text.write(block.to_csv(header=False, index=False, lineterminator="\n", float_format="%.6g"))
+        else:
+            writer.writerows(zip(*cells))
+    return text.getvalue()
+
+
 def _write_csv(df: pd.DataFrame, handle) -> None:
     """``table_csv`` into an open text file, block by block (the formatted cells of a block are many small
     objects; the whole table's text is never held in memory)."""
@@ -77,7 +93,7 @@ def _write_csv(df: pd.DataFrame, handle) -> None:
     writer.writerow([str(name) for name in df.columns])
     for start in range(0, len(df), _CSV_ROWS):
         block = df.iloc[start:start + _CSV_ROWS]
-        columns = [_csv_column(block[name]) for name in df.columns]
+        columns = [_csv_cells(block[name].to_numpy()) for name in df.columns]
         if any(c is None for c in columns):  # cells of a kind not handled here: pandas writes this block
             handle.write(block.to_csv(header=False, **pandas_csv))
         else:
@@ -87,10 +103,9 @@ def _write_csv(df: pd.DataFrame, handle) -> None:
 _CSV_ROWS = 2048
 
 
-def _csv_column(series: pd.Series) -> list[str] | None:
+def _csv_cells(values: np.ndarray) -> list[str] | None:
     """One column's cells as pandas' to_csv writes them, or None when the column is of a kind not handled here."""
-    kind = series.dtype.kind
-    values = series.to_numpy()
+    kind = values.dtype.kind
     if kind == "f":
         return ["%.6g" % v if v == v else "" for v in values.tolist()]
     if kind in "iu":
@@ -309,7 +324,8 @@ def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
     """Worker: analyse one trial; never raises (errors become a failure record)."""
     try:
         result = analyse_trial(job.path, options, athlete=job.info, static_path=job.static_path, markers=job.markers)
-        return {"status": "ok", "strides": table_csv(result.strides), "curves": table_csv(result.curves),
+        return {"status": "ok", "strides": columns_csv(result.tables["strides"]),
+                "curves": columns_csv(result.tables["curves"]),
                 "info": _jsonable(dict(result.info))}
     except HamstrideError as exc:
         return {"status": "failed", "code": exc.code, "reason": exc.message}

@@ -153,7 +153,7 @@ def analyze_cmd(
 
     Example: `hamstride analyze demo_trials/KT07/2026-03-02_testing/sprint_01.c3d --body-mass 74 --out reports/one`
     """
-    from .batch import table_csv
+    from .batch import columns_csv
     from .io import atomic_write_text, read_c3d_isolated
     from .pipeline import AnalysisOptions, AthleteInfo, analyse_trial
 
@@ -167,8 +167,8 @@ def analyze_cmd(
                                markers=markers)
     except HamstrideError as exc:
         _fail(exc)
-    atomic_write_text(out / "strides.csv", table_csv(result.strides))
-    atomic_write_text(out / "curves.csv", table_csv(result.curves))
+    atomic_write_text(out / "strides.csv", columns_csv(result.tables["strides"]))
+    atomic_write_text(out / "curves.csv", columns_csv(result.tables["curves"]))
     n = result.info.get("n_strides", {})
     console.print(f"{trial.name}: {n.get('left', 0)} left and {n.get('right', 0)} right strides, "
                   f"speed {result.info['speed_m_s']:.2f} m/s, cutoff {result.info['cutoff_hz']:.1f} Hz "

@@ -5,6 +5,7 @@ The same function serves the CLI, the squad batch and a notebook.
 """
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping, NamedTuple
@@ -58,12 +59,29 @@ class AthleteInfo:
     leg_length_m: float | None = None
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class TrialResult:
+    """One trial's results. ``tables`` holds the strides and curves tables as columns in export order (numpy
+    arrays); ``strides`` and ``curves`` are the same as pandas tables, built on first use (writers that need only
+    the text take the columns, see ``batch.columns_csv``)."""
+
     trial: str
-    strides: pd.DataFrame
-    curves: pd.DataFrame
+    tables: Mapping[str, Mapping[str, np.ndarray]]
     info: Mapping[str, object] = field(default_factory=dict)
+
+    @functools.cached_property
+    def strides(self) -> pd.DataFrame:
+        return _table_frame(self.tables["strides"], STRIDE_COLUMNS)
+
+    @functools.cached_property
+    def curves(self) -> pd.DataFrame:
+        return _table_frame(self.tables["curves"], CURVE_COLUMNS)
+
+
+def _table_frame(columns: Mapping[str, np.ndarray], names: list[str]) -> pd.DataFrame:
+    if not columns:
+        return pd.DataFrame(columns=names)
+    return pd.DataFrame({name: columns[name] for name in names}, index=pd.RangeIndex(len(columns[names[0]])))
 
 
 @dataclass(frozen=True)
@@ -162,13 +180,13 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
         "warning_codes": list(kin.warning_codes), "software_version": __version__,
         "hip_method": kin.body.hip_method,
     }
-    strides_df, curves_df = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
-                                           kin.speed_m_s, info)
+    strides, curves = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
+                                     kin.speed_m_s, info)
     if options.strict:
         failure = strict_failure(map(TrialWarning, info["warning_codes"], info["warnings"]), trial.name)
         if failure is not None:
             raise failure
-    return TrialResult(trial.name, strides_df, curves_df, info)
+    return TrialResult(trial.name, {"strides": strides, "curves": curves}, info)
 
 
 def _late_swing_start_frame(s, rate: float) -> int:
@@ -278,13 +296,12 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         curve_blocks.extend(normalise_strides(signals, side_strides, rate))
         curve_keys.extend((side, s.index + 1) for s in side_strides)
     stride_columns = _stride_columns(table_legs, rate, bool(body_mass), speed, athlete, trial.name)
-    curves = _curve_frame(curve_blocks, curve_keys, athlete, trial.name, MUSCLES)
+    curves = _curve_columns(curve_blocks, curve_keys, athlete, trial.name, MUSCLES)
     info["frames_moments_not_met"] = unmet_total
     if not body_mass:
         info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
         info["warning_codes"].append("no_body_mass")
-    strides = pd.DataFrame({name: stride_columns[name] for name in STRIDE_COLUMNS}, columns=STRIDE_COLUMNS)
-    return strides, curves
+    return {name: stride_columns[name] for name in STRIDE_COLUMNS}, curves
 
 
 def _stride_columns(legs, rate, with_mass, speed, athlete, trial_name) -> dict[str, np.ndarray]:
@@ -356,10 +373,11 @@ def _stride_columns(legs, rate, with_mass, speed, athlete, trial_name) -> dict[s
     return columns
 
 
-def _curve_frame(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlete, trial: str, muscles) -> pd.DataFrame:
-    """One long table for the trial: a row per stride, muscle and percent of the cycle (built once, not per stride)."""
+def _curve_columns(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlete, trial: str,
+                   muscles) -> dict[str, np.ndarray]:
+    """One long table for the trial, as columns: a row per stride, muscle and percent of the cycle."""
     if not blocks:
-        return pd.DataFrame(columns=CURVE_COLUMNS)
+        return {}
     n_pct, n_mus = 101, len(muscles)
     data = np.stack(blocks)  # [stride, 101, 5 + 6 x muscles]
     n_str = data.shape[0]
@@ -370,13 +388,13 @@ def _curve_frame(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlete,
                     "knee_moment_nm_per_kg"]
     names_muscle = ["length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w"]
     columns = {
-        "athlete": np.full(rows, athlete.athlete, dtype=object), "session": np.full(rows, athlete.session, dtype=object),
-        "trial": np.full(rows, trial, dtype=object),
-        "side": np.repeat(np.array([k[0] for k in keys], dtype=object), n_mus * n_pct),
+        "athlete": np.full(rows, athlete.athlete), "session": np.full(rows, athlete.session),
+        "trial": np.full(rows, trial),
+        "side": np.repeat(np.array([k[0] for k in keys]), n_mus * n_pct),
         "stride": np.repeat([k[1] for k in keys], n_mus * n_pct),
-        "muscle": np.tile(np.repeat(np.array(list(muscles), dtype=object), n_pct), n_str),
+        "muscle": np.tile(np.repeat(np.array(list(muscles)), n_pct), n_str),
         "pct": np.tile(np.linspace(0.0, 100.0, n_pct), n_str * n_mus),
     }
     columns.update((name, shared[..., k].reshape(rows)) for k, name in enumerate(names_shared))
     columns.update((name, per_muscle[..., k].reshape(rows)) for k, name in enumerate(names_muscle))
-    return pd.DataFrame({name: columns[name] for name in CURVE_COLUMNS}, index=pd.RangeIndex(rows))
+    return {name: columns[name] for name in CURVE_COLUMNS}
