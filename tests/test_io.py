@@ -281,3 +281,16 @@ def test_lab_frame_order_statistics_equal_numpy():
         expected = (np.nanmin(x, axis=0), np.nanmedian(x, axis=0), np.nanmax(x, axis=0))
     for got, want in zip(io._nan_order_statistics(x, 0), expected):
         np.testing.assert_array_equal(got, want)
+
+
+def test_row_vector_helpers_equal_numpy():
+    # io.dot_rows / norm_rows / cross_rows are numpy's sum, linalg.norm and cross written out by component
+    # (reference: numpy), on [F, 3] and [F, M, 3] arrays.
+    from hamstride import io
+
+    rng = np.random.default_rng(12)
+    for shape in ((50, 3), (20, 7, 3)):
+        a, b = rng.normal(size=shape), rng.normal(size=shape)
+        np.testing.assert_allclose(io.dot_rows(a, b), np.sum(a * b, axis=-1), rtol=1e-15, atol=1e-15)
+        np.testing.assert_allclose(io.norm_rows(a), np.linalg.norm(a, axis=-1), rtol=1e-15, atol=0)
+        np.testing.assert_allclose(io.cross_rows(a, b), np.cross(a, b), rtol=1e-15, atol=1e-15)

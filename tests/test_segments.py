@@ -295,16 +295,3 @@ def test_long_gap_in_a_present_landmark_is_bridged_from_its_segment():
     rebuilt = reconstruct_missing(dynamic.replace(points=p), calibrate(static))
     for name in ("right_heel", "left_psis"):
         assert np.allclose(rebuilt.points[name], dynamic.points[name], atol=1e-9)
-
-
-def test_row_vector_helpers_equal_numpy():
-    # segments.dot_rows / norm_rows / cross_rows are numpy's sum, linalg.norm and cross written out by component
-    # (reference: numpy), on [F, 3] and [F, M, 3] arrays.
-    from hamstride import segments
-
-    rng = np.random.default_rng(12)
-    for shape in ((50, 3), (20, 7, 3)):
-        a, b = rng.normal(size=shape), rng.normal(size=shape)
-        np.testing.assert_allclose(segments.dot_rows(a, b), np.sum(a * b, axis=-1), rtol=1e-15, atol=1e-15)
-        np.testing.assert_allclose(segments.norm_rows(a), np.linalg.norm(a, axis=-1), rtol=1e-15, atol=0)
-        np.testing.assert_allclose(segments.cross_rows(a, b), np.cross(a, b), rtol=1e-15, atol=1e-15)

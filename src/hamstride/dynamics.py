@@ -21,9 +21,8 @@ import numpy as np
 
 from . import muscles as mus
 from .errors import HamstrideError
-from .io import finite_points
+from .io import cross_rows, dot_rows, finite_points
 from .muscles import MuscleState
-from .segments import cross_rows, dot_rows
 
 if TYPE_CHECKING:  # pragma: no cover - type hints only
     from .segments import Frames

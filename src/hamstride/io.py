@@ -496,9 +496,11 @@ def _trial_from_ezc3d(c, path: Path, layout: C3DLayout) -> MarkerTrial:
                            header_events)
 
 
+# Operations over a last axis of x, y, z written out by component: numpy reduces or crosses a length-3 last axis
+# through its general machinery, several times slower on [frame, 3] and [frame, marker, 3] arrays; the arithmetic
+# is the same.
 def all_xyz(mask: np.ndarray) -> np.ndarray:
-    """``mask.all(axis=-1)`` for a last axis of x, y, z: numpy reduces a length-3 last axis element by element,
-    about ten times slower than these two ``&`` on [frame, marker, 3] arrays."""
+    """``mask.all(axis=-1)`` for a last axis of x, y, z."""
     return mask[..., 0] & mask[..., 1] & mask[..., 2]
 
 
@@ -510,6 +512,23 @@ def any_xyz(mask: np.ndarray) -> np.ndarray:
 def finite_points(xyz: np.ndarray) -> np.ndarray:
     """Points whose three coordinates are finite: ``np.isfinite(xyz).all(axis=-1)``, faster (see ``all_xyz``)."""
     return all_xyz(np.isfinite(xyz))
+
+
+def dot_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise dot product of [..., 3] arrays."""
+    return a[..., 0] * b[..., 0] + a[..., 1] * b[..., 1] + a[..., 2] * b[..., 2]
+
+
+def norm_rows(v: np.ndarray) -> np.ndarray:
+    """Row-wise Euclidean length of [..., 3] arrays (``np.linalg.norm(v, axis=-1)``)."""
+    return np.sqrt(dot_rows(v, v))
+
+
+def cross_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise cross product of [..., 3] arrays (``np.cross``)."""
+    ax, ay, az = a[..., 0], a[..., 1], a[..., 2]
+    bx, by, bz = b[..., 0], b[..., 1], b[..., 2]
+    return np.stack([ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx], axis=-1)
 
 
 def _assemble_trial(path: Path, labels: tuple[str, ...], file_xyz: np.ndarray, invalid: np.ndarray, units: str,
@@ -728,7 +747,7 @@ def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
     ez[vertical] = up_sign
     ex = np.zeros(3)
     ex[travel] = sign
-    ey = np.array([ez[1] * ex[2] - ez[2] * ex[1], ez[2] * ex[0] - ez[0] * ex[2], ez[0] * ex[1] - ez[1] * ex[0]])
+    ey = cross_rows(ez, ex)
     rot = np.vstack([ex, ey, ez])
     names = "xyz"
     return LabFrame(rot, f"{'+' if up_sign > 0 else '-'}{names[vertical]}", f"{'+' if sign > 0 else '-'}{names[travel]}",

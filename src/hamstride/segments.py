@@ -23,7 +23,7 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError, PlausibilityError
-from .io import finite_points
+from .io import cross_rows, dot_rows, finite_points, norm_rows
 from .landmarks import Landmarks, plain_name
 
 SIDES = ("left", "right")
@@ -43,25 +43,6 @@ REQUIRED_SITES = ("asis", "psis", "lateral_epicondyle", "medial_epicondyle", "la
 
 
 # --------------------------------------------------------------------------- vector helpers
-# Row-wise operations on [..., 3] vectors written out by component: numpy reduces or crosses a length-3 last axis
-# through its general machinery, several times slower on [frame, 3] arrays; the arithmetic is the same.
-def dot_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise dot product of [..., 3] arrays."""
-    return a[..., 0] * b[..., 0] + a[..., 1] * b[..., 1] + a[..., 2] * b[..., 2]
-
-
-def norm_rows(v: np.ndarray) -> np.ndarray:
-    """Row-wise Euclidean length of [..., 3] arrays (``np.linalg.norm(v, axis=-1)``)."""
-    return np.sqrt(dot_rows(v, v))
-
-
-def cross_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise cross product of [..., 3] arrays (``np.cross``)."""
-    ax, ay, az = a[..., 0], a[..., 1], a[..., 2]
-    bx, by, bz = b[..., 0], b[..., 1], b[..., 2]
-    return np.stack([ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx], axis=-1)
-
-
 def _unit(v: np.ndarray) -> np.ndarray:
     with np.errstate(invalid="ignore", divide="ignore"):
         return v / norm_rows(v)[..., None]
