@@ -191,7 +191,7 @@ def test_strides_gatherer_equals_reading_each_text(monkeypatch):
         gatherer.add(f"key{k}", text)
     assert "key6" in gatherer and "key9" not in gatherer
     got = pd.concat(gatherer.tables(), ignore_index=True)
-    expected = pd.concat([batch._read_strides(io.StringIO(t)) for t in texts], ignore_index=True)
+    expected = pd.concat([batch._read_table(io.StringIO(t)) for t in texts], ignore_index=True)
     pd.testing.assert_frame_equal(got.sort_values(["athlete", "stride"]).reset_index(drop=True),
                                   expected.sort_values(["athlete", "stride"]).reset_index(drop=True))
     assert got["trial"].tolist().count("01") == 1 and got["athlete"].map(type).eq(str).all()

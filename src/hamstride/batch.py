@@ -68,36 +68,42 @@ def table_csv(df: pd.DataFrame) -> str:
 
 def columns_csv(columns: Mapping[str, np.ndarray]) -> str:
     """``table_csv`` of the table these columns make (in their order), without building it: the same text."""
-    n_rows = len(next(iter(columns.values()))) if columns else 0
     text = _io.StringIO()
-    writer = csv.writer(text, lineterminator="\n")
-    writer.writerow([str(name) for name in columns])
-    for start in range(0, n_rows, _CSV_ROWS):
-        cells = [_csv_cells(np.asarray(values[start:start + _CSV_ROWS])) for values in columns.values()]
-        if any(c is None for c in cells):  # cells of a kind not handled here: pandas writes this block
-            block = pd.DataFrame({name: values[start:start + _CSV_ROWS] for name, values in columns.items()})
-            text.write(block.to_csv(header=False, index=False, lineterminator="\n", float_format="%.6g"))
-        else:
-            writer.writerows(zip(*cells))
+    n_rows = len(next(iter(columns.values()))) if columns else 0
+    _write_blocks(list(columns), n_rows, text,
+                  lambda lo, hi: [_csv_cells(np.asarray(values[lo:hi])) for values in columns.values()],
+                  lambda lo, hi: pd.DataFrame({name: values[lo:hi] for name, values in columns.items()}))
     return text.getvalue()
+
+
+_PANDAS_CSV = {"index": False, "lineterminator": "\n", "float_format": "%.6g"}
 
 
 def _write_csv(df: pd.DataFrame, handle) -> None:
     """``table_csv`` into an open text file, block by block (the formatted cells of a block are many small
     objects; the whole table's text is never held in memory)."""
-    pandas_csv = {"index": False, "lineterminator": "\n", "float_format": "%.6g"}
     if not df.columns.is_unique:
-        handle.write(df.to_csv(**pandas_csv))
+        handle.write(df.to_csv(**_PANDAS_CSV))
         return
+    def cells_of(lo, hi):
+        block = df.iloc[lo:hi]
+        return [_csv_cells(block[name].to_numpy()) for name in df.columns]
+
+    _write_blocks(list(df.columns), len(df), handle, cells_of, lambda lo, hi: df.iloc[lo:hi])
+
+
+def _write_blocks(names: list, n_rows: int, handle, cells_of: Callable, table_of: Callable) -> None:
+    """The CSV header, then the rows block by block: each block's cells from ``cells_of(lo, hi)`` (one list per
+    column), or, when a column holds cells of a kind not handled here, pandas' text of ``table_of(lo, hi)``."""
     writer = csv.writer(handle, lineterminator="\n")
-    writer.writerow([str(name) for name in df.columns])
-    for start in range(0, len(df), _CSV_ROWS):
-        block = df.iloc[start:start + _CSV_ROWS]
-        columns = [_csv_cells(block[name].to_numpy()) for name in df.columns]
-        if any(c is None for c in columns):  # cells of a kind not handled here: pandas writes this block
-            handle.write(block.to_csv(header=False, **pandas_csv))
+    writer.writerow([str(name) for name in names])
+    for lo in range(0, n_rows, _CSV_ROWS):
+        hi = lo + _CSV_ROWS
+        cells = cells_of(lo, hi)
+        if any(c is None for c in cells):
+            handle.write(table_of(lo, hi).to_csv(header=False, **_PANDAS_CSV))
         else:
-            writer.writerows(zip(*columns))
+            writer.writerows(zip(*cells))
 
 
 _CSV_ROWS = 2048
@@ -529,8 +535,8 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     return run
 
 
-def _read_strides(source) -> pd.DataFrame:
-    """Strides table(s) from CSV (a file or text): codes stay text."""
+def _read_table(source) -> pd.DataFrame:
+    """A strides or curves table from CSV (a file or text): athlete, session and trial codes stay text."""
     return pd.read_csv(source, dtype={"athlete": str, "session": str, "trial": str})
 
 
@@ -563,9 +569,9 @@ class _StridesGatherer:
             return
         header = self._texts[0].split("\n", 1)[0] + "\n"
         if all(t.startswith(header) for t in self._texts):  # one table: drop the repeated header lines
-            self._tables.append(_read_strides(_io.StringIO(header + "".join(t[len(header):] for t in self._texts))))
+            self._tables.append(_read_table(_io.StringIO(header + "".join(t[len(header):] for t in self._texts))))
         else:  # written by different versions: each on its own
-            self._tables.extend(_read_strides(_io.StringIO(t)) for t in self._texts)
+            self._tables.extend(_read_table(_io.StringIO(t)) for t in self._texts)
         self._texts.clear()
 
 
@@ -603,7 +609,7 @@ def _athlete_curves(files_by_athlete: Mapping[str, list[Path]], athlete: str) ->
 
 
 def _read_curves(files: list[Path]) -> pd.DataFrame:
-    frames = [pd.read_csv(p, dtype={"athlete": str, "session": str, "trial": str}) for p in files]
+    frames = [_read_table(p) for p in files]
     return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=CURVE_COLUMNS)
 
 
