@@ -210,6 +210,18 @@ class _Leg(NamedTuple):
     moments: object  # dynamics.JointMoments, or None without body mass
 
 
+class _LegTable(NamedTuple):
+    """What one leg gives the strides table (see ``_stride_columns``)."""
+
+    side: str
+    strides: list
+    late_starts: np.ndarray  # first frame of late swing, per stride
+    signals: np.ndarray  # [F, 5 + 6 x muscles]: the curve signals, per frame
+    bands: dict  # muscle -> (strain %, l/l_opt) 5th/95th percentiles, each [2, strides]; empty without a band
+    unmet: np.ndarray  # [F] swing frames whose moments the muscles could not meet
+    velocities: np.ndarray  # [F, muscles] musculotendon lengthening velocity (m/s)
+
+
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
     from .dynamics import SwingLeg, leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics_of_legs
@@ -291,8 +303,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
                         power[m]]
         signals = np.column_stack(columns)
-        table_legs.append((side, side_strides, late_starts, signals, bands, unmet,
-                           np.column_stack([states[m].velocity_m_per_s for m in MUSCLES])))
+        table_legs.append(_LegTable(side, side_strides, late_starts, signals, bands, unmet,
+                                    np.column_stack([states[m].velocity_m_per_s for m in MUSCLES])))
         curve_blocks.extend(normalise_strides(signals, side_strides, rate))
         curve_keys.extend((side, s.index + 1) for s in side_strides)
     stride_columns = _stride_columns(table_legs, rate, bool(body_mass), speed, athlete, trial.name)
@@ -304,27 +316,26 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     return {name: stride_columns[name] for name in STRIDE_COLUMNS}, curves
 
 
-def _stride_columns(legs, rate, with_mass, speed, athlete, trial_name) -> dict[str, np.ndarray]:
+def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, trial_name) -> dict[str, np.ndarray]:
     """The strides table as columns: a row per stride and muscle (stride-major, legs in turn), every window of both
-    legs at once. ``legs``: per side (side, strides, late-swing start frames, signals [F, 5 + 6 x muscles], bands,
-    unmet frames, muscle velocities [F, muscles]); the legs' frames are stacked, each window offset to its leg."""
+    legs at once: the legs' frames are stacked, each window offset to its leg."""
     from .dynamics import window_work
     from .metrics import window_peaks
     from .muscles import MUSCLES
 
     n_mus = len(MUSCLES)
-    strides = [s for leg in legs for s in leg[1]]
+    strides = [s for leg in legs for s in leg.strides]
     n_str = len(strides)
-    n_frames = legs[0][3].shape[0]
-    offset = np.repeat(np.arange(len(legs)) * n_frames, [len(leg[1]) for leg in legs])  # frame offset per stride
+    n_frames = legs[0].signals.shape[0]
+    offset = np.repeat(np.arange(len(legs)) * n_frames, [len(leg.strides) for leg in legs])  # frame offset per stride
     start = np.array([s.start_frame for s in strides], dtype=int) + offset
     stop = np.array([s.end_frame for s in strides], dtype=int) + offset
-    late = np.concatenate([np.asarray(leg[2], dtype=int) for leg in legs]) + offset
+    late = np.concatenate([np.asarray(leg.late_starts, dtype=int) for leg in legs]) + offset
     swing_lo = np.minimum(np.maximum(np.ceil(np.array([s.toe_off_s for s in strides]) * rate).astype(int) + offset,
                                      start), stop)
     foot_strike = np.array([s.foot_strike_s for s in strides])
     stride_time = np.array([s.stride_time_s for s in strides])
-    signals = np.concatenate([leg[3] for leg in legs])  # [legs x F, 5 + 6 x muscles]
+    signals = np.concatenate([leg.signals for leg in legs])  # [legs x F, 5 + 6 x muscles]
     per_muscle = signals[:, 5:].reshape(len(signals), n_mus, 6)  # length, strain %, l/l_opt, velocity, force, power
     # peaks over late swing (strain, l/l_opt), over swing (velocity, knee flexion, force) and over the stride
     late_peaks, late_at = window_peaks(np.concatenate([per_muscle[:, :, 1], per_muscle[:, :, 2]], axis=1), late, stop)
@@ -335,7 +346,7 @@ def _stride_columns(legs, rate, with_mass, speed, athlete, trial_name) -> dict[s
     with np.errstate(invalid="ignore"):
         peak_time = np.where(i_peak >= 0, 100.0 * (i_peak / rate - foot_strike[:, None]) / stride_time[:, None],
                              np.nan)
-    met = np.concatenate([[0], np.cumsum(~np.concatenate([leg[5] for leg in legs]))])
+    met = np.concatenate([[0], np.cumsum(~np.concatenate([leg.unmet for leg in legs]))])
     nan = np.full((n_str, n_mus), np.nan)
 
     def per_stride(values):
@@ -360,11 +371,11 @@ def _stride_columns(legs, rate, with_mass, speed, athlete, trial_name) -> dict[s
     }
     for name, source, q in (("peak_strain_p5_pct", 0, 0), ("peak_strain_p95_pct", 0, 1),
                             ("peak_fibre_length_lopt_p5", 1, 0), ("peak_fibre_length_lopt_p95", 1, 1)):
-        columns[name] = np.concatenate([np.column_stack([leg[4][m][source][q] for m in MUSCLES]) if leg[4]
-                                        else nan[:len(leg[1])] for leg in legs]).ravel()
+        columns[name] = np.concatenate([np.column_stack([leg.bands[m][source][q] for m in MUSCLES]) if leg.bands
+                                        else nan[:len(leg.strides)] for leg in legs]).ravel()
     if with_mass:
         force = per_muscle[:, :, 4]
-        velocity = np.concatenate([leg[6] for leg in legs])
+        velocity = np.concatenate([leg.velocities for leg in legs])
         absorbed, produced = window_work(np.nan_to_num(force), velocity, rate, swing_lo, stop)
         columns.update(peak_force_n=peak_force.ravel(), negative_work_j=absorbed.ravel(),
                        positive_work_j=produced.ravel())
