@@ -112,6 +112,14 @@ def _skipna_mean(values: np.ndarray) -> float:
     return float(np.where(missing, 0.0, values).sum() / count) if count else float("nan")
 
 
+def _rows_by_muscle(rows: list[dict]) -> dict[tuple, dict[str, int]]:
+    """Positions of summary rows by (athlete, session, muscle), then by side: the pairs of legs to compare."""
+    out: dict[tuple, dict[str, int]] = {}
+    for i, row in enumerate(rows):
+        out.setdefault((row["athlete"], row["session"], row["muscle"]), {})[row["side"]] = i
+    return out
+
+
 def summarise(strides: pd.DataFrame, athletes: pd.DataFrame | None = None) -> pd.DataFrame:
     """One row per athlete/session/side/muscle: n, speed, mean/SD/CV of each metric, SI and LSI."""
     keys = ["athlete", "session", "side", "muscle"]
@@ -146,12 +154,11 @@ def summarise(strides: pd.DataFrame, athletes: pd.DataFrame | None = None) -> pd
     # SI and LSI per athlete/session/muscle, written to both sides' rows (values gathered first, columns set once)
     symmetry = {name: np.full(len(summary), np.nan) for name in SYMMETRY_METRICS}
     lsi_values = {name: np.full(len(summary), np.nan) for name in LSI_METRICS}
-    row_of = {(r["athlete"], r["session"], r["muscle"], r["side"]): i for i, r in enumerate(rows)}
-    for (athlete, session, muscle, side), i in row_of.items():
-        if side != "right" or (athlete, session, muscle, "left") not in row_of:
+    for (athlete, _, _), sides in _rows_by_muscle(rows).items():
+        if "left" not in sides or "right" not in sides:
             continue
-        both = {"right": rows[i], "left": rows[row_of[(athlete, session, muscle, "left")]]}
-        at = [i, row_of[(athlete, session, muscle, "left")]]
+        both = {side: rows[i] for side, i in sides.items()}
+        at = [sides["right"], sides["left"]]
         for name, metric in SYMMETRY_METRICS.items():
             symmetry[name][at] = symmetry_index(both["right"][f"{metric}_mean"], both["left"][f"{metric}_mean"])
         involved_side = involved.get(str(athlete), "none")
@@ -225,10 +232,9 @@ def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: 
                     f"({best:.1f} m/s): hamstring stretch rises with speed, so comparisons with faster sessions are weak.")
 
     stretch = summary[summary["muscle"].isin(config.muscles)]
-    sides_of: dict[tuple, dict[str, dict]] = {}  # (athlete, session, muscle) -> side -> summary row (plain dicts)
-    for record in stretch.to_dict("records"):
-        sides_of.setdefault((record["athlete"], record["session"], record["muscle"]), {})[record["side"]] = record
-    for (athlete, session, muscle), by_side in sorted(sides_of.items()):
+    records = stretch.to_dict("records")  # plain dicts: far cheaper to read than rows of a DataFrame
+    for (athlete, session, muscle), sides in sorted(_rows_by_muscle(records).items()):
+        by_side = {side: records[i] for side, i in sides.items()}
         if "left" not in by_side or "right" not in by_side:
             continue
         right, left = by_side["right"], by_side["left"]
