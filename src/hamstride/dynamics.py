@@ -144,8 +144,8 @@ def leg_inertia(
 
 
 # --------------------------------------------------------------------------- rigid-body kinematics
-def _derivative(x: np.ndarray, rate_hz: float, frame_axis: int = 0) -> np.ndarray:
-    """Central differences along frames (second order, also at the ends)."""
+def _derivative(x: np.ndarray, rate_hz: float, frame_axis: int) -> np.ndarray:
+    """Central differences along the frame axis (second order, also at the ends)."""
     if x.shape[frame_axis] < 3:
         return np.full_like(x, np.nan, dtype=float)
     return np.gradient(x, 1.0 / rate_hz, axis=frame_axis, edge_order=2)
@@ -232,6 +232,7 @@ def _segment_step(
     acc = _derivative(_derivative(com, rate_hz, -2), rate_hz, -2)
     omega = angular_velocity(axes, rate_hz)
     alpha = _derivative(omega, rate_hz, -2)
+
     def inertia_times(v):  # I_lab v = R (I_local (R^T v)), without forming I_lab
         local = np.einsum("...jk,...j->...k", axes, v)
         return np.einsum("...jk,...k->...j", axes, np.einsum("...jk,...k->...j", inertia_local, local))
@@ -779,14 +780,13 @@ def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
     rates are taken leg by leg; everything else runs once over the legs' stacked frames."""
     hamstrings = list(legs[0][1])
     others = list(OTHER_MUSCLES)
-    sizes = [np.asarray(angles["hip_flexion"]).shape[0] for _, _, angles, _ in legs]
-    hip, knee = (np.concatenate([np.asarray(angles[k], dtype=float) for _, _, angles, _ in legs])
-                 for k in ("hip_flexion", "knee_flexion"))
-    rates = [_angle_rates(np.asarray(angles["hip_flexion"], dtype=float), np.asarray(angles["knee_flexion"],
-                                                                                     dtype=float), rate_hz)
-             for _, _, angles, rate_hz in legs]
-    other_arms, other_vel = _other_arms_and_velocities(hip, knee, np.concatenate([r[0] for r in rates]),
-                                                       np.concatenate([r[1] for r in rates]))
+    hip_knee = [(np.asarray(angles["hip_flexion"], dtype=float), np.asarray(angles["knee_flexion"], dtype=float))
+                for _, _, angles, _ in legs]
+    sizes = [hip.shape[0] for hip, _ in hip_knee]
+    rates = [_angle_rates(hip, knee, rate_hz) for (hip, knee), (_, _, _, rate_hz) in zip(hip_knee, legs)]
+    hip, knee = (np.concatenate(angle) for angle in zip(*hip_knee))  # the legs' frames one after the other
+    hip_rate, knee_rate = (np.concatenate(rate) for rate in zip(*rates))
+    other_arms, other_vel = _other_arms_and_velocities(hip, knee, hip_rate, knee_rate)
 
     def hamstring_field(get):  # [F, hamstrings] over the stacked legs
         return np.concatenate([np.stack([np.asarray(get(states[m]), dtype=float) for m in hamstrings], axis=1)
@@ -796,12 +796,13 @@ def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
                                     axis=1) for _, states, _, _ in legs])
     r = np.concatenate([arms, other_arms], axis=1)  # [F, m, 2]
     velocities = np.concatenate([hamstring_field(lambda st: st.velocity_m_per_s), other_vel], axis=1)
-    # maximum forces per frame (each leg's own scaling), then capacities of all muscles at once: [F, muscles]
+
     def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' PCSA x tension, scaled alike
         other_scale = strength_scale * _mass_scale(states)
         return ([float(states[m].max_isometric_force_n) * strength_scale for m in hamstrings]
                 + [OTHER_MUSCLES[c].pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * other_scale for c in others])
 
+    # maximum forces per frame (each leg's own scaling), then capacities of all muscles at once: [F, muscles]
     fmax = np.repeat([leg_fmax(states) for _, states, _, _ in legs], sizes, axis=0)
     l_norm = hamstring_field(lambda st: st.fibre_length_lopt)
     v_norm = np.concatenate([hamstring_field(lambda st: st.velocity_lopt_per_s),
