@@ -416,6 +416,13 @@ def tendon_slack_length(muscle: str, dims: MuscleDims, *, geometry: MusclePath |
     return _slack_rule(reference_length, l_opt, alpha, strain)
 
 
+def _reference_and_upright_lengths(path: MusclePath) -> tuple[np.ndarray, np.ndarray]:
+    """Lengths in the slack rule's reference posture and upright, in one evaluation: [..., 1] each for a path whose
+    points have a length-1 frame axis."""
+    both = _path_length(path, *(np.array([angle, 0.0]) for angle in SLACK_REFERENCE_POSTURE_RAD))
+    return both[..., :1], both[..., 1:]
+
+
 def _slack_rule(reference_length_m, optimal_fibre_length_m, pennation_rad, reference_strain):
     """The slack length that puts the fibres at ``(1 + reference strain) l_opt`` when the unit has its reference
     length (rigid tendon, constant thickness ``l_opt sin(alpha_opt)``); broadcasts over legs, muscles, samples."""
@@ -557,8 +564,7 @@ def muscle_states_of_legs(legs, rate_hz: float, *, body_mass_kg: float | None = 
     for group in _PATH_GROUPS:  # muscles of one kind of path in one vectorised evaluation
         path = _stacked_path(group, all_dims)
         length, arms = _length_and_moment_arms(path, *arrays)  # [L, G, F], [L, G, F, 4]
-        upright = _path_length(path, 0.0, 0.0, 0.0, 0.0)  # [L, G, 1]
-        reference = _path_length(path, *SLACK_REFERENCE_POSTURE_RAD)  # [L, G, 1]
+        reference, upright = _reference_and_upright_lengths(path)  # [L, G, 1] each
         arch = [ARCHITECTURE[m] for m in group]
         l_opt = np.array([a.optimal_fibre_length_m for a in arch])[:, None]  # [G, 1]
         alpha = np.array([a.pennation_rad for a in arch])[:, None]
@@ -658,15 +664,14 @@ def _draw_samples(dims: MuscleDims, n_samples: int, seed: int, include_hip_centr
             alpha = _truncated_normal(arch.pennation_rad, arch.pennation_sd_rad, 0.0, np.deg2rad(30.0), alpha_z)
             ref_mean, ref_sd = REFERENCE_FIBRE_STRAIN[muscle]
             drawn.append((muscle, paths, l_opt, alpha, _truncated_normal(ref_mean, ref_sd, -0.3, 0.4, ref_z)))
-        # the slack rule's reference posture and upright of the group's muscles: [S, G, 2]
         group_paths = MusclePath(np.concatenate([d[1].origin_m for d in drawn], axis=1)[:, :, None],
                                  np.concatenate([d[1].insertion_m for d in drawn], axis=1)[:, :, None],
                                  np.array([[d[1].wrap_radius_m] for d in drawn]), dims.thigh_length_m,
                                  drawn[0][1].origin_on_femur)
-        both = _path_length(group_paths, *(np.array([angle, 0.0]) for angle in SLACK_REFERENCE_POSTURE_RAD))
+        reference, upright = _reference_and_upright_lengths(group_paths)  # [S, G, 1] each
         for k, (muscle, paths, l_opt, alpha, ref_strain) in enumerate(drawn):
-            slack = _slack_rule(both[:, k, :1], l_opt, alpha, ref_strain)
-            yield muscle, _SampledMuscle(paths, l_opt, alpha, slack, both[:, k, 1:])
+            slack = _slack_rule(reference[:, k], l_opt, alpha, ref_strain)
+            yield muscle, _SampledMuscle(paths, l_opt, alpha, slack, upright[:, k])
 
 
 def monte_carlo_lengths(angles: dict[str, np.ndarray], dims: MuscleDims, n_samples: int = 200,
