@@ -469,7 +469,7 @@ def test_negative_and_positive_work_closed_form():
     force_nan = force.copy()
     force_nan[10] = np.nan
     assert np.isnan(dyn.negative_positive_work(force_nan, velocity, rate, 0, 100)).all()
-    md = dyn.MuscleDynamics("st", force, velocity, -force * velocity, rate)
+    md = dyn.MuscleDynamics("semitendinosus", force, velocity, -force * velocity, rate)
     assert md.work_over(0, 501) == (neg_half, pos_half)
     assert (md.power_w[1:500] < 0).all()  # delivered power is negative while the muscle absorbs energy
 
@@ -515,7 +515,7 @@ def test_shared_forces_reproduce_the_moments_within_bounds(swing_sharing):
     # a knee-flexor moment with a hip-extensor moment (late swing) is carried by the hamstrings
     late = met & (moments.knee_flexion_nm > 10) & (moments.hip_flexion_nm < -10)
     assert late.any()
-    assert (sum(res.force_n[m][late] for m in ("bflh", "st", "sm")) > 0).all()
+    assert (sum(res.force_n[m][late] for m in ("biceps_femoris_long", "semitendinosus", "semimembranosus")) > 0).all()
 
 
 # --------------------------------------------------------------------------- generated sprints (published behaviour)
@@ -544,7 +544,7 @@ def _sprint_swings(speed_m_s, side="right"):
         knee_peak = a + int(np.argmax(angles["knee_flexion"][a:z + 1]))
         cycle = (after[0] - before[-1]) * rate
         out = {"late_swing_start": knee_peak}
-        for m in ("bflh", "st", "sm"):
+        for m in ("biceps_femoris_long", "semitendinosus", "semimembranosus"):
             d = md[m]
             second = slice(mid, z + 1)
             peak, i_peak = d.peak_force(a, z + 1)
@@ -571,7 +571,7 @@ def test_hamstrings_lengthen_under_load_and_absorb_energy_in_the_second_half_of_
     # work in swing; Schache et al. 2012 (MSSE 44:647): large negative work in terminal swing [direction only].
     for swings in sprint_swings.values():
         for s in swings:
-            for m in ("bflh", "st", "sm"):
+            for m in ("biceps_femoris_long", "semitendinosus", "semimembranosus"):
                 w = s[m]
                 assert w["neg_second"] > 1.0, m
                 assert w["neg_second"] > 3 * w["neg_first"], m
@@ -581,7 +581,7 @@ def test_hamstrings_lengthen_under_load_and_absorb_energy_in_the_second_half_of_
 def test_negative_work_rises_with_speed(sprint_swings):
     # Chumanov et al. 2011: hamstring negative work in swing rises with speed.
     def mean_work(swings):
-        return np.mean([sum(s[m]["neg"] for m in ("bflh", "st", "sm")) for s in swings])
+        return np.mean([sum(s[m]["neg"] for m in ("biceps_femoris_long", "semitendinosus", "semimembranosus")) for s in swings])
 
     assert mean_work(sprint_swings[9.0]) > 1.1 * mean_work(sprint_swings[7.0])
 
@@ -591,7 +591,7 @@ def test_peak_hamstring_force_in_late_swing(sprint_swings):
     # 80.5 +- 2.9 % of the running cycle. Late swing = swing-phase peak knee flexion to foot strike (design.md).
     for swings in sprint_swings.values():
         for s in swings:
-            for m in ("bflh", "st", "sm"):
+            for m in ("biceps_femoris_long", "semitendinosus", "semimembranosus"):
                 assert s[m]["i_peak"] >= s["late_swing_start"], m
                 assert 65.0 < s[m]["peak_pct_cycle"] < 95.0, m
 
@@ -730,7 +730,7 @@ def symmetric_pair():
         states = muscle_states(ang, rate, dims, body_mass_kg=b.mass_kg)
         res = dyn.share_swing_moments(mom, states, ang, rate)
         md = dyn.muscle_dynamics(res, rate)
-        out.append(({m: np.array([md[m].work_over(a, z + 1)[0] for a, z in windows]) for m in ("bflh", "st", "sm")},
+        out.append(({m: np.array([md[m].work_over(a, z + 1)[0] for a, z in windows]) for m in ("biceps_femoris_long", "semitendinosus", "semimembranosus")},
                     res))
     return out
 

@@ -19,7 +19,7 @@ def test_symmetry_index_formula():
     assert limb_symmetry_index(8.1, 9.0) == pytest.approx(90.0)
 
 
-def _strides(right_mean, left_mean, sd, n=8, seed=0, athlete="ZZ01", session="2026-01-05_a", muscles=("bflh", "st", "sm")):
+def _strides(right_mean, left_mean, sd, n=8, seed=0, athlete="ZZ01", session="2026-01-05_a", muscles=("biceps_femoris_long", "semitendinosus", "semimembranosus")):
     rng = np.random.default_rng(seed)
     rows = []
     for side, mean in (("right", right_mean), ("left", left_mean)):
@@ -64,7 +64,7 @@ def test_large_relative_difference_within_noise_is_not_flagged():
     strides = _strides(0.0, 0.0, 0.0, n=3)
     offsets = np.array([-3.0, 0.0, 3.0])
     for side, mean in (("right", 9.5), ("left", 8.4)):
-        for m in ("bflh", "st", "sm"):
+        for m in ("biceps_femoris_long", "semitendinosus", "semimembranosus"):
             sel = (strides["side"] == side) & (strides["muscle"] == m)
             strides.loc[sel, "peak_strain_pct"] = mean + offsets
             strides.loc[sel, "negative_work_j"] = 20.0

@@ -98,13 +98,13 @@ def test_knee_moment_arms_in_textbook_ranges_between_30_and_90_deg():
     # Textbook excerpt (references.md [verified, attribution unconfirmed]): ST 40-55 mm, SM 20-40 mm, BF about
     # 20 mm (we allow 15-30 mm), knee flexion 30-90 deg; hip at 0 deg.
     knee = np.linspace(30.0, 90.0, 61)
-    ranges = {"st": (40.0, 55.0), "sm": (20.0, 40.0), "bflh": (15.0, 30.0)}
+    ranges = {"semitendinosus": (40.0, 55.0), "semimembranosus": (20.0, 40.0), "biceps_femoris_long": (15.0, 30.0)}
     for muscle, (low, high) in ranges.items():
         r = arms_mm(muscle, 0.0, knee)[:, 3]
         assert np.all((r >= low) & (r <= high)), (muscle, r.min(), r.max())
     # Ordering ST > SM > BF at 50-90 deg (Herzog & Read 1993; Buford et al. 1997, from memory).
     mid = np.linspace(50.0, 90.0, 9)
-    st, sm, bf = (arms_mm(m, 0.0, mid)[:, 3] for m in ("st", "sm", "bflh"))
+    st, sm, bf = (arms_mm(m, 0.0, mid)[:, 3] for m in ("semitendinosus", "semimembranosus", "biceps_femoris_long"))
     assert np.all(st > sm) and np.all(sm > bf)
 
 
@@ -112,15 +112,15 @@ def test_biceps_femoris_knee_arm_roughly_constant_and_length_dominated_by_hip():
     # Visser et al. 1990 (Eur J Appl Physiol 61:453) [verified]: BF knee moment arm about constant over the knee
     # range; hip angle changes BF length much more than knee angle.
     knee = np.linspace(0.0, 90.0, 91)
-    bf = arms_mm("bflh", 0.0, knee)[:, 3]
-    st = arms_mm("st", 0.0, knee)[:, 3]
+    bf = arms_mm("biceps_femoris_long", 0.0, knee)[:, 3]
+    st = arms_mm("semitendinosus", 0.0, knee)[:, 3]
     assert bf.max() - bf.min() < 10.0  # mm, "about constant" (our threshold)
     assert (bf.max() - bf.min()) < 0.5 * (st.max() - st.min())
-    length = lambda h, k: M.musculotendon_length("bflh", h * DEG, 0.0, 0.0, k * DEG, DIMS)
+    length = lambda h, k: M.musculotendon_length("biceps_femoris_long", h * DEG, 0.0, 0.0, k * DEG, DIMS)
     assert abs(length(90, 0) - length(0, 0)) > 1.5 * abs(length(0, 90) - length(0, 0))  # same 90 deg excursion
     # and pointwise over the sprint range (hip 0-70 deg, knee 0-90 deg)
     hip_grid, knee_grid = np.meshgrid(np.linspace(0, 70, 8), np.linspace(0, 90, 10))
-    r = arms_mm("bflh", hip_grid, knee_grid)
+    r = arms_mm("biceps_femoris_long", hip_grid, knee_grid)
     assert np.all(np.abs(r[..., 0]) > np.abs(r[..., 3]))
 
 
@@ -151,7 +151,7 @@ def test_moment_arm_signs_follow_the_contract():
     for muscle in M.BIARTICULAR:
         r = arms_mm(muscle, hip, knee)
         assert np.all(r[..., 0] < 0) and np.all(r[..., 3] > 0)
-    r = arms_mm("bfsh", hip, knee)
+    r = arms_mm("biceps_femoris_short", hip, knee)
     assert np.all(r[..., :3] == 0.0) and np.all(r[..., 3] > 0)
 
 
@@ -240,7 +240,7 @@ def test_wrapped_length_is_the_shortest_path_around_the_cylinder():
     # insertion whose straight parts stay outside the cylinder, found numerically by scipy's SLSQP (independent of
     # our closed-form tangent construction).
     posture = np.deg2rad([0.0, 5.0, 10.0, 0.0])  # BFlh wraps near full extension
-    muscle = "bflh"
+    muscle = "biceps_femoris_long"
     assert M.wrap_arc_rad(muscle, *posture, DIMS) > 0
     path = M.muscle_path(muscle, DIMS)
     ox, oy, oz, ix, iy, iz = (float(v) for v in M._endpoints(path, *posture))
@@ -289,9 +289,9 @@ def test_path_never_enters_the_condylar_cylinder():
 
 def test_length_depends_on_hip_adduction_and_rotation():
     # The path is 3-D: out-of-plane hip motion changes length (issue requirement).
-    base = M.musculotendon_length("bflh", 0.5, 0.0, 0.0, 0.3, DIMS)
-    assert abs(M.musculotendon_length("bflh", 0.5, 0.2, 0.0, 0.3, DIMS) - base) > 1e-3
-    assert abs(M.musculotendon_length("bflh", 0.5, 0.0, 0.3, 0.3, DIMS) - base) > 1e-4
+    base = M.musculotendon_length("biceps_femoris_long", 0.5, 0.0, 0.0, 0.3, DIMS)
+    assert abs(M.musculotendon_length("biceps_femoris_long", 0.5, 0.2, 0.0, 0.3, DIMS) - base) > 1e-3
+    assert abs(M.musculotendon_length("biceps_femoris_long", 0.5, 0.0, 0.3, 0.3, DIMS) - base) > 1e-4
 
 
 def test_velocity_identity_matches_numerical_derivative_on_sprint():
@@ -331,7 +331,7 @@ def test_scaling_with_athlete_size():
         ratio = M.musculotendon_length(muscle, *posture, big) / M.musculotendon_length(muscle, *posture, DIMS)
         assert ratio == pytest.approx(1.1, rel=1e-12)
     longer = M.MuscleDims(DIMS.pelvis_width_m, DIMS.pelvis_depth_m, DIMS.thigh_length_m + 0.02, DIMS.shank_length_m)
-    assert M.musculotendon_length("st", 0.0, 0.0, 0.0, 0.0, longer) > M.musculotendon_length("st", 0, 0, 0, 0, DIMS)
+    assert M.musculotendon_length("semitendinosus", 0.0, 0.0, 0.0, 0.0, longer) > M.musculotendon_length("semitendinosus", 0, 0, 0, 0, DIMS)
 
 
 def test_implausible_dimensions_and_unknown_muscle_raise():
@@ -349,31 +349,31 @@ def test_implausible_dimensions_and_unknown_muscle_raise():
 def test_architecture_is_ward_2009_and_force_is_pcsa_times_specific_tension():
     # Ward et al. 2009 [verified l_opt and pennation]: BFlh 9.76 cm / 11.6 deg, ST 19.30 / 12.9, SM 6.90 / 15.1,
     # BFsh 11.03 / 12.3; PCSA from memory, sum of the three biarticular 34.5 cm^2 [verified].
-    assert M.ARCHITECTURE["bflh"].optimal_fibre_length_m == pytest.approx(0.0976)
-    assert M.ARCHITECTURE["sm"].pennation_rad == pytest.approx(np.deg2rad(15.1))
+    assert M.ARCHITECTURE["biceps_femoris_long"].optimal_fibre_length_m == pytest.approx(0.0976)
+    assert M.ARCHITECTURE["semimembranosus"].pennation_rad == pytest.approx(np.deg2rad(15.1))
     assert sum(M.ARCHITECTURE[m].pcsa_m2 for m in M.BIARTICULAR) == pytest.approx(34.5e-4)
     # Persad et al. 2024: 26.8 N/cm^2 -> BFlh 11.3 cm^2 x 26.8 = 302.84 N.
-    assert M.max_isometric_force("bflh") == pytest.approx(302.84)
-    scaled = M.max_isometric_force("bflh", body_mass_kg=2 * M.REFERENCE_BODY_MASS_KG, scale_force_to_mass=True)
+    assert M.max_isometric_force("biceps_femoris_long") == pytest.approx(302.84)
+    scaled = M.max_isometric_force("biceps_femoris_long", body_mass_kg=2 * M.REFERENCE_BODY_MASS_KG, scale_force_to_mass=True)
     assert scaled == pytest.approx(302.84 * 2 ** (2 / 3))
     with pytest.raises(HamstrideError, match="body mass"):
-        M.max_isometric_force("bflh", scale_force_to_mass=True)
+        M.max_isometric_force("biceps_femoris_long", scale_force_to_mass=True)
 
 
 def test_fibre_length_constant_thickness_and_slack_assumption():
     # Constant thickness: l sin(alpha) = l_opt sin(alpha_opt); at the reference posture the default slack length
     # puts BFlh fibres at (1 + 0.071) l_opt (Wan et al. 2017 mean peak strain, our stated assumption).
-    arch = M.ARCHITECTURE["bflh"]
-    slack = M.tendon_slack_length("bflh", DIMS)
-    ref_length = M.musculotendon_length("bflh", *M.SLACK_REFERENCE_POSTURE_RAD, DIMS)
+    arch = M.ARCHITECTURE["biceps_femoris_long"]
+    slack = M.tendon_slack_length("biceps_femoris_long", DIMS)
+    ref_length = M.musculotendon_length("biceps_femoris_long", *M.SLACK_REFERENCE_POSTURE_RAD, DIMS)
     fibre, alpha = M.fibre_length(np.array([ref_length, ref_length + 0.03]), slack, arch.optimal_fibre_length_m,
                                   arch.pennation_rad)
     assert fibre[0] / arch.optimal_fibre_length_m == pytest.approx(1.071, rel=1e-12)
     np.testing.assert_allclose(fibre * np.sin(alpha), arch.optimal_fibre_length_m * np.sin(arch.pennation_rad))
     # l/l_opt depends on the slack length: +1 cm slack lowers it by about 1 cm / l_opt (rigid tendon)
     _, _, angles = sprint_angles(1)
-    default = M.muscle_states(angles, RATE_HZ, DIMS)["bflh"]
-    shifted = M.muscle_states(angles, RATE_HZ, DIMS, tendon_slack_lengths_m={"bflh": slack + 0.01})["bflh"]
+    default = M.muscle_states(angles, RATE_HZ, DIMS)["biceps_femoris_long"]
+    shifted = M.muscle_states(angles, RATE_HZ, DIMS, tendon_slack_lengths_m={"biceps_femoris_long": slack + 0.01})["biceps_femoris_long"]
     drop = default.fibre_length_lopt.max() - shifted.fibre_length_lopt.max()
     assert drop == pytest.approx(0.01 / arch.optimal_fibre_length_m, rel=0.05)
     np.testing.assert_array_equal(default.strain, shifted.strain)  # strain does not depend on it
@@ -437,10 +437,10 @@ def test_sprint_late_swing_peak_strain_and_timing(source):
         # Nagano et al. 2014: BF maximum length at 82.8 +- 1.9 % of the cycle; accepted 75-92 % (issue).
         assert np.all((when >= 75.0) & (when <= 92.0)), (muscle, when)
     # Thelen et al. 2005: BF 9.5 %, ST 8.1 %, SM 7.4 %; Schache et al. 2013: BFlh largest. Accepted ranges (issue).
-    assert np.all((peaks["bflh"] >= 6.5) & (peaks["bflh"] <= 12.5)), peaks
-    for muscle in ("st", "sm"):
+    assert np.all((peaks["biceps_femoris_long"] >= 6.5) & (peaks["biceps_femoris_long"] <= 12.5)), peaks
+    for muscle in ("semitendinosus", "semimembranosus"):
         assert np.all((peaks[muscle] >= 4.0) & (peaks[muscle] <= 11.0)), peaks
-        assert np.all(peaks["bflh"] > peaks[muscle])
+        assert np.all(peaks["biceps_femoris_long"] > peaks[muscle])
 
 
 def test_less_hip_flexion_gives_lower_strain_beyond_the_uncertainty_band():
@@ -512,14 +512,14 @@ def test_monte_carlo_shapes_reproducibility_and_band_contains_nominal():
         if muscle in M.BIARTICULAR:
             assert (l_high - l_low) > (s_high - s_low)
     with pytest.raises(HamstrideError):
-        M.peak_band(a["bflh"][0], 10, 10)
+        M.peak_band(a["biceps_femoris_long"][0], 10, 10)
 
 
 def test_fibre_length_never_falls_as_the_unit_lengthens():
     # Constant thickness (Zajac 1989, from memory) has l = sqrt((L - L_ts)^2 + t^2), which would grow again as the
     # unit shortens below its tendon slack length. A slack tendon leaves the fibres at their shortest instead:
     # l = t = l_opt sin(alpha_opt), pennation 90 deg, and l is non-decreasing in L over the whole range.
-    arch = M.ARCHITECTURE["sm"]
+    arch = M.ARCHITECTURE["semimembranosus"]
     slack = 0.30
     mtu = np.linspace(slack - 0.06, slack + 0.10, 801)
     fibre, alpha = M.fibre_length(mtu, slack, arch.optimal_fibre_length_m, arch.pennation_rad)
@@ -564,12 +564,12 @@ def test_monte_carlo_peaks_find_a_second_peak_outside_the_searched_frames():
                 "hip_rotation": np.zeros(n), "knee_flexion": np.deg2rad(40.0 - 20.0 * wide - knee_dip_deg * narrow)}
 
     def narrow_minus_wide(knee_dip_deg):
-        length = M.musculotendon_length("bflh", *angles_for(knee_dip_deg).values(), DIMS)
+        length = M.musculotendon_length("biceps_femoris_long", *angles_for(knee_dip_deg).values(), DIMS)
         return length[t > 0.5].max() - length[t < 0.5].max()
 
     angles = angles_for(brentq(lambda d: narrow_minus_wide(d) - 5e-5, 10.0, 39.0))
     full = M.monte_carlo_lengths(angles, DIMS, n_samples=128, seed=1)
-    on_wide = t[np.argmax(full["bflh"][0], axis=1)] < 0.5
+    on_wide = t[np.argmax(full["biceps_femoris_long"][0], axis=1)] < 0.5
     assert 10 < on_wide.sum() < 118  # the case under test: samples split between the humps
     fast = M.monte_carlo_peaks(angles, [(0, n)], DIMS, n_samples=128, seed=1, margin_m=1e-5)  # narrow hump only
     for muscle in M.MUSCLES:
@@ -595,7 +595,7 @@ def test_muscle_states_fields_and_mirror_use():
     _, _, angles = sprint_angles(1)
     states = M.muscle_states(angles, RATE_HZ, DIMS, body_mass_kg=80.0, scale_force_to_mass=True)
     assert set(states) == set(M.MUSCLES)
-    st = states["bflh"]
+    st = states["biceps_femoris_long"]
     n = len(angles["hip_flexion"])
     assert st.moment_arms_m.shape == (n, 4) and st.length_m.shape == (n,)
     np.testing.assert_allclose(st.strain, st.length_m / st.upright_length_m - 1.0)
@@ -616,8 +616,8 @@ def test_muscle_table_and_plot(tmp_path):
         assert column in table.columns
     upright = M.muscle_table(0.0, 0.0, DIMS)
     np.testing.assert_allclose(upright["strain_pct"], 0.0, atol=1e-12)
-    bf = table.set_index("muscle").loc["bflh"]
-    assert bf["knee_flexion_arm_mm"] == pytest.approx(1000 * M.moment_arms("bflh", 70 * DEG, 0, 0, 30 * DEG, DIMS)[3])
+    bf = table.set_index("muscle").loc["biceps_femoris_long"]
+    assert bf["knee_flexion_arm_mm"] == pytest.approx(1000 * M.moment_arms("biceps_femoris_long", 70 * DEG, 0, 0, 30 * DEG, DIMS)[3])
     png = M.plot_moment_arms(tmp_path / "arms.png", DIMS)
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.stat().st_size > 10_000
 
@@ -627,10 +627,10 @@ def test_muscle_states_of_two_legs_equal_each_leg_alone():
     _, _, left = sprint_angles(2, hip_peak_reduction_deg=8.0)
     small = M.MuscleDims.from_height(1.70)
     both = M.muscle_states_of_legs([(right, DIMS), (left, small)], RATE_HZ, body_mass_kg=80.0,
-                                   scale_force_to_mass=True, tendon_slack_lengths_m={"st": 0.25})
+                                   scale_force_to_mass=True, tendon_slack_lengths_m={"semitendinosus": 0.25})
     for (angles, dims), together in zip([(right, DIMS), (left, small)], both):
         alone = M.muscle_states(angles, RATE_HZ, dims, body_mass_kg=80.0, scale_force_to_mass=True,
-                                tendon_slack_lengths_m={"st": 0.25})
+                                tendon_slack_lengths_m={"semitendinosus": 0.25})
         assert list(together) == list(M.MUSCLES)
         for muscle in M.MUSCLES:
             a, b = together[muscle], alone[muscle]
@@ -639,8 +639,8 @@ def test_muscle_states_of_two_legs_equal_each_leg_alone():
                 np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=f"{muscle} {name}")
             assert (a.tendon_slack_length_m, a.upright_length_m, a.max_isometric_force_n) == (
                 b.tendon_slack_length_m, b.upright_length_m, b.max_isometric_force_n)
-    assert both[0]["st"].tendon_slack_length_m == 0.25
-    assert both[0]["bflh"].tendon_slack_length_m == pytest.approx(M.tendon_slack_length("bflh", DIMS), abs=1e-15)
+    assert both[0]["semitendinosus"].tendon_slack_length_m == 0.25
+    assert both[0]["biceps_femoris_long"].tendon_slack_length_m == pytest.approx(M.tendon_slack_length("biceps_femoris_long", DIMS), abs=1e-15)
     with pytest.raises(HamstrideError):
         M.muscle_states_of_legs([(right, DIMS), ({k: v[:10] for k, v in left.items()}, small)], RATE_HZ)
 

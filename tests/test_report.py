@@ -17,7 +17,7 @@ import pytest
 from hamstride import report
 from hamstride.report import CAUTION, render_squad, render_timeline, safe_component
 
-MUSCLES = ("bflh", "st", "sm", "bfsh")
+MUSCLES = ("biceps_femoris_long", "semitendinosus", "semimembranosus", "biceps_femoris_short")
 SIDES = ("left", "right")
 EVIL = "<script>alert(1)</script>"
 TRAVERSAL = "../../outside"
@@ -87,7 +87,7 @@ def _tables(athletes=("ZZ99",), sessions=("2026-03-02_week0", "2026-01-15_pre"),
                         "peak_strain_symmetry_index_pct": np.nan, "peak_fibre_length_symmetry_index_pct": np.nan,
                         "negative_work_symmetry_index_pct": np.nan, "peak_strain_lsi_pct": 86.0,
                         "negative_work_lsi_pct": 92.0})
-        flag_rows.append({"athlete": athlete, "session": sessions[0], "side": "left", "muscle": "bflh",
+        flag_rows.append({"athlete": athlete, "session": sessions[0], "side": "left", "muscle": "biceps_femoris_long",
                           "flag": "side_asymmetry", "value": 14.0, "threshold": 10.0,
                           "message": f"left BFlh stretches 14 % less than right for {athlete}"})
         flag_rows.append({"athlete": athlete, "session": sessions[0], "side": np.nan, "muscle": np.nan,

@@ -67,7 +67,7 @@ def test_tables_follow_the_export_contract(squad_run):
                 "hip_adduction_deg", "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt",
                 "velocity_lopt_per_s", "force_n", "power_w"]:
         assert col in curves.columns, col
-    assert set(strides["muscle"]) >= {"bflh", "st", "sm"}
+    assert set(strides["muscle"]) >= {"biceps_femoris_long", "semitendinosus", "semimembranosus"}
     assert set(strides["side"]) == {"left", "right"}
     flags = pd.read_csv(out / "flags.csv")
     assert list(flags.columns) == ["athlete", "session", "side", "muscle", "flag", "value", "threshold", "message"]

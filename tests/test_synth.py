@@ -331,7 +331,7 @@ def test_asymmetry_reduces_late_swing_hip_flexion_and_knee_extension_on_one_side
     b = base.body
     angles = {k: base.angles["right"][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
     length = muscle_states(angles, base.rate_hz, MuscleDims(b.pelvis_width_m, b.pelvis_depth_m, b.thigh_length_m,
-                                                            b.shank_length_m))["bflh"].length_m
+                                                            b.shank_length_m))["biceps_femoris_long"].length_m
     t = base.time_s
     for fs, nxt in _strides(base, "right"):
         i = np.flatnonzero((t >= fs) & (t < nxt))

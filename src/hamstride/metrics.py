@@ -20,8 +20,8 @@ SYMMETRY_METRICS = {"peak_strain": "peak_strain_pct", "peak_fibre_length": "peak
                     "negative_work": "negative_work_j"}
 LSI_METRICS = {"peak_strain": "peak_strain_pct", "negative_work": "negative_work_j"}
 FLAG_COLUMNS = ["athlete", "session", "side", "muscle", "flag", "value", "threshold", "message"]
-MUSCLE_NAMES = {"bflh": "biceps femoris long head", "st": "semitendinosus", "sm": "semimembranosus",
-                "bfsh": "biceps femoris short head"}
+MUSCLE_NAMES = {"biceps_femoris_long": "biceps femoris long head", "semitendinosus": "semitendinosus", "semimembranosus": "semimembranosus",
+                "biceps_femoris_short": "biceps femoris short head"}
 
 
 @dataclass(frozen=True)
@@ -36,7 +36,7 @@ class FlagConfig:
     high_stretch_min_athletes: int = 4  # squad distribution needs at least this many athletes
     min_strides: int = 3  # fewer valid strides on a side: few_strides
     speed_low_fraction: float = 0.9  # session speed below this fraction of the athlete's best: speed_low
-    muscles: tuple[str, ...] = ("bflh", "st", "sm")  # muscles the stretch flags look at
+    muscles: tuple[str, ...] = ("biceps_femoris_long", "semitendinosus", "semimembranosus")  # muscles the stretch flags look at
 
     @classmethod
     def from_mapping(cls, data: Mapping[str, object]) -> "FlagConfig":

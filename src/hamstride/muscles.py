@@ -38,14 +38,14 @@ import pandas as pd
 
 from .errors import HamstrideError, PlausibilityError
 
-MUSCLES = ("bflh", "st", "sm", "bfsh")
-BIARTICULAR = ("bflh", "st", "sm")
+MUSCLES = ("biceps_femoris_long", "semitendinosus", "semimembranosus", "biceps_femoris_short")
+BIARTICULAR = ("biceps_femoris_long", "semitendinosus", "semimembranosus")
 ANGLE_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")
 MUSCLE_NAMES = {
-    "bflh": "biceps femoris long head",
-    "st": "semitendinosus",
-    "sm": "semimembranosus",
-    "bfsh": "biceps femoris short head",
+    "biceps_femoris_long": "biceps femoris long head",
+    "semitendinosus": "semitendinosus",
+    "semimembranosus": "semimembranosus",
+    "biceps_femoris_short": "biceps femoris short head",
 }
 
 #: Specific tension of human muscle, N/m^2: 26.8 N/cm^2 (Persad et al. 2024, J Appl Physiol 137:945).
@@ -88,10 +88,10 @@ _WARD = ("Ward et al. 2009, Clin Orthop Relat Res 467:1074: optimal fibre length
          "PCSA from memory (sum of the three biarticular 34.5 cm^2 verified)")
 #: Ward et al. 2009 (Clin Orthop Relat Res 467:1074), references.md. cm -> m, deg -> rad, cm^2 -> m^2.
 ARCHITECTURE: dict[str, Architecture] = {
-    "bflh": Architecture(0.0976, 0.0262, np.deg2rad(11.6), np.deg2rad(5.5), 11.3e-4, _WARD),
-    "st": Architecture(0.1930, 0.0412, np.deg2rad(12.9), np.deg2rad(4.9), 4.8e-4, _WARD),
-    "sm": Architecture(0.0690, 0.0183, np.deg2rad(15.1), np.deg2rad(3.4), 18.4e-4, _WARD),
-    "bfsh": Architecture(0.1103, 0.0206, np.deg2rad(12.3), np.deg2rad(3.6), 5.1e-4, _WARD),
+    "biceps_femoris_long": Architecture(0.0976, 0.0262, np.deg2rad(11.6), np.deg2rad(5.5), 11.3e-4, _WARD),
+    "semitendinosus": Architecture(0.1930, 0.0412, np.deg2rad(12.9), np.deg2rad(4.9), 4.8e-4, _WARD),
+    "semimembranosus": Architecture(0.0690, 0.0183, np.deg2rad(15.1), np.deg2rad(3.4), 18.4e-4, _WARD),
+    "biceps_femoris_short": Architecture(0.1103, 0.0206, np.deg2rad(12.3), np.deg2rad(3.6), 5.1e-4, _WARD),
 }
 
 #: Tendon slack length assumption. With a rigid tendon the fibre length follows the musculotendon length one to
@@ -104,10 +104,10 @@ ARCHITECTURE: dict[str, Architecture] = {
 #: Consequence, shown in every output: 1 cm more slack length lowers l/l_opt by 1 cm / l_opt (0.10 for BFlh).
 SLACK_REFERENCE_POSTURE_RAD = (np.deg2rad(65.0), 0.0, 0.0, np.deg2rad(25.0))
 REFERENCE_FIBRE_STRAIN: dict[str, tuple[float, float]] = {
-    "bflh": (0.071, 0.059),
-    "st": (0.070, 0.055),
-    "sm": (0.064, 0.054),
-    "bfsh": (0.0, 0.059),
+    "biceps_femoris_long": (0.071, 0.059),
+    "semitendinosus": (0.070, 0.055),
+    "semimembranosus": (0.064, 0.054),
+    "biceps_femoris_short": (0.0, 0.059),
 }
 #: One-paragraph statement of the slack-length assumption for exports and reports.
 TENDON_SLACK_NOTE = (
@@ -182,18 +182,18 @@ class MusclePath:
 #  * condylar cylinder radius in units of thigh length (about 19-22 mm);
 #  * short-head origin on the distal lateral linea aspera, relative to the knee centre in units of thigh length.
 _ORIGIN_HJC = {  # (x/PD, y/PW, z/PW)
-    "bflh": (-46.0 / 162.0, -25.0 / 261.0, -32.0 / 261.0),  # (-46, -25, -32) mm
-    "st": (-49.0 / 162.0, -25.0 / 261.0, -34.0 / 261.0),  # (-49, -25, -34) mm
-    "sm": (-44.0 / 162.0, -22.0 / 261.0, -28.0 / 261.0),  # (-44, -22, -28) mm
+    "biceps_femoris_long": (-46.0 / 162.0, -25.0 / 261.0, -32.0 / 261.0),  # (-46, -25, -32) mm
+    "semitendinosus": (-49.0 / 162.0, -25.0 / 261.0, -34.0 / 261.0),  # (-49, -25, -34) mm
+    "semimembranosus": (-44.0 / 162.0, -22.0 / 261.0, -28.0 / 261.0),  # (-44, -22, -28) mm
 }
-_ORIGIN_FEMUR = {"bfsh": (-25.0 / 441.0, 150.0 / 441.0, 15.0 / 441.0)}  # (-25, +150, +15) mm
+_ORIGIN_FEMUR = {"biceps_femoris_short": (-25.0 / 441.0, 150.0 / 441.0, 15.0 / 441.0)}  # (-25, +150, +15) mm
 _INSERTION_TIBIA = {  # units of shank length
-    "bflh": (-14.0 / 443.0, -24.0 / 443.0, 40.0 / 443.0),  # (-14, -24, +40) mm
-    "st": (-25.0 / 443.0, -45.0 / 443.0, -30.0 / 443.0),  # (-25, -45, -30) mm
-    "sm": (-20.0 / 443.0, -34.0 / 443.0, -25.0 / 443.0),  # (-20, -34, -25) mm
-    "bfsh": (-14.0 / 443.0, -24.0 / 443.0, 40.0 / 443.0),  # same fibular-head insertion as BFlh
+    "biceps_femoris_long": (-14.0 / 443.0, -24.0 / 443.0, 40.0 / 443.0),  # (-14, -24, +40) mm
+    "semitendinosus": (-25.0 / 443.0, -45.0 / 443.0, -30.0 / 443.0),  # (-25, -45, -30) mm
+    "semimembranosus": (-20.0 / 443.0, -34.0 / 443.0, -25.0 / 443.0),  # (-20, -34, -25) mm
+    "biceps_femoris_short": (-14.0 / 443.0, -24.0 / 443.0, 40.0 / 443.0),  # same fibular-head insertion as BFlh
 }
-_WRAP_RADIUS = {"bflh": 19.0 / 441.0, "st": 22.0 / 441.0, "sm": 22.0 / 441.0, "bfsh": 19.0 / 441.0}
+_WRAP_RADIUS = {"biceps_femoris_long": 19.0 / 441.0, "semitendinosus": 22.0 / 441.0, "semimembranosus": 22.0 / 441.0, "biceps_femoris_short": 19.0 / 441.0}
 
 #: Monte Carlo geometry SDs, metres per axis. Attachment points: 2 mm (assumption: "a few mm", 95 % of samples
 #: within +-4 mm per axis). Hip centre: Harrington et al. 2007 leave-one-out error 5 / 4 / 3 mm (x / y / z),
@@ -820,8 +820,8 @@ def muscle_table(hip_flexion_deg: float, knee_flexion_deg: float, dims: MuscleDi
 
 
 #: Our own colour-blind-safe palette (distinct in hue and lightness; checked under deuteranopia simulation).
-PALETTE = {"bflh": "#1b4f9c", "st": "#e08a00", "sm": "#2a9d8f", "bfsh": "#b5179e"}
-_LINESTYLES = {"bflh": "-", "st": "--", "sm": "-.", "bfsh": ":"}
+PALETTE = {"biceps_femoris_long": "#1b4f9c", "semitendinosus": "#e08a00", "semimembranosus": "#2a9d8f", "biceps_femoris_short": "#b5179e"}
+_LINESTYLES = {"biceps_femoris_long": "-", "semitendinosus": "--", "semimembranosus": "-.", "biceps_femoris_short": ":"}
 
 
 def plot_moment_arms(path, dims: MuscleDims) -> Path:
@@ -845,7 +845,7 @@ def plot_moment_arms(path, dims: MuscleDims) -> Path:
         knee_arm = moment_arms(muscle, 0.0, 0.0, 0.0, np.deg2rad(knee_deg), dims)[:, 3]
         ax_knee.plot(knee_deg, 1000.0 * knee_arm, **style)
     ax_hip.set(xlabel="hip flexion (deg), knee 0 deg", ylabel="hip extension moment arm (mm)",
-               title="hip extension moment arm (bfsh does not cross the hip)")
+               title="hip extension moment arm (BFsh does not cross the hip)")
     ax_knee.set(xlabel="knee flexion (deg), hip 0 deg", ylabel="knee flexion moment arm (mm)",
                 title="knee flexion moment arm")
     for ax in (ax_hip, ax_knee):

@@ -50,21 +50,21 @@ PALETTE = MappingProxyType({
     "reference": "#555555",
     "flag": "#a8322d",
     "ok": "#2f6b3a",
-    "muscles": MappingProxyType({"bflh": "#1b4f8a", "st": "#d9822b", "sm": "#6a3d7c", "bfsh": "#3f9f8f"}),
+    "muscles": MappingProxyType({"biceps_femoris_long": "#1b4f8a", "semitendinosus": "#d9822b", "semimembranosus": "#6a3d7c", "biceps_femoris_short": "#3f9f8f"}),
 })
 LINESTYLE = MappingProxyType({"left": "-", "right": "--"})
 MARKER = MappingProxyType({"left": "o", "right": "^"})
-MUSCLE_MARKER = MappingProxyType({"bflh": "o", "st": "s", "sm": "^", "bfsh": "D"})
+MUSCLE_MARKER = MappingProxyType({"biceps_femoris_long": "o", "semitendinosus": "s", "semimembranosus": "^", "biceps_femoris_short": "D"})
 
 SIDES = ("left", "right")
-MUSCLE_ORDER = ("bflh", "st", "sm", "bfsh")
+MUSCLE_ORDER = ("biceps_femoris_long", "semitendinosus", "semimembranosus", "biceps_femoris_short")
 MUSCLE_NAMES = MappingProxyType({
-    "bflh": "biceps femoris long head (BFlh)",
-    "st": "semitendinosus (ST)",
-    "sm": "semimembranosus (SM)",
-    "bfsh": "biceps femoris short head (BFsh)",
+    "biceps_femoris_long": "biceps femoris long head (BFlh)",
+    "semitendinosus": "semitendinosus (ST)",
+    "semimembranosus": "semimembranosus (SM)",
+    "biceps_femoris_short": "biceps femoris short head (BFsh)",
 })
-MUSCLE_SHORT = MappingProxyType({"bflh": "BFlh", "st": "ST", "sm": "SM", "bfsh": "BFsh"})
+MUSCLE_SHORT = MappingProxyType({"biceps_femoris_long": "BFlh", "semitendinosus": "ST", "semimembranosus": "SM", "biceps_femoris_short": "BFsh"})
 
 GLOSSARY = (
     ("gait cycle (%)", "0 % = foot strike of that leg, 100 % = its next foot strike."),
@@ -1390,7 +1390,7 @@ def _index_html(names: Sequence[str], links: Mapping[str, str], groups: Mapping[
         info = _athlete_info(athletes, athlete)
         sessions = _sessions_in_order(summ["session"]) if len(summ) else _sessions_in_order(
             groups["strides"].get(athlete, _empty_like(strides)).get("session", []))
-        bflh = lat[lat["muscle"].astype(str) == "bflh"] if len(lat) else lat
+        bflh = lat[lat["muscle"].astype(str) == "biceps_femoris_long"] if len(lat) else lat
         left = _summary_value(bflh, "left", "peak_strain_pct_mean") if len(bflh) else math.nan
         right = _summary_value(bflh, "right", "peak_strain_pct_mean") if len(bflh) else math.nan
         si = _first_finite(bflh, "peak_strain_symmetry_index_pct") if len(bflh) else math.nan
@@ -1404,8 +1404,8 @@ def _index_html(names: Sequence[str], links: Mapping[str, str], groups: Mapping[
             worst = float(pts["si"].iloc[i])
             worst_text = f"{worst:+.1f} ({_muscle_label(str(pts['muscle'].iloc[i]))})"
         speed = np.nanmean(_column(lat, "speed_m_s")) if np.isfinite(_column(lat, "speed_m_s")).any() else math.nan
-        n_strides = _column(lat[lat["muscle"].astype(str) == "bflh"] if len(lat) else lat, "n_strides")
-        n_text = "/".join(_fmt(_summary_value(lat[lat["muscle"].astype(str) == "bflh"], s, "n_strides"), 0)
+        n_strides = _column(lat[lat["muscle"].astype(str) == "biceps_femoris_long"] if len(lat) else lat, "n_strides")
+        n_text = "/".join(_fmt(_summary_value(lat[lat["muscle"].astype(str) == "biceps_femoris_long"], s, "n_strides"), 0)
                           for s in SIDES) if len(lat) else "–"
         latest_session = sessions[-1] if sessions else None
         fl_latest = fl[fl["session"].astype(str) == latest_session] if len(fl) and "session" in fl.columns else fl
