@@ -68,6 +68,11 @@ class GaitEvents:
     warnings: tuple[str, ...] = ()
     fallback_foot_strikes_s: dict[str, np.ndarray] = field(default_factory=dict)
     fallback_toe_offs_s: dict[str, np.ndarray] = field(default_factory=dict)
+    # the marker rule's own events (kept when the file's events or force plates replace them) and where each foot
+    # strike came from: 'markers', 'file' or 'plate' (plates.apply_plate_contacts), aligned with foot_strikes_s
+    marker_foot_strikes_s: dict[str, np.ndarray] = field(default_factory=dict)
+    marker_toe_offs_s: dict[str, np.ndarray] = field(default_factory=dict)
+    foot_strike_sources: dict[str, tuple[str, ...]] = field(default_factory=dict)
 
 
 # --------------------------------------------------------------------------------------------
@@ -629,4 +634,7 @@ def detect_events(
         warnings=tuple(warnings),
         fallback_foot_strikes_s=fallback_fs,
         fallback_toe_offs_s=fallback_to,
+        marker_foot_strikes_s={s: np.sort(marker_fs[s]) for s in SIDES} if marker_fs is not None else {},
+        marker_toe_offs_s={s: np.sort(marker_to[s]) for s in SIDES} if marker_to is not None else {},
+        foot_strike_sources={s: ("file" if method == "c3d" else "markers",) * foot_strikes[s].size for s in SIDES},
     )

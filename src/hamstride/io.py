@@ -67,6 +67,7 @@ class MarkerTrial:
     meta: Mapping[str, object] = field(default_factory=dict)
     units_in_file: str = "mm"
     lab: LabFrame | None = None
+    force_plates: tuple = ()  # plates.ForcePlate per FORCE_PLATFORM (plates.attach_force_plates)
 
     @property
     def name(self) -> str:

@@ -23,7 +23,7 @@ STRIDE_COLUMNS = [
     "peak_knee_flexion_deg", "peak_strain_pct", "peak_strain_time_pct", "peak_strain_p5_pct", "peak_strain_p95_pct",
     "peak_fibre_length_lopt", "peak_fibre_length_lopt_p5", "peak_fibre_length_lopt_p95",
     "peak_lengthening_velocity_lopt_per_s", "peak_force_n", "negative_work_j", "positive_work_j",
-    "late_swing_moments_met_pct",
+    "late_swing_moments_met_pct", "event_source",
 ]
 CURVE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "pct", "hip_flexion_deg", "hip_adduction_deg",
@@ -99,6 +99,7 @@ class Kinematics:
     speed_m_s: float
     warnings: tuple[str, ...]
     warning_codes: tuple[str, ...] = ()  # one short code per warning (errors.TrialWarning)
+    plates: object = None  # plates.PlateReport when the file has force plates
 
     @property
     def valid_strides(self) -> list:
@@ -114,12 +115,13 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     from .events import detect_events, is_treadmill, running_speed
     from .io import read_c3d
     from .landmarks import STATIC_RECOVERABLE, load_marker_map, resolve_landmarks
+    from .plates import apply_plate_contacts, attach_force_plates
     from .segments import build_body, calibrate, reconstruct_missing
     from .signal import smooth_landmarks
     from .strides import cut_strides
 
     marker_map = load_marker_map(markers)
-    trial = read_c3d(Path(path))
+    trial = attach_force_plates(read_c3d(Path(path)))
     warnings: list[TrialWarning] = list(check_marker_trial(trial, marker_map.landmarks.values()))
     calibration = None
     if static_path is not None:
@@ -148,6 +150,9 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee, min_strides=options.min_strides)
     warnings.extend(TrialWarning("event_rules", w) for w in events.warnings)
     warnings.extend(TrialWarning("event_disagreement", w) for w in events.disagreements)
+    events, plate_report = apply_plate_contacts(events, trial.force_plates, lm)
+    if plate_report is not None:
+        warnings.extend(TrialWarning("plate_contact", w) for w in plate_report.left_out)
     treadmill = bool(is_treadmill(lm))
     speed = float(running_speed(lm, events, treadmill))
     check_speed(speed, trial.name, min_speed_m_s=options.min_speed_m_s)
@@ -156,7 +161,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     warnings.extend(TrialWarning("stride_rejected", f"{s.side} stride {s.index + 1}: {s.reason}")
                     for s in strides if not s.valid)
     return Kinematics(trial, lm, filter_info, body, angles, events, tuple(strides), treadmill, speed,
-                      tuple(w.message for w in warnings), tuple(w.code for w in warnings))
+                      tuple(w.message for w in warnings), tuple(w.code for w in warnings), plate_report)
 
 
 def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
@@ -180,6 +185,8 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
         "warning_codes": list(kin.warning_codes), "software_version": __version__,
         "hip_method": kin.body.hip_method,
     }
+    if kin.plates is not None:
+        info["force_plates"] = kin.plates.as_info()
     strides, curves = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
                                      kin.speed_m_s, info)
     if options.strict:
@@ -361,6 +368,7 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
         "next_foot_strike_s": per_stride([s.next_foot_strike_s for s in strides]),
         "stride_time_s": per_stride(stride_time), "toe_off_pct": per_stride([s.toe_off_pct for s in strides]),
         "late_swing_start_pct": per_stride([s.late_swing_start_pct for s in strides]),
+        "event_source": per_stride([s.event_source for s in strides]),
         "speed_m_s": per_stride([speed] * n_str),
         "peak_hip_flexion_deg": per_stride(window_peaks(signals[:, 0], start, stop)[0]),
         "peak_knee_flexion_deg": per_stride(peak_knee),

@@ -34,6 +34,7 @@ class Stride:
     late_swing_start_pct: float  # swing-phase peak knee flexion; NaN without knee angles
     valid: bool
     reason: str                # empty when valid
+    event_source: str = "markers"  # where the foot strike and toe-off came from: 'plate', 'markers' or 'file'
 
 
 def _peak_index(y: np.ndarray, lo: int, hi: int) -> float:
@@ -70,8 +71,13 @@ def cut_strides(
     knee_flexion = knee_flexion or {}
     strides: list[Stride] = []
     for side in SIDES:
-        fs = np.sort(np.asarray(events.foot_strikes_s.get(side, ()), float))
-        fs = fs[(fs >= 0) & (fs <= last_time)]
+        fs = np.asarray(events.foot_strikes_s.get(side, ()), float)
+        order = np.argsort(fs, kind="stable")
+        default = "file" if events.method.startswith("c3d") else "markers"
+        sources = np.asarray(events.foot_strike_sources.get(side) or (default,) * fs.size, object)[order]
+        fs = fs[order]
+        inside_trial = (fs >= 0) & (fs <= last_time)
+        fs, sources = fs[inside_trial], sources[inside_trial]
         to = np.sort(np.asarray(events.toe_offs_s.get(side, ()), float))
         knee = knee_flexion.get(side)
         for i in range(fs.size - 1):
@@ -105,6 +111,7 @@ def cut_strides(
                 start_frame=int(np.ceil(t0 * rate_hz - 1e-9)), end_frame=int(np.floor(t1 * rate_hz + 1e-9)),
                 stride_time_s=float(stride_time), contact_time_s=float(contact), toe_off_pct=float(toe_pct),
                 late_swing_start_pct=float(late_pct), valid=not reasons, reason="; ".join(reasons),
+                event_source=str(sources[i]),
             ))
     return tuple(strides)
 

@@ -1018,3 +1018,395 @@ def write_demo_squad(root: str | Path) -> list[Path]:
                                travel_sign=a.travel_sign, units=a.units, seed=1000 * i + 10 * j + 9, athlete=a.code)
             written.append(static)
     return written
+
+
+# ------------------------------------------------------------------------------------------------ running feet
+# A second generator, for foot strikes and toe-offs on real feet: each foot is a rigid body whose sole is a curved
+# profile (a rounded heel pad, a flat midfoot and a rounded forefoot up to the toe tip) that rolls on the ground
+# without slipping and sinks into it by the compression of heel pad and shoe (the vertical ground reaction force
+# over a contact stiffness), with the skin markers wobbling after touchdown (soft tissue). The truth foot strike and
+# toe-off are the instants the undeformed sole first touches and last leaves the floor, which is where the
+# written force plates' vertical force rises from and falls back to zero. None of this is the event rules' own
+# model (they see markers only): touchdown is a roll onto a curved pad, not a kink in a marker's path; forefoot
+# markers sit 2-3 cm above the floor in stance; the heel has a cluster of three markers and there is no toe marker
+# by default; in some strides the forefoot marker levels off above the floor in late swing (a flat-foot landing)
+# before the heel touches.
+RUN_CONTACT_STIFFNESS_N_M = {"heel": 2.0e5, "forefoot": 3.0e5}  # pad + shoe, invented (8-12 mm at peak force)
+
+
+@dataclass(frozen=True)
+class RunSpec:
+    """What to simulate for the running-feet generator (overground or instrumented treadmill)."""
+
+    speed_m_s: float = 3.5
+    rate_hz: float = 250.0
+    duration_s: float = 3.0
+    treadmill: bool = False
+    strike: str = "auto"  # 'heel', 'forefoot' or 'auto' (heel below 5 m/s, forefoot from 5 m/s)
+    toe_marker: bool = False  # write a toe marker (most running marker sets have none)
+    heel_cluster: bool = True  # three heel markers (r.heel, r.heel.up, r.heel.side) instead of one
+    level_off_share: float = 0.35  # share of landings where the foot hovers flat just above the floor first
+    plates: str = "none"  # 'none', 'overground' (two plates in the runway) or 'treadmill' (one plate per belt half)
+    analog_rate_hz: float = 1000.0
+    force_noise_n: float = 2.0
+    noise_mm: float = 0.5
+    soft_tissue_mm: float = 2.0  # amplitude of the markers' wobble after touchdown
+    seed: int = 0
+    body: AthleteBody = _DEFAULT_BODY
+    athlete: str = "SYN02"
+
+
+@dataclass(frozen=True)
+class SimulatedPlate:
+    """A force plate as written to the file: corners in the lab (m, [4, 3]) and the vertical force (N) at the
+    analog rate."""
+
+    corners_lab_m: np.ndarray
+    vertical_force_n: np.ndarray
+
+
+@dataclass(frozen=True)
+class RunTruth:
+    """Truth of a running-feet trial: contact instants from the contact model (s from the first frame)."""
+
+    rate_hz: float
+    speed_m_s: float
+    treadmill: bool
+    strike: str
+    foot_strikes_s: Mapping[str, np.ndarray]
+    toe_offs_s: Mapping[str, np.ndarray]
+    level_off: Mapping[str, np.ndarray]  # bool per foot strike: the foot hovered above the floor before it
+    plates: tuple[SimulatedPlate, ...]
+    plate_contacts: Mapping[str, np.ndarray]  # side -> [n, 2] truth (strike, toe-off) of contacts wholly on a plate
+    markers_lab: Mapping[str, np.ndarray]  # noise-free marker paths (m)
+
+
+def _run_timing(speed: float) -> tuple[float, float]:
+    """Contact time and stride time (s) at a running speed: contact 0.245 s at 3.5 m/s falling to 0.105 s at
+    9 m/s, stride 0.72 s to 0.45 s (linear in speed between; from memory, after Weyand et al. 2000 and
+    Cavanagh & Lafortune 1980 magnitudes)."""
+    k = float(np.clip((speed - 3.5) / 5.5, -0.1, 1.2))
+    return 0.245 - 0.140 * k, 0.72 - 0.27 * k
+
+
+def _sole_profile(lf: float, n: int = 400) -> tuple[np.ndarray, np.ndarray, float]:
+    """Sole points [n, 2] (x forward, z up; foot frame, origin ankle centre), their arc length and the ankle height:
+    a heel pad arc (radius 0.13 foot length), a flat midfoot and a forefoot arc (radius 0.27 foot length, 60 deg)
+    ending at the toe tip."""
+    h_a = 0.28 * lf
+    r_h, r_f = 0.13 * lf, 0.27 * lf
+    x_h, x_m = -0.25 * lf + r_h, 0.48 * lf
+    a = np.linspace(np.pi, 1.5 * np.pi, n // 3)
+    heel = np.stack([x_h + r_h * np.cos(a), -h_a + r_h + r_h * np.sin(a)], axis=-1)
+    flat = np.stack([np.linspace(x_h, x_m, n // 3), np.full(n // 3, -h_a)], axis=-1)[1:-1]
+    b = np.linspace(1.5 * np.pi, 1.5 * np.pi + np.pi / 3, n - 2 * (n // 3) + 2)
+    fore = np.stack([x_m + r_f * np.cos(b), -h_a + r_f + r_f * np.sin(b)], axis=-1)
+    pts = np.concatenate([heel, flat, fore])
+    arc = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))])
+    return pts, arc, h_a
+
+
+def _foot_markers_local(lf: float, h_a: float, side: str, toe: bool, cluster: bool) -> dict[str, np.ndarray]:
+    """Foot markers in the foot frame (x forward, y left, z up): skin markers 2-6 cm above the sole."""
+    lat = -_RIGHT_SIGN[side]  # lab y of the lateral side: right foot lateral = -y
+    back = -0.25 * lf
+    out = {
+        "heel": np.array([back - 0.008, lat * 0.004, -h_a + 0.030]),
+        "met1": np.array([0.48 * lf, -lat * 0.033, -h_a + 0.026]),
+        "met5": np.array([0.48 * lf - 0.025, lat * 0.036, -h_a + 0.021]),
+        "ankle.lat": np.array([0.0, lat * 0.036, 0.0]),
+        "ankle.med": np.array([0.005, -lat * 0.034, 0.006]),
+    }
+    if cluster:
+        out["heel.up"] = np.array([back - 0.006, lat * 0.002, -h_a + 0.062])
+        out["heel.side"] = np.array([back + 0.030, lat * 0.037, -h_a + 0.042])
+    if toe:
+        out["toe"] = np.array([0.72 * lf, -lat * 0.012, -h_a + 0.020])
+    return out
+
+
+class _RunFoot:
+    """One foot's sagittal pose (ankle x, ankle z, pitch; pitch > 0 = toe up) over time, ground frame."""
+
+    def __init__(self, lf: float, contacts: list[dict], body_weight_n: float):
+        self.pts, self.arc, self.h_a = _sole_profile(lf)
+        self.contacts = contacts
+        self.w = body_weight_n
+        self.swings = []
+        heel_pt, met_pt = np.array([-0.25 * lf + 0.13 * lf, -self.h_a]), np.array([0.48 * lf, -self.h_a])
+        self.heel_pt, self.met_pt = heel_pt, met_pt
+        self.span = met_pt[0] - heel_pt[0]
+        for c0, c1 in zip(contacts[:-1], contacts[1:]):
+            self.swings.append(self._swing(c0, c1))
+
+    # -- stance: pitch law, rolling contact, compression
+    @staticmethod
+    def pitch(c, u):
+        return c["pitch_fun"](np.clip(u, 0.0, 1.0))
+
+    def force(self, c, u):
+        """Vertical ground reaction force (N) over stance fraction u (0 outside)."""
+        u = np.asarray(u, float)
+        inside = (u >= 0.0) & (u <= 1.0)
+        uu = np.clip(u, 0.0, 1.0)
+        impact = (uu / c["u_imp"]) * np.exp(1.0 - uu / c["u_imp"]) * (1.0 - uu)
+        return np.where(inside, self.w * (c["a_act"] * np.sin(np.pi * uu) + c["b_imp"] * impact), 0.0)
+
+    def stance_pose(self, c, t):
+        t = np.asarray(t, float)
+        u = (t - c["t0"]) / (c["t1"] - c["t0"])
+        th = self.pitch(c, u)
+        cos, sin = np.cos(th), np.sin(th)
+        rz = self.pts[None, :, 0] * sin[:, None] + self.pts[None, :, 1] * cos[:, None]  # [n, P] sole heights
+        k = np.argmin(rz, axis=1)
+        rx = self.pts[k, 0] * cos - self.pts[k, 1] * sin
+        th0 = self.pitch(c, np.zeros(1))
+        k0 = int(np.argmin(self.pts[:, 0] * np.sin(th0) + self.pts[:, 1] * np.cos(th0)))
+        x_contact = c["x_contact"] + self.arc[k] - self.arc[k0]  # rolling without slip
+        comp = self.force(c, u) / c["stiffness"]
+        return np.stack([x_contact - rx, -rz[np.arange(len(k)), k] - comp, th], axis=-1)
+
+    def sole_x(self, c) -> np.ndarray:
+        """x of every sole point over the contact (ground frame), [frames, points]."""
+        pose = self.stance_pose(c, np.linspace(c["t0"], c["t1"], 30))
+        x, th = pose[:, :1], pose[:, 2:]
+        return x + self.pts[None, :, 0] * np.cos(th) - self.pts[None, :, 1] * np.sin(th)
+
+    def _point_heights(self, pose):
+        """(x of ankle, height of heel point, height of met-head point) from (x, z, pitch)."""
+        x, z, th = pose[..., 0], pose[..., 1], pose[..., 2]
+        hz = z + self.heel_pt[0] * np.sin(th) + self.heel_pt[1] * np.cos(th)
+        mz = z + self.met_pt[0] * np.sin(th) + self.met_pt[1] * np.cos(th)
+        return np.stack([x, hz, mz], axis=-1)
+
+    def _pose_from_heights(self, q):
+        x, hz, mz = q[..., 0], q[..., 1], q[..., 2]
+        th = np.arcsin(np.clip((mz - hz) / self.span, -1.0, 1.0))
+        z = hz - self.heel_pt[0] * np.sin(th) - self.heel_pt[1] * np.cos(th)
+        return np.stack([x, z, th], axis=-1)
+
+    def _end_state(self, c, t):
+        eps = 1e-4
+        q = self._point_heights(self.stance_pose(c, np.array([t - eps, t, t + eps])))
+        return q[1], (q[2] - q[0]) / (2 * eps), (q[2] - 2 * q[1] + q[0]) / eps ** 2
+
+    def _swing(self, c0, c1):
+        """Swing from c0's toe-off to c1's strike: ankle x, heel-point and met-point heights as C2 quintic keys;
+        in a level-off landing the point that touches second hovers 2-6 mm above its touchdown height over
+        30-65 ms before the strike."""
+        t0, t1 = c0["t1"], c1["t0"]
+        q0, v0, a0 = self._end_state(c0, t0 + 1e-4)
+        q1, v1, a1 = self._end_state(c1, t1 + 1e-4)
+        dur = t1 - t0
+        apex = 0.10 + 0.025 * c1["speed"]  # heel lift in swing (m), higher when faster (invented)
+        keys = []
+        for j in range(3):
+            s, val, slope, curv = [t0], [q0[j]], [v0[j]], [a0[j]]
+            if j == 1:
+                s += [t0 + 0.45 * dur]
+                val += [apex]
+                slope += [0.0]
+                curv += [-16.0 * apex / dur ** 2]
+            elif j == 2:
+                s += [t0 + 0.5 * dur]
+                val += [0.55 * apex]
+                slope += [0.0]
+                curv += [-12.0 * apex / dur ** 2]
+            if j > 0 and c1["level_off"]:
+                hover = 1 if c1["strike"] == "heel" else 2  # the point that touches second
+                if j == 3 - hover:
+                    lvl = q1[j] + c1["hover_m"]
+                    s += [t1 - c1["hover_s"], t1 - 0.012]
+                    val += [lvl, lvl - 0.0015]
+                    slope += [-0.01, -0.08]
+                    curv += [0.0, 0.0]
+            s.append(t1)
+            val.append(q1[j])
+            slope.append(v1[j])
+            curv.append(a1[j])
+            keys.append(_QuinticKeys(s, val, slope, curv))
+        return {"t0": t0, "t1": t1, "keys": keys}
+
+    def pose(self, t):
+        t = np.asarray(t, float)
+        out = np.full((t.size, 3), np.nan)
+        for c in self.contacts:
+            m = (t >= c["t0"]) & (t <= c["t1"])
+            if m.any():
+                out[m] = self.stance_pose(c, t[m])
+        for sw in self.swings:
+            m = (t > sw["t0"]) & (t < sw["t1"])
+            if m.any():
+                q = np.stack([k(t[m]) for k in sw["keys"]], axis=-1)
+                out[m] = self._pose_from_heights(q)
+        return out
+
+    def force_at(self, t):
+        t = np.asarray(t, float)
+        return sum(self.force(c, (t - c["t0"]) / (c["t1"] - c["t0"])) for c in self.contacts)
+
+
+def _run_contacts(spec: RunSpec, rng) -> tuple[dict[str, list[dict]], str, float]:
+    """Contact timeline of both feet (ground frame), alternating, starting before t = 0."""
+    from scipy.interpolate import PchipInterpolator
+
+    strike = spec.strike if spec.strike != "auto" else ("heel" if spec.speed_m_s < 5.0 else "forefoot")
+    tc, stride = _run_timing(spec.speed_m_s)
+    v = spec.speed_m_s
+    reach = 0.22 + 0.015 * v  # foot contact ahead of the pelvis at strike (m, invented)
+    out = {s: [] for s in SIDES}
+    t = -stride * (1.0 + rng.uniform(0.0, 0.5))
+    side = "right"
+    while t < spec.duration_s + stride:
+        ct = tc * (1.0 + 0.03 * rng.standard_normal())
+        level = bool(rng.uniform() < spec.level_off_share)
+        if strike == "heel":
+            td = (rng.uniform(1.0, 3.0) if level else rng.uniform(8.0, 16.0)) * _DEG
+            keys_u, keys_p = [0.0, 0.18, 0.45, 0.75, 1.0], [td, 0.0, -1.0 * _DEG, -20.0 * _DEG, -57.0 * _DEG]
+            b_imp, u_imp = 1.0, 0.1
+        else:
+            td = -(rng.uniform(2.0, 4.0) if level else rng.uniform(7.0, 12.0)) * _DEG
+            keys_u, keys_p = [0.0, 0.3, 0.7, 1.0], [td, -2.0 * _DEG, -22.0 * _DEG, -57.0 * _DEG]
+            b_imp, u_imp = 0.3, 0.08
+        # impulse-momentum: over a step the mean vertical force is body weight (Newton's second law over a
+        # periodic step), so a_act follows from the step time and the impact bump's share
+        step = 0.5 * stride
+        uu = np.linspace(0.0, 1.0, 2001)
+        bump = np.trapezoid((uu / u_imp) * np.exp(1.0 - uu / u_imp) * (1.0 - uu), uu)
+        a_act = (step / ct - b_imp * bump) * np.pi / 2.0
+        out[side].append({
+            "t0": t, "t1": t + ct, "strike": strike, "speed": v, "level_off": level,
+            "hover_m": rng.uniform(0.002, 0.006), "hover_s": rng.uniform(0.03, 0.065),
+            "pitch_fun": PchipInterpolator(keys_u, keys_p), "a_act": a_act, "b_imp": b_imp, "u_imp": u_imp,
+            "stiffness": RUN_CONTACT_STIFFNESS_N_M[strike], "x_contact": v * t + reach,
+        })
+        t += step * (1.0 + 0.015 * rng.standard_normal())
+        side = "left" if side == "right" else "right"
+    return out, strike, stride
+
+
+def _run_plate_corners(spec: RunSpec, feet: Mapping[str, "_RunFoot"], sway: Mapping[str, float]) -> list:
+    """Plate rectangles [4, 3] in the ground frame: overground, two 0.6 x 0.4 m plates in the runway where a right
+    and a left contact near the middle of the trial land wholly; treadmill, one plate under each belt half."""
+    if spec.plates == "treadmill":
+        return [np.array([[x, y0, 0.0] for x, y0 in ((1.0, a), (-1.0, a), (-1.0, b), (1.0, b))])
+                for a, b in ((0.0, -0.45), (0.45, 0.0))]  # right half (y < 0), left half
+    corners = []
+    mid = 0.5 * spec.duration_s
+    for side in SIDES:
+        cands = [c for c in feet[side].contacts if 0.2 < c["t0"] and c["t1"] < spec.duration_s - 0.2]
+        c = min(cands, key=lambda c: abs(c["t0"] - mid))
+        xs = feet[side].sole_x(c)
+        cx = 0.5 * float(xs.min() + xs.max())
+        y = sway[side]
+        corners.append(np.array([[cx + 0.3, y + 0.2, 0.0], [cx - 0.3, y + 0.2, 0.0], [cx - 0.3, y - 0.2, 0.0],
+                                 [cx + 0.3, y - 0.2, 0.0]]))
+    return corners
+
+
+def simulate_run(spec: RunSpec = RunSpec()) -> tuple[tuple[str, ...], np.ndarray, RunTruth]:
+    """Simulate running feet (with pelvis, knee and ankle markers): (labels, xyz [F, M, 3] in the lab frame in m
+    with noise, truth with contact times and force plates)."""
+    if not 2.5 <= spec.speed_m_s <= 10.5:
+        raise ConfigError(f"speed {spec.speed_m_s} m/s is not a running speed the simulator covers (2.5-10.5 m/s)")
+    if spec.plates not in ("none", "overground", "treadmill"):
+        raise ConfigError("plates must be 'none', 'overground' or 'treadmill'")
+    rng = np.random.default_rng(spec.seed)
+    body = spec.body
+    contacts, strike, stride = _run_contacts(spec, rng)
+    n = int(round(spec.duration_s * spec.rate_hz))
+    t = np.arange(n) / spec.rate_hz
+    v = spec.speed_m_s
+    weight = body.mass_kg * GRAVITY
+    feet = {s: _RunFoot(body.foot_length_m, contacts[s], weight) for s in SIDES}
+    belt = v if spec.treadmill else 0.0
+    half_width = 0.5 * body.pelvis_width_m
+    sway = {"right": -0.09, "left": 0.09}  # foot lines either side of the midline (m, invented)
+    markers: dict[str, np.ndarray] = {}
+    lt, ls = body.thigh_length_m, body.shank_length_m
+    # pelvis: forward at the running speed, down in each stance, up in flight (about 6-9 cm, invented)
+    load = feet["right"].force_at(t) + feet["left"].force_at(t)
+    dip = np.convolve(load / weight, np.ones(15) / 15, mode="same")
+    hip_z = 0.93 * (lt + ls) + 0.06 - 0.025 * dip
+    pel_x = v * t - belt * t
+    for side in SIDES:
+        foot = feet[side]
+        pose = foot.pose(t)
+        if np.isnan(pose).any():
+            raise HamstrideError("the running timeline does not cover the whole trial", code="synth")
+        x, z, th = pose.T
+        x = x - belt * t
+        y_line = sway[side]
+        # soft tissue: markers wobble after each touchdown (20 Hz, 30 ms decay)
+        wobble = np.zeros(n)
+        for c in foot.contacts:
+            dt = t - c["t0"]
+            on = dt >= 0
+            wobble[on] += spec.soft_tissue_mm / 1000.0 * np.exp(-dt[on] / 0.03) * np.sin(2 * np.pi * 20.0 * dt[on])
+        local = _foot_markers_local(body.foot_length_m, foot.h_a, side, spec.toe_marker, spec.heel_cluster)
+        c_, s_ = np.cos(th), np.sin(th)
+        for name, p in local.items():
+            mx = x + p[0] * c_ - p[2] * s_
+            mz = z + p[0] * s_ + p[2] * c_ + (wobble if name.startswith(("heel", "met", "toe")) else 0.0)
+            markers[f"{side[0]}.{name}"] = np.stack([mx, y_line + p[1] + np.zeros(n), mz], axis=-1)
+        # knee by two-link inverse kinematics from hip to ankle (knee ahead), epicondyles either side
+        hip = np.stack([pel_x, np.full(n, y_line), hip_z], axis=-1)
+        ankle = np.stack([x, np.full(n, y_line), z], axis=-1)
+        rel = ankle[:, [0, 2]] - hip[:, [0, 2]]
+        d = np.clip(np.linalg.norm(rel, axis=1), abs(lt - ls) + 1e-3, lt + ls - 1e-3)
+        beta = np.arctan2(rel[:, 0], -rel[:, 1])
+        gamma = np.arccos(np.clip((lt * lt + d * d - ls * ls) / (2 * lt * d), -1.0, 1.0))
+        phi = beta + gamma
+        knee = hip + np.stack([lt * np.sin(phi), np.zeros(n), -lt * np.cos(phi)], axis=-1)
+        lat = -_RIGHT_SIGN[side]
+        markers[f"{side[0]}.knee.lat"] = knee + np.array([0.0, lat * 0.05, 0.0])
+        markers[f"{side[0]}.knee.med"] = knee - np.array([0.0, lat * 0.05, 0.0])
+        markers[f"{side[0]}.asis"] = np.stack([pel_x + 0.06, np.full(n, lat * half_width), hip_z + 0.09], axis=-1)
+        markers[f"{side[0]}.psis"] = np.stack([pel_x - 0.12, np.full(n, lat * 0.045), hip_z + 0.12], axis=-1)
+    labels = tuple(sorted(markers))
+    clean = np.stack([markers[k] for k in labels], axis=1)
+    noisy = clean + rng.normal(0.0, spec.noise_mm / 1000.0, clean.shape)
+    # truth events inside the trial
+    fs = {s: np.array([c["t0"] for c in contacts[s] if 0.0 <= c["t0"] <= t[-1]]) for s in SIDES}
+    to = {s: np.array([c["t1"] for c in contacts[s] if 0.0 <= c["t1"] <= t[-1]]) for s in SIDES}
+    level = {s: np.array([c["level_off"] for c in contacts[s] if 0.0 <= c["t0"] <= t[-1]]) for s in SIDES}
+    plates, on_plate = [], {s: [] for s in SIDES}
+    if spec.plates != "none":
+        n_an = int(round(n * spec.analog_rate_hz / spec.rate_hz))
+        ta = np.arange(n_an) / spec.analog_rate_hz
+        for k, corners in enumerate(_run_plate_corners(spec, feet, sway)):
+            fz = np.zeros(n_an)
+            lo, hi = corners[:, 0].min(), corners[:, 0].max()
+            ylo, yhi = corners[:, 1].min(), corners[:, 1].max()
+            for side in SIDES:
+                if not ylo < sway[side] < yhi:
+                    continue
+                for c in contacts[side]:
+                    if spec.treadmill:
+                        inside = True
+                    else:
+                        xs = feet[side].sole_x(c)
+                        inside = lo < xs.min() and xs.max() < hi
+                    if inside:
+                        fz += feet[side].force(c, (ta - c["t0"]) / (c["t1"] - c["t0"]))
+                        if 0.0 <= c["t0"] and c["t1"] <= t[-1]:
+                            on_plate[side].append((c["t0"], c["t1"]))
+            fz = fz + rng.normal(0.0, spec.force_noise_n, n_an)
+            plates.append(SimulatedPlate(corners, fz))
+    truth = RunTruth(rate_hz=spec.rate_hz, speed_m_s=v, treadmill=spec.treadmill, strike=strike, foot_strikes_s=fs,
+                     toe_offs_s=to, level_off=level, plates=tuple(plates),
+                     plate_contacts={s: np.array(sorted(on_plate[s])).reshape(-1, 2) for s in SIDES},
+                     markers_lab=dict(zip(labels, np.moveaxis(clean, 1, 0))))
+    return labels, noisy, truth
+
+
+def write_run_trial(path: str | Path, spec: RunSpec = RunSpec()) -> RunTruth:
+    """Simulate running feet and write them as a C3D file (z up, x forward, mm), with the force plates as a
+    FORCE_PLATFORM group and analog channels (type 2: Fx, Fy, Fz, Mx, My, Mz per plate) when ``spec.plates``
+    asks for them; returns the truth."""
+    from .plates import write_c3d_with_plates
+
+    labels, xyz, truth = simulate_run(spec)
+    write_c3d_with_plates(path, labels, xyz * 1000.0, spec.rate_hz, plates=truth.plates,
+                          analog_rate_hz=spec.analog_rate_hz, subject=_subject(spec.body, spec.athlete))
+    return truth
