@@ -1181,6 +1181,8 @@ class _RunFoot:
 
     def _pose_from_heights(self, q):
         x, hz, mz = q[..., 0], q[..., 1], q[..., 2]
+        if np.any(np.abs(mz - hz) > 0.98 * self.span):
+            raise HamstrideError("the simulated swing pitches the foot beyond 80 deg", code="synth")
         th = np.arcsin(np.clip((mz - hz) / self.span, -1.0, 1.0))
         z = hz - self.heel_pt[0] * np.sin(th) - self.heel_pt[1] * np.cos(th)
         return np.stack([x, z, th], axis=-1)
@@ -1191,9 +1193,20 @@ class _RunFoot:
         return q[1], (q[2] - q[0]) / (2 * eps), (q[2] - 2 * q[1] + q[0]) / eps ** 2
 
     def _swing(self, c0, c1):
+        sw = self._swing_keys(c0, c1)
+        if c1["level_off"]:
+            # a hover only where the forefoot can level off from above: no dip below the hover height before it
+            t = np.linspace(sw["t0"], sw["t1"] - c1["hover_s"], 200)
+            lvl = sw["keys"][2](np.array([sw["t1"] - c1["hover_s"]]))[0]
+            if sw["keys"][2](t).min() < lvl - 0.001:
+                c1["level_off"] = False
+                sw = self._swing_keys(c0, c1)
+        return sw
+
+    def _swing_keys(self, c0, c1):
         """Swing from c0's toe-off to c1's strike: ankle x, heel-point and met-point heights as C2 quintic keys;
-        in a level-off landing the point that touches second hovers 2-6 mm above its touchdown height over
-        30-65 ms before the strike."""
+        in a level-off landing the met-head point hovers 2-6 mm above its touchdown height over 30-65 ms before
+        the strike (the forefoot marker levels off above the floor)."""
         t0, t1 = c0["t1"], c1["t0"]
         q0, v0, a0 = self._end_state(c0, t0 + 1e-4)
         q1, v1, a1 = self._end_state(c1, t1 + 1e-4)
@@ -1207,19 +1220,17 @@ class _RunFoot:
                 val += [apex]
                 slope += [0.0]
                 curv += [-16.0 * apex / dur ** 2]
-            elif j == 2:
-                s += [t0 + 0.5 * dur]
-                val += [0.55 * apex]
+            elif j == 2:  # the foot pitched about 35 deg toe-down at the heel's highest point
+                s += [t0 + 0.45 * dur]
+                val += [apex - 0.57 * self.span]
                 slope += [0.0]
-                curv += [-12.0 * apex / dur ** 2]
-            if j > 0 and c1["level_off"]:
-                hover = 1 if c1["strike"] == "heel" else 2  # the point that touches second
-                if j == 3 - hover:
-                    lvl = q1[j] + c1["hover_m"]
-                    s += [t1 - c1["hover_s"], t1 - 0.012]
-                    val += [lvl, lvl - 0.0015]
-                    slope += [-0.01, -0.08]
-                    curv += [0.0, 0.0]
+                curv += [-16.0 * (apex - 0.57 * self.span) / dur ** 2]
+            if j == 2 and c1["level_off"]:  # the forefoot levels off above the floor, then comes down
+                lvl = q1[j] + c1["hover_m"]
+                s += [t1 - c1["hover_s"], t1 - 0.012]
+                val += [lvl, lvl - 0.0015]
+                slope += [-0.01, -0.08]
+                curv += [0.0, 0.0]
             s.append(t1)
             val.append(q1[j])
             slope.append(v1[j])
@@ -1259,7 +1270,8 @@ def _run_contacts(spec: RunSpec, rng) -> tuple[dict[str, list[dict]], str, float
     side = "right"
     while t < spec.duration_s + stride:
         ct = tc * (1.0 + 0.03 * rng.standard_normal())
-        level = bool(rng.uniform() < spec.level_off_share)
+        # a flat-foot hover before a heel-first landing (in a forefoot landing the forefoot is the first to touch)
+        level = bool(rng.uniform() < spec.level_off_share) and strike == "heel"
         if strike == "heel":
             td = (rng.uniform(1.0, 3.0) if level else rng.uniform(8.0, 16.0)) * _DEG
             keys_u, keys_p = [0.0, 0.18, 0.45, 0.75, 1.0], [td, 0.0, -1.0 * _DEG, -20.0 * _DEG, -57.0 * _DEG]
