@@ -165,3 +165,18 @@ def test_marker_rule_alone_meets_issue_13_acceptance(speed):
     fs, to = _marker_rule_errors(speed)
     assert np.median(np.abs(fs)) <= 5.0 and np.percentile(np.abs(fs), 95) <= 12.0
     assert np.median(np.abs(to)) <= 10.0 and np.percentile(np.abs(to), 95) <= 20.0
+
+
+def test_analyze_command_prints_the_marker_rule_offset(tmp_path):
+    from typer.testing import CliRunner
+
+    from hamstride.cli import app
+
+    path = tmp_path / "treadmill_plates.c3d"
+    write_run_trial(path, RunSpec(speed_m_s=9.0, plates="treadmill", treadmill=True, seed=5))
+    result = CliRunner().invoke(app, ["analyze", str(path), "--body-mass", "75", "--out", str(tmp_path / "out")])
+    assert result.exit_code == 0, result.output
+    text = " ".join(result.output.split())  # the console wraps long lines
+    assert "force plates:" in text and "marker rule minus plates: foot strike" in text
+    header = (tmp_path / "out" / "strides.csv").read_text().splitlines()[0].split(",")
+    assert header[-1] == "event_source"

@@ -173,6 +173,15 @@ def analyze_cmd(
     console.print(f"{trial.name}: {n.get('left', 0)} left and {n.get('right', 0)} right strides, "
                   f"speed {result.info['speed_m_s']:.2f} m/s, cutoff {result.info['cutoff_hz']:.1f} Hz "
                   f"({result.info['cutoff_method']}); wrote {out}/strides.csv and curves.csv")
+    plates = result.info.get("force_plates")
+    if plates:
+        offsets = plates["marker_offset_from_plates"]
+        parts = [f"{label} {o['median']:+.1f} ms (5-95 %: {o['p5']:+.1f} to {o['p95']:+.1f}, n={o['n']})"
+                 for label, o in (("foot strike", offsets["foot_strike_ms"]), ("toe-off", offsets["toe_off_ms"]))
+                 if o["n"]]
+        console.print(f"force plates: {plates['n_plate_contacts']} contact(s) timed by {plates['n_plates']} plate(s); "
+                      "marker rule minus plates: " + ("; ".join(parts) if parts else "no contact seen by both"),
+                      markup=False, highlight=False)
     for warning in result.info.get("warnings", []):
         console.print(f"[yellow]note[/] {warning}", highlight=False)
 
