@@ -44,7 +44,7 @@ LOW_FOOT_THRESHOLD_M = 0.025    # foot "low" when its lowest landmark is < 25 mm
 MIN_CONTACT_S = 0.03            # shorter low runs are noise / foot skimming the floor
 MERGE_GAP_S = 0.02              # low runs separated by less than this are one contact
 DERIVATIVE_WINDOW_S = 0.028     # Savitzky-Golay window for acceleration / jerk (about 7 frames at 250 Hz)
-STRIKE_SEARCH_S = (0.03, 0.12)  # search window around the start of the low run (before, after)
+STRIKE_SEARCH_S = (0.03, 0.06)  # search window around the start of the low run (before, after; see _strike_window)
 STRIKE_REFINE_S = (0.01, 0.03)  # floor-arrival search around the acceleration peak (before, after)
 DESCENT_ARREST_FRACTION = 0.25  # descent "arrested" at a quarter of the approach speed (design choice, no source)
 FLOOR_TOLERANCE_M = 0.005       # "on the floor" within 5 mm of its floor level: 10x a 0.5 mm noise (design choice)
@@ -297,7 +297,7 @@ def _detect_side(
     for start, end in contacts:
         # foot strike: only when the foot comes down inside the trial (the low run does not start at frame 0)
         if start > 0:
-            lo, hi = max(start - before_fs, 0), min(start + after_fs, end, n)
+            lo, hi = _strike_window(lowest, start, end, before_fs, after_fs, refine_after)
             fb = _strike_fallback(lowest, lowest_vz, lo, hi)
             impact = _strike_primary(acc, lo, hi)
             if impact is None:
@@ -350,6 +350,20 @@ def _detect_side(
         np.asarray(strikes_fb, float), np.asarray(toe_offs_fb, float)[keep], n_fallback,
     )
     return side, mask
+
+
+def _strike_window(lowest: np.ndarray, start: int, end: int, before: int, after: int, settle: int) -> tuple[int, int]:
+    """Foot-strike search window of a low run [start, end): from `before` frames ahead of it until `after` frames
+    into it, or, when the foot's lowest landmark reaches its floor level (within FLOOR_TOLERANCE_M) later than that,
+    until `settle` frames after it does. A forefoot marker that levels off just above the floor in late swing (a
+    flat-foot hover, issue 13) starts the low run long before the heel lands; the landing lies where the foot
+    actually comes down."""
+    n = lowest.size
+    hi = start + after
+    on_floor = np.flatnonzero(lowest[start:end] <= FLOOR_TOLERANCE_M)
+    if on_floor.size:
+        hi = max(hi, start + int(on_floor[0]) + settle)
+    return max(start - before, 0), min(hi, end, n)
 
 
 def _strike_fallback(lowest: np.ndarray, lowest_vz: np.ndarray, lo: int, hi: int) -> float | None:
