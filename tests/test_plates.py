@@ -6,6 +6,10 @@ not from the plate reader or the marker rules.
 """
 from __future__ import annotations
 
+import functools
+import pathlib
+import tempfile
+
 import numpy as np
 import pytest
 
@@ -142,27 +146,69 @@ def test_analyse_trial_reports_event_source_and_marker_offset(tmp_path):
     assert set(res.strides["event_source"]) == {"markers"} and "force_plates" not in res.info
 
 
-def _marker_rule_errors(speed: float, seeds=range(4)):
-    """Marker-rule events (plates removed from the file) against the generator's contact times."""
-    fs, to = [], []
-    import tempfile, pathlib
+@functools.lru_cache(maxsize=None)
+def _marker_rule_run(speed: float, seed: int, heel_map: bool = False):
+    """Generator truth and marker-rule events (no plates in the file), optionally with the heels mapped to other
+    markers of the heel cluster."""
     with tempfile.TemporaryDirectory() as tmp:
-        for seed in seeds:
-            path = pathlib.Path(tmp) / "run.c3d"
-            truth = write_run_trial(path, RunSpec(speed_m_s=speed, plates="none", seed=seed))
-            _, _, events = _events(path)
-            for side in SIDES:
-                fs.append(_nearest_errors_ms(truth.foot_strikes_s[side], events.foot_strikes_s[side]))
-                to.append(_nearest_errors_ms(truth.toe_offs_s[side], events.toe_offs_s[side]))
-    return -np.concatenate(fs), -np.concatenate(to)
+        path = pathlib.Path(tmp) / "run.c3d"
+        truth = write_run_trial(path, RunSpec(speed_m_s=speed, plates="none", seed=seed))
+        markers = None
+        if heel_map:
+            markers = pathlib.Path(tmp) / "markers.toml"
+            markers.write_text('[landmarks]\nright_heel = "r.heel.up"\nleft_heel = "l.heel.side"\n')
+        lm = resolve_landmarks(read_c3d(path), load_marker_map(markers))
+        lm, _ = smooth_landmarks(lm, keep_clusters=False)
+        return truth, detect_events(lm)
+
+
+def _marker_rule_errors(speed: float, seeds=range(4), heel_map: bool = False):
+    """(foot strike, toe-off, hover flag per foot strike): marker rule minus the generator's contact times, ms."""
+    fs, to, hover = [], [], []
+    for seed in seeds:
+        truth, events = _marker_rule_run(speed, seed, heel_map)
+        for side in SIDES:
+            fs.append(-_nearest_errors_ms(truth.foot_strikes_s[side], events.foot_strikes_s[side]))
+            to.append(-_nearest_errors_ms(truth.toe_offs_s[side], events.toe_offs_s[side]))
+            hover.append(truth.level_off[side])
+    return np.concatenate(fs), np.concatenate(to), np.concatenate(hover).astype(bool)
+
+
+def test_forefoot_levelling_off_above_the_floor_does_not_fire_in_the_air():
+    # 3.5 m/s heel-first landings where the forefoot hovers flat just above the floor for 30-150 ms first (issue 13
+    # item 7: the rule fired 56-69 ms early on such a real run); those strikes must lie within the published
+    # marker-vs-plate limits of agreement (about +/-15 ms, Handsaker et al. 2016, references.md)
+    fs, _, hover = _marker_rule_errors(3.5, seeds=range(6))
+    assert hover.sum() >= 8
+    assert np.abs(fs[hover]).max() <= 15.0
+
+
+def test_no_toe_marker_toe_off_within_published_agreement():
+    # no toe marker in the file: toe-off from the first-metatarsal marker; 95th percentile within the issue's
+    # 20 ms and every toe-off within 25 ms, at jogging and sprinting speeds
+    for speed in (3.5, 9.0):
+        _, to, _ = _marker_rule_errors(speed)
+        assert to.size >= 20
+        assert np.percentile(np.abs(to), 95) <= 20.0 and np.abs(to).max() <= 25.0
+
+
+def test_heel_cluster_any_heel_marker_mapped():
+    # a heel cluster of three markers: the heel landmark mapped to the upper (right) or the lateral (left) one
+    # still gives every foot strike within 25 ms and a median within 5 ms (measured max 22 ms at 3.5 m/s, where heel
+    # strikes run early, see the acceptance test below; 15 ms at 9 m/s)
+    for speed in (3.5, 9.0):
+        fs, _, _ = _marker_rule_errors(speed, heel_map=True)
+        assert fs.size >= 20 and np.abs(fs).max() <= 25.0 and np.median(np.abs(fs)) <= 5.0
 
 
 @pytest.mark.parametrize("speed", [3.5, 9.0])
-@pytest.mark.xfail(strict=True, reason="issue 13 item 7 not solved yet: on the running-feet generator (flat-foot "
-                   "hovers, no toe marker) the marker rule fires in the air on hovering landings and toe-off runs "
-                   "about 11-12 ms late; acceptance needs FS median <= 5 / p95 <= 12 ms, TO median <= 10 / p95 <= 20")
+@pytest.mark.xfail(strict=True, reason="issue 13 acceptance not met yet by the marker rule alone on the running-feet "
+                   "generator (no toe marker, heel cluster, flat-foot hovers): measured over 8 seeds, 3.5 m/s FS "
+                   "median 9.0 / p95 18.1 ms (heel strikes found ~12 ms early: the heel enters the 5 mm floor band "
+                   "while still descending), TO median 11.8 / p95 15.2 ms; 9 m/s FS 3.0 / 14.3 ms, TO 10.8 / 12.1 ms "
+                   "(first-metatarsal jerk peak ~11 ms after the toe leaves)")
 def test_marker_rule_alone_meets_issue_13_acceptance(speed):
-    fs, to = _marker_rule_errors(speed)
+    fs, to, _ = _marker_rule_errors(speed)
     assert np.median(np.abs(fs)) <= 5.0 and np.percentile(np.abs(fs), 95) <= 12.0
     assert np.median(np.abs(to)) <= 10.0 and np.percentile(np.abs(to), 95) <= 20.0
 
