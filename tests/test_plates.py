@@ -15,8 +15,7 @@ import pytest
 
 from hamstride.io import read_c3d
 from hamstride.landmarks import load_marker_map, resolve_landmarks
-from hamstride.plates import (CONTACT_THRESHOLD_N, apply_plate_contacts, attach_force_plates, force_contacts,
-                              has_force_plates)
+from hamstride.plates import CONTACT_THRESHOLD_N, apply_plate_contacts, attach_force_plates, force_contacts
 from hamstride.signal import smooth_landmarks
 from hamstride.synth import GRAVITY, RunSpec, simulate_run, write_run_trial
 from hamstride.events import detect_events
@@ -71,8 +70,9 @@ def test_plates_read_through_ezc3d_agree_with_the_independent_c3d_reader(tmp_pat
     c3d = pytest.importorskip("c3d")
     path = tmp_path / "run_overground_plates.c3d"
     write_run_trial(path, RunSpec(speed_m_s=9.0, plates="overground", seed=1))
-    assert has_force_plates(path)
-    trial = attach_force_plates(read_c3d(path))
+    plain = read_c3d(path)
+    assert plain.meta["force_platforms"] == 2 and plain.force_plates == ()
+    trial = attach_force_plates(plain)
     assert len(trial.force_plates) == 2
     with open(path, "rb") as fh:
         reader = c3d.Reader(fh)

@@ -551,6 +551,7 @@ def _assemble_trial(path: Path, labels: tuple[str, ...], file_xyz: np.ndarray, i
     xyz[flagged | absurd | ~finite_points(xyz)] = np.nan
     meta = _read_subject(params)
     meta["bad_coordinates"] = int(np.sum(absurd & ~flagged))
+    meta["force_platforms"] = int(_first((params.get("FORCE_PLATFORM") or {}).get("USED", {}).get("value", [0]), 0) or 0)
     with warnings.catch_warnings():  # frames with every marker missing give all-NaN slices; they are gaps
         warnings.simplefilter("ignore", RuntimeWarning)
         lab = detect_lab_frame(xyz)
@@ -758,12 +759,14 @@ def detect_lab_frame(xyz: np.ndarray) -> LabFrame:
 # --------------------------------------------------------------------------------------------------- writing
 
 def write_c3d(path: str | Path, labels: Sequence[str], xyz: np.ndarray, rate_hz: float, *, units: str = "mm",
-              events: Iterable[tuple[str, str, float]] = (), subject: Mapping[str, object] | None = None) -> Path:
+              events: Iterable[tuple[str, str, float]] = (), subject: Mapping[str, object] | None = None,
+              force_plates: Sequence = (), analog_rate_hz: float = 1000.0) -> Path:
     """Write markers to a C3D file atomically (temporary file, then rename).
 
     ``xyz`` is [frame, marker, 3] in ``units`` in the file's own axes; NaN points are written as invalid (residual -1).
     ``events`` are (label, context, time_s) with time from the first frame = 0 s. ``subject`` may hold ``name``,
-    ``body_mass_kg`` and ``height_m``.
+    ``body_mass_kg`` and ``height_m``. ``force_plates`` (plates.add_force_plates) adds type-2 force plates with
+    analog channels at ``analog_rate_hz``.
     """
     import ezc3d
 
@@ -787,6 +790,10 @@ def write_c3d(path: str | Path, labels: Sequence[str], xyz: np.ndarray, rate_hz:
             c.add_parameter("SUBJECTS", "BODY_MASS_KG", [float(subject["body_mass_kg"])])
         if subject.get("height_m"):
             c.add_parameter("SUBJECTS", "HEIGHT_M", [float(subject["height_m"])])
+    if force_plates:
+        from .plates import add_force_plates
+
+        add_force_plates(c, force_plates, xyz.shape[0], rate_hz, analog_rate_hz, units)
     with atomic_path(path, suffix=".partial.c3d") as tmp:  # ezc3d insists on a .c3d ending
         c.write(str(tmp))
     return path

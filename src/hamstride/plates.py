@@ -31,7 +31,6 @@ MERGE_PLATE_GAP_S = 0.005  # dips below the threshold shorter than this do not e
 PLATE_MARGIN_M = 0.01  # foot markers may overhang the plate edge by this much (markers sit on the skin, design choice)
 MATCH_S = 0.12  # marker events this far before a plate contact's strike or after its toe-off belong to that contact
 FOOT_LANDMARKS = ("heel", "first_metatarsal", "fifth_metatarsal", "toe_tip")
-SOURCES = ("plate", "markers", "file")
 
 
 @dataclass(frozen=True)
@@ -74,19 +73,6 @@ class PlateReport:
 
 
 # --------------------------------------------------------------------------------------------------- reading
-def has_force_plates(path: str | Path) -> bool:
-    """True when the file's parameter section names a FORCE_PLATFORM group with USED > 0 (ezc3d, header only)."""
-    import ezc3d
-
-    try:
-        c = ezc3d.c3d(str(path), extract_forceplat_data=False)
-    except Exception:  # the marker reader reports unreadable files
-        return False
-    group = c["parameters"].get("FORCE_PLATFORM", {})
-    used = group.get("USED", {}).get("value", [0])
-    return bool(len(used) and int(used[0]) > 0)
-
-
 def read_force_plates(path: str | Path, file_to_lab: np.ndarray, units: str = "mm") -> tuple[ForcePlate, ...]:
     """Force plates of a C3D file in the internal lab frame (ezc3d's force platform filter; Michaud & Begon 2021,
     ezc3d). ``file_to_lab`` is the marker trial's lab rotation and ``units`` its POINT:UNITS (corners use them).
@@ -114,8 +100,9 @@ def read_force_plates(path: str | Path, file_to_lab: np.ndarray, units: str = "m
 
 
 def attach_force_plates(trial: "MarkerTrial") -> "MarkerTrial":
-    """The trial with its force plates (``trial.force_plates``) when the file has any; unchanged otherwise."""
-    if trial.lab is None or not has_force_plates(trial.path):
+    """The trial with its force plates (``trial.force_plates``) when its FORCE_PLATFORM:USED is above 0; unchanged
+    otherwise (no second read of files without plates)."""
+    if trial.lab is None or not trial.meta.get("force_platforms"):  # FORCE_PLATFORM:USED, read with the markers
         return trial
     return replace(trial, force_plates=read_force_plates(trial.path, trial.lab.file_to_lab, trial.units_in_file))
 
@@ -257,59 +244,36 @@ def apply_plate_contacts(events: "GaitEvents", plates: Sequence[ForcePlate], lm:
 
 
 # --------------------------------------------------------------------------------------------------- writing
-def write_c3d_with_plates(path: str | Path, labels: Sequence[str], xyz: np.ndarray, rate_hz: float, *,
-                          plates: Sequence = (), analog_rate_hz: float = 1000.0, units: str = "mm",
-                          subject: Mapping[str, object] | None = None) -> Path:
-    """Write markers (file axes = lab axes, ``units``) and type-2 force plates (channels Fx, Fy, Fz, Mx, My, Mz per
-    plate, N and N.mm; corners in ``units``) to a C3D file atomically through ezc3d. Each plate needs
-    ``corners_lab_m`` [4, 3] and ``vertical_force_n`` at ``analog_rate_hz`` (upward force on the body; written as
-    the force on the plate, which points down). The corners are listed so that the plate's z axis points down."""
-    import ezc3d
+def add_force_plates(c, plates: Sequence, n_frames: int, rate_hz: float, analog_rate_hz: float, units: str) -> None:
+    """Put type-2 force plates into an ezc3d object before it is written (``io.write_c3d``): channels Fx, Fy, Fz, Mx,
+    My, Mz per plate (N, N.mm) and the FORCE_PLATFORM group (USED, TYPE, ZERO, CORNERS in ``units``, ORIGIN,
+    CHANNEL). Each plate needs ``corners_lab_m`` [4, 3] in the file's axes (ordered +x+y, -x+y, -x-y, +x-y, so the
+    plate's z axis points up) and ``vertical_force_n`` at ``analog_rate_hz`` (the upward force on the body; the Fz
+    channel holds the force on the plate, which points down)."""
+    from .io import UNIT_TO_METRES
 
-    from .io import UNIT_TO_METRES, atomic_path
-
-    xyz = np.asarray(xyz, float)
-    c = ezc3d.c3d()
-    c["parameters"]["POINT"]["RATE"]["value"] = [float(rate_hz)]
-    c["parameters"]["POINT"]["LABELS"]["value"] = tuple(labels)
-    c["parameters"]["POINT"]["UNITS"]["value"] = [units]
-    pts = np.ones((4, xyz.shape[1], xyz.shape[0]))
-    pts[:3] = xyz.transpose(2, 1, 0)
-    c["data"]["points"] = pts
-    if plates:
-        ratio = int(round(analog_rate_hz / rate_hz))
-        n_an = xyz.shape[0] * ratio
-        channels, names, corners, origins = [], [], [], []
-        for k, p in enumerate(plates, start=1):
-            fz = np.zeros(n_an)
-            f = np.asarray(p.vertical_force_n, float)[:n_an]
-            fz[:f.size] = f
-            zero = np.zeros(n_an)
-            channels += [zero, zero, -fz, zero, zero, zero]
-            names += [f"Fx{k}", f"Fy{k}", f"Fz{k}", f"Mx{k}", f"My{k}", f"Mz{k}"]
-            corners.append(np.asarray(p.corners_lab_m, float).T / UNIT_TO_METRES[units])
-            origins.append([0.0, 0.0, -40.0])
-        c["parameters"]["ANALOG"]["RATE"]["value"] = [float(ratio * rate_hz)]
-        c["parameters"]["ANALOG"]["LABELS"]["value"] = tuple(names)
-        c["parameters"]["ANALOG"]["UNITS"]["value"] = tuple(["N", "N", "N", "Nmm", "Nmm", "Nmm"] * len(plates))
-        c["data"]["analogs"] = np.stack(channels)[None, :, :]
-        n_pl = len(plates)
-        _int_parameter(c, "FORCE_PLATFORM", "USED", np.array([n_pl]))
-        _int_parameter(c, "FORCE_PLATFORM", "TYPE", np.full(n_pl, 2))
-        _int_parameter(c, "FORCE_PLATFORM", "ZERO", np.array([1, 0]))
-        c.add_parameter("FORCE_PLATFORM", "CORNERS", np.stack(corners, axis=-1))  # [3, 4, plates]
-        c.add_parameter("FORCE_PLATFORM", "ORIGIN", np.array(origins).T)  # [3, plates]
-        _int_parameter(c, "FORCE_PLATFORM", "CHANNEL", np.arange(6 * n_pl).reshape(n_pl, 6).T + 1)  # [6, plates]
-    if subject:
-        if subject.get("name"):
-            c.add_parameter("SUBJECTS", "NAMES", [str(subject["name"])])
-        if subject.get("body_mass_kg"):
-            c.add_parameter("SUBJECTS", "BODY_MASS_KG", [float(subject["body_mass_kg"])])
-        if subject.get("height_m"):
-            c.add_parameter("SUBJECTS", "HEIGHT_M", [float(subject["height_m"])])
-    with atomic_path(path, suffix=".partial.c3d") as tmp:  # ezc3d insists on a .c3d ending
-        c.write(str(tmp))
-    return Path(path)
+    ratio = int(round(analog_rate_hz / rate_hz))
+    n_an = n_frames * ratio
+    channels, names, corners = [], [], []
+    for k, p in enumerate(plates, start=1):
+        fz = np.zeros(n_an)
+        f = np.asarray(p.vertical_force_n, float)[:n_an]
+        fz[:f.size] = f
+        zero = np.zeros(n_an)
+        channels += [zero, zero, -fz, zero, zero, zero]
+        names += [f"Fx{k}", f"Fy{k}", f"Fz{k}", f"Mx{k}", f"My{k}", f"Mz{k}"]
+        corners.append(np.asarray(p.corners_lab_m, float).T / UNIT_TO_METRES[units])
+    n_pl = len(plates)
+    c["parameters"]["ANALOG"]["RATE"]["value"] = [float(ratio * rate_hz)]
+    c["parameters"]["ANALOG"]["LABELS"]["value"] = tuple(names)
+    c["parameters"]["ANALOG"]["UNITS"]["value"] = tuple(["N", "N", "N", "Nmm", "Nmm", "Nmm"] * n_pl)
+    c["data"]["analogs"] = np.stack(channels)[None, :, :]
+    _int_parameter(c, "FORCE_PLATFORM", "USED", np.array([n_pl]))
+    _int_parameter(c, "FORCE_PLATFORM", "TYPE", np.full(n_pl, 2))
+    _int_parameter(c, "FORCE_PLATFORM", "ZERO", np.array([1, 0]))
+    c.add_parameter("FORCE_PLATFORM", "CORNERS", np.stack(corners, axis=-1))  # [3, 4, plates]
+    c.add_parameter("FORCE_PLATFORM", "ORIGIN", np.tile([[0.0], [0.0], [-40.0]], (1, n_pl)))  # [3, plates], invented
+    _int_parameter(c, "FORCE_PLATFORM", "CHANNEL", np.arange(6 * n_pl).reshape(n_pl, 6).T + 1)  # [6, plates]
 
 
 def _int_parameter(c, group: str, name: str, value: np.ndarray) -> None:

@@ -1416,9 +1416,9 @@ def write_run_trial(path: str | Path, spec: RunSpec = RunSpec()) -> RunTruth:
     """Simulate running feet and write them as a C3D file (z up, x forward, mm), with the force plates as a
     FORCE_PLATFORM group and analog channels (type 2: Fx, Fy, Fz, Mx, My, Mz per plate) when ``spec.plates``
     asks for them; returns the truth."""
-    from .plates import write_c3d_with_plates
+    from .io import write_c3d
 
     labels, xyz, truth = simulate_run(spec)
-    write_c3d_with_plates(path, labels, xyz * 1000.0, spec.rate_hz, plates=truth.plates,
-                          analog_rate_hz=spec.analog_rate_hz, subject=_subject(spec.body, spec.athlete))
+    write_c3d(path, labels, xyz * 1000.0, spec.rate_hz, units="mm", subject=_subject(spec.body, spec.athlete),
+              force_plates=truth.plates, analog_rate_hz=spec.analog_rate_hz)
     return truth
