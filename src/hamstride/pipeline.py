@@ -121,7 +121,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     from .strides import cut_strides
 
     marker_map = load_marker_map(markers)
-    trial = attach_force_plates(read_c3d(Path(path)))
+    trial = read_c3d(Path(path))
     warnings: list[TrialWarning] = list(check_marker_trial(trial, marker_map.landmarks.values()))
     calibration = None
     if static_path is not None:
@@ -150,6 +150,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee, min_strides=options.min_strides)
     warnings.extend(TrialWarning("event_rules", w) for w in events.warnings)
     warnings.extend(TrialWarning("event_disagreement", w) for w in events.disagreements)
+    trial = attach_force_plates(trial)  # needs the trial's lab frame (file axes -> lab) for the plate corners
     events, plate_report = apply_plate_contacts(events, trial.force_plates, lm)
     if plate_report is not None:
         warnings.extend(TrialWarning("plate_contact", w) for w in plate_report.left_out)
