@@ -360,6 +360,9 @@ def check_c3d_header(path: str | Path) -> C3DLayout:
     float_data = bool(np.isfinite(scale) and scale < 0)
     frame_bytes = (4 * n_points + n_analog) * (4 if float_data else 2)
     in_file = max(0, size - 512 * (data_start - 1)) // max(frame_bytes, 1)
+    if 0 < promised < header_frames <= in_file:  # ezc3d reads POINT:FRAMES, the `c3d` package every frame there
+        raise bad(f"POINT:FRAMES says {promised} frames but the header's first/last frame give {header_frames} and the "
+                  "file holds them all")
     n_frames = min(promised, in_file)
     if n_frames <= 0:
         raise FileFormatError(f"the header promises {promised} frames but the file holds data for none; it was cut "
