@@ -125,7 +125,7 @@ class SprintSpec:
     include_events: bool = False  # write foot strikes / toe-offs into the C3D EVENT group
     full_body: bool = False  # add trunk, head and arm markers (UPPER_BODY_LABELS) above the pelvis
     label_prefix: str = ""  # write labels as 'PREFIX:label', as capture software does for a named subject
-    nul_padding: int = 0  # pad every parameter string (labels, units, events, subject) with this many NUL bytes
+    nul_padding: int = 0  # pad the labels and the unit with this many NUL bytes (C strings; ezc3d writes them)
     soft_tissue_mm: float = 0.0  # slow wobble of each marker on its segment (soft tissue), amplitude per axis
     seed: int = 0
     body: AthleteBody = _DEFAULT_BODY
@@ -907,12 +907,10 @@ def write_sprint_trial(path: str | Path, spec: SprintSpec = SprintSpec()) -> Spr
     events = sprint_events(truth) if spec.include_events else ()
     subject = _subject(spec.body, spec.athlete)
     units = spec.units
-    if spec.nul_padding:  # C-string padding some capture systems write (ezc3d writes the NUL bytes as given)
-        pad = "\x00" * spec.nul_padding
+    if spec.nul_padding:  # C-string padding some capture systems write (ezc3d writes these NUL bytes as given;
+        pad = "\x00" * spec.nul_padding  # padded events and subject names: tests/c3d_bytes.py writes those)
         labels = tuple(label + pad for label in labels)
         units = units + pad
-        events = [(label + pad, context + pad, t) for label, context, t in events]
-        subject = {**subject, "name": subject["name"] + pad}
     write_c3d(path, labels, xyz, spec.rate_hz, units=units, events=events, subject=subject)
     return truth
 
