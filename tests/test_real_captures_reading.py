@@ -195,3 +195,17 @@ def test_walking_full_body_is_never_called_swapped(tmp_path, vertical, travel):
     with pytest.raises(HamstrideError) as info:  # a walk is not analysed (its message belongs to issue 13 part B)
         analyse_trial(path, FAST, athlete=ATHLETE)
     assert info.value.code != "sides_swapped"
+
+
+def test_landmarks_command_shows_the_lab_axes_and_prefixed_labels(tmp_path):
+    """Shape: Y-up full-body file with prefixed labels through `hamstride landmarks` (lab axes from the landmarks)."""
+    from typer.testing import CliRunner
+
+    from hamstride.cli import app
+
+    path = tmp_path / "yup.c3d"
+    write_sprint_trial(path, SprintSpec(seed=9, full_body=True, vertical_axis="y", travel_sign=-1,
+                                        label_prefix="Ath03", duration_s=1.0))
+    result = CliRunner().invoke(app, ["landmarks", str(path)], env={"COLUMNS": "200"})
+    assert result.exit_code == 0, result.output
+    assert "vertical +y, travel -x" in result.output and "Ath03:r.asis" in result.output

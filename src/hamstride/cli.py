@@ -72,6 +72,8 @@ def landmarks_cmd(
         lm = resolve_landmarks(data, marker_map)
         problem = None
     except LandmarkError as exc:
+        if exc.code == "several_subjects":  # no table can be shown until the map names the subject
+            _fail(exc)
         problem = exc
         lm = resolve_landmarks(data, marker_map, allow_missing=tuple(marker_map.landmarks))
     from .labframe import detect_lab_frame

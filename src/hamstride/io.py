@@ -233,14 +233,18 @@ def _param_strings(value: tuple | None) -> list[str]:
 
 
 def check_c3d_header(path: str | Path) -> C3DLayout:
-    """Structural checks of a C3D file in our own code, before the native reader sees it.
+    """Screen a C3D file's header and parameters in our own code, before any reader sees it, and lay it out.
 
     Header (c3d.org): byte 0 = first parameter block (1-based), byte 1 = 0x50; 16-bit words from byte 2: number of
     points, analog samples per frame, first and last frame, max gap; scale (float, negative = float data) at byte 12,
     data start block at byte 16, frame rate (float) at byte 20. The parameter section starts with (reserved, 0x50,
-    number of parameter blocks, processor type 84/85/86). Checked: block counts and positions, every parameter record
-    inside its section, POINT:USED against the header, POINT:LABELS count, POINT:RATE > 0, POINT:SCALE and
-    POINT:DATA_START against the header, and the frames the header promises against the file size.
+    number of parameter blocks, processor type 84/85/86). Refused: what is not a C3D, parameter records that leave
+    the file or overlap (patterns known to crash ezc3d), files without markers (``no_markers``), data that start
+    inside the parameter records or beyond the file, POINT:USED against the header, too few labels, rates that are
+    not positive, POINT:FRAMES that ezc3d and the `c3d` package would read differently. Not refused (both readers
+    read them alike): parameter sections longer than their declared block count, a stale POINT:DATA_START (the
+    header's data start is used), a stale header frame count (POINT:FRAMES is used), files cut short in the data
+    (their whole frames are read; ``frames_promised`` says how many the file promised).
     Returns the :class:`C3DLayout`; raises FileFormatError (one line naming the trial and what to do) otherwise.
     """
     path = Path(path)
