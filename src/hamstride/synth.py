@@ -924,7 +924,7 @@ UPPER_BODY_SITES = {
     "head.front": (0.06, 0.70, 0.0), "head.back": (-0.13, 0.71, 0.0),
     "head.r": (-0.03, 0.68, 0.08), "head.l": (-0.03, 0.68, -0.08),
 }
-UPPER_ARM_M, FOREARM_M = 0.30, 0.27  # for a 1.80 m athlete (de Leva 1996 proportions, about 0.17 and 0.15 of height)
+UPPER_ARM_M, FOREARM_M = 0.30, 0.27  # for a 1.80 m athlete: about 0.17 and 0.15 of height (de Leva 1996; from memory)
 TRUNK_LEAN_RAD = 12.0 * _DEG  # forward lean of the trunk over the pelvis when running (common practice)
 
 
@@ -932,7 +932,8 @@ def upper_body_markers(pelvis_origin: np.ndarray, pelvis_axes: np.ndarray, thigh
                        height_m: float = 1.80) -> dict[str, np.ndarray]:
     """Trunk, head and arm markers [F, 3] (lab frame) above a pelvis pose: trunk and head lean forward with the
     pelvis; each arm swings against its own leg (the upper arm mirrors the thigh's fore-aft direction at 0.8 of its
-    swing) with the elbow bent 90 degrees. Labels: UPPER_BODY_SITES, then r./l. elbow and wrist."""
+    swing) with the elbow bent 90 degrees. Labels: UPPER_BODY_SITES, then per arm upperarm, elbow, elbow.in,
+    forearm, wrist.out, wrist.in and hand (23 markers in all, more than the legs and pelvis carry without clusters)."""
     k = height_m / 1.80
     c, s = np.cos(TRUNK_LEAN_RAD), np.sin(TRUNK_LEAN_RAD)
     out: dict[str, np.ndarray] = {}
@@ -941,12 +942,21 @@ def upper_body_markers(pelvis_origin: np.ndarray, pelvis_axes: np.ndarray, thigh
         out[label] = pelvis_origin + pelvis_axes @ local
     for side in SIDES:
         d = np.asarray(thigh_down[side], float)
+        lateral = _RIGHT_SIGN[side] * pelvis_axes[:, :, 2]  # away from the body on this side
         arm = np.stack([-0.8 * d[:, 0], d[:, 1], d[:, 2] - 0.3], axis=-1)  # swings against the leg, hangs down
         arm /= np.linalg.norm(arm, axis=1, keepdims=True)
         forearm = np.stack([-arm[:, 2], np.zeros(len(arm)), arm[:, 0]], axis=-1)  # arm turned 90 deg forward
-        elbow = out[f"{side[0]}.shoulder"] + k * UPPER_ARM_M * arm
-        out[f"{side[0]}.elbow"] = elbow
-        out[f"{side[0]}.wrist"] = elbow + k * FOREARM_M * forearm
+        s_ = side[0]
+        shoulder = out[f"{s_}.shoulder"]
+        elbow = shoulder + k * UPPER_ARM_M * arm
+        wrist = elbow + k * FOREARM_M * forearm
+        out[f"{s_}.upperarm"] = shoulder + 0.55 * k * UPPER_ARM_M * arm + 0.04 * k * lateral
+        out[f"{s_}.elbow"] = elbow + 0.035 * k * lateral
+        out[f"{s_}.elbow.in"] = elbow - 0.035 * k * lateral
+        out[f"{s_}.forearm"] = elbow + 0.5 * k * FOREARM_M * forearm + 0.03 * k * lateral
+        out[f"{s_}.wrist.out"] = wrist + 0.025 * k * lateral
+        out[f"{s_}.wrist.in"] = wrist - 0.025 * k * lateral
+        out[f"{s_}.hand"] = wrist + 0.08 * k * forearm
     return out
 
 
