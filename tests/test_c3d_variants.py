@@ -41,6 +41,7 @@ def _variants() -> dict[str, tuple[Variant, int]]:
         "mips_float": (Variant(LABELS, XYZ, processor=86), F),
         "mips_int": (Variant(LABELS, XYZ, processor=86, scale=0.1), F),
         "labels2_300": (Variant(LABELS_MANY, XYZ_MANY), 20),
+        "labels3_600": (Variant([f"q{i:03d}" for i in range(600)], RNG.uniform(-900.0, 900.0, (12, 600, 3))), 12),
         "labels2_short_chunk": (Variant(LABELS, XYZ, label_chunk=3), F),
         # LABELS running into a further parameter block: the section's block count says 1, the records need more
         "param_blocks_understated": (Variant(LABELS_MANY[:200], XYZ_MANY[:, :200], declared_param_blocks=1), 20),
