@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from hamstride.io import read_c3d
+from hamstride.labframe import to_lab_frame
 from hamstride.landmarks import load_marker_map, resolve_landmarks
 from hamstride.plates import CONTACT_THRESHOLD_N, apply_plate_contacts, attach_force_plates, force_contacts
 from hamstride.signal import smooth_landmarks
@@ -31,9 +32,15 @@ def _nearest_errors_ms(found: np.ndarray, truth: np.ndarray) -> np.ndarray:
     return 1000.0 * d[np.arange(found.size), np.argmin(np.abs(d), axis=1)]
 
 
+def _lab_trial(path, markers=None):
+    """(trial, landmarks) in the internal lab frame, as the pipeline reads them (before filtering)."""
+    trial = read_c3d(path)
+    return to_lab_frame(trial, resolve_landmarks(trial, load_marker_map(markers)))
+
+
 def _events(path):
-    trial = attach_force_plates(read_c3d(path))
-    lm = resolve_landmarks(trial, load_marker_map(None))
+    trial, lm = _lab_trial(path)
+    trial = attach_force_plates(trial)
     lm, _ = smooth_landmarks(lm, keep_clusters=False)
     return trial, lm, detect_events(lm)
 
@@ -70,7 +77,7 @@ def test_plates_read_through_ezc3d_agree_with_the_independent_c3d_reader(tmp_pat
     c3d = pytest.importorskip("c3d")
     path = tmp_path / "run_overground_plates.c3d"
     write_run_trial(path, RunSpec(speed_m_s=9.0, plates="overground", seed=1))
-    plain = read_c3d(path)
+    plain, _ = _lab_trial(path)
     assert plain.meta["force_platforms"] == 2 and plain.force_plates == ()
     trial = attach_force_plates(plain)
     assert len(trial.force_plates) == 2
@@ -157,7 +164,7 @@ def _marker_rule_run(speed: float, seed: int, heel_map: bool = False):
         if heel_map:
             markers = pathlib.Path(tmp) / "markers.toml"
             markers.write_text('[landmarks]\nright_heel = "r.heel.up"\nleft_heel = "l.heel.side"\n')
-        lm = resolve_landmarks(read_c3d(path), load_marker_map(markers))
+        _, lm = _lab_trial(path, markers)
         lm, _ = smooth_landmarks(lm, keep_clusters=False)
         return truth, detect_events(lm)
 
