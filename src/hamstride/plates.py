@@ -75,7 +75,7 @@ class PlateReport:
 # --------------------------------------------------------------------------------------------------- reading
 def read_force_plates(path: str | Path, file_to_lab: np.ndarray, units: str = "mm") -> tuple[ForcePlate, ...]:
     """Force plates of a C3D file in the internal lab frame (ezc3d's force platform filter; Michaud & Begon 2021,
-    ezc3d). ``file_to_lab`` is the marker trial's lab rotation and ``units`` its POINT:UNITS (corners use them).
+    doi:10.5281/zenodo.4553333). ``file_to_lab`` is the marker trial's lab rotation and ``units`` its POINT:UNITS (corners use them).
 
     The vertical force is the plate force along the lab's up axis, sign-free (plates report the force on the plate,
     which points down); analog channels are scaled by ezc3d (ANALOG:SCALE, GEN_SCALE, OFFSET)."""
