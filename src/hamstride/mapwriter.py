@@ -160,8 +160,9 @@ def propose_map(labels: Sequence[str]) -> ProposedMap:
     clusters = []
     for side in SIDES:
         for segment in CLUSTER_SEGMENTS:
-            members = [p for p in group if p.side == side and p.label not in used
-                       and re.fullmatch(CLUSTER_PATTERNS[segment] + _CLUSTER_INDEX, p.core)]
+            members = sorted((p for p in group if p.side == side and p.label not in used
+                              and re.fullmatch(CLUSTER_PATTERNS[segment] + _CLUSTER_INDEX, p.core)),
+                             key=lambda p: p.label)
             clusters.append(Guess(f"{side}_{segment}_cluster",
                                   tuple(shown(p) for p in members) if len(members) >= 3 else ()))
     return ProposedMap(tuple(guesses), tuple(clusters), prefix, others, keep_prefix)

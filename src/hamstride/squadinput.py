@@ -386,8 +386,8 @@ def check_marker_map(path: str | Path | None):
         raise ConfigError(f"marker map {path} is not valid TOML: {exc}", code="bad_marker_map") from None
     for key, value in data.items():
         if key not in MARKER_MAP_SECTIONS:
-            what = "section" if isinstance(value, dict) else "key"
-            raise ConfigError(f"marker map {path}: unknown {what} '{key}'{did_you_mean(key, MARKER_MAP_SECTIONS)}; "
+            what = f"section [{key}]" if isinstance(value, dict) else f"key '{key}'"
+            raise ConfigError(f"marker map {path}: unknown {what}{did_you_mean(key, MARKER_MAP_SECTIONS)}; "
                               "a marker map has a [landmarks] section (landmark = \"label\") and optionally "
                               "[clusters]", code="bad_marker_map")
         if not isinstance(value, dict):
