@@ -360,3 +360,100 @@ def test_entry_point_in_a_subprocess(tmp_path):
     assert lines == [f"error [bad_athletes] athletes.csv line 2: involved_side = 'rigth': expected left, right or "
                      "none (did you mean 'right'?)"]
     assert not (tmp_path / "o").exists()
+
+
+# ------------------------------------------------------------------------------------------ runs with real trials
+
+@pytest.fixture(scope="module")
+def real_squad(tmp_path_factory):
+    """Two listed athletes with one short invented sprint each, a broken trial, and an athlete folder that
+    athletes.csv does not list."""
+    from hamstride.synth import SprintSpec, write_sprint_trial
+
+    base = tmp_path_factory.mktemp("real")
+    root = base / "squad"
+    for k, (athlete, session) in enumerate([("QX01", "2026-02-02_return1"), ("QX02", "2026-02-02_testing"),
+                                            ("QX07", "2026-02-03_visit")]):
+        write_sprint_trial(root / athlete / session / "sprint_01.c3d",
+                           SprintSpec(duration_s=1.2, seed=40 + k, athlete=f"SUBJ{k}"))
+    (root / "QX02" / "2026-02-02_testing" / "sprint_02_cut.c3d").write_bytes(
+        (root / "QX02" / "2026-02-02_testing" / "sprint_01.c3d").read_bytes()[:3000])
+    (root / "athletes.csv").write_text(HEADER + GOOD_ROWS, encoding="utf-8")
+    config = base / "fast.toml"
+    config.write_text(FAST_CONFIG)
+    return base, root, config
+
+
+def test_unlisted_athlete_is_skipped_with_a_warning_and_failures_listed_once(real_squad, tmp_path, capsys):
+    import json
+
+    _, root, config = real_squad
+    out = tmp_path / "out"
+    code, lines, text = run(["squad", root, "--out", out, "--config", config, "--no-report", "--jobs", "2"], capsys)
+    assert code == 1 and "Traceback" not in text
+    warnings = [line for line in lines if line.startswith("warning")]
+    assert len(warnings) == 1 and "QX07" in warnings[0] and "--allow-unlisted" in warnings[0]
+    listed = [line for line in text.splitlines() if "sprint_02_cut" in line]
+    assert len(listed) == 1 and "[truncated]" in listed[0]  # listed once, its code visible
+    manifest = json.loads((out / "manifest.json").read_text())
+    status = {Path(r["file"]).parts[0] + "/" + Path(r["file"]).name: r["status"] for r in manifest["inputs"]}
+    assert status == {"QX01/sprint_01.c3d": "ok", "QX02/sprint_01.c3d": "ok", "QX02/sprint_02_cut.c3d": "failed",
+                      "QX07/sprint_01.c3d": "skipped"}
+    assert manifest["counts"]["skipped"] == 1 and "QX07" in manifest["warnings"][0]
+    assert set(pd.read_csv(out / "strides.csv")["athlete"]) == {"QX01", "QX02"}
+
+
+def test_allow_unlisted_analyses_the_unlisted_athlete(real_squad, tmp_path, capsys):
+    _, root, config = real_squad
+    out = tmp_path / "out"
+    code, lines, text = run(["squad", root, "--out", out, "--config", config, "--no-report", "--jobs", "2",
+                             "--allow-unlisted"], capsys)
+    assert code == 1 and "analysed without body data" in text
+    assert set(pd.read_csv(out / "strides.csv")["athlete"]) == {"QX01", "QX02", "QX07"}
+
+
+def test_timeline_athlete_code_ignores_letter_case(real_squad, tmp_path, capsys):
+    _, root, config = real_squad
+    code, _, text = run(["timeline", root, "--athlete", "qx01", "--out", tmp_path / "out", "--config", config,
+                         "--jobs", "1"], capsys)
+    assert code == 0, text
+    assert "timeline of QX01" in text and (tmp_path / "out" / "timeline_QX01.csv").exists()
+
+
+def test_analyze_outside_the_squad_layout_names_from_subject_or_file(real_squad, tmp_path, capsys):
+    """Unrelated parent folders never name the athlete or session: the options, else the C3D subject name, else
+    the file name."""
+    from hamstride.io import read_c3d, write_c3d
+
+    _, root, config = real_squad
+    source = root / "QX01" / "2026-02-02_return1" / "sprint_01.c3d"
+    loose = tmp_path / "downloads" / "2026-02-02_misc" / "my_run.c3d"  # looks dated, but no squad around it
+    loose.parent.mkdir(parents=True)
+    loose.write_bytes(source.read_bytes())
+    trial = read_c3d(source)
+    nameless = write_c3d(tmp_path / "downloads" / "no_subject.c3d", list(trial.labels), trial.xyz * 1000.0,
+                         trial.rate_hz, units="mm")
+
+    def names(argv):
+        out = tmp_path / f"out{len(list(tmp_path.glob('out*')))}"
+        code, _, text = run(["analyze", *argv, "--out", out, "--config", config], capsys)
+        assert code == 0, text
+        strides = pd.read_csv(out / "strides.csv", dtype=str)
+        return strides["athlete"].iloc[0], strides["session"].iloc[0]
+
+    assert names([loose]) == ("SUBJ0", "my_run")
+    assert names([loose, "--athlete", "QX01", "--session", "2026-02-02_return1"]) == ("QX01", "2026-02-02_return1")
+    assert names([nameless]) == ("no_subject", "no_subject")
+    assert names([source]) == ("QX01", "2026-02-02_return1")  # inside the squad layout: its folders
+
+
+def test_messages_print_literally(real_squad, tmp_path, capsys):
+    """Error codes in brackets and the TOML section name [landmarks] reach the screen (issue 13 item 9)."""
+    _, root, _ = real_squad
+    markers = tmp_path / "markers.toml"
+    markers.write_text('[landmarks]\nright_heel = "R_HEEL_X"\n')
+    code, lines, text = run(["landmarks", root / "QX01" / "2026-02-02_return1" / "sprint_01.c3d", "--markers",
+                             markers], capsys)
+    assert code == 1 and len(lines) == 1
+    assert lines[0].startswith("error [landmark_missing]") and "([landmarks] section)" in lines[0]
+    assert "R_HEEL_X" in text
