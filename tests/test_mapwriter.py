@@ -153,3 +153,18 @@ def test_write_map_command_end_to_end(style, tmp_path, capsys):
         np.testing.assert_array_equal(got.points[landmark], expected.points[landmark])
     for cluster in DEFAULT_CLUSTERS:
         np.testing.assert_array_equal(got.clusters[cluster], expected.clusters[cluster])
+
+
+@pytest.mark.parametrize("labels", [
+    # invented styles beyond the three above: words with the side first, camel case, side last
+    ["R_FemLatEpi", "R_FemMedEpi", "R_MallLat", "R_MallMed", "R_Calc", "R_MH1", "R_5MT", "R_Hallux", "R_ASIS",
+     "R_PSIS"],
+    ["RightKneeLateral", "RightKneeMedial", "RightAnkleLateral", "RightAnkleMedial", "RightHeel", "RightMet1",
+     "RightMet5", "RightToe", "RightAsis", "RightPsis"],
+    ["KNEE_R", "KNEE_MED_R", "ANKLE_R", "ANKLE_MED_R", "HEEL_R", "MT1_R", "MT5_R", "TOE_R", "ASIS_R", "PSIS_R"],
+], ids=["words", "camel", "side_last"])
+def test_other_label_styles(labels):
+    sites = ("lateral_epicondyle", "medial_epicondyle", "lateral_malleolus", "medial_malleolus", "heel",
+             "first_metatarsal", "fifth_metatarsal", "toe_tip", "asis", "psis")
+    proposal = propose_map(labels)
+    assert {site: proposal.label_of(f"right_{site}") for site in sites} == dict(zip(sites, labels))

@@ -38,13 +38,13 @@ SITE_PATTERNS: dict[str, list[tuple[str, float]]] = {
              (r"asis", 1.0)],
     "psis": [(rf"{_POST}{_SUP}{_ILIAC}?{_SPINE}", 0.9), (rf"{_ILIAC}{_POST}{_SUP}{_SPINE}", 0.9),
              (r"psis", 1.0)],
-    "lateral_epicondyle": [(rf"{_KNEE}{_LAT}", 0.9), (rf"{_LAT}{_KNEE}", 0.9), (_KNEE, 0.6),
+    "lateral_epicondyle": [(rf"{_KNEE}+{_LAT}{_KNEE}*", 0.9), (rf"{_LAT}{_KNEE}+", 0.9), (_KNEE, 0.6),
                            (r"lateralepicondyle|latepicondyle|lep|lfe|lfec", 1.0)],
-    "medial_epicondyle": [(rf"{_KNEE}{_MED}", 0.9), (rf"{_MED}{_KNEE}", 0.9),
+    "medial_epicondyle": [(rf"{_KNEE}+{_MED}{_KNEE}*", 0.9), (rf"{_MED}{_KNEE}+", 0.9),
                           (r"medialepicondyle|medepicondyle|mep|mfe|mfec", 1.0)],
-    "lateral_malleolus": [(rf"{_ANKLE}{_LAT}", 0.9), (rf"{_LAT}{_ANKLE}", 0.9), (_ANKLE, 0.6),
+    "lateral_malleolus": [(rf"{_ANKLE}+{_LAT}{_ANKLE}*", 0.9), (rf"{_LAT}{_ANKLE}+", 0.9), (_ANKLE, 0.6),
                           (r"lateralmalleolus|latmalleolus|lmal|lm", 1.0)],
-    "medial_malleolus": [(rf"{_ANKLE}{_MED}", 0.9), (rf"{_MED}{_ANKLE}", 0.9),
+    "medial_malleolus": [(rf"{_ANKLE}+{_MED}{_ANKLE}*", 0.9), (rf"{_MED}{_ANKLE}+", 0.9),
                          (r"medialmalleolus|medmalleolus|mmal|mm", 1.0)],
     "heel": [(r"heel|hee|hel|calcaneus|calcaneum|calc|cal|ca", 0.9)],
     "first_metatarsal": [(rf"{_MT}(1|i|one|first){_HEAD}", 0.9), (rf"(1|first)(st)?{_MT}{_HEAD}", 0.9),
@@ -184,8 +184,9 @@ def map_toml(proposal: ProposedMap, source: str, version: str = "") -> str:
         lines.append(f"# The labels in the file carry the subject prefix '{proposal.prefix}'; the map names them "
                      "without it, so it serves every athlete.")
     if proposal.keep_prefix:
-        lines.append(f"# The file holds the markers of several subjects ({', '.join([proposal.prefix, *proposal.other_prefixes])});"
-                     f" this map names the labels of '{proposal.prefix}'.")
+        subjects = ", ".join([proposal.prefix, *proposal.other_prefixes])
+        lines.append(f"# The file holds the markers of several subjects ({subjects}); this map names the labels "
+                     f"of '{proposal.prefix}'.")
     lines += ["", "[landmarks]"]
     for guess in proposal.landmarks:
         optional = guess.name.endswith(OPTIONAL_SITES)

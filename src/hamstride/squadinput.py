@@ -142,7 +142,8 @@ def read_athletes(path: str | Path) -> pd.DataFrame:
     (letter case ignored); ``body_mass_kg`` (30-200) and ``height_m`` (1.20-2.30) are numbers or empty (unknown:
     the mass then comes from the C3D file); ``sex`` is male or female (m/f); ``involved_side`` is left, right or
     none (empty = none); ``injury_date`` is YYYY-MM-DD or empty; ``strength_factor`` is a positive number
-    (0.1-10; empty = 1). Blank lines are ignored. Raises ConfigError naming the line, column, value and rule.
+    (0.1-10; empty or no column = 1; always in the table returned). Blank lines are ignored. Raises ConfigError
+    naming the line, column, value and rule.
     """
     path = Path(path)
     text = read_input_text(path, "athletes table")
@@ -213,10 +214,9 @@ def _athlete_record(cells: Mapping[str, str], path: Path, line: int, seen: dict[
     record["involved_side"] = side
     injury = cells.get("injury_date", "")
     record["injury_date"] = _iso_date(injury, path, line, "injury_date") if injury else np.nan
-    if "strength_factor" in cells:
-        factor = cells["strength_factor"]
-        record["strength_factor"] = (_number(factor, path, line, "strength_factor", *STRENGTH_FACTOR_RANGE,
-                                             "a positive factor") if factor else 1.0)
+    factor = cells.get("strength_factor", "")  # always in the table: 1 when the column or the cell is empty
+    record["strength_factor"] = (_number(factor, path, line, "strength_factor", *STRENGTH_FACTOR_RANGE,
+                                         "a positive factor") if factor else 1.0)
     return record
 
 
