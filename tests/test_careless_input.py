@@ -285,6 +285,8 @@ def test_athlete_codes_match_without_letter_case(tmp_path):
     assert match_athlete(" Qx02 ", ["QX01", "QX02"], tmp_path) == "QX02"
     with pytest.raises(ConfigError, match="QX01, QX02"):
         match_athlete("QX03", ["QX01", "QX02"], tmp_path)
+    with pytest.raises(ConfigError, match="QX03 is in athletes.csv but has no trials"):
+        match_athlete("qx03", ["QX01", "QX02"], tmp_path, ["QX01", "QX02", "QX03"])
 
 
 # ------------------------------------------------------------------------------------------ single files

@@ -329,7 +329,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     layout, all_jobs = discover_squad(root, markers, allow_unlisted=allow_unlisted, exclude=(out,))
     athletes = layout.athletes
     if athlete_filter is not None:
-        athlete_filter = match_athlete(athlete_filter, layout.athlete_codes(), root)
+        athlete_filter = match_athlete(athlete_filter, layout.athlete_codes(), root, athletes["athlete"])
         all_jobs = [j for j in all_jobs if j.athlete == athlete_filter]
     jobs = jobs or os.cpu_count() or 1
     cache = out / CACHE_DIR

@@ -388,7 +388,7 @@ def timeline_cmd(
 
     try:
         cfg, layout = _check_squad_inputs(root, out, markers, config, allow_unlisted)
-        code = match_athlete(athlete, layout.athlete_codes(), root)
+        code = match_athlete(athlete, layout.athlete_codes(), root, layout.athletes["athlete"])
         run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=False, athlete_filter=code,
                         write_outputs=False, allow_unlisted=allow_unlisted)
     except HamstrideError as exc:

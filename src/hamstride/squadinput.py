@@ -355,15 +355,18 @@ def scan_squad(root: str | Path, *, allow_unlisted: bool = False, exclude: Itera
     return layout
 
 
-def match_athlete(requested: str, codes: Iterable[str], root: str | Path) -> str:
-    """The athlete code matching ``requested`` without regard to letter case, or a ConfigError listing the codes."""
+def match_athlete(requested: str, codes: Iterable[str], root: str | Path, listed: Iterable[str] = ()) -> str:
+    """The athlete code (of those with trials) matching ``requested`` without regard to letter case, or a
+    ConfigError listing the codes; ``listed`` (athletes.csv's codes) tells a listed athlete without trials apart."""
     codes = list(codes)
     by_case = {c.lower(): c for c in codes}
     found = by_case.get(requested.strip().lower())
     if found is None:
         known = ", ".join(codes) if codes else "none"
-        raise ConfigError(f"no athlete '{requested}' with trials in {root}{did_you_mean(requested, codes)}; "
-                          f"athletes with trials: {known}", code="unknown_athlete")
+        listed_code = {str(c).lower(): str(c) for c in listed}.get(requested.strip().lower())
+        what = (f"athlete {listed_code} is in athletes.csv but has no trials in {root}" if listed_code
+                else f"no athlete '{requested}' with trials in {root}{did_you_mean(requested, codes)}")
+        raise ConfigError(f"{what}; athletes with trials: {known}", code="unknown_athlete")
     return found
 
 
