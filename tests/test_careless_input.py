@@ -447,6 +447,10 @@ def test_analyze_outside_the_squad_layout_names_from_subject_or_file(real_squad,
     assert names([loose, "--athlete", "QX01", "--session", "2026-02-02_return1"]) == ("QX01", "2026-02-02_return1")
     assert names([nameless]) == ("no_subject", "no_subject")
     assert names([source]) == ("QX01", "2026-02-02_return1")  # inside the squad layout: its folders
+    # ... and that athlete's row of athletes.csv (letter case of the folder aside)
+    code, session, row = cli._trial_athlete(source, "SUBJ0", None, None, read_athletes(root / "athletes.csv"))
+    assert (code, session, row["body_mass_kg"], row["sex"]) == ("QX01", "2026-02-02_return1", 74.0, "male")
+    assert cli._squad_of(loose) is None and cli._squad_of(source) == root.resolve()
 
 
 def test_messages_print_literally(real_squad, tmp_path, capsys):

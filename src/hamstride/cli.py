@@ -200,30 +200,42 @@ def muscles_cmd(
         table.add_row(*[f"{v:.3g}" if isinstance(v, float) else str(v) for v in row])
     console.print(table)
     say("Moment arms by tendon excursion, r = -dL/dtheta: negative at the hip = extensor, positive at the "
-                  "knee = flexor. Strain is relative to standing upright (hip 0, knee 0 deg).")
+        "knee = flexor. Strain is relative to standing upright (hip 0, knee 0 deg).")
     if plot is not None:
         say(f"wrote {plot_moment_arms(plot, dims)}")
 
 
-def _trial_names(trial: Path, subject: object, athlete: str | None, session: str | None) -> tuple[str, str]:
-    """Athlete and session of a single trial: the options; else, inside a squad folder (ROOT/athletes.csv,
-    ROOT/ATHLETE/YYYY-MM-DD_name/trial.c3d), the folder names; else the C3D subject name and the file name.
-    Unrelated parent folders never name anything."""
+def _squad_of(trial: Path) -> Path | None:
+    """The squad folder around a trial (ROOT/athletes.csv, ROOT/ATHLETE/YYYY-MM-DD_name/trial.c3d), or None."""
     from .squadinput import session_date
 
     session_dir = trial.resolve().parent
-    in_squad = session_date(session_dir.name) is not None and (session_dir.parent.parent / "athletes.csv").is_file()
-    if in_squad:
-        return athlete or session_dir.parent.name, session or session_dir.name
-    return athlete or (str(subject).strip() if subject and str(subject).strip() else trial.stem), session or trial.stem
+    root = session_dir.parent.parent
+    return root if session_date(session_dir.name) is not None and (root / "athletes.csv").is_file() else None
+
+
+def _trial_athlete(trial: Path, subject: object, athlete: str | None, session: str | None, athletes):
+    """Athlete code, session name and athletes.csv row (or None) of a single trial: the options; else, inside a
+    squad folder (``athletes``: its athletes.csv, else None), the folder names and that athlete's row; else the
+    C3D subject name and the file name. Unrelated parent folders never name anything."""
+    if athletes is None:
+        named = str(subject).strip() if subject is not None and str(subject).strip() else trial.stem
+        return athlete or named, session or trial.stem, None
+    folder = trial.resolve().parent
+    code = athlete or folder.parent.name
+    rows = athletes[athletes["athlete"].str.lower() == code.lower()]
+    row = rows.iloc[0].to_dict() if not rows.empty else None
+    return (row["athlete"] if row else code), session or folder.name, row
 
 
 @app.command("analyze")
 def analyze_cmd(
     trial: Path = typer.Argument(..., help="A C3D sprint trial."),
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
-    body_mass: Optional[float] = typer.Option(None, "--body-mass", help="Body mass in kg (needed for forces and work)."),
-    sex: str = typer.Option("male", "--sex", help="male or female (segment inertia, de Leva 1996)."),
+    body_mass: Optional[float] = typer.Option(None, "--body-mass", help="Body mass in kg (needed for forces and work; "
+                                              "default: athletes.csv inside a squad folder, else the C3D file)."),
+    sex: Optional[str] = typer.Option(None, "--sex", help="male or female (segment inertia, de Leva 1996; "
+                                      "default: athletes.csv inside a squad folder, else male)."),
     static: Optional[Path] = typer.Option(None, "--static", help="Static standing trial for calibration."),
     cutoff: Optional[float] = typer.Option(None, "--cutoff", help="Low-pass cutoff in Hz (default: residual analysis)."),
     config: Optional[Path] = typer.Option(None, "--config", help="TOML config; see `hamstride config`."),
@@ -245,7 +257,7 @@ def analyze_cmd(
     from .io import atomic_write_text, read_c3d_isolated
     from .pipeline import AthleteInfo, analyse_trial
     from .settings import load_config, settings_of
-    from .squadinput import BODY_MASS_RANGE_KG, SEXES, check_marker_map, require_file
+    from .squadinput import BODY_MASS_RANGE_KG, SEXES, check_marker_map, read_athletes, require_file
 
     try:  # every input first: a usage error writes nothing
         require_file(trial, "trial")
@@ -258,19 +270,25 @@ def analyze_cmd(
         if body_mass is not None and not BODY_MASS_RANGE_KG[0] <= body_mass <= BODY_MASS_RANGE_KG[1]:
             raise ConfigError(f"--body-mass {body_mass:g}: expected kg between {BODY_MASS_RANGE_KG[0]:g} and "
                               f"{BODY_MASS_RANGE_KG[1]:g}", code="usage")
-        if sex.strip().lower() not in SEXES:
+        if sex is not None and sex.strip().lower() not in SEXES:
             raise ConfigError(f"--sex {sex}: expected male or female", code="usage")
         if out.exists() and not out.is_dir():
             raise ConfigError(f"--out {out} is a file; give a folder", code="usage")
+        squad = _squad_of(trial)
+        athletes = read_athletes(squad / "athletes.csv") if squad is not None else None
     except HamstrideError as exc:
         _fail(exc)
     try:
         data = read_c3d_isolated(trial)  # a native reader crash becomes an error message, not a dead process
         if static is not None:
             read_c3d_isolated(static)
-        athlete_code, session_name = _trial_names(trial, data.meta.get("subject"), athlete, session)
-        info = AthleteInfo(athlete=athlete_code, session=session_name, body_mass_kg=body_mass,
-                           sex=SEXES[sex.strip().lower()])
+        athlete_code, session_name, row = _trial_athlete(trial, data.meta.get("subject"), athlete, session,
+                                                            athletes)
+        known = {} if row is None else {k: row[k] for k in ("body_mass_kg", "height_m") if row[k] == row[k]}
+        info = AthleteInfo(athlete=athlete_code, session=session_name,
+                           body_mass_kg=body_mass if body_mass is not None else known.get("body_mass_kg"),
+                           height_m=known.get("height_m"),
+                           sex=SEXES[sex.strip().lower()] if sex is not None else (row or {}).get("sex", "male"))
         result = analyse_trial(trial, cfg.analysis, athlete=info, static_path=static, markers=markers)
     except HamstrideError as exc:
         _fail(exc, EXIT_TRIALS_FAILED)
