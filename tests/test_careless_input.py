@@ -89,6 +89,7 @@ ATHLETES_CASES = {
     "empty_file": ("", ["athletes table", "is empty"]),
     "blank_lines_only": ("\n\n  \n", ["is empty"]),
     "binary_file": (b"PK\x03\x04\x14\x00\x06\x00" + bytes(range(256)) * 4, ["not a text file"]),
+    "utf16": ((HEADER + GOOD_ROWS).encode("utf-16"), ["UTF-16", "UTF-8"]),
     "not_utf8": (HEADER.encode() + "QX01,74.0,1.80,male,right,\n".encode() + "QX\xe902,61,1.7,female,none,\n"
                  .encode("latin-1"), ["not UTF-8"]),
 }

@@ -60,6 +60,8 @@ def read_input_text(path: str | Path, what: str) -> str:
     raw = read_input_bytes(path, what)
     if not raw.strip():
         raise ConfigError(f"{what} {path} is empty", code="empty_file")
+    if raw[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        raise ConfigError(f"{what} {path} is UTF-16 text; save it as UTF-8 (e.g. 'CSV UTF-8')", code="not_text")
     if b"\x00" in raw:
         raise ConfigError(f"{what} {path} is not a text file (it holds binary data); give the text file itself",
                           code="not_text")
