@@ -486,3 +486,20 @@ def test_unreadable_trial_fails_alone(real_squad, tmp_path, capsys, monkeypatch)
     listed = [line for line in text.splitlines() if "QX01" in line and "[unreadable]" in line]
     assert len(listed) == 1 and "Permission denied" in listed[0]
     assert set(pd.read_csv(tmp_path / "out" / "strides.csv")["athlete"]) == {"QX02"}
+
+
+@pytest.mark.parametrize("argv", [["demo", "{file}"], ["muscles", "--plot", "{file}/arms.png"]])
+def test_output_path_that_cannot_be_written(argv, tmp_path, capsys):
+    """An output path under a file (not a folder): one line naming it, exit 2, no traceback, no log file."""
+    blocker = tmp_path / "a_file"
+    blocker.write_text("x")
+    code, lines, out = run([a.replace("{file}", str(blocker)) for a in argv], capsys)
+    assert_usage_error(code, lines, out, str(blocker))
+    assert lines[0].startswith("error [file_access]")
+
+
+@pytest.mark.parametrize("argv", [["muscles", "--height", "-1"], ["muscles", "--height", "180"],
+                                  ["muscles", "--hip-flexion", "500"], ["muscles", "--knee-flexion", "abc"]])
+def test_muscles_options_are_ranged(argv, capsys):
+    code, lines, out = run(argv, capsys)
+    assert_usage_error(code, lines, out, argv[1])

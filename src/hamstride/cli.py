@@ -24,6 +24,7 @@ from rich.text import Text
 
 from . import __version__
 from .errors import ConfigError, HamstrideError
+from .squadinput import HEIGHT_RANGE_M
 
 EXIT_OK, EXIT_TRIALS_FAILED, EXIT_USAGE, EXIT_INTERNAL = 0, 1, 2, 3
 # typer's own copy of click's exception classes (typer may vendor click, so `import click` would name other classes)
@@ -173,9 +174,12 @@ def demo_cmd(
 
 @app.command("muscles")
 def muscles_cmd(
-    hip_flexion: float = typer.Option(0.0, "--hip-flexion", help="Hip flexion in degrees."),
-    knee_flexion: float = typer.Option(0.0, "--knee-flexion", help="Knee flexion in degrees."),
-    height: float = typer.Option(1.80, "--height", help="Athlete height in metres (scales the model)."),
+    hip_flexion: float = typer.Option(0.0, "--hip-flexion", min=-40.0, max=140.0,
+                                      help="Hip flexion in degrees (-40 to 140)."),
+    knee_flexion: float = typer.Option(0.0, "--knee-flexion", min=-10.0, max=160.0,
+                                       help="Knee flexion in degrees (-10 to 160)."),
+    height: float = typer.Option(1.80, "--height", min=HEIGHT_RANGE_M[0], max=HEIGHT_RANGE_M[1],
+                                 help="Athlete height in metres (scales the model; 1.2 to 2.3)."),
     plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw moment-arm curves to this PNG."),
 ) -> None:
     """Print each hamstring's length, strain and moment arms at one hip and knee angle.
@@ -479,6 +483,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except typer.Abort:
         say("aborted", err=True)
         return 130
+    except OSError as exc:  # a file or folder given on the command line cannot be written or read
+        where = f"{exc.filename}: " if exc.filename else ""
+        say(f"error [file_access] cannot use {where}{exc.strerror or exc}; check the path and its permissions",
+            style="bold red", err=True)
+        return EXIT_USAGE
     except HamstrideError as exc:  # raised outside a command's own handling
         say(f"error [{exc.code}] {_one_line(exc.message)}", style="bold red", err=True)
         return exit_code_of(exc)
