@@ -45,6 +45,7 @@ from hamstride.pipeline import AnalysisOptions, AthleteInfo, analyse_trial  # no
 STAGES = [
     ("io", "read_c3d", "read C3D (io)"),
     ("landmarks", "resolve_landmarks", "landmarks"),
+    ("labframe", "to_lab_frame", "lab frame"),
     ("signal", "smooth_landmarks", "gap fill + filter (signal)"),
     ("segments", "build_body", "segment frames"),
     ("angles", "joint_angles", "joint angles"),

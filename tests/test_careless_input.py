@@ -503,3 +503,18 @@ def test_output_path_that_cannot_be_written(argv, tmp_path, capsys):
 def test_muscles_options_are_ranged(argv, capsys):
     code, lines, out = run(argv, capsys)
     assert_usage_error(code, lines, out, argv[1])
+
+
+def test_marker_map_prefix_key_is_accepted_and_checked(tmp_path):
+    """The top-level `prefix` key (whose markers a two-subject file uses) is a known key, typed by the loader."""
+    from hamstride.squadinput import check_marker_map
+
+    path = tmp_path / "markers.toml"
+    path.write_text('prefix = "Ath07"\n[landmarks]\nright_asis = "RA"\n')
+    assert check_marker_map(path).prefix == "Ath07"
+    path.write_text('prefix = 7\n[landmarks]\nright_asis = "RA"\n')
+    with pytest.raises(ConfigError, match="prefix"):
+        check_marker_map(path)
+    path.write_text('prefx = "Ath07"\n')
+    with pytest.raises(ConfigError, match="did you mean"):
+        check_marker_map(path)

@@ -19,6 +19,7 @@ import pytest
 from hamstride.errors import EventError, LandmarkError
 from hamstride.events import detect_events, is_treadmill, running_speed
 from hamstride.io import C3DEvent, read_c3d
+from hamstride.labframe import to_lab_frame
 from hamstride.landmarks import Landmarks, resolve_landmarks
 from hamstride.signal import smooth_landmarks
 from hamstride.strides import cut_strides
@@ -33,7 +34,8 @@ def _pipeline_landmarks(tmp_path: Path, spec: SprintSpec):
     path = tmp_path / f"trial_{abs(hash(spec)) % 10**8}.c3d"
     truth = write_sprint_trial(path, spec)
     trial = read_c3d(path)
-    lm, _ = smooth_landmarks(resolve_landmarks(trial))
+    trial, lm = to_lab_frame(trial, resolve_landmarks(trial))  # file axes -> internal lab frame, as the pipeline does
+    lm, _ = smooth_landmarks(lm)
     return trial, lm, truth
 
 

@@ -134,13 +134,43 @@ def _child(seed: int, start: int, stop: int, source_dir: str, work_dir: str) -> 
         t0 = time.perf_counter()
         try:
             trial = read_c3d(path)
-            result = {"status": "ok", "frames": trial.n_frames}
+            result = {"status": "ok", "frames": trial.n_frames, "independent": _independent_agrees(path, trial)}
         except HamstrideError as exc:
             result = {"status": "error", "code": exc.code, "message": exc.message}
         except BaseException as exc:  # noqa: BLE001 - the point is to catch anything that is not ours
             result = {"status": "unhandled", "code": type(exc).__name__, "message": str(exc)[:200]}
         result["seconds"] = time.perf_counter() - t0
         print(json.dumps({"case": case, "kind": kind, "stage": "done", **result}), flush=True)
+
+
+def _independent_agrees(path: Path, trial) -> str:
+    """Does the independent `c3d` package read the file as we did? 'same' (frames, invalid points and coordinates
+    alike), 'differs: ...', or 'unreadable' when it cannot read the file at all."""
+    import warnings
+
+    import c3d
+
+    from hamstride.io import UNIT_TO_METRES
+
+    try:
+        with open(path, "rb") as fh, warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            frames = np.stack([p[:, :4].astype(float) for _, p, _ in c3d.Reader(fh).read_frames()])
+    except Exception:  # noqa: BLE001 - any failure of the other reader
+        return "unreadable"
+    if frames.shape[0] != trial.n_frames or frames.shape[1] != trial.xyz.shape[1]:
+        return f"differs: {frames.shape[:2]} against {trial.xyz.shape[:2]}"
+    ours = trial.xyz / UNIT_TO_METRES[trial.units_in_file]
+    with np.errstate(all="ignore"):  # invalid: negative residual, all zero, or any coordinate not finite or beyond
+        xyz = frames[..., :3]  # our 10 km limit (a gap or corruption, not a marker)
+        invalid = ((frames[..., 3] < 0) | (xyz == 0).all(axis=2)
+                   | ~(np.abs(xyz * UNIT_TO_METRES[trial.units_in_file]) < 1e4).all(axis=2))
+        theirs = np.where(invalid[..., None], np.nan, xyz)
+    if not np.array_equal(np.isnan(ours), np.isnan(theirs)):
+        return "differs: invalid points"
+    if not np.allclose(ours, theirs, rtol=2.0 ** -20, atol=1e-6, equal_nan=True):
+        return "differs: coordinates"
+    return "same"
 
 
 def run_fuzz(n_cases: int, seed: int, source_dir: Path, work_dir: Path) -> dict:
@@ -231,7 +261,13 @@ def test_fuzz_reader_default_run(sources, tmp_path):
     elapsed = time.perf_counter() - t0
     print(f"fuzz {DEFAULT_CASES} cases in {elapsed:.1f} s: {counts}")
     # A fuzzer that only ever produced clean reads (or only one error) would not be testing the validator.
-    assert counts.get("ok", 0) >= 50 and sum(v for k, v in counts.items() if k != "ok") >= 200
+    # (Issue 13: 73 of the 219 refusals of this run were files ezc3d and the `c3d` package read, chiefly files cut
+    # short in the data block, now read to their last whole frame; hence 120 here, not 200 as before.)
+    assert counts.get("ok", 0) >= 50 and sum(v for k, v in counts.items() if k != "ok") >= 120
+    # Every cut-short file we read, the independent `c3d` package reads alike (frames, gaps, coordinates).
+    cut = [r for r in report["results"].values() if r["status"] == "ok" and r["kind"] == "truncate"]
+    assert len(cut) >= 20 and all(r["independent"] == "same" for r in cut), [r for r in cut if r["independent"]
+                                                                               != "same"][:3]
     assert len([k for k in counts if k != "ok"]) >= 5
 
 

@@ -119,19 +119,20 @@ def test_label_parsing(label, side, core):
     assert (parsed.side, parsed.core) == (side, core)
 
 
+@pytest.mark.parametrize("prefix", ["", "Ath07:"])
 @pytest.mark.parametrize("style", ["caps", "dotted"])
-def test_write_map_command_end_to_end(style, tmp_path, capsys):
-    """A generated trial relabelled in another style: `--write-map`, then `--markers` resolves every landmark at
-    the coordinates of the original (default-labelled) markers."""
+def test_write_map_command_end_to_end(style, prefix, tmp_path, capsys):
+    """A generated trial relabelled in another style (with or without a subject prefix): `--write-map`, then
+    `--markers` resolves every landmark at the coordinates of the original (default-labelled) markers."""
     landmarks, clusters, distractors = _style(style)
     spec = SprintSpec(duration_s=0.6, n_gaps=0, seed=3)
     labels, xyz, _ = simulate_sprint(spec)
     rename = {DEFAULT_LABELS[k]: v for k, v in landmarks.items()}
     rename.update({a: b for k in clusters for a, b in zip(DEFAULT_CLUSTERS[k], clusters[k])})
-    new_labels = [rename.get(lab, lab) for lab in labels]
+    new_labels = [prefix + rename.get(lab, lab) for lab in labels]
     assert set(new_labels).isdisjoint(DEFAULT_LABELS.values())
     extra = np.repeat(xyz[:, :1, :] + np.array([0.0, 0.0, 600.0]), len(distractors), axis=1)  # above the pelvis
-    trial = write_c3d(tmp_path / "run.c3d", new_labels + distractors, np.concatenate([xyz, extra], axis=1),
+    trial = write_c3d(tmp_path / "run.c3d", new_labels + [prefix + d for d in distractors], np.concatenate([xyz, extra], axis=1),
                       spec.rate_hz, units=spec.units)
     map_path = tmp_path / "lab_markers.toml"
     assert cli.main(["landmarks", str(trial), "--write-map", str(map_path)]) == 0
@@ -168,3 +169,21 @@ def test_other_label_styles(labels):
              "first_metatarsal", "fifth_metatarsal", "toe_tip", "asis", "psis")
     proposal = propose_map(labels)
     assert {site: proposal.label_of(f"right_{site}") for site in sites} == dict(zip(sites, labels))
+
+
+def test_write_map_for_a_two_subject_file_resolves_the_named_subject(tmp_path, capsys):
+    """A file holding two subjects' markers: the written map names the labels with the chosen subject's prefix,
+    and that map resolves every landmark (without it the file is refused as holding several subjects)."""
+    landmarks, _, _ = _style("dotted")
+    spec = SprintSpec(duration_s=0.6, n_gaps=0, seed=4)
+    labels, xyz, _ = simulate_sprint(spec)
+    rename = {DEFAULT_LABELS[k]: v for k, v in landmarks.items()}
+    first = [f"Ath07:{rename.get(lab, lab)}" for lab in labels]
+    second = [f"Ath09:{rename.get(lab, lab)}" for lab in labels[:6]]  # a few markers of a second person
+    trial = write_c3d(tmp_path / "two.c3d", first + second, np.concatenate([xyz, xyz[:, :6] + 2000.0], axis=1),
+                      spec.rate_hz, units=spec.units)
+    map_path = tmp_path / "map.toml"
+    assert cli.main(["landmarks", str(trial), "--write-map", str(map_path)]) == 0
+    assert load_marker_map(map_path).landmarks["right_heel"] == "Ath07:R.Heel"
+    assert cli.main(["landmarks", str(trial), "--markers", str(map_path)]) == 0
+    capsys.readouterr()

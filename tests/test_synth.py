@@ -19,6 +19,8 @@ from scipy.spatial.transform import Rotation
 
 from hamstride import synth
 from hamstride.synth import AthleteBody, SprintSpec, simulate_sprint, simulate_static
+from hamstride.labframe import to_lab_frame
+from hamstride.landmarks import resolve_landmarks
 
 SIDES = ("left", "right")
 FOOT_SITES = ("heel", "first_metatarsal", "fifth_metatarsal", "toe_tip")
@@ -430,8 +432,9 @@ def test_written_trial_round_trips_through_ezc3d_c3d_and_hamstride_io(tmp_path):
     ok = ~gaps
     assert np.allclose(frames[..., :3][ok], xyz[ok], atol=1e-3)
 
-    # hamstride.io maps the file back to the internal lab frame (x forward, y left, z up, m)
+    # hamstride.io reads the file and hamstride.labframe maps it to the internal lab frame (x forward, y left, z up)
     trial = read_c3d(path)
+    trial, _ = to_lab_frame(trial, resolve_landmarks(trial))  # hamstride.labframe: from the landmarks
     assert trial.rate_hz == pytest.approx(300.0)
     back = trial.xyz
     clean = np.stack([truth.markers_lab[lab] for lab in trial.labels], axis=1)
@@ -447,6 +450,7 @@ def test_treadmill_file_gives_belt_speed_after_reading(tmp_path):
     path = tmp_path / "tm.c3d"
     truth = synth.write_sprint_trial(path, spec)
     trial = read_c3d(path)
+    trial, _ = to_lab_frame(trial, resolve_landmarks(trial))  # hamstride.labframe: from the landmarks
     toe = trial.xyz[:, list(trial.labels).index("r.toe")]
     speeds = []
     for fs, to in zip(truth.foot_strikes_s["right"], truth.toe_offs_s["right"][truth.toe_offs_s["right"] >

@@ -6,17 +6,18 @@ and ``--strict`` turns into errors. The checks only look at the objects handed b
 Landmarks), so they import nothing from a later stage.
 
 Codes raised here: too_short, rate_too_low, no_marker_data, bad_coordinates, duplicate_labels, long_gap,
-sides_swapped, units_suspect, body_size, pelvis_width, not_sprint. Warnings: empty_frames, bad_coordinates,
-duplicate_labels.
+sides_swapped, units_suspect, body_size, pelvis_width, not_sprint. Warnings: frames_missing, empty_frames,
+bad_coordinates, duplicate_labels.
 """
 from __future__ import annotations
 
 import math
+from pathlib import Path
 from typing import Iterable, Mapping
 
 import numpy as np
 
-from .errors import EventError, LandmarkError, PlausibilityError, TrialWarning
+from .errors import EventError, FileFormatError, LandmarkError, PlausibilityError, TrialWarning
 from .io import UNIT_TO_METRES, MarkerTrial, finite_points
 from .landmarks import REQUIRED_LANDMARKS, Landmarks, MarkerMap, plain_name
 
@@ -82,12 +83,22 @@ def check_marker_trial(trial: MarkerTrial, landmark_labels: Iterable[str] = (), 
             f"contact lasts about 0.1 s). Capture sprints at 200 Hz or more; this trial cannot be analysed",
             trial=name, code="rate_too_low")
     duration = trial.n_frames / rate
+    promised = int(trial.meta.get("frames_promised", 0) or 0) if isinstance(trial.meta, Mapping) else 0
+    if promised > trial.n_frames and (trial.n_frames < 2 or duration < MIN_DURATION_S):
+        raise FileFormatError(
+            f"the file holds only {trial.n_frames} of the {promised} frames its header promises ({duration:.3f} s): "
+            "it was cut short (full disk or interrupted copy?); re-export or copy it again",
+            trial=Path(trial.path).name, code="truncated")  # the file name, as io's file errors give it
     if trial.n_frames < 2 or duration < MIN_DURATION_S:
         raise PlausibilityError(
             f"only {trial.n_frames} frame(s) ({duration:.3f} s); a sprint stride takes about 0.45 s, so at least "
             f"{MIN_DURATION_S:g} s is needed. Check the export range in the capture software", trial=name,
             code="too_short")
     warnings: list[TrialWarning] = []
+    if promised > trial.n_frames:
+        warnings.append(TrialWarning(
+            "frames_missing", f"the file holds {trial.n_frames} of the {promised} frames its header promises (it was "
+            f"probably cut short: full disk or interrupted copy?); the {trial.n_frames} frames were analysed"))
     visible = finite_points(trial.xyz)  # [frame, marker]
     empty = ~visible.any(axis=1)
     bad = int(trial.meta.get("bad_coordinates", 0) or 0) if isinstance(trial.meta, Mapping) else 0
@@ -115,7 +126,7 @@ def check_marker_trial(trial: MarkerTrial, landmark_labels: Iterable[str] = (), 
     duplicates = sorted(k for k, v in counts.items() if v > 1 and k)
     if duplicates:
         used = {str(label).strip().lower() for label in landmark_labels}
-        clash = [d for d in duplicates if d in used]
+        clash = [d for d in duplicates if d in used or d.rpartition(":")[2] in used]  # also 'Ath07:r.heel' x2
         listing = ", ".join(f"'{d}' x{counts[d]}" for d in duplicates[:6])
         if clash:
             raise PlausibilityError(

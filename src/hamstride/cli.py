@@ -141,10 +141,19 @@ def landmarks_cmd(
         lm = resolve_landmarks(data, marker_map)
         problem = None
     except LandmarkError as exc:
+        if exc.code == "several_subjects":  # no table can be shown until the map names the subject
+            _fail(exc)
         problem = exc
         lm = resolve_landmarks(data, marker_map, allow_missing=tuple(marker_map.landmarks))
-    table = Table(title=Text(f"{trial.name}: {data.n_frames} frames at {data.rate_hz:g} Hz, "
-                             f"vertical {data.lab.vertical_axis}, travel {data.lab.travel_axis} ({marker_map.source})"))
+    from .labframe import detect_lab_frame
+
+    try:
+        lab = detect_lab_frame(lm)
+        axes = f"vertical {lab.vertical_axis}, travel {lab.travel_axis} (from {lab.travel_from})"
+    except LandmarkError:
+        axes = "lab axes unknown (pelvis or feet missing)"
+    table = Table(title=Text(f"{trial.name}: {data.n_frames} frames at {data.rate_hz:g} Hz, {axes} "
+                             f"({marker_map.source})"))
     table.add_column("landmark")
     table.add_column("label")
     table.add_column("valid frames %", justify="right")

@@ -1,7 +1,9 @@
 """Resolve anatomical landmarks from C3D labels.
 
 A marker map (TOML) names the C3D label of each landmark; without one, hamstride's own default labels are used
-(``r.asis``, ``l.knee.lat``, ...). The result is a frozen :class:`Landmarks` with NaN for missing frames, plus a
+(``r.asis``, ``l.knee.lat``, ...). Capture software often writes labels as ``SUBJECT:LABEL`` (``Ath07:r.asis``): a
+label without a prefix matches the file's label with or without one, so one map serves a whole squad. A file holding
+two subjects' markers needs a map that names the prefix (``prefix = "Ath07"``, or prefixed labels). The result is a frozen :class:`Landmarks` with NaN for missing frames, plus a
 per-landmark report (label used, percent of valid frames) that ``hamstride landmarks`` prints.
 """
 from __future__ import annotations
@@ -50,6 +52,7 @@ class MarkerMap:
     landmarks: Mapping[str, str] = field(default_factory=lambda: dict(DEFAULT_LABELS))
     clusters: Mapping[str, tuple[str, ...]] = field(default_factory=lambda: dict(DEFAULT_CLUSTERS))
     source: str = "default labels"
+    prefix: str = ""  # subject prefix tried first for labels without one ('Ath07' -> 'Ath07:r.asis')
 
 
 def load_marker_map(path: str | Path | None) -> MarkerMap:
@@ -80,7 +83,10 @@ def load_marker_map(path: str | Path | None) -> MarkerMap:
         if not isinstance(labels, list) or not all(isinstance(x, str) for x in labels) or len(labels) < 3:
             raise ConfigError(f"marker map {path.name}: cluster '{key}' needs a list of at least 3 labels")
         clusters[key] = tuple(labels)
-    return MarkerMap(landmarks, clusters, source=str(path))
+    prefix = data.get("prefix", "")
+    if not isinstance(prefix, str):
+        raise ConfigError(f"marker map {path.name}: prefix must be a string such as \"Ath07\"")
+    return MarkerMap(landmarks, clusters, source=str(path), prefix=prefix.strip().rstrip(":"))
 
 
 @dataclass(frozen=True)
@@ -131,6 +137,41 @@ def _suggest(label: str, labels: tuple[str, ...]) -> str:
     return f"; labels in the file that look close: {', '.join(close[:3])}" if close else ""
 
 
+def split_prefix(label: str) -> tuple[str, str]:
+    """'Ath07:r.asis' -> ('Ath07', 'r.asis'); 'r.asis' -> ('', 'r.asis') (the subject prefix capture software adds)."""
+    prefix, _, bare = label.rpartition(":")
+    return prefix, bare
+
+
+class _LabelFinder:
+    """Finds a map label among the file's labels: exactly, ignoring case, then (for a label without a prefix) as the
+    part after any ``SUBJECT:`` prefix. Records labels that match markers of more than one subject."""
+
+    def __init__(self, labels: tuple[str, ...], prefix: str = ""):
+        self.labels = labels
+        self.prefix = prefix
+        self.exact = {label: i for i, label in reversed(list(enumerate(labels)))}
+        self.folded = {label.lower(): i for i, label in reversed(list(enumerate(labels)))}
+        self.bare: dict[str, list[tuple[str, int]]] = {}
+        for i, label in enumerate(labels):
+            prefix_i, bare = split_prefix(label)
+            self.bare.setdefault(bare.lower(), []).append((prefix_i, i))
+        self.ambiguous: dict[str, list[str]] = {}
+
+    def find(self, label: str) -> int | None:
+        tries = ([f"{self.prefix}:{label}"] if self.prefix and ":" not in label else []) + [label]
+        for text in tries:
+            i = self.exact.get(text, self.folded.get(text.lower()))
+            if i is not None:
+                return i
+        if ":" in label:
+            return None
+        matches = self.bare.get(label.lower(), [])
+        if len({p for p, _ in matches}) > 1:
+            self.ambiguous[label] = [self.labels[i] for _, i in matches]
+        return matches[0][1] if matches else None
+
+
 def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *,
                       allow_missing: tuple[str, ...] = ()) -> Landmarks:
     """Pick each landmark's marker from the trial. Raises LandmarkError naming every required landmark not found.
@@ -139,8 +180,7 @@ def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *
     trial); they are reported but not fatal.
     """
     marker_map = marker_map or MarkerMap()
-    index = {label: i for i, label in enumerate(trial.labels)}
-    index_ci = {label.lower(): i for i, label in enumerate(trial.labels)}
+    finder = _LabelFinder(trial.labels, marker_map.prefix)
     points: dict[str, np.ndarray] = {}
     used: dict[str, str] = {}
     report: list[LandmarkReport] = []
@@ -148,7 +188,7 @@ def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *
     n = max(trial.n_frames, 1)
     for name, label in marker_map.landmarks.items():
         required = name in REQUIRED_LANDMARKS
-        i = index.get(label, index_ci.get(label.lower()))
+        i = finder.find(label)
         if i is None:
             report.append(LandmarkReport(name, None, 0.0, required, f"label '{label}' not in file"))
             if required and name not in allow_missing:
@@ -161,9 +201,18 @@ def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *
         report.append(LandmarkReport(name, trial.labels[i], float(valid), required))
     clusters: dict[str, np.ndarray] = {}
     for name, labels in marker_map.clusters.items():
-        idx = [index.get(lab, index_ci.get(lab.lower())) for lab in labels]
+        idx = [finder.find(lab) for lab in labels]
         if all(i is not None for i in idx):
             clusters[name] = trial.xyz[:, idx, :]
+    if finder.ambiguous:
+        label, found = next(iter(finder.ambiguous.items()))
+        subjects = sorted({split_prefix(x)[0] or "(no prefix)" for v in finder.ambiguous.values() for x in v})
+        first = next((s for s in subjects if s != "(no prefix)"), subjects[0])
+        raise LandmarkError(
+            f"the file holds markers of {len(subjects)} subjects ({', '.join(subjects)}): label '{label}' matches "
+            f"{' and '.join(repr(x) for x in found[:3])}. Say whose markers to analyse in a markers.toml: "
+            f'prefix = "{first}" (or prefixed labels in [landmarks], e.g. right_asis = "{first}:r.asis"), and '
+            f"rerun with --markers", trial=trial.name, code="several_subjects")
     if missing:
         raise LandmarkError("required landmark(s) not found: " + "; ".join(missing)
                             + f". Map them in a markers.toml ([landmarks] section) — using {marker_map.source}",

@@ -113,6 +113,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     from .checks import check_body_size, check_landmark_gaps, check_marker_trial, check_sides, check_speed
     from .events import detect_events, is_treadmill, running_speed
     from .io import read_c3d
+    from .labframe import to_lab_frame
     from .landmarks import STATIC_RECOVERABLE, load_marker_map, resolve_landmarks
     from .segments import build_body, calibrate, reconstruct_missing
     from .signal import smooth_landmarks
@@ -134,6 +135,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     lm = resolve_landmarks(trial, marker_map, allow_missing=STATIC_RECOVERABLE if calibration is not None else ())
     if calibration is not None:
         lm = reconstruct_missing(lm, calibration)
+    trial, lm = to_lab_frame(trial, lm)  # file axes -> x forward, y left, z up, from the landmarks
     check_landmark_gaps(lm, skip=STATIC_RECOVERABLE if calibration is not None else ())
     check_sides(lm, marker_map)
     check_body_size(lm, trial.units_in_file)

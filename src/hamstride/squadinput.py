@@ -35,6 +35,7 @@ SIDES = ("left", "right", "none")
 SEXES = {"male": "male", "m": "male", "female": "female", "f": "female"}
 DATE_PREFIX = re.compile(r"^(\d{4}-\d{2}-\d{2})")
 MARKER_MAP_SECTIONS = ("landmarks", "clusters")
+MARKER_MAP_KEYS = ("prefix",)  # top-level keys (landmarks.load_marker_map: whose markers a two-subject file uses)
 
 
 # --------------------------------------------------------------------------------------------- input files
@@ -390,11 +391,13 @@ def check_marker_map(path: str | Path | None):
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"marker map {path} is not valid TOML: {exc}", code="bad_marker_map") from None
     for key, value in data.items():
+        if key in MARKER_MAP_KEYS:
+            continue  # checked by load_marker_map
         if key not in MARKER_MAP_SECTIONS:
             what = f"section [{key}]" if isinstance(value, dict) else f"key '{key}'"
-            raise ConfigError(f"marker map {path}: unknown {what}{did_you_mean(key, MARKER_MAP_SECTIONS)}; "
-                              "a marker map has a [landmarks] section (landmark = \"label\") and optionally "
-                              "[clusters]", code="bad_marker_map")
+            raise ConfigError(f"marker map {path}: unknown {what}{did_you_mean(key, MARKER_MAP_SECTIONS + MARKER_MAP_KEYS)}; "
+                              "a marker map has a [landmarks] section (landmark = \"label\"), optionally [clusters] "
+                              "and a first line prefix = \"SUBJECT\"", code="bad_marker_map")
         if not isinstance(value, dict):
             raise ConfigError(f"marker map {path}: '{key}' must be a section, written [{key}] on its own line",
                               code="bad_marker_map")

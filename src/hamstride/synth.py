@@ -123,6 +123,10 @@ class SprintSpec:
     include_medial: bool = True
     include_clusters: bool = True
     include_events: bool = False  # write foot strikes / toe-offs into the C3D EVENT group
+    full_body: bool = False  # add trunk, head and arm markers (UPPER_BODY_LABELS) above the pelvis
+    label_prefix: str = ""  # write labels as 'PREFIX:label', as capture software does for a named subject
+    nul_padding: int = 0  # pad the labels and the unit with this many NUL bytes (C strings; ezc3d writes them)
+    soft_tissue_mm: float = 0.0  # slow wobble of each marker on its segment (soft tissue), amplitude per axis
     seed: int = 0
     body: AthleteBody = _DEFAULT_BODY
     athlete: str = "SYN01"
@@ -868,7 +872,16 @@ def simulate_sprint(spec: SprintSpec = SprintSpec()) -> tuple[tuple[str, ...], n
                                    include_medial=spec.include_medial, include_clusters=spec.include_clusters,
                                    speed=gait.v, treadmill=spec.treadmill, strikes=strikes, toe_offs=toe_offs,
                                    belt=belt)
+    if spec.full_body:
+        thigh_down = {side: -truth.axes[f"{side}_thigh"][:, :, 1] for side in SIDES}
+        upper = upper_body_markers(origin, axes, thigh_down, spec.body.height_m)
+        labels = labels + tuple(upper)
+        xyz = np.concatenate([xyz, np.stack(list(upper.values()), axis=1)], axis=1)
+    if spec.soft_tissue_mm > 0:
+        xyz = xyz + soft_tissue_wobble(t, xyz.shape[1], spec.soft_tissue_mm, np.random.default_rng(spec.seed + 7))
     noisy = _noise_and_gaps(xyz, spec.noise_mm, spec.n_gaps, rng)
+    if spec.label_prefix:
+        labels = tuple(f"{spec.label_prefix}:{label}" for label in labels)
     return labels, lab_to_file(noisy, spec.vertical_axis, spec.travel_sign, spec.units), truth
 
 
@@ -892,9 +905,69 @@ def write_sprint_trial(path: str | Path, spec: SprintSpec = SprintSpec()) -> Spr
 
     labels, xyz, truth = simulate_sprint(spec)
     events = sprint_events(truth) if spec.include_events else ()
-    write_c3d(path, labels, xyz, spec.rate_hz, units=spec.units, events=events,
-              subject=_subject(spec.body, spec.athlete))
+    subject = _subject(spec.body, spec.athlete)
+    units = spec.units
+    if spec.nul_padding:  # C-string padding some capture systems write (ezc3d writes these NUL bytes as given;
+        pad = "\x00" * spec.nul_padding  # padded events and subject names: tests/c3d_bytes.py writes those)
+        labels = tuple(label + pad for label in labels)
+        units = units + pad
+    write_c3d(path, labels, xyz, spec.rate_hz, units=units, events=events, subject=subject)
     return truth
+
+
+# ------------------------------------------------------------------------------------------------ real-capture shapes
+#: Trunk, head and arm markers of a full-body set (our own labels), in the pelvis frame (x anterior, y up, z right;
+#: metres for a 1.80 m athlete, origin mid-ASIS). Invented placement at typical adult proportions (common practice).
+UPPER_BODY_SITES = {
+    "trunk.neck": (-0.13, 0.50, 0.0), "trunk.chest": (0.06, 0.36, 0.0), "trunk.back": (-0.15, 0.30, 0.0),
+    "r.shoulder": (-0.04, 0.47, 0.19), "l.shoulder": (-0.04, 0.47, -0.19),
+    "head.front": (0.06, 0.70, 0.0), "head.back": (-0.13, 0.71, 0.0),
+    "head.r": (-0.03, 0.68, 0.08), "head.l": (-0.03, 0.68, -0.08),
+}
+UPPER_ARM_M, FOREARM_M = 0.30, 0.27  # for a 1.80 m athlete: about 0.17 and 0.15 of height (de Leva 1996; from memory)
+TRUNK_LEAN_RAD = 12.0 * _DEG  # forward lean of the trunk over the pelvis when running (common practice)
+
+
+def upper_body_markers(pelvis_origin: np.ndarray, pelvis_axes: np.ndarray, thigh_down: Mapping[str, np.ndarray],
+                       height_m: float = 1.80) -> dict[str, np.ndarray]:
+    """Trunk, head and arm markers [F, 3] (lab frame) above a pelvis pose: trunk and head lean forward with the
+    pelvis; each arm swings against its own leg (the upper arm mirrors the thigh's fore-aft direction at 0.8 of its
+    swing) with the elbow bent 90 degrees. Labels: UPPER_BODY_SITES, then per arm upperarm, elbow, elbow.in,
+    forearm, wrist.out, wrist.in and hand (23 markers in all, more than the legs and pelvis carry without clusters)."""
+    k = height_m / 1.80
+    c, s = np.cos(TRUNK_LEAN_RAD), np.sin(TRUNK_LEAN_RAD)
+    out: dict[str, np.ndarray] = {}
+    for label, (x, y, z) in UPPER_BODY_SITES.items():
+        local = k * np.array([x * c + y * s, -x * s + y * c, z])  # lean: the higher a point, the further forward
+        out[label] = pelvis_origin + pelvis_axes @ local
+    for side in SIDES:
+        d = np.asarray(thigh_down[side], float)
+        lateral = _RIGHT_SIGN[side] * pelvis_axes[:, :, 2]  # away from the body on this side
+        arm = np.stack([-0.8 * d[:, 0], d[:, 1], d[:, 2] - 0.3], axis=-1)  # swings against the leg, hangs down
+        arm /= np.linalg.norm(arm, axis=1, keepdims=True)
+        forearm = np.stack([-arm[:, 2], np.zeros(len(arm)), arm[:, 0]], axis=-1)  # arm turned 90 deg forward
+        s_ = side[0]
+        shoulder = out[f"{s_}.shoulder"]
+        elbow = shoulder + k * UPPER_ARM_M * arm
+        wrist = elbow + k * FOREARM_M * forearm
+        out[f"{s_}.upperarm"] = shoulder + 0.55 * k * UPPER_ARM_M * arm + 0.04 * k * lateral
+        out[f"{s_}.elbow"] = elbow + 0.035 * k * lateral
+        out[f"{s_}.elbow.in"] = elbow - 0.035 * k * lateral
+        out[f"{s_}.forearm"] = elbow + 0.5 * k * FOREARM_M * forearm + 0.03 * k * lateral
+        out[f"{s_}.wrist.out"] = wrist + 0.025 * k * lateral
+        out[f"{s_}.wrist.in"] = wrist - 0.025 * k * lateral
+        out[f"{s_}.hand"] = wrist + 0.08 * k * forearm
+    return out
+
+
+def soft_tissue_wobble(time_s: np.ndarray, n_markers: int, amplitude_mm: float, rng: np.random.Generator
+                       ) -> np.ndarray:
+    """[F, M, 3] slow displacement of each marker against its bone (m): two sinusoids per axis at 3-15 Hz with
+    random phases, ``amplitude_mm`` each (soft-tissue movement of several mm in running; common practice)."""
+    freq = rng.uniform(3.0, 15.0, size=(2, n_markers, 3))
+    phase = rng.uniform(0.0, 2 * np.pi, size=(2, n_markers, 3))
+    wave = np.sin(2 * np.pi * freq[:, None] * time_s[None, :, None, None] + phase[:, None])
+    return 0.5 * amplitude_mm / 1000.0 * wave.sum(axis=0)
 
 
 def simulate_static(body: AthleteBody = _DEFAULT_BODY, rate_hz: float = 250.0, duration_s: float = 1.0, *,
