@@ -474,8 +474,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     """The `hamstride` command; returns the exit code (0 ok, 1 trials failed, 2 usage error, 3 internal error).
 
     Usage errors print one line (not a box), and an unexpected error prints one line and the path of a log file
-    with the traceback: nothing else reaches the user.
+    with the traceback: nothing else reaches the user. Library warnings (e.g. numpy's "Mean of empty slice") are
+    not shown unless asked for with ``python -W`` / ``PYTHONWARNINGS`` (the idiom of the warnings module's docs).
     """
+    if not sys.warnoptions:
+        import warnings
+
+        warnings.simplefilter("ignore")  # forked pool workers inherit it
     try:
         result = app(args=list(argv) if argv is not None else None, prog_name="hamstride", standalone_mode=False)
         return result if isinstance(result, int) else EXIT_OK
