@@ -96,6 +96,9 @@ def test_squad_with_a_different_prefix_per_athlete(tmp_path):
         session.mkdir(parents=True)
         write_sprint_trial(session / "sprint_01.c3d", SprintSpec(seed=20 + k, label_prefix=f"Ath{k + 7:02d}",
                                                                  duration_s=1.5, athlete=code))
+    # athlete folders must be listed in athletes.csv (issue 15: unlisted ones are skipped)
+    (root / "athletes.csv").write_text("athlete,body_mass_kg,height_m,sex,involved_side,injury_date\n"
+                                       "PX01,75,1.80,male,none,\nPX02,68,1.74,female,none,\n", encoding="utf-8")
     run = run_squad(root, tmp_path / "out", jobs=1, report=False)
     manifest = json.loads((run.out / "manifest.json").read_text())
     assert [r["status"] for r in manifest["inputs"]] == ["ok", "ok"], manifest["inputs"]

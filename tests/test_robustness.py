@@ -353,8 +353,9 @@ def test_squad_over_the_corpus_lists_every_file_with_its_code(corpus, tmp_path):
     """`hamstride squad` over the corpus: exit code 1, no traceback, every file in manifest.json with its code."""
     root = _case(corpus, "valid").path.parents[2]
     out = tmp_path / "out"
+    # The corpus has no athletes.csv: its athlete folder is analysed only with --allow-unlisted (issue 15).
     proc = subprocess.run([sys.executable, "-m", "hamstride.cli", "squad", str(root), "--out", str(out), "--jobs",
-                           "2", "--no-report"], capture_output=True, text=True, timeout=300,
+                           "2", "--no-report", "--allow-unlisted"], capture_output=True, text=True, timeout=300,
                           env={**os.environ, "COLUMNS": "200"})
     assert proc.returncode == 1, proc.stderr[-2000:]
     assert "Traceback" not in proc.stdout + proc.stderr
@@ -477,7 +478,9 @@ def test_timeline_cli_with_dot_dot_athlete_writes_nothing_outside(hostile_squad,
     proc = subprocess.run([sys.executable, "-m", "hamstride.cli", "timeline", str(root), "--athlete",
                            "../../outside", "--out", str(target), "--jobs", "1"], capture_output=True, text=True,
                           timeout=300)
-    assert proc.returncode == 1 and "Traceback" not in proc.stdout + proc.stderr
+    # "../../outside" is listed in athletes.csv but has no trials: a usage error (exit 2, issue 15), checked
+    # before anything is written
+    assert proc.returncode == 2 and "Traceback" not in proc.stdout + proc.stderr
     _assert_outputs_safe(tmp_path, target, root)
 
 

@@ -14,11 +14,8 @@ import functools
 import hashlib
 import io as _io
 import json
-import math
 import os
-import re
-import tomllib
-from dataclasses import asdict, dataclass, field, fields, replace
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Callable, Mapping
 
@@ -28,12 +25,14 @@ import pandas as pd
 from . import __version__
 from .errors import ConfigError, HamstrideError
 from .io import atomic_open, atomic_write_bytes, atomic_write_text
-from .metrics import FlagConfig, compute_flags, flag_config_toml, summarise
+from .metrics import compute_flags, summarise
 from .pipeline import CURVE_COLUMNS, STRIDE_COLUMNS, AnalysisOptions, AthleteInfo, analyse_trial
+from .settings import RunConfig, config_toml, load_config  # noqa: F401  (load_config: public via batch too)
+from .settings import jsonable as _jsonable
+from .squadinput import ATHLETE_COLUMNS, SquadLayout, check_marker_map, read_athletes, scan_squad  # noqa: F401
+from .squadinput import match_athlete, session_date  # noqa: F401
 
-ATHLETE_COLUMNS = ["athlete", "body_mass_kg", "height_m", "sex", "involved_side", "injury_date"]
 CACHE_DIR = ".hamstride-cache"
-DATE_PREFIX = re.compile(r"^(\d{4}-\d{2}-\d{2})")
 
 
 # --------------------------------------------------------------------------------------------- atomic files
@@ -146,73 +145,9 @@ def write_table(out: Path, name: str, df: pd.DataFrame) -> list[Path]:
 
 
 # --------------------------------------------------------------------------------------------- configuration
+# The configuration's keys, checks and listing live in settings.py (one table for all three).
 
-@dataclass(frozen=True)
-class RunConfig:
-    analysis: AnalysisOptions = AnalysisOptions()
-    flags: FlagConfig = FlagConfig()
-
-    def as_dict(self) -> dict:
-        return {"analysis": _jsonable(asdict(self.analysis)), "flags": _jsonable(asdict(self.flags))}
-
-
-def _jsonable(value):
-    if isinstance(value, float) and math.isnan(value):
-        return None
-    if isinstance(value, dict):
-        return {k: _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    return value
-
-
-def load_config(path: str | Path | None, **overrides) -> RunConfig:
-    """Read a TOML config ([analysis] and [flags] sections); unknown keys are an error."""
-    data: dict = {}
-    if path is not None:
-        try:
-            data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
-        except FileNotFoundError:
-            raise ConfigError(f"config file {path} not found") from None
-        except tomllib.TOMLDecodeError as exc:
-            raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
-    analysis_data = dict(data.get("analysis") or {})
-    known = {f.name for f in fields(AnalysisOptions)}
-    unknown = set(analysis_data) - known
-    if unknown:
-        raise ConfigError(f"unknown analysis setting(s): {', '.join(sorted(unknown))}; known: {', '.join(sorted(known))}")
-    for key, value in list(analysis_data.items()):
-        if isinstance(value, list):
-            analysis_data[key] = tuple(value)
-        if key == "cutoff_hz" and isinstance(value, str) and value.lower() in ("auto", "residual"):
-            analysis_data[key] = None
-    analysis_data.update({k: v for k, v in overrides.items() if v is not None})
-    flags_data = dict(data.get("flags") or {})
-    if isinstance(flags_data.get("high_stretch_limit_lopt"), str):
-        flags_data["high_stretch_limit_lopt"] = float(flags_data["high_stretch_limit_lopt"])
-    return RunConfig(AnalysisOptions(**analysis_data), FlagConfig.from_mapping(flags_data))
-
-
-def default_config_toml() -> str:
-    a = AnalysisOptions()
-    return (
-        "# hamstride configuration (use with --config FILE). Values shown are the defaults.\n"
-        "[analysis]\n"
-        "# low-pass cutoff in Hz for all markers; \"auto\" = Winter's residual analysis per trial\n"
-        "cutoff_hz = \"auto\"\n"
-        f"# longest marker gap (frames) filled by a cubic spline (common practice: about 10)\n"
-        f"max_gap_frames = {a.max_gap_frames}\n"
-        "# hip joint centre: \"harrington\" (Harrington et al. 2007) or \"bell\" (Bell et al. 1990)\n"
-        f"hip_method = \"{a.hip_method}\"\n"
-        "# plausible stride time and foot contact time in s (common practice); others are rejected with a reason\n"
-        f"stride_time_range_s = [{a.stride_time_range_s[0]}, {a.stride_time_range_s[1]}]\n"
-        f"contact_range_s = [{a.contact_range_s[0]}, {a.contact_range_s[1]}]\n"
-        "# Monte Carlo samples of model geometry and architecture for the uncertainty band (0 = off)\n"
-        f"monte_carlo_samples = {a.monte_carlo_samples}\n"
-        "# scale hamstring maximum forces to body mass (athletes are stronger than the cadaver data)\n"
-        f"scale_force_to_mass = {'true' if a.scale_force_to_mass else 'false'}\n\n"
-        + flag_config_toml()
-    )
+default_config_toml = config_toml
 
 
 # --------------------------------------------------------------------------------------------- discovery
@@ -227,66 +162,23 @@ class TrialJob:
     markers: str | None = None
 
 
-def session_date(session: str) -> dt.date | None:
-    match = DATE_PREFIX.match(session)
-    if not match:
-        return None
-    try:
-        return dt.date.fromisoformat(match.group(1))
-    except ValueError:
-        return None
-
-
-def read_athletes(root: Path) -> pd.DataFrame:
-    path = Path(root) / "athletes.csv"
-    if not path.exists():
-        return pd.DataFrame(columns=ATHLETE_COLUMNS)
-    try:
-        df = pd.read_csv(path, dtype={"athlete": str})
-    except Exception as exc:
-        raise ConfigError(f"athletes.csv could not be read: {exc}") from None
-    missing = [c for c in ("athlete",) if c not in df.columns]
-    if missing:
-        raise ConfigError(f"athletes.csv needs the columns {', '.join(ATHLETE_COLUMNS)}; missing: {', '.join(missing)}")
-    for col in ATHLETE_COLUMNS:
-        if col not in df.columns:
-            df[col] = np.nan
-    df["athlete"] = df["athlete"].astype(str).str.strip()
-    df["involved_side"] = df["involved_side"].fillna("none").astype(str).str.strip().str.lower()
-    df["sex"] = df["sex"].fillna("").astype(str).str.strip().str.lower()
-    return df[ATHLETE_COLUMNS + [c for c in df.columns if c not in ATHLETE_COLUMNS]]
-
-
-def _sex(value) -> str:
-    text = str(value).strip().lower()
-    return "female" if text.startswith("f") else "male"
-
-
-def discover_squad(root: str | Path, markers: str | Path | None = None) -> tuple[pd.DataFrame, list[TrialJob]]:
-    """athletes.csv and every sprint trial under ROOT/<athlete>/<session>/ (static*.c3d are calibration trials)."""
-    root = Path(root)
-    if not root.is_dir():
-        raise ConfigError(f"squad folder {root} does not exist")
-    athletes = read_athletes(root)
-    by_code = {r["athlete"]: r for _, r in athletes.iterrows()}
+def discover_squad(root: str | Path, markers: str | Path | None = None, *, allow_unlisted: bool = False,
+                   exclude: tuple[str | Path, ...] = ()) -> tuple[SquadLayout, list[TrialJob]]:
+    """The checked squad layout (squadinput.scan_squad: athletes.csv, sessions, skipped files, warnings) and one
+    job per sprint trial (static*.c3d are calibration trials). Raises ConfigError on a usage error."""
+    layout = scan_squad(root, allow_unlisted=allow_unlisted, exclude=exclude)
+    by_code = {r["athlete"]: r for _, r in layout.athletes.iterrows()}
     jobs: list[TrialJob] = []
-    for athlete_dir in sorted(p for p in root.iterdir() if p.is_dir() and not p.name.startswith(".")):
-        sessions = sorted((p for p in athlete_dir.iterdir() if p.is_dir() and not p.name.startswith(".")),
-                          key=lambda p: (session_date(p.name) or dt.date.max, p.name))
-        for session_dir in sessions:
-            files = sorted(p for p in session_dir.iterdir() if p.is_file() and p.suffix.lower() == ".c3d")
-            statics = [p for p in files if p.name.lower().startswith("static")]
-            row = by_code.get(athlete_dir.name)
-            mass = _float(row["body_mass_kg"]) if row is not None else None
-            height = _float(row["height_m"]) if row is not None else None
-            info = AthleteInfo(athlete=athlete_dir.name, session=session_dir.name, body_mass_kg=mass,
-                               height_m=height, sex=_sex(row["sex"]) if row is not None else "male")
-            for trial in files:
-                if trial in statics:
-                    continue
-                jobs.append(TrialJob(str(trial), athlete_dir.name, session_dir.name,
-                                     str(statics[0]) if statics else None, info, str(markers) if markers else None))
-    return athletes, jobs
+    for s in layout.sessions:
+        row = by_code.get(s.athlete)
+        info = AthleteInfo(athlete=s.athlete, session=s.session,
+                           body_mass_kg=_float(row["body_mass_kg"]) if row is not None else None,
+                           height_m=_float(row["height_m"]) if row is not None else None,
+                           sex=row["sex"] if row is not None else "male")
+        static = str(s.statics[0]) if s.statics else None
+        jobs.extend(TrialJob(str(trial), s.athlete, s.session, static, info, str(markers) if markers else None)
+                    for trial in s.trials)
+    return layout, jobs
 
 
 def _float(value) -> float | None:
@@ -420,17 +312,24 @@ def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: 
 def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, markers: str | Path | None = None,
               config: RunConfig = RunConfig(), report: bool = True, athlete_filter: str | None = None,
               progress: Callable[[int, int, int], None] | None = None, cluster=None,
-              write_outputs: bool = True) -> SquadRun:
+              write_outputs: bool = True, allow_unlisted: bool = False) -> SquadRun:
     """Analyse a whole squad folder and write the tables, manifest and (optionally) reports under ``out``.
 
     ``write_outputs=False`` analyses (through the cache under ``out``) and returns the tables without writing the
     squad exports, so a one-athlete view such as the timeline never overwrites the squad's tables.
 
     ``cluster`` (optional): send the trials to an existing Dask cluster instead of local processes; see
-    :func:`run_on_cluster`."""
+    :func:`run_on_cluster`.
+
+    Every input is checked before any trial is analysed or any file written (squadinput): a ConfigError means a
+    usage error (the command line's exit code 2). Athlete folders not in athletes.csv are skipped (listed in the
+    manifest) unless ``allow_unlisted``; ``athlete_filter`` matches a code without regard to letter case."""
     root, out = Path(root), Path(out)
-    athletes, all_jobs = discover_squad(root, markers)
+    check_marker_map(markers)  # once, here: a bad map is one usage error, not one failure per trial
+    layout, all_jobs = discover_squad(root, markers, allow_unlisted=allow_unlisted, exclude=(out,))
+    athletes = layout.athletes
     if athlete_filter is not None:
+        athlete_filter = match_athlete(athlete_filter, layout.athlete_codes(), root, athletes["athlete"])
         all_jobs = [j for j in all_jobs if j.athlete == athlete_filter]
     jobs = jobs or os.cpu_count() or 1
     cache = out / CACHE_DIR
@@ -441,11 +340,21 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     todo: list[tuple[TrialJob, str]] = []
     static_shas: dict[str, str] = {}
     n_cached = 0
+    unreadable: dict[str, dict] = {}
     for job in all_jobs:
-        sha = file_sha256(job.path)
-        static_sha = None
-        if job.static_path:
-            static_sha = static_shas.setdefault(job.static_path, file_sha256(job.static_path))
+        try:
+            sha = file_sha256(job.path)
+            static_sha = None
+            if job.static_path:
+                static_sha = static_shas.setdefault(job.static_path, file_sha256(job.static_path))
+        except OSError as exc:  # one unreadable file fails its trial, not the squad
+            unreadable[job.path] = {"status": "failed", "code": "unreadable",
+                                    "reason": f"trial {Path(job.path).name}: {exc.filename} cannot be read "
+                                              f"({exc.strerror or exc}); check the file's permissions"}
+            records[job.path] = {"file": _rel(job.path, root), "athlete": job.athlete, "session": job.session,
+                                 "sha256": None, "static_file": _rel(job.static_path, root) if job.static_path else None,
+                                 "cache_key": None}
+            continue
         key = _cache_key(job, config, sha, static_sha, markers_sha)
         records[job.path] = {"file": _rel(job.path, root), "athlete": job.athlete, "session": job.session,
                              "sha256": sha, "static_file": _rel(job.static_path, root) if job.static_path else None,
@@ -454,8 +363,8 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
             n_cached += 1
         else:
             todo.append((job, key))
-    done = [n_cached]
-    failures = [0]
+    done = [n_cached + len(unreadable)]
+    failures = [len(unreadable)]
     total = len(all_jobs)
     if progress:
         progress(done[0], total, failures[0])
@@ -480,7 +389,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     curve_files_by_athlete: dict[str, list[Path]] = {}
     for job in all_jobs:
         rec = records[job.path]
-        meta = json.loads((cache / f"{rec['cache_key']}.json").read_text(encoding="utf-8"))
+        meta = unreadable.get(job.path) or json.loads((cache / f"{rec['cache_key']}.json").read_text(encoding="utf-8"))
         rec["status"] = meta["status"]
         if meta["status"] == "ok":
             rec["reason"] = ""
@@ -520,8 +429,10 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         "software": "hamstride", "version": __version__, "code_fingerprint": code_fingerprint(), "squad": str(root),
         "configuration": config.as_dict(), "markers": str(markers) if markers else None,
         "athletes_csv_sha256": file_sha256(root / "athletes.csv") if (root / "athletes.csv").exists() else None,
-        "counts": counts,
-        "inputs": [records[j.path] for j in all_jobs],
+        "counts": counts | {"skipped": len(layout.skipped)},
+        "inputs": [records[j.path] for j in all_jobs]
+        + [{"file": _rel(str(p), root), "status": "skipped", "reason": why} for p, why in layout.skipped],
+        "warnings": list(layout.warnings),
     }
     atomic_write_text(out / "manifest.json", json.dumps(_jsonable(manifest), indent=1, sort_keys=False))
     run = SquadRun(out, manifest, strides, summary, flags, athletes, failed, analysed=len(todo), cached=n_cached)

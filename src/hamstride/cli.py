@@ -1,6 +1,9 @@
 """The `hamstride` command line: a thin typer layer over the Python API.
 
-Exit codes: 0 success, 1 when some trials failed (listed), 2 on usage errors.
+Exit codes: 0 success; 1 when some trials failed (each listed once); 2 on usage errors (bad arguments, missing or
+invalid input files, invalid configuration: checked before any analysis, and nothing is written); 3 on an
+unexpected internal error (one line on screen, the details in a log file it names). No traceback reaches the user.
+Every message prints literally (codes in brackets and TOML section names such as [landmarks] stay visible).
 """
 from __future__ import annotations
 
@@ -12,62 +15,128 @@ import sys
 for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_variable, "1")
 from pathlib import Path
-from typing import Optional
+from typing import Optional, Sequence
 
 import typer
 from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 
-from .errors import HamstrideError
+from . import __version__
+from .errors import ConfigError, HamstrideError
+from .squadinput import HEIGHT_RANGE_M
+
+EXIT_OK, EXIT_TRIALS_FAILED, EXIT_USAGE, EXIT_INTERNAL = 0, 1, 2, 3
+# typer's own copy of click's exception classes (typer may vendor click, so `import click` would name other classes)
+_CLICK_ERRORS = {cls.__name__: cls for cls in typer.BadParameter.__mro__}
+_UsageError, _ClickException = _CLICK_ERRORS["UsageError"], _CLICK_ERRORS["ClickException"]
 
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
     rich_markup_mode="markdown",
+    pretty_exceptions_enable=False,
     help=(
         "Late-swing hamstring stretch, lengthening velocity and lengthening work of sprinters from C3D marker "
         "files.\n\n"
         "Example: `hamstride squad demo_trials --out reports/`\n\n"
+        "Exit codes: 0 success, 1 some trials failed, 2 usage error (nothing analysed), 3 internal error.\n\n"
         "A screening and monitoring aid, not a diagnosis; decisions about an athlete's care belong to qualified "
         "clinicians and local practice."
     ),
 )
-console = Console()
-err_console = Console(stderr=True)
+console = Console(highlight=False)
+err_console = Console(stderr=True, highlight=False)
+
+
+def say(message: str, *, style: str = "", err: bool = False) -> None:
+    """Print a message literally (never parsed as markup) on one logical line (no hard wrapping)."""
+    (err_console if err else console).print(Text(message, style=style), soft_wrap=True)
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _version_callback(value: bool) -> None:
+    if value:
+        say(f"hamstride {__version__}")
+        raise typer.Exit(EXIT_OK)
 
 
 @app.callback()
-def _every_command() -> None:
+def _every_command(
+    version: bool = typer.Option(False, "--version", is_eager=True, callback=_version_callback,
+                                 help="Print the version and exit."),
+) -> None:
     # Before any command: let this process reuse freed memory (batch.tune_allocator; no effect without glibc).
     from .batch import tune_allocator
 
     tune_allocator()
 
 
-def _fail(exc: HamstrideError, code: int = 1) -> None:
-    err_console.print(f"[bold red]error[/] [{exc.code}] {exc.message}", highlight=False, soft_wrap=True)
-    raise typer.Exit(code)
+def exit_code_of(exc: HamstrideError) -> int:
+    """2 for a usage error (ConfigError: bad input files, configuration, arguments), 1 for a failed trial."""
+    return EXIT_USAGE if isinstance(exc, ConfigError) else EXIT_TRIALS_FAILED
+
+
+def _fail(exc: HamstrideError, code: int | None = None) -> None:
+    say(f"error [{exc.code}] {_one_line(exc.message)}", style="bold red", err=True)
+    raise typer.Exit(exit_code_of(exc) if code is None else code)
+
+
+def _warn(message: str) -> None:
+    say(f"warning {_one_line(message)}", style="yellow", err=True)
 
 
 @app.command("landmarks")
 def landmarks_cmd(
     trial: Path = typer.Argument(..., help="A C3D trial."),
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
+    write_map: Optional[Path] = typer.Option(
+        None, "--write-map", help="Write a marker map for this file's labels (best guess per landmark, other "
+                                  "candidates in comments, unresolved ones as commented lines to fill in)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Let --write-map replace an existing file."),
 ) -> None:
     """Show how each anatomical landmark resolved in a trial (label used, % valid frames).
 
     Example: `hamstride landmarks demo_trials/KT07/2026-03-02_testing/sprint_01.c3d`
 
-    Exit code 0 when every required landmark resolves, 1 otherwise.
+    Your lab's labels: `hamstride landmarks TRIAL.c3d --write-map my_markers.toml`, check the file, then pass
+    `--markers my_markers.toml` to every command.
+
+    Exit code 0 when every required landmark resolves, 1 otherwise, 2 on usage errors.
     """
-    from .io import read_c3d_isolated
+    from .io import atomic_write_text, read_c3d_isolated
     from .landmarks import LandmarkError, load_marker_map, plain_name, resolve_landmarks
+    from .squadinput import check_marker_map, require_file
 
     try:
-        marker_map = load_marker_map(markers)
+        require_file(trial, "trial")
+        if write_map is not None:
+            if markers is not None:
+                raise ConfigError("use either --markers (an existing map) or --write-map (a new one), not both",
+                                  code="usage")
+            if write_map.is_dir():
+                raise ConfigError(f"--write-map {write_map} is a folder; give a file name such as "
+                                  f"{write_map / 'markers.toml'}", code="usage")
+            if write_map.exists() and not overwrite:
+                raise ConfigError(f"--write-map {write_map} already exists; choose another name or add --overwrite",
+                                  code="usage")
+        marker_map = check_marker_map(markers)
         data = read_c3d_isolated(trial)
     except HamstrideError as exc:
         _fail(exc)
+    if write_map is not None:
+        from .mapwriter import map_toml, propose_map
+
+        proposal = propose_map(data.labels)
+        atomic_write_text(write_map, map_toml(proposal, trial.name, __version__))
+        marker_map = load_marker_map(write_map)
+        guessed = len(proposal.landmarks) - len(proposal.unresolved)
+        say(f"wrote {write_map}: {guessed} of {len(proposal.landmarks)} landmarks guessed"
+            + (f", to fill in: {', '.join(proposal.unresolved)}" if proposal.unresolved else "")
+            + f". Check it, then use --markers {write_map}")
     try:
         lm = resolve_landmarks(data, marker_map)
         problem = None
@@ -83,15 +152,16 @@ def landmarks_cmd(
         axes = f"vertical {lab.vertical_axis}, travel {lab.travel_axis} (from {lab.travel_from})"
     except LandmarkError:
         axes = "lab axes unknown (pelvis or feet missing)"
-    table = Table(title=f"{trial.name}: {data.n_frames} frames at {data.rate_hz:g} Hz, {axes} ({marker_map.source})")
+    table = Table(title=Text(f"{trial.name}: {data.n_frames} frames at {data.rate_hz:g} Hz, {axes} "
+                             f"({marker_map.source})"))
     table.add_column("landmark")
     table.add_column("label")
     table.add_column("valid frames %", justify="right")
     table.add_column("")
     for row in lm.report:
         status = "required" if row.required else "optional"
-        label = row.label if row.label is not None else f"[red]missing[/] ({row.note})"
-        table.add_row(plain_name(row.landmark), label, f"{row.valid_pct:.0f}", status)
+        label = Text(row.label) if row.label is not None else Text(f"missing ({row.note})", style="red")
+        table.add_row(Text(plain_name(row.landmark)), label, f"{row.valid_pct:.0f}", status)
     console.print(table)
     if problem is not None:
         _fail(problem)
@@ -108,14 +178,17 @@ def demo_cmd(
     from .synth import write_demo_squad
 
     paths = write_demo_squad(directory)
-    console.print(f"wrote {len(paths)} files under {directory}")
+    say(f"wrote {len(paths)} files under {directory}")
 
 
 @app.command("muscles")
 def muscles_cmd(
-    hip_flexion: float = typer.Option(0.0, "--hip-flexion", help="Hip flexion in degrees."),
-    knee_flexion: float = typer.Option(0.0, "--knee-flexion", help="Knee flexion in degrees."),
-    height: float = typer.Option(1.80, "--height", help="Athlete height in metres (scales the model)."),
+    hip_flexion: float = typer.Option(0.0, "--hip-flexion", min=-40.0, max=140.0,
+                                      help="Hip flexion in degrees (-40 to 140)."),
+    knee_flexion: float = typer.Option(0.0, "--knee-flexion", min=-10.0, max=160.0,
+                                       help="Knee flexion in degrees (-10 to 160)."),
+    height: float = typer.Option(1.80, "--height", min=HEIGHT_RANGE_M[0], max=HEIGHT_RANGE_M[1],
+                                 help="Athlete height in metres (scales the model; 1.2 to 2.3)."),
     plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw moment-arm curves to this PNG."),
 ) -> None:
     """Print each hamstring's length, strain and moment arms at one hip and knee angle.
@@ -139,20 +212,50 @@ def muscles_cmd(
     for _, row in frame.iterrows():
         table.add_row(*[f"{v:.3g}" if isinstance(v, float) else str(v) for v in row])
     console.print(table)
-    console.print("Moment arms by tendon excursion, r = -dL/dtheta: negative at the hip = extensor, positive at the "
-                  "knee = flexor. Strain is relative to standing upright (hip 0, knee 0 deg).")
+    say("Moment arms by tendon excursion, r = -dL/dtheta: negative at the hip = extensor, positive at the "
+        "knee = flexor. Strain is relative to standing upright (hip 0, knee 0 deg).")
     if plot is not None:
-        console.print(f"wrote {plot_moment_arms(plot, dims)}")
+        say(f"wrote {plot_moment_arms(plot, dims)}")
+
+
+def _squad_of(trial: Path) -> Path | None:
+    """The squad folder around a trial (ROOT/athletes.csv, ROOT/ATHLETE/YYYY-MM-DD_name/trial.c3d), or None."""
+    from .squadinput import session_date
+
+    session_dir = trial.resolve().parent
+    root = session_dir.parent.parent
+    return root if session_date(session_dir.name) is not None and (root / "athletes.csv").is_file() else None
+
+
+def _trial_athlete(trial: Path, subject: object, athlete: str | None, session: str | None, athletes):
+    """Athlete code, session name and athletes.csv row (or None) of a single trial: the options; else, inside a
+    squad folder (``athletes``: its athletes.csv, else None), the folder names and that athlete's row; else the
+    C3D subject name and the file name. Unrelated parent folders never name anything."""
+    if athletes is None:
+        named = str(subject).strip() if subject is not None and str(subject).strip() else trial.stem
+        return athlete or named, session or trial.stem, None
+    folder = trial.resolve().parent
+    code = athlete or folder.parent.name
+    rows = athletes[athletes["athlete"].str.lower() == code.lower()]
+    row = rows.iloc[0].to_dict() if not rows.empty else None
+    return (row["athlete"] if row else code), session or folder.name, row
 
 
 @app.command("analyze")
 def analyze_cmd(
     trial: Path = typer.Argument(..., help="A C3D sprint trial."),
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
-    body_mass: Optional[float] = typer.Option(None, "--body-mass", help="Body mass in kg (needed for forces and work)."),
-    sex: str = typer.Option("male", "--sex", help="male or female (segment inertia, de Leva 1996)."),
+    body_mass: Optional[float] = typer.Option(None, "--body-mass", help="Body mass in kg (needed for forces and work; "
+                                              "default: athletes.csv inside a squad folder, else the C3D file)."),
+    sex: Optional[str] = typer.Option(None, "--sex", help="male or female (segment inertia, de Leva 1996; "
+                                      "default: athletes.csv inside a squad folder, else male)."),
     static: Optional[Path] = typer.Option(None, "--static", help="Static standing trial for calibration."),
     cutoff: Optional[float] = typer.Option(None, "--cutoff", help="Low-pass cutoff in Hz (default: residual analysis)."),
+    config: Optional[Path] = typer.Option(None, "--config", help="TOML config; see `hamstride config`."),
+    athlete: Optional[str] = typer.Option(None, "--athlete", help="Athlete code for the tables (default: the squad "
+                                          "folder, else the C3D subject name, else the file name)."),
+    session: Optional[str] = typer.Option(None, "--session", help="Session name for the tables (default: the squad "
+                                          "session folder, else the file name)."),
     out: Path = typer.Option(Path("reports/trial"), "--out", help="Output folder."),
     strict: bool = typer.Option(False, "--strict", help="Treat warnings (gaps, rejected strides, event "
                                 "disagreements, ...) as errors: such a trial fails with the warning's code."),
@@ -160,38 +263,85 @@ def analyze_cmd(
     """Analyse one trial and write its strides.csv and curves.csv.
 
     Example: `hamstride analyze demo_trials/KT07/2026-03-02_testing/sprint_01.c3d --body-mass 74 --out reports/one`
+
+    Exit code 0 when the trial was analysed, 1 when it failed, 2 on usage errors.
     """
     from .batch import columns_csv
     from .io import atomic_write_text, read_c3d_isolated
-    from .pipeline import AnalysisOptions, AthleteInfo, analyse_trial
+    from .pipeline import AthleteInfo, analyse_trial
+    from .settings import load_config, settings_of
+    from .squadinput import BODY_MASS_RANGE_KG, SEXES, check_marker_map, read_athletes, require_file
 
-    info = AthleteInfo(athlete=trial.parent.parent.name, session=trial.parent.name, body_mass_kg=body_mass,
-                       sex="female" if sex.lower().startswith("f") else "male")
-    try:
-        for path in (trial, static):
-            if path is not None:
-                read_c3d_isolated(path)  # a native reader crash becomes an error message, not a dead process
-        result = analyse_trial(trial, AnalysisOptions(cutoff_hz=cutoff, strict=strict), athlete=info, static_path=static,
-                               markers=markers)
+    try:  # every input first: a usage error writes nothing
+        require_file(trial, "trial")
+        if static is not None:
+            require_file(static, "static trial")
+        check_marker_map(markers)
+        if cutoff is not None:
+            settings_of("analysis")["cutoff_hz"].check(cutoff, "--cutoff")
+        cfg = load_config(config, cutoff_hz=cutoff, strict=True if strict else None)
+        if body_mass is not None and not BODY_MASS_RANGE_KG[0] <= body_mass <= BODY_MASS_RANGE_KG[1]:
+            raise ConfigError(f"--body-mass {body_mass:g}: expected kg between {BODY_MASS_RANGE_KG[0]:g} and "
+                              f"{BODY_MASS_RANGE_KG[1]:g}", code="usage")
+        if sex is not None and sex.strip().lower() not in SEXES:
+            raise ConfigError(f"--sex {sex}: expected male or female", code="usage")
+        if out.exists() and not out.is_dir():
+            raise ConfigError(f"--out {out} is a file; give a folder", code="usage")
+        squad = _squad_of(trial)
+        athletes = read_athletes(squad / "athletes.csv") if squad is not None else None
     except HamstrideError as exc:
         _fail(exc)
+    try:
+        data = read_c3d_isolated(trial)  # a native reader crash becomes an error message, not a dead process
+        if static is not None:
+            read_c3d_isolated(static)
+        athlete_code, session_name, row = _trial_athlete(trial, data.meta.get("subject"), athlete, session,
+                                                            athletes)
+        known = {} if row is None else {k: row[k] for k in ("body_mass_kg", "height_m") if row[k] == row[k]}
+        info = AthleteInfo(athlete=athlete_code, session=session_name,
+                           body_mass_kg=body_mass if body_mass is not None else known.get("body_mass_kg"),
+                           height_m=known.get("height_m"),
+                           sex=SEXES[sex.strip().lower()] if sex is not None else (row or {}).get("sex", "male"))
+        result = analyse_trial(trial, cfg.analysis, athlete=info, static_path=static, markers=markers)
+    except HamstrideError as exc:
+        _fail(exc, EXIT_TRIALS_FAILED)
     atomic_write_text(out / "strides.csv", columns_csv(result.tables["strides"]))
     atomic_write_text(out / "curves.csv", columns_csv(result.tables["curves"]))
     n = result.info.get("n_strides", {})
-    console.print(f"{trial.name}: {n.get('left', 0)} left and {n.get('right', 0)} right strides, "
-                  f"speed {result.info['speed_m_s']:.2f} m/s, cutoff {result.info['cutoff_hz']:.1f} Hz "
-                  f"({result.info['cutoff_method']}); wrote {out}/strides.csv and curves.csv")
+    say(f"{trial.name} (athlete {athlete_code}, session {session_name}): {n.get('left', 0)} left and "
+        f"{n.get('right', 0)} right strides, speed {result.info['speed_m_s']:.2f} m/s, cutoff "
+        f"{result.info['cutoff_hz']:.1f} Hz ({result.info['cutoff_method']}); wrote {out}/strides.csv and curves.csv")
     plates = result.info.get("force_plates")
     if plates:
         offsets = plates["marker_offset_from_plates"]
         parts = [f"{label} {o['median']:+.1f} ms (5-95 %: {o['p5']:+.1f} to {o['p95']:+.1f}, n={o['n']})"
                  for label, o in (("foot strike", offsets["foot_strike_ms"]), ("toe-off", offsets["toe_off_ms"]))
                  if o["n"]]
-        console.print(f"force plates: {plates['n_plate_contacts']} contact(s) timed by {plates['n_plates']} plate(s); "
-                      "marker rule minus plates: " + ("; ".join(parts) if parts else "no contact seen by both"),
-                      markup=False, highlight=False)
+        say(f"force plates: {plates['n_plate_contacts']} contact(s) timed by {plates['n_plates']} plate(s); "
+            "marker rule minus plates: " + ("; ".join(parts) if parts else "no contact seen by both"))
     for warning in result.info.get("warnings", []):
-        console.print(f"[yellow]note[/] {warning}", highlight=False)
+        say(f"note {_one_line(warning)}", style="yellow")
+
+
+def _check_squad_inputs(root: Path, out: Path, markers: Optional[Path], config: Optional[Path],
+                        allow_unlisted: bool, **overrides):
+    """Configuration, marker map and squad folder, checked before anything runs; warnings printed once."""
+    from .batch import discover_squad
+    from .settings import load_config
+    from .squadinput import check_marker_map
+
+    cfg = load_config(config, **overrides)
+    check_marker_map(markers)
+    if out.exists() and not out.is_dir():
+        raise ConfigError(f"--out {out} is a file; give a folder", code="usage")
+    layout, _ = discover_squad(root, markers, allow_unlisted=allow_unlisted, exclude=(out,))
+    for warning in layout.warnings:
+        _warn(warning)
+    return cfg, layout
+
+
+_ALLOW_UNLISTED = typer.Option(False, "--allow-unlisted", help="Also analyse athlete folders that athletes.csv does "
+                               "not list (without body data); by default they are skipped with a warning.")
 
 
 @app.command("squad")
@@ -204,6 +354,7 @@ def squad_cmd(
     no_report: bool = typer.Option(False, "--no-report", help="Write tables only, no HTML/PDF reports."),
     strict: bool = typer.Option(False, "--strict", help="Treat warnings (gaps, rejected strides, event "
                                 "disagreements, ...) as errors: such a trial fails with the warning's code."),
+    allow_unlisted: bool = _ALLOW_UNLISTED,
     cluster: Optional[str] = typer.Option(
         None, "--cluster", help="Send trials to an existing Dask cluster: scheduler address tcp://HOST:PORT or a "
                                 "scheduler file (needs `pip install 'hamstride[cluster]'`; workers must see ROOT "
@@ -215,16 +366,17 @@ def squad_cmd(
 
     On a Dask cluster: `hamstride squad /shared/squad --out reports/ --cluster tcp://10.0.0.5:8786`
 
-    Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors.
+    Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors (checked
+    before any trial is analysed).
     """
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
-    from .batch import load_config, run_squad
+    from .batch import run_squad
 
     try:
-        cfg = load_config(config, strict=True if strict else None)
+        cfg, _ = _check_squad_inputs(root, out, markers, config, allow_unlisted, strict=True if strict else None)
     except HamstrideError as exc:
-        _fail(exc, 2)
+        _fail(exc, EXIT_USAGE)
     with Progress(TextColumn("[bold]trials"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.fields[failed]}"),
                   TimeElapsedColumn(), console=err_console, transient=False) as bar:
         task = bar.add_task("trials", total=None, failed="")
@@ -234,69 +386,140 @@ def squad_cmd(
 
         try:
             run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=not no_report,
-                            progress=progress, cluster=cluster)
+                            progress=progress, cluster=cluster, allow_unlisted=allow_unlisted)
         except HamstrideError as exc:
-            _fail(exc, 2)
+            _fail(exc, EXIT_USAGE)
     counts = run.manifest["counts"]
-    console.print(f"{counts['trials']} trials ({run.analysed} analysed, {run.cached} from cache), "
-                  f"{counts['ok']} ok, {counts['failed']} failed; {counts['strides']} strides; "
-                  f"{counts['flags']} flags. Tables in {out}/" + (f", report {out}/index.html" if not no_report else ""))
+    say(f"{counts['trials']} trials ({run.analysed} analysed, {run.cached} from cache), "
+        f"{counts['ok']} ok, {counts['failed']} failed; {counts['strides']} strides; "
+        f"{counts['flags']} flags. Tables in {out}/" + (f", report {out}/index.html" if not no_report else ""))
     if run.failed:
-        console.print("[bold red]failed trials:[/]")
-        for rec in run.failed:
-            console.print(f"  {rec['file']}: [{rec.get('code', 'error')}] {rec['reason']}", highlight=False)
-        raise typer.Exit(1)
+        _list_failed(run.failed)
+        raise typer.Exit(EXIT_TRIALS_FAILED)
+
+
+def _list_failed(failed: Sequence[dict]) -> None:
+    say(f"failed trials ({len(failed)}):", style="bold red")
+    for rec in failed:
+        say(f"  {rec['file']}: [{rec.get('code', 'error')}] {_one_line(rec['reason'])}")
 
 
 @app.command("timeline")
 def timeline_cmd(
     root: Path = typer.Argument(..., help="Squad folder (as for `squad`)."),
-    athlete: str = typer.Option(..., "--athlete", help="Athlete code, e.g. RB12."),
+    athlete: str = typer.Option(..., "--athlete", help="Athlete code, e.g. RB12 (letter case does not matter)."),
     out: Path = typer.Option(Path("reports"), "--out", help="Output folder (shares the squad cache)."),
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map."),
     config: Optional[Path] = typer.Option(None, "--config", help="TOML config; see `hamstride config`."),
     jobs: Optional[int] = typer.Option(None, "--jobs", min=1, help="Worker processes (default: all cores)."),
+    allow_unlisted: bool = _ALLOW_UNLISTED,
 ) -> None:
     """Return-to-run timeline of one athlete across sessions (CSV, PNG and HTML).
 
     Example: `hamstride timeline demo_trials --athlete RB12 --out reports/`
+
+    Exit code 0 when the timeline was written, 1 when trials failed (listed), 2 on usage errors (e.g. an unknown
+    athlete: the known codes are listed).
     """
-    from .batch import build_timeline, load_config, run_squad
+    from .batch import build_timeline, run_squad
     from .report import render_timeline
+    from .squadinput import match_athlete
 
     try:
-        cfg = load_config(config)
-        run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=False, athlete_filter=athlete,
-                        write_outputs=False)
+        cfg, layout = _check_squad_inputs(root, out, markers, config, allow_unlisted)
+        code = match_athlete(athlete, layout.athlete_codes(), root, layout.athletes["athlete"])
+        run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=False, athlete_filter=code,
+                        write_outputs=False, allow_unlisted=allow_unlisted)
     except HamstrideError as exc:
-        _fail(exc, 2)
-    timeline = build_timeline(run, athlete)
+        _fail(exc, EXIT_USAGE)
+    timeline = build_timeline(run, code)
     if timeline.empty:
-        err_console.print(f"no analysed sessions for athlete {athlete!r} under {root}", highlight=False)
-        raise typer.Exit(1)
-    row = run.athletes[run.athletes["athlete"] == athlete]
+        say(f"error [no_sessions] no session of athlete {code} under {root} could be analysed", style="bold red",
+            err=True)
+        _list_failed(run.failed)
+        raise typer.Exit(EXIT_TRIALS_FAILED)
+    row = run.athletes[run.athletes["athlete"] == code]
     info = row.iloc[0].to_dict() if not row.empty else None
-    paths = render_timeline(out, timeline, athlete, info, {"configuration": cfg.as_dict()})
-    console.print(f"timeline of {athlete}: {timeline['session'].nunique()} sessions; wrote "
-                  + ", ".join(str(p) for p in paths))
+    paths = render_timeline(out, timeline, code, info, {"configuration": cfg.as_dict()})
+    say(f"timeline of {code}: {timeline['session'].nunique()} sessions; wrote " + ", ".join(str(p) for p in paths))
     if run.failed:
-        raise typer.Exit(1)
+        _list_failed(run.failed)
+        raise typer.Exit(EXIT_TRIALS_FAILED)
 
 
 @app.command("config")
 def config_cmd() -> None:
-    """Print the default configuration (TOML) with a note on every setting.
+    """Print every key --config accepts, as TOML: what it does, type, range, default and source.
 
     Example: `hamstride config > my_config.toml`, edit, then `hamstride squad ROOT --config my_config.toml`
     """
-    from .batch import default_config_toml
+    from .settings import config_toml
 
-    typer.echo(default_config_toml())
+    typer.echo(config_toml())
 
 
-def main() -> None:  # pragma: no cover - console entry point helper
-    app()
+def _log_unexpected(exc: BaseException) -> Path | None:
+    """Write the details of an unexpected error to a log file; its path (None when even that fails)."""
+    import datetime as dt
+    import platform
+    import tempfile
+    import traceback
+
+    folder = Path(os.environ.get("HAMSTRIDE_LOG_DIR") or Path(tempfile.gettempdir()) / "hamstride-logs")
+    try:
+        from .io import atomic_write_text
+
+        path = folder / f"hamstride-{dt.datetime.now():%Y%m%d-%H%M%S}-{os.getpid()}.log"
+        details = (f"hamstride {__version__}, Python {platform.python_version()}, {platform.platform()}\n"
+                   f"command: {' '.join(sys.argv)}\n\n"
+                   + "".join(traceback.format_exception(type(exc), exc, exc.__traceback__)))
+        return atomic_write_text(path, details)
+    except Exception:  # noqa: BLE001 - the log is a courtesy; the one-line message must still reach the user
+        return None
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """The `hamstride` command; returns the exit code (0 ok, 1 trials failed, 2 usage error, 3 internal error).
+
+    Usage errors print one line (not a box), and an unexpected error prints one line and the path of a log file
+    with the traceback: nothing else reaches the user. Library warnings (e.g. numpy's "Mean of empty slice") are
+    not shown unless asked for with ``python -W`` / ``PYTHONWARNINGS`` (the idiom of the warnings module's docs).
+    """
+    if not sys.warnoptions:
+        import warnings
+
+        warnings.simplefilter("ignore")  # forked pool workers inherit it
+    try:
+        result = app(args=list(argv) if argv is not None else None, prog_name="hamstride", standalone_mode=False)
+        return result if isinstance(result, int) else EXIT_OK
+    except _UsageError as exc:
+        if type(exc).__name__ == "NoArgsIsHelpError":  # `hamstride` alone: typer has printed the help text
+            return EXIT_USAGE
+        command = exc.ctx.command_path if exc.ctx is not None else "hamstride"
+        say(f"error [usage] {command}: {_one_line(exc.format_message())} (see {command} --help)", style="bold red",
+            err=True)
+        return EXIT_USAGE
+    except _ClickException as exc:
+        say(f"error [usage] {_one_line(exc.format_message())}", style="bold red", err=True)
+        return EXIT_USAGE
+    except typer.Abort:
+        say("aborted", err=True)
+        return 130
+    except OSError as exc:  # a file or folder given on the command line cannot be written or read
+        where = f"{exc.filename}: " if exc.filename else ""
+        say(f"error [file_access] cannot use {where}{exc.strerror or exc}; check the path and its permissions",
+            style="bold red", err=True)
+        return EXIT_USAGE
+    except HamstrideError as exc:  # raised outside a command's own handling
+        say(f"error [{exc.code}] {_one_line(exc.message)}", style="bold red", err=True)
+        return exit_code_of(exc)
+    except Exception as exc:  # noqa: BLE001 - a bug: one line and a log file, never a traceback
+        log = _log_unexpected(exc)
+        where = f"; details in {log}" if log is not None else ""
+        say(f"error [internal_error] unexpected {type(exc).__name__}: {_one_line(str(exc))[:300]} (a bug in "
+            f"hamstride {__version__}{where})", style="bold red", err=True)
+        return EXIT_INTERNAL
 
 
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(app())
+    sys.exit(main())

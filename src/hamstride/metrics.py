@@ -293,36 +293,3 @@ def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: 
                     "assumed tendon slack length; compare within the athlete and squad rather than as an absolute.")
     flags = pd.DataFrame(rows, columns=FLAG_COLUMNS)
     return flags.sort_values(["athlete", "session", "flag", "side", "muscle"], kind="stable").reset_index(drop=True)
-
-
-def flag_config_toml(config: FlagConfig = FlagConfig()) -> str:
-    """The flag defaults as a commented TOML section (printed by `hamstride config`)."""
-    notes = {
-        "asymmetry_pct": "side_asymmetry when |symmetry index| of peak strain or negative work exceeds this (%). "
-                         "Common practice from strength testing: <10% difference for return to sport (MSSE 2019); "
-                         "imbalances >=15% raised strain risk 2.4x (Bourne et al. 2015)",
-        "asymmetry_confidence_z": "...and still exceeds it after subtracting this many standard errors of the "
-                                  "stride-to-stride variation (1.645 = one-sided 95%), so ordinary variation does not "
-                                  "fire the flag",
-        "guarding_lsi_pct": "involved_side_guarding when the involved side's peak strain is below this % of the "
-                            "other side (limb symmetry index)",
-        "high_stretch_limit_lopt": "high_stretch above this peak fibre length / optimal length; nan = use the squad "
-                                   "distribution instead",
-        "high_stretch_squad_z": "high_stretch above the squad mean + this many SD (per muscle)",
-        "high_stretch_min_athletes": "the squad distribution needs at least this many athletes",
-        "min_strides": "few_strides below this many valid strides on a side",
-        "speed_low_fraction": "speed_low when session speed is below this fraction of the athlete's best",
-        "muscles": "muscles the stretch flags look at",
-    }
-    lines = ["[flags]"]
-    for f in fields(config):
-        value = getattr(config, f.name)
-        if isinstance(value, tuple):
-            text = "[" + ", ".join(f'"{v}"' for v in value) + "]"
-        elif isinstance(value, float) and math.isnan(value):
-            text = "nan"
-        else:
-            text = repr(value)
-        lines.append(f"# {notes.get(f.name, '')}")
-        lines.append(f"{f.name} = {text}")
-    return "\n".join(lines) + "\n"
