@@ -549,13 +549,15 @@ def share_forces(
 class OtherMuscle:
     """A non-hamstring muscle in the sharing problem: sagittal moment arms (r = -dL/dtheta) and strength.
 
-    ``pcsa_cm2`` times the specific tension gives the maximum isometric force before athlete scaling.
-    Moment arms are functions of the hip and knee flexion angles (rad) returning metres.
+    ``volume_share`` (of the athlete's lower-limb muscle volume, Handsfield et al. 2014) / optimal fibre length
+    x specific tension gives the maximum isometric force, as for the hamstrings (``muscles.max_isometric_force``;
+    pennation not modelled for these, cos ~ 1). Moment arms are functions of the hip and knee flexion angles (rad)
+    returning metres.
     """
 
     code: str
     name: str
-    pcsa_cm2: float
+    volume_share: float
     optimal_fibre_length_m: float
     hip_moment_arm: Callable[[np.ndarray], np.ndarray]
     knee_moment_arm: Callable[[np.ndarray], np.ndarray]
@@ -607,44 +609,44 @@ def _adductor_magnus_hip_arm(hip_flexion_rad: np.ndarray) -> np.ndarray:
 ADDUCTOR_MAGNUS_POSTERIOR_FRACTION = 0.5
 
 
-# PCSA from Ward et al. 2009 (Clin Orthop Relat Res 467:1074) - from memory, not checked against the table.
-# Optimal fibre lengths from the same paper - from memory. Moment arms as stated per function / entry.
+# Volume shares of the total lower-limb muscle volume: Handsfield et al. 2014 (J Biomech 47:631), Table 2, from
+# memory [M]. Optimal fibre lengths: Ward et al. 2009 (Clin Orthop Relat Res 467:1074), from memory [M].
+# Moment arms as stated per function / entry.
 OTHER_MUSCLES: dict[str, OtherMuscle] = {
     "gmax": OtherMuscle(
-        "gmax", "gluteus maximus", 33.4, 0.156, _gluteus_hip_arm, _const(0.0),
-        "PCSA, fibre length: Ward et al. 2009 (from memory); hip arm: Németh & Ohlsén 1985 (from memory)",
+        "gmax", "gluteus maximus", 0.121, 0.156, _gluteus_hip_arm, _const(0.0),
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; hip arm: Nemeth & Ohlsen "
+        "1985 [M]",
     ),
     "ilps": OtherMuscle(
-        "ilps", "iliopsoas (iliacus + psoas)", 9.9 + 7.7, 0.102, _const(0.030), _const(0.0),
-        "PCSA, fibre length: Ward et al. 2009 (from memory); hip-flexion arm 3 cm near neutral (from memory)",
+        "ilps", "iliopsoas (iliacus + psoas)", 0.025 + 0.032, 0.102, _const(0.030), _const(0.0),
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; hip-flexion arm 3 cm [M]",
     ),
     "rf": OtherMuscle(
-        "rf", "rectus femoris", 13.5, 0.076, _const(0.040), _quadriceps_knee_arm,
-        "PCSA, fibre length: Ward et al. 2009 (from memory); hip-flexion arm 4 cm (from memory); knee: quadriceps",
+        "rf", "rectus femoris", 0.037, 0.076, _const(0.040), _quadriceps_knee_arm,
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; hip-flexion arm 4 cm [M]",
     ),
     "vas": OtherMuscle(
-        "vas", "vasti (lateralis + medialis + intermedius)", 35.1 + 20.6 + 16.7, 0.090, _const(0.0),
-        _quadriceps_knee_arm, "PCSA, fibre length: Ward et al. 2009 (from memory); knee: quadriceps",
+        "vas", "vasti (lateralis + medialis + intermedius)", 0.119 + 0.062 + 0.056, 0.090, _const(0.0),
+        _quadriceps_knee_arm, "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]",
     ),
     "amag": OtherMuscle(
-        "amag", "adductor magnus, posterior (ischiocondylar) part", 20.5 * ADDUCTOR_MAGNUS_POSTERIOR_FRACTION, 0.144,
+        "amag", "adductor magnus, posterior (ischiocondylar) part", 0.076 * ADDUCTOR_MAGNUS_POSTERIOR_FRACTION, 0.144,
         _adductor_magnus_hip_arm, _const(0.0),
-        "PCSA 20.5 cm2 and fibre length 14.4 cm: Ward et al. 2009 (from memory, unverified), half of it posterior "
-        "(assumption); hip-extension arm from memory (Németh & Ohlsén 1985); no knee moment",
+        "volume share: Handsfield et al. 2014 [M], half of it posterior (assumption); fibre length: Ward et al. "
+        "2009 [M]; hip-extension arm [M] (Nemeth & Ohlsen 1985); no knee moment",
     ),
     "gas": OtherMuscle(
-        "gas", "gastrocnemius (medial + lateral)", 21.1 + 9.7, 0.055, _const(0.0), _gastrocnemius_knee_arm,
-        "PCSA, fibre length: Ward et al. 2009 (from memory); knee arm from memory; its ankle moment is not matched",
+        "gas", "gastrocnemius (medial + lateral)", 0.036 + 0.020, 0.055, _const(0.0), _gastrocnemius_knee_arm,
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; knee arm [M]; its ankle "
+        "moment is not matched",
     ),
 }
 
-SPECIFIC_TENSION_N_PER_CM2 = 26.8  # Persad et al. 2024, J Appl Physiol 137:945 [V]; the muscles stage uses the same
-
-#: Multiplier on every muscle's maximum isometric force in the sharing problem. Cadaver PCSAs (Ward et al. 2009,
-#: elderly donors) underestimate young athletes' muscles (references.md); young adults' hamstring and quadriceps
-#: volumes are roughly twice those of elderly cadavers (Handsfield et al. 2014, J Biomech 47:631, from memory).
-#: Assumption: 2.0. Frames where even this cannot meet the moments are reported, never hidden.
-ATHLETE_STRENGTH_FACTOR = 2.0
+#: Reserve (unmet) moment that still counts as met: 1 N m + 1 % of the net moment (assumption, common practice:
+#: reserve actuators small against the net joint moment).
+RESERVE_TOLERANCE_NM = 1.0
+RESERVE_TOLERANCE_FRACTION = 0.01
 
 
 @dataclass(frozen=True)
@@ -661,15 +663,19 @@ def other_muscle_kinematics(
     hip_flexion_rad: np.ndarray,
     knee_flexion_rad: np.ndarray,
     rate_hz: float,
-    strength_scale: float = 1.0,
+    limb_force_scale_n_m: float = float("nan"),
     muscles: Mapping[str, OtherMuscle] = OTHER_MUSCLES,
 ) -> dict[str, OtherMuscleKinematics]:
-    """Moment arms and lengthening velocity v = -(r_hip dhip/dt + r_knee dknee/dt) of the non-hamstring muscles."""
+    """Moment arms and lengthening velocity v = -(r_hip dhip/dt + r_knee dknee/dt) of the non-hamstring muscles.
+
+    ``limb_force_scale_n_m``: limb muscle volume x specific tension x strength factor (N m), see
+    ``athlete_force_scale``; each muscle's maximum force is that x its volume share / its optimal fibre length.
+    """
     hip = np.asarray(hip_flexion_rad, dtype=float)
     knee = np.asarray(knee_flexion_rad, dtype=float)
     arms, velocity = _other_arms_and_velocities(hip, knee, *_angle_rates(hip, knee, rate_hz), muscles)
     return {code: OtherMuscleKinematics(code, arms[:, k], velocity[:, k],
-                                        m.pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * strength_scale)
+                                        limb_force_scale_n_m * m.volume_share / m.optimal_fibre_length_m)
             for k, (code, m) in enumerate(muscles.items())}
 
 
@@ -688,23 +694,42 @@ def _other_arms_and_velocities(hip, knee, hip_rate, knee_rate, muscles: Mapping[
     return arms, -(arms[:, :, 0] * hip_rate[:, None] + arms[:, :, 1] * knee_rate[:, None])
 
 
-def _mass_scale(states: Mapping[str, MuscleState]) -> float:
-    """How much the muscles stage scaled the hamstrings' PCSA-based forces (body-mass scaling), to apply alike to
-    the other muscles: ratio of the states' maximum forces to PCSA x specific tension of the same muscles."""
-    got = sum(float(states[m].max_isometric_force_n) for m in states if m in mus.ARCHITECTURE)
-    ref = sum(mus.ARCHITECTURE[m].max_isometric_force_n for m in states if m in mus.ARCHITECTURE)
-    return got / ref if ref > 0 and np.isfinite(got) and got > 0 else 1.0
+def athlete_force_scale(states: Mapping[str, MuscleState]) -> float:
+    """Limb muscle volume x specific tension x strength factor (N m) behind the states' maximum forces: the
+    muscles stage's F0 = share x volume / l_opt x tension x cos(pennation) x factor, solved for the product (the
+    same for every hamstring), so the other muscles are scaled exactly alike. NaN without forces (no body mass)."""
+    for m, st in states.items():
+        f0 = float(st.max_isometric_force_n)
+        if m in mus.ARCHITECTURE and np.isfinite(f0) and f0 > 0:
+            arch = mus.ARCHITECTURE[m]
+            return f0 * arch.optimal_fibre_length_m / (mus.VOLUME_SHARE[m] * np.cos(arch.pennation_rad))
+    return float("nan")
 
 
 @dataclass(frozen=True)
 class ForceSharing:
-    """Result of sharing the swing moments among the muscles: forces (N), velocities (m/s), frames not met."""
+    """Result of sharing the swing moments among the muscles: forces (N), velocities (m/s), frames not met.
+
+    ``demand_nm`` [F, 2]: the net hip and knee flexion moments (inverse dynamics); ``reserve_nm`` [F, 2]: the part
+    of them the muscles could not carry (demand - carried; 0 where met). ``hip_extension_unmet`` and
+    ``knee_flexion_unmet`` [F]: frames whose hip *extension* or knee *flexion* demand (what the hamstrings act
+    against) is short by more than ``RESERVE_TOLERANCE_NM`` + ``RESERVE_TOLERANCE_FRACTION`` of it.
+    """
 
     force_n: dict[str, np.ndarray]
     velocity_m_per_s: dict[str, np.ndarray]
     moment_arms_m: dict[str, np.ndarray]  # [F,2] hip flexion, knee flexion
     unmet: np.ndarray  # swing frames where no admissible activations reproduce the moments (share_forces tolerance)
     valid: np.ndarray  # swing frames with finite moments
+    demand_nm: np.ndarray | None = None
+    reserve_nm: np.ndarray | None = None
+    hip_extension_unmet: np.ndarray | None = None
+    knee_flexion_unmet: np.ndarray | None = None
+
+    @property
+    def hamstring_demand_unmet(self) -> np.ndarray:
+        """Frames where the hip-extension or knee-flexion demand (the hamstrings' share) is not met."""
+        return self.hip_extension_unmet | self.knee_flexion_unmet
 
     @property
     def carried_moments_nm(self) -> np.ndarray:
@@ -720,34 +745,32 @@ def share_swing_moments(
     states: Mapping[str, MuscleState],
     angles: Mapping[str, np.ndarray],
     rate_hz: float,
-    strength_scale: float | None = None,
+    strength_scale: float = 1.0,
     include_passive: bool = True,
 ) -> ForceSharing:
     """Muscle forces that reproduce the net sagittal hip and knee moments with minimum squared activation.
 
-    Hamstrings: capacity = Fmax fl(l) fv(v) from the muscles stage's fibre length and velocity, plus the passive
-    force Fmax fp(l) that acts whatever the activation. Other muscles: Fmax fv(v) with v from their moment arms and a
-    rigid tendon (their length-force relation is not modelled: set to 1), no passive force. ``angles`` are the
-    joint angles in rad as given to ``muscles.muscle_states`` (keys ``hip_flexion``, ``knee_flexion``).
-    Maximum forces: the states' (hamstrings) and PCSA x specific tension x the states' body-mass scaling (others),
-    all multiplied by ``strength_scale`` (default ``ATHLETE_STRENGTH_FACTOR``).
+    Hamstrings: capacity = F0 fl(l) fv(v) from the muscles stage's fibre length and velocity, plus the passive
+    force F0 fp(l) that acts whatever the activation (De Groote et al. 2016 curves). Other muscles: F0 fv(v) with v
+    from their moment arms and a rigid tendon (their length-force relation is not modelled: set to 1), no passive
+    force. ``angles`` are the joint angles in rad as given to ``muscles.muscle_states`` (keys ``hip_flexion``,
+    ``knee_flexion``). Maximum forces: the states' (hamstrings, from the athlete's muscle volume) and the same
+    volume scaling for the others (``athlete_force_scale``), all multiplied by ``strength_scale`` (default 1).
     """
     return share_swing_moments_of_legs([(moments, states, angles, rate_hz)], strength_scale, include_passive)[0]
 
 
 def share_swing_moments_of_legs(
     legs: Sequence[tuple[JointMoments, Mapping[str, MuscleState], Mapping[str, np.ndarray], float]],
-    strength_scale: float | None = None,
+    strength_scale: float = 1.0,
     include_passive: bool = True,
 ) -> list[ForceSharing]:
     """``share_swing_moments`` for several legs, each (moments, states, angles, rate), with one solve: the problem
     is separate for every frame, so stacking the legs' frames gives the same forces in fewer solver steps."""
     if len({tuple(states) for _, states, _, _ in legs}) > 1:
         raise HamstrideError("legs shared together must have the same muscles", code="config")
-    p = _sharing_problem(legs, ATHLETE_STRENGTH_FACTOR if strength_scale is None else strength_scale, include_passive)
-    active, met = share_forces(p.arms, p.capacity, p.target)
-    force = active + p.passive
-    force[~p.valid] = np.nan
+    p = _sharing_problem(legs, strength_scale, include_passive)
+    force, met, reserve, hip_short, knee_short = _solve_sharing(p)
     unmet = p.valid & ~met
     out = []
     for start, stop in zip(p.leg_starts[:-1], p.leg_starts[1:]):
@@ -757,6 +780,8 @@ def share_swing_moments_of_legs(
             moment_arms_m={c: p.arms[start:stop, i] for i, c in enumerate(p.names)},
             unmet=unmet[start:stop],
             valid=p.valid[start:stop],
+            demand_nm=p.demand[start:stop], reserve_nm=reserve[start:stop],
+            hip_extension_unmet=hip_short[start:stop], knee_flexion_unmet=knee_short[start:stop],
         ))
     return out
 
@@ -772,6 +797,37 @@ class _SharingProblem(NamedTuple):
     velocities: np.ndarray  # [F, m] musculotendon lengthening velocity (m/s)
     valid: np.ndarray  # [F]
     leg_starts: list[int]  # first frame of each leg, then the total
+    demand: np.ndarray  # [F, 2] net hip and knee flexion moments (N m)
+
+
+def _solve_sharing(p: _SharingProblem):
+    """Forces [F, m] (active + passive, NaN off the valid frames), met [F] (both joints within ``share_forces``
+    tolerance), reserve [F, 2] (demand - carried) and the hip-extension / knee-flexion shortfalls [F]."""
+    active, met = share_forces(p.arms, p.capacity, p.target)
+    force = active + p.passive
+    force[~p.valid] = np.nan
+    carried = np.einsum("fmj,fm->fj", p.arms, np.nan_to_num(force))
+    reserve = np.where(p.valid[:, None], p.demand - carried, np.nan)
+    tolerance = RESERVE_TOLERANCE_NM + RESERVE_TOLERANCE_FRACTION * np.abs(p.demand)
+    with np.errstate(invalid="ignore"):
+        hip_short = p.valid & (p.demand[:, 0] < 0) & (reserve[:, 0] < -tolerance[:, 0])  # extension not reached
+        knee_short = p.valid & (p.demand[:, 1] > 0) & (reserve[:, 1] > tolerance[:, 1])  # flexion not reached
+    return force, met, reserve, hip_short, knee_short
+
+
+def sharing_capacities(fmax, l_norm_hamstrings, v_norm, include_passive=True, *,
+                       max_velocity_lopt_per_s=mus.MAX_SHORTENING_VELOCITY_LOPT_PER_S):
+    """Active capacity F0 fl fv [F, m] and passive force F0 fp [F, m] of the muscles of the sharing problem; the
+    first ``l_norm_hamstrings.shape[1]`` muscles are the hamstrings (force-length and passive force modelled),
+    the rest have fl = 1 and no passive force. Arrays broadcast over leading axes (Monte Carlo samples)."""
+    n_ham = l_norm_hamstrings.shape[-1]
+    length_factor = np.ones(np.broadcast_shapes(np.shape(fmax), np.shape(v_norm)))
+    length_factor[..., :n_ham] = mus.active_force_length(l_norm_hamstrings)
+    cap = fmax * np.clip(length_factor * mus.force_velocity(v_norm, max_velocity_lopt_per_s), 0.0, None)
+    fp = np.zeros_like(cap)
+    if include_passive:
+        fp[..., :n_ham] = np.nan_to_num(fmax[..., :n_ham] * mus.passive_force_length(l_norm_hamstrings), nan=0.0)
+    return cap, fp
 
 
 def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
@@ -797,27 +853,24 @@ def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
     r = np.concatenate([arms, other_arms], axis=1)  # [F, m, 2]
     velocities = np.concatenate([hamstring_field(lambda st: st.velocity_m_per_s), other_vel], axis=1)
 
-    def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' PCSA x tension, scaled alike
-        other_scale = strength_scale * _mass_scale(states)
+    def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' from the same limb volume
+        scale = athlete_force_scale(states)
         return ([float(states[m].max_isometric_force_n) * strength_scale for m in hamstrings]
-                + [OTHER_MUSCLES[c].pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * other_scale for c in others])
+                + [scale * OTHER_MUSCLES[c].volume_share / OTHER_MUSCLES[c].optimal_fibre_length_m * strength_scale
+                   for c in others])
 
     # maximum forces per frame (each leg's own scaling), then capacities of all muscles at once: [F, muscles]
     fmax = np.repeat([leg_fmax(states) for _, states, _, _ in legs], sizes, axis=0)
     l_norm = hamstring_field(lambda st: st.fibre_length_lopt)
     v_norm = np.concatenate([hamstring_field(lambda st: st.velocity_lopt_per_s),
                              other_vel / np.array([OTHER_MUSCLES[c].optimal_fibre_length_m for c in others])], axis=1)
-    length_factor = np.ones_like(v_norm)  # the other muscles' length-force relation is not modelled
-    length_factor[:, :len(hamstrings)] = mus.active_force_length(l_norm)
-    cap = fmax * np.clip(length_factor * mus.force_velocity(v_norm), 0.0, None)
-    fp = np.zeros_like(cap)
-    if include_passive:
-        fp[:, :len(hamstrings)] = np.nan_to_num(fmax[:, :len(hamstrings)] * mus.passive_force_length(l_norm), nan=0.0)
-    target = np.concatenate([np.stack([m.hip_flexion_nm, m.knee_flexion_nm], axis=1) for m, _, _, _ in legs])
-    target = target - np.einsum("fmj,fm->fj", r, fp)
-    valid = np.concatenate([np.asarray(m.valid, dtype=bool) for m, _, _, _ in legs]) & np.isfinite(target).all(axis=1)
+    cap, fp = sharing_capacities(fmax, l_norm, v_norm, include_passive)
+    demand = np.concatenate([np.stack([m.hip_flexion_nm, m.knee_flexion_nm], axis=1) for m, _, _, _ in legs])
+    target = demand - np.einsum("fmj,fm->fj", r, fp)
+    valid = (np.concatenate([np.asarray(m.valid, dtype=bool) for m, _, _, _ in legs]) & np.isfinite(target).all(axis=1)
+             & np.isfinite(fmax).all(axis=1))
     return _SharingProblem([*hamstrings, *others], r, cap, fp, target, velocities, valid,
-                           [0, *np.cumsum(sizes).tolist()])
+                           [0, *np.cumsum(sizes).tolist()], demand)
 
 
 # --------------------------------------------------------------------------- power and work
@@ -896,3 +949,95 @@ def muscle_dynamics(sharing: ForceSharing, rate_hz: float) -> dict[str, MuscleDy
         m: MuscleDynamics(m, f, sharing.velocity_m_per_s[m], -f * sharing.velocity_m_per_s[m], float(rate_hz))
         for m, f in sharing.force_n.items()
     }
+
+
+# --------------------------------------------------------------------------- uncertainty band of force and work
+#: Samples of the force and work band: each is a full sharing solve over the swing frames, so fewer than the
+#: strain band's 200 (the 5th/95th percentiles of 20 samples are the 2nd and 19th values; assumption, to keep a
+#: trial's analysis within its time budget).
+FORCE_BAND_SAMPLES = 20
+
+
+class BandLeg(NamedTuple):
+    """One leg's input to ``force_work_band``: moments, angles (the four of ``muscles.ANGLE_NAMES``), muscle
+    dimensions, and its stride windows (swing start, stride end) per stride."""
+
+    moments: JointMoments
+    angles: Mapping[str, np.ndarray]
+    dims: object  # muscles.MuscleDims
+    starts: np.ndarray
+    stops: np.ndarray
+
+
+def force_work_band(legs: Sequence[BandLeg], rate_hz: float, *, body_mass_kg: float, height_m: float,
+                    strength_factor: float = 1.0, n_samples: int = FORCE_BAND_SAMPLES, seed: int = 1,
+                    q=(5, 95)) -> list[dict[str, np.ndarray]]:
+    """5th/95th percentiles of each stride's peak hamstring force and negative work over Monte Carlo samples.
+
+    Each sample draws: the muscle paths, hip-centre error (Harrington et al. 2007), l_opt and pennation (Ward et
+    al. 2009 SDs) and the slack rule's reference strain (``muscles.monte_carlo_states``); the specific tension
+    (one draw for all muscles, CV ``SPECIFIC_TENSION_CV``) and each muscle's volume (CV ``VOLUME_PREDICTION_CV``,
+    lognormal); the maximum shortening velocity (10 +- 2 l_opt/s, clipped to 6-14). The moments are the nominal
+    ones. All samples' frames are solved in one ``share_forces`` call. Returns per leg
+    {"peak_force_n": [2, strides, hamstrings], "negative_work_j": [2, strides, hamstrings]}.
+    """
+    from .metrics import window_peaks
+
+    rng = np.random.default_rng(seed)
+    hamstrings = list(mus.MUSCLES)
+    others = list(OTHER_MUSCLES)
+    n_h, n_o = len(hamstrings), len(others)
+    tension = mus.SPECIFIC_TENSION_PA * np.exp(mus.SPECIFIC_TENSION_CV * rng.standard_normal(n_samples)
+                                               - 0.5 * mus.SPECIFIC_TENSION_CV ** 2)
+    volume = np.exp(mus.VOLUME_PREDICTION_CV * rng.standard_normal((n_samples, n_h + n_o))
+                    - 0.5 * mus.VOLUME_PREDICTION_CV ** 2)
+    v_max = np.clip(mus.MAX_SHORTENING_VELOCITY_LOPT_PER_S
+                    + mus.MAX_SHORTENING_VELOCITY_SD * rng.standard_normal(n_samples), 6.0, 14.0)
+    limb = mus.limb_muscle_volume_m3(body_mass_kg, height_m) * strength_factor
+    blocks, per_leg = [], []
+    for leg in legs:
+        sampled = mus.monte_carlo_states(leg.angles, leg.dims, rate_hz, n_samples, seed=0)
+        valid = np.asarray(leg.moments.valid, dtype=bool)
+        frames = np.flatnonzero(valid)
+        hip, knee = (np.asarray(leg.angles[k], dtype=float) for k in ("hip_flexion", "knee_flexion"))
+        o_arms, o_vel = _other_arms_and_velocities(hip, knee, *_angle_rates(hip, knee, rate_hz))
+        h_arms = np.stack([sampled[m].moment_arms_m[:, frames] for m in hamstrings], axis=2)  # [S, Fv, h, 2]
+        arms = np.concatenate([h_arms, np.broadcast_to(o_arms[frames], (n_samples, frames.size, n_o, 2))], axis=2)
+        l_norm = np.stack([sampled[m].fibre_length_lopt[:, frames] for m in hamstrings], axis=2)
+        o_lopt = np.array([OTHER_MUSCLES[c].optimal_fibre_length_m for c in others])
+        v_norm = np.concatenate([np.stack([sampled[m].velocity_lopt_per_s[:, frames] for m in hamstrings], axis=2),
+                                 np.broadcast_to(o_vel[frames] / o_lopt, (n_samples, frames.size, n_o))], axis=2)
+        f0_h = np.stack([mus.max_isometric_force(m, body_mass_kg=body_mass_kg, height_m=height_m,
+                                                 strength_factor=strength_factor,
+                                                 volume_share=mus.VOLUME_SHARE[m] * volume[:, k],
+                                                 optimal_fibre_length_m=sampled[m].optimal_fibre_length_m[:, 0],
+                                                 pennation_rad=sampled[m].pennation_rad[:, 0],
+                                                 specific_tension_pa=tension) for k, m in enumerate(hamstrings)],
+                        axis=1)  # [S, h]
+        f0_o = (limb * tension[:, None] * volume[:, n_h:]
+                * np.array([OTHER_MUSCLES[c].volume_share for c in others]) / o_lopt)  # [S, o]
+        fmax = np.concatenate([f0_h, f0_o], axis=1)[:, None, :]  # [S, 1, m]
+        cap, fp = sharing_capacities(fmax, l_norm, v_norm, max_velocity_lopt_per_s=v_max[:, None, None])
+        demand = np.stack([leg.moments.hip_flexion_nm, leg.moments.knee_flexion_nm], axis=1)[frames]
+        target = demand[None] - np.einsum("sfmj,sfm->sfj", arms, fp)
+        blocks.append((arms.reshape(-1, n_h + n_o, 2), cap.reshape(-1, n_h + n_o), target.reshape(-1, 2)))
+        per_leg.append((sampled, frames, fp[..., :n_h], valid.size))
+    if not blocks:
+        return []
+    active, _ = share_forces(*(np.concatenate(b) for b in zip(*blocks)))
+    out, at = [], 0
+    for leg, (sampled, frames, fp, n_frames) in zip(legs, per_leg):
+        n = n_samples * frames.size
+        force_v = active[at:at + n, :n_h].reshape(n_samples, frames.size, n_h) + fp
+        at += n
+        force = np.full((n_frames, n_samples * n_h), np.nan)  # frames x (sample, muscle)
+        force[frames] = force_v.transpose(1, 0, 2).reshape(frames.size, -1)
+        velocity = np.stack([sampled[m].velocity_m_per_s for m in hamstrings], axis=2)  # [S, F, h]
+        velocity = velocity.transpose(1, 0, 2).reshape(n_frames, -1)
+        starts, stops = np.asarray(leg.starts, dtype=int), np.asarray(leg.stops, dtype=int)
+        peaks, _ = window_peaks(force, starts, stops)
+        absorbed, _ = window_work(np.nan_to_num(force), velocity, rate_hz, starts, stops)
+        shape = (len(starts), n_samples, n_h)
+        out.append({"peak_force_n": np.nanpercentile(peaks.reshape(shape), q, axis=1),
+                    "negative_work_j": np.nanpercentile(absorbed.reshape(shape), q, axis=1)})
+    return out
