@@ -484,7 +484,7 @@ def swing_sharing(swing_sim):
     angles = {"hip_flexion": q[:, 0], "hip_adduction": 0.05 * np.sin(9 * t), "hip_rotation": 0.05 + 0.1 * np.sin(6 * t),
               "knee_flexion": q[:, 0] - q[:, 1]}  # out-of-plane angles so the hamstrings also carry those moments
     states = muscle_states(angles, RATE_HZ, MuscleDims(0.26, 0.16, L_THIGH, L_SHANK), body_mass_kg=BODY_MASS,
-                           scale_force_to_mass=True)
+                           height_m=1.80)
     return t, moments, angles, states, dyn.share_swing_moments(moments, states, angles, RATE_HZ)
 
 
