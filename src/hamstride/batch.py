@@ -280,13 +280,38 @@ def discover_squad(root: str | Path, markers: str | Path | None = None) -> tuple
             mass = _float(row["body_mass_kg"]) if row is not None else None
             height = _float(row["height_m"]) if row is not None else None
             info = AthleteInfo(athlete=athlete_dir.name, session=session_dir.name, body_mass_kg=mass,
-                               height_m=height, sex=_sex(row["sex"]) if row is not None else "male")
+                               height_m=height, sex=_sex(row["sex"]) if row is not None else "male",
+                               strength_factor=_strength_factor(row, athlete_dir.name))
             for trial in files:
                 if trial in statics:
                     continue
                 jobs.append(TrialJob(str(trial), athlete_dir.name, session_dir.name,
                                      str(statics[0]) if statics else None, info, str(markers) if markers else None))
     return athletes, jobs
+
+
+#: Accepted range of the optional athletes.csv column ``strength_factor`` (multiplier on the volume-based muscle
+#: strength; blank = 1). Assumption: beyond 0.3-3 a value is more likely a typo than an athlete.
+STRENGTH_FACTOR_RANGE = (0.3, 3.0)
+
+
+def _strength_factor(row, athlete: str) -> float:
+    """The optional ``strength_factor`` of an athletes.csv row: blank or absent -> 1, else a number in
+    ``STRENGTH_FACTOR_RANGE``."""
+    from .errors import ConfigError
+
+    value = row.get("strength_factor") if row is not None else None
+    if value is None or (isinstance(value, float) and np.isnan(value)) or str(value).strip() == "":
+        return 1.0
+    try:
+        factor = float(value)
+    except (TypeError, ValueError):
+        factor = float("nan")
+    low, high = STRENGTH_FACTOR_RANGE
+    if not low <= factor <= high:
+        raise ConfigError(f"athletes.csv: strength_factor {value!r} for {athlete} is not a number between {low:g} "
+                          f"and {high:g}; leave it blank for 1 (typical strength for the athlete's size)")
+    return factor
 
 
 def _float(value) -> float | None:

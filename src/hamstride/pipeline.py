@@ -30,6 +30,9 @@ STRIDE_COLUMNS = [
 #: ``force_status`` of a stride: the share of late-swing frames whose hip-extension and knee-flexion demand the
 #: modelled muscles meet (``late_swing_moments_met_pct``): all of them, at least this share, or fewer.
 FORCE_STATUS_MOSTLY_MET_PCT = 90.0
+#: Fibre length (l/l_opt) below which a trial warns: the lower end of the active force range (0.5-1.5 l_opt,
+#: common practice, references.md).
+SHORT_FIBRE_LOPT = 0.5
 CURVE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "pct", "hip_flexion_deg", "hip_adduction_deg",
     "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w",
@@ -254,6 +257,19 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     leg_states = dict(zip(sides, muscle_states_of_legs([(joints[side], leg_dims[side]) for side in sides], rate,
                                                        body_mass_kg=body_mass, height_m=athlete.height_m,
                                                        strength_factor=athlete.strength_factor)))
+    short = []  # muscles whose fibres fall below the active range's lower end during the valid strides
+    for side in sides:
+        frames = np.concatenate([np.arange(s.start_frame, s.end_frame + 1) for s in valid if s.side == side])
+        for m in MUSCLES:
+            lowest = float(np.nanmin(leg_states[side][m].fibre_length_lopt[frames], initial=np.inf))
+            if lowest < SHORT_FIBRE_LOPT:
+                short.append(f"{side} {m} {lowest:.2f}")
+    if short:
+        info["warnings"].append(
+            f"modelled fibre length falls below {SHORT_FIBRE_LOPT:g} of optimal length (the low end of the active "
+            f"range) during the strides: {', '.join(short)} l_opt. Forces there are small by construction (rigid "
+            "tendon, assumed slack length); stretch peaks in late swing are unaffected")
+        info["warning_codes"].append("short_fibres")
     legs = {}  # per side: what the tables need, gathered first so both legs share one force-sharing solve
     for side in sides:
         side_strides = [s for s in valid if s.side == side]
