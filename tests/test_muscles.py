@@ -557,13 +557,20 @@ def test_fibre_length_never_falls_as_the_unit_lengthens():
     arch = M.ARCHITECTURE["semimembranosus"]
     slack = 0.30
     mtu = np.linspace(slack - 0.06, slack + 0.10, 801)
-    fibre, alpha = M.fibre_length(mtu, slack, arch.optimal_fibre_length_m, arch.pennation_rad)
+    # unloaded tendon (force 0: tendon at its slack length)
+    fibre, alpha = M.fibre_length(mtu, slack, arch.optimal_fibre_length_m, arch.pennation_rad, tendon_force_norm=0.0)
     thickness = arch.optimal_fibre_length_m * np.sin(arch.pennation_rad)
     assert np.all(np.diff(fibre) >= 0.0)
     below = mtu <= slack
     np.testing.assert_allclose(fibre[below], thickness, rtol=1e-15)
     np.testing.assert_allclose(alpha[below], np.pi / 2, rtol=1e-15)
     np.testing.assert_allclose(fibre[~below], np.hypot(mtu[~below] - slack, thickness), rtol=1e-15)
+    # loaded at F0 (the default): the tendon is 4.9 % longer (De Groote et al. 2016 tendon strain at F0, worked
+    # from its published constants: 0.995 + ln(1.25 / 0.2) / 33.937 - 1 = 0.0490), so the fibres are that much shorter
+    loaded, _ = M.fibre_length(mtu, slack, arch.optimal_fibre_length_m, arch.pennation_rad)
+    tendon = slack * 1.0490
+    assert np.all(np.diff(loaded) >= 0.0)
+    np.testing.assert_allclose(loaded[mtu > tendon], np.hypot(mtu[mtu > tendon] - tendon, thickness), rtol=1e-4)
 
 
 def _stride_windows(pct, n_strides):

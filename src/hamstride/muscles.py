@@ -57,6 +57,9 @@ SPECIFIC_TENSION_CV = 0.15
 #: Eng 17:359; De Groote et al. 2016 normalise velocity by it) [M]; SD for the band 2 l_opt/s (assumption).
 MAX_SHORTENING_VELOCITY_LOPT_PER_S = 10.0
 MAX_SHORTENING_VELOCITY_SD = 2.0
+#: Relative SD of tendon strain at a given force for the band: 20 % (assumption; published tendon strains at
+#: maximum isometric force range about 3-6 %, Zajac 1989 3.3 % [M], De Groote et al. 2016 4.9 %).
+TENDON_STRAIN_CV = 0.2
 
 # Lower-limb muscle volume from body size: Handsfield et al. 2014 (J Biomech 47:631): total lower-limb muscle
 # volume (one limb, 35 muscles) = 47 cm^3/(kg m) x body mass x height + 1285 cm^3 [M numbers, V finding], and each
@@ -403,15 +406,26 @@ def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flex
 # --------------------------------------------------------------------------------------------------------------
 # Fibre length and force curves
 # --------------------------------------------------------------------------------------------------------------
-def fibre_length(mtu_length_m, tendon_slack_length_m, optimal_fibre_length_m, pennation_at_optimal_rad):
-    """Fibre length (m) and pennation (rad) with a rigid tendon and constant muscle thickness
-    (``l sin(alpha) = l_opt sin(alpha_opt)``; the planimetric model used in Hill-type muscle models, e.g.
-    Zajac 1989, from memory): ``l = sqrt((L - L_ts)^2 + (l_opt sin alpha_opt)^2)``.
+#: Tendon force (F0 units) at which the muscles stage's fibre lengths are given: 1, the tendon stretched as by the
+#: maximum isometric force (about 4.9 % strain, ``tendon_strain``). Late swing is when the hamstrings pull hardest,
+#: so the kinematic l/l_opt describes the loaded late-swing fibres; the dynamics stage recomputes the fibre length
+#: with each frame's own force (compliant tendon), and ``muscle_table`` also gives the resting (unloaded) value.
+REFERENCE_TENDON_FORCE = 1.0
 
-    A unit shorter than its tendon slack length has a slack tendon and fibres at their shortest (``L - L_ts`` taken
-    as 0: l = thickness, pennation 90 deg), so fibre length never falls as the unit lengthens."""
+
+def fibre_length(mtu_length_m, tendon_slack_length_m, optimal_fibre_length_m, pennation_at_optimal_rad,
+                 tendon_force_norm=REFERENCE_TENDON_FORCE, tendon_strain_scale=1.0):
+    """Fibre length (m) and pennation (rad) of a unit whose tendon carries ``tendon_force_norm`` (F0 units; default
+    the reference force 1), with constant muscle thickness (``l sin(alpha) = l_opt sin(alpha_opt)``; the planimetric
+    model of Hill-type muscle models, Zajac 1989 [M]): ``l = sqrt((L - L_T)^2 + (l_opt sin alpha_opt)^2)`` with the
+    tendon length ``L_T = L_ts (1 + strain(F))`` (De Groote et al. 2016 tendon curve; ``tendon_strain_scale``
+    scales the strain, for the Monte Carlo band).
+
+    A unit shorter than its tendon has fibres at their shortest (``L - L_T`` taken as 0: l = thickness, pennation
+    90 deg), so fibre length never falls as the unit lengthens."""
     thickness = optimal_fibre_length_m * np.sin(pennation_at_optimal_rad)
-    along = np.clip(np.asarray(mtu_length_m) - tendon_slack_length_m, 0.0, None)
+    tendon = tendon_slack_length_m * (1.0 + tendon_strain(tendon_force_norm) * tendon_strain_scale)
+    along = np.clip(np.asarray(mtu_length_m) - tendon, 0.0, None)
     length = np.sqrt(along * along + thickness * thickness)
     return length, np.arctan2(thickness, along)
 
@@ -437,10 +451,12 @@ def _reference_and_upright_lengths(path: MusclePath) -> tuple[np.ndarray, np.nda
 
 def _slack_rule(reference_length_m, optimal_fibre_length_m, pennation_rad, reference_strain):
     """The slack length that puts the fibres at ``(1 + reference strain) l_opt`` when the unit has its reference
-    length (rigid tendon, constant thickness ``l_opt sin(alpha_opt)``); broadcasts over legs, muscles, samples."""
+    length and the tendon carries the reference force (``REFERENCE_TENDON_FORCE``: stretched by its strain at F0,
+    4.9 %), constant thickness ``l_opt sin(alpha_opt)``; broadcasts over legs, muscles, samples."""
     fibre = (1.0 + reference_strain) * optimal_fibre_length_m
     thickness = optimal_fibre_length_m * np.sin(pennation_rad)
-    return reference_length_m - np.sqrt(fibre * fibre - thickness * thickness)
+    loaded_tendon = reference_length_m - np.sqrt(fibre * fibre - thickness * thickness)
+    return loaded_tendon / (1.0 + tendon_strain(REFERENCE_TENDON_FORCE))
 
 
 # Force curves of De Groote et al. 2016 (Ann Biomed Eng 44:2922, supplementary material): smooth, explicit Hill-type
@@ -496,10 +512,12 @@ def tendon_force_length(tendon_length_norm) -> np.ndarray:
 
 
 def tendon_strain(force_norm) -> np.ndarray:
-    """Tendon strain at a force in F0 units: the inverse of ``tendon_force_length`` (0 for no force)."""
+    """Tendon strain at a force in F0 units: the inverse of ``tendon_force_length`` (0 for no force: the slack
+    length is where force starts)."""
     c0, c1, c2, c3 = TENDON_CONSTANTS
     f = np.clip(np.asarray(force_norm, dtype=float), 0.0, None)
-    return np.clip(c1 + np.log((f + c2) / c0) / c3 - 1.0, 0.0, None)
+    # the published curve reaches zero force at 0.16 % strain; a tendon without force is at its slack length (0)
+    return np.where(f > 0.0, np.clip(c1 + np.log((f + c2) / c0) / c3 - 1.0, 0.0, None), 0.0)
 
 
 # --------------------------------------------------------------------------------------------------------------
@@ -932,16 +950,23 @@ class SampledStates:
 
 
 def monte_carlo_states(angles: dict[str, np.ndarray], dims: MuscleDims, rate_hz: float, n_samples: int,
-                       seed: int = 0, *, include_hip_centre_error: bool = True) -> dict[str, SampledStates]:
+                       seed: int = 0, *, include_hip_centre_error: bool = True,
+                       tendon_force_norm: dict[str, np.ndarray] | None = None,
+                       tendon_strain_scale=1.0) -> dict[str, SampledStates]:
     """Per-sample fibre lengths, velocities and moment arms of every muscle ([S, F]), from the same draws as
-    ``monte_carlo_lengths`` (attachments, hip centre, l_opt, pennation, slack rule), for the force band."""
+    ``monte_carlo_lengths`` (attachments, hip centre, l_opt, pennation, slack rule), for the force band; each
+    tendon stretched by ``tendon_force_norm[muscle]`` ([F], F0 units; default the reference force) times
+    ``tendon_strain_scale`` ([S, 1] or a number). Fibre velocity = MTU velocity along the fibres (see
+    ``dynamics._compliant_fibres``)."""
     arrays = _angle_arrays(angles)
     rates = np.stack([np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in arrays], axis=-1)
     out = {}
     for muscle, sampled in _draw_samples(dims, n_samples, seed, include_hip_centre_error):
         length, arms = _length_and_moment_arms(sampled.paths, *arrays)  # [S, F], [S, F, 4]
+        force = REFERENCE_TENDON_FORCE if tendon_force_norm is None else np.nan_to_num(
+            np.asarray(tendon_force_norm[muscle], dtype=float), nan=0.0)
         fibre, pennation = fibre_length(length, sampled.slack_length_m, sampled.optimal_fibre_length_m,
-                                        sampled.pennation_rad)
+                                        sampled.pennation_rad, force, tendon_strain_scale)
         velocity = -np.sum(arms * rates, axis=-1)
         out[muscle] = SampledStates(fibre / sampled.optimal_fibre_length_m,
                                     velocity * np.cos(pennation) / sampled.optimal_fibre_length_m, velocity,
