@@ -118,3 +118,46 @@ def test_hamstring_relevant_demand_met_in_nine_tenths_of_late_swing(sprints):
     # Issue 14 acceptance: >= 90 % of late-swing frames at default strength, at 8 and 9 m/s.
     for speed in (8.0, 9.0):
         assert sprints[speed, 75.0].strides.late_swing_moments_met_pct.mean() >= 90.0
+
+
+@pytest.mark.parametrize("height_m", [1.65, 1.80, 1.95])
+def test_resting_fibre_length_at_standing_is_on_the_ascending_limb(height_m):
+    # Standing (hip 0, knee 0), no force: the biarticular hamstrings rest below their optimal length (Wan et al.
+    # 2017, J Sport Health Sci 6:275 [V]: optimal lengths longer than standing lengths; Kellis & Blazevich 2022,
+    # BMC Sports Sci Med Rehabil 14:166 [V]: the hamstrings work on the ascending limb near hip and knee neutral)
+    # and within the active range (0.5-1.5 l_opt, common practice). The short head, a knee-only muscle, is at its
+    # longest with the knee straight: near optimal length (0.9-1.2, our line, common practice).
+    from hamstride import muscles as M
+
+    table = M.muscle_table(0.0, 0.0, M.MuscleDims.from_height(height_m)).set_index("muscle")
+    for muscle in (BICEPS, SEMITEND, SEMIMEM):
+        assert 0.6 < table.loc[muscle, "resting_fibre_length_lopt"] < 1.0, muscle
+    assert 0.9 < table.loc[SHORT, "resting_fibre_length_lopt"] < 1.2
+    # the tendon carries the difference: loaded at F0 it is 4.9 % longer, so the fibres are shorter
+    assert (table["fibre_length_lopt"] < table["resting_fibre_length_lopt"]).all()
+
+
+def test_no_loaded_hamstring_below_half_its_optimal_length_on_generated_sprints(sprints):
+    for key, result in sprints.items():
+        assert "short_fibres" not in result.info["warning_codes"], key
+
+
+def test_short_fibre_warning_fires_only_for_loaded_short_fibres():
+    from types import SimpleNamespace
+
+    from hamstride.pipeline import _short_fibre_warning
+    from hamstride.muscles import MUSCLES
+
+    n = 20
+    stride = SimpleNamespace(side="left", start_frame=0, end_frame=n - 1)
+    lopt = {m: np.full(n, 0.9) for m in MUSCLES}
+    force = {m: np.full(n, 100.0) for m in MUSCLES}
+    lopt[SEMIMEM][5] = 0.3  # short while carrying 100 N of 1000 N: warned
+    lopt[BICEPS][6] = 0.3
+    force[BICEPS][6] = 10.0  # short but carrying 1 % of F0: not warned
+    shared = {"left": SimpleNamespace(fibre_length_lopt=lopt, force_n=force)}
+    states = {"left": {m: SimpleNamespace(max_isometric_force_n=1000.0) for m in MUSCLES}}
+    info = {"warnings": [], "warning_codes": []}
+    _short_fibre_warning(["left"], [stride], states, shared, {}, info)
+    assert info["warning_codes"] == ["short_fibres"]
+    assert "left semimembranosus 0.30" in info["warnings"][0] and BICEPS not in info["warnings"][0]

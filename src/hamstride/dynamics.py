@@ -725,6 +725,7 @@ class ForceSharing:
     reserve_nm: np.ndarray | None = None
     hip_extension_unmet: np.ndarray | None = None
     knee_flexion_unmet: np.ndarray | None = None
+    fibre_length_lopt: dict[str, np.ndarray] | None = None  # hamstrings' fibre length at their own force (l_opt)
 
     @property
     def hamstring_demand_unmet(self) -> np.ndarray:
@@ -778,6 +779,7 @@ def share_swing_moments_of_legs(
         solved = _solve_sharing(p)
         fed = 0.5 * (fed + solved[0][:, :n_h])
     force, met, reserve, hip_short, knee_short = solved
+    fibre_lopt = _compliant_fibres(p, force[:, :n_h])[0]
     unmet = p.valid & ~met
     out = []
     for start, stop in zip(p.leg_starts[:-1], p.leg_starts[1:]):
@@ -789,6 +791,7 @@ def share_swing_moments_of_legs(
             valid=p.valid[start:stop],
             demand_nm=p.demand[start:stop], reserve_nm=reserve[start:stop],
             hip_extension_unmet=hip_short[start:stop], knee_flexion_unmet=knee_short[start:stop],
+            fibre_length_lopt={c: fibre_lopt[start:stop, i] for i, c in enumerate(p.names[:n_h])},
         ))
     return out
 

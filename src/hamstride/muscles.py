@@ -870,7 +870,8 @@ def peak_difference_band(samples_a: np.ndarray, window_a: tuple[int, int], sampl
 # --------------------------------------------------------------------------------------------------------------
 def muscle_table(hip_flexion_deg: float, knee_flexion_deg: float, dims: MuscleDims, *,
                  hip_adduction_deg: float = 0.0, hip_rotation_deg: float = 0.0) -> pd.DataFrame:
-    """One row per muscle at one posture: length, strain vs upright, l/l_opt (with the slack length it rests on)
+    """One row per muscle at one posture: length, strain vs upright, l/l_opt (tendon at its F0 stretch, with the
+    slack length it rests on) and at rest (no force, tendon at its slack length)
     and the four moment arms in mm (r = -dL/dtheta; negative at the hip = extensor, positive at the knee = flexor)."""
     posture = [np.deg2rad(v) for v in (hip_flexion_deg, hip_adduction_deg, hip_rotation_deg, knee_flexion_deg)]
     rows = []
@@ -881,10 +882,12 @@ def muscle_table(hip_flexion_deg: float, knee_flexion_deg: float, dims: MuscleDi
         upright = float(_path_length(path, 0.0, 0.0, 0.0, 0.0))
         slack = float(tendon_slack_length(muscle, dims, geometry=path))
         fibre, _ = fibre_length(length, slack, arch.optimal_fibre_length_m, arch.pennation_rad)
+        resting, _ = fibre_length(length, slack, arch.optimal_fibre_length_m, arch.pennation_rad, 0.0)
         arms = moment_arms(muscle, *posture, dims, geometry=path) * 1000.0
         rows.append({
             "muscle": muscle, "length_m": length, "strain_pct": 100.0 * (length / upright - 1.0),
             "fibre_length_lopt": float(fibre) / arch.optimal_fibre_length_m,
+            "resting_fibre_length_lopt": float(resting) / arch.optimal_fibre_length_m,
             "tendon_slack_length_m": slack,
             "hip_flexion_arm_mm": float(arms[0]), "hip_adduction_arm_mm": float(arms[1]),
             "hip_rotation_arm_mm": float(arms[2]), "knee_flexion_arm_mm": float(arms[3]),

@@ -33,6 +33,9 @@ FORCE_STATUS_MOSTLY_MET_PCT = 90.0
 #: Fibre length (l/l_opt) below which a trial warns: the lower end of the active force range (0.5-1.5 l_opt,
 #: common practice, references.md).
 SHORT_FIBRE_LOPT = 0.5
+#: ... while carrying at least this fraction of its maximum isometric force (assumption: below it the force is
+#: too small to matter).
+SHORT_FIBRE_FORCE_FRACTION = 0.05
 CURVE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "pct", "hip_flexion_deg", "hip_adduction_deg",
     "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w",
@@ -257,19 +260,6 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     leg_states = dict(zip(sides, muscle_states_of_legs([(joints[side], leg_dims[side]) for side in sides], rate,
                                                        body_mass_kg=body_mass, height_m=athlete.height_m,
                                                        strength_factor=athlete.strength_factor)))
-    short = []  # muscles whose fibres fall below the active range's lower end during the valid strides
-    for side in sides:
-        frames = np.concatenate([np.arange(s.start_frame, s.end_frame + 1) for s in valid if s.side == side])
-        for m in MUSCLES:
-            lowest = float(np.nanmin(leg_states[side][m].fibre_length_lopt[frames], initial=np.inf))
-            if lowest < SHORT_FIBRE_LOPT:
-                short.append(f"{side} {m} {lowest:.2f}")
-    if short:
-        info["warnings"].append(
-            f"modelled fibre length falls below {SHORT_FIBRE_LOPT:g} of optimal length (the low end of the active "
-            f"range) during the strides: {', '.join(short)} l_opt. Forces there are small by construction (rigid "
-            "tendon, assumed slack length); stretch peaks in late swing are unaffected")
-        info["warning_codes"].append("short_fibres")
     legs = {}  # per side: what the tables need, gathered first so both legs share one force-sharing solve
     for side in sides:
         side_strides = [s for s in valid if s.side == side]
@@ -304,6 +294,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     shared = dict(zip(with_moments, share_swing_moments_of_legs(
         [(legs[side].moments, legs[side].states, legs[side].joint, rate) for side in with_moments]))) \
         if with_moments else {}
+    _short_fibre_warning(sides, valid, leg_states, shared, legs, info)
     force_bands = {}
     if with_moments and options.monte_carlo_samples > 0:
         band_legs = []
@@ -359,6 +350,35 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
         info["warning_codes"].append("no_body_mass")
     return {name: stride_columns[name] for name in STRIDE_COLUMNS}, curves
+
+
+def _short_fibre_warning(sides, valid, leg_states, shared, legs, info) -> None:
+    """Warn when a hamstring carries force (at least ``SHORT_FIBRE_FORCE_FRACTION`` of F0) with its fibres below
+    ``SHORT_FIBRE_LOPT`` during the valid strides (fibre length at the model's own force, compliant tendon).
+
+    Unloaded, the model's semimembranosus and biceps femoris long head fibres fall below 0.5 l_opt in mid-swing
+    (knee flexed 120-130 deg; the unit is then shorter than its slack tendon plus fibres); no force depends on
+    that, so it is stated in DEVELOPERS.md rather than warned on every trial."""
+    from .muscles import MUSCLES
+
+    short = []
+    for side in sides:
+        if side not in shared or shared[side].fibre_length_lopt is None:
+            continue
+        frames = np.concatenate([np.arange(s.start_frame, s.end_frame + 1) for s in valid if s.side == side])
+        for m in MUSCLES:
+            lopt = shared[side].fibre_length_lopt[m][frames]
+            loaded = shared[side].force_n[m][frames] >= SHORT_FIBRE_FORCE_FRACTION * \
+                leg_states[side][m].max_isometric_force_n
+            bad = loaded & (lopt < SHORT_FIBRE_LOPT)
+            if bad.any():
+                short.append(f"{side} {m} {float(lopt[bad].min()):.2f}")
+    if short:
+        info["warnings"].append(
+            f"a loaded hamstring's modelled fibre length falls below {SHORT_FIBRE_LOPT:g} of optimal length (the "
+            f"low end of the active range): {', '.join(short)} l_opt. Forces there are unreliable; check the "
+            "athlete's height and segment lengths (the model's tendon slack lengths follow from them)")
+        info["warning_codes"].append("short_fibres")
 
 
 def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, trial_name) -> dict[str, np.ndarray]:
