@@ -366,6 +366,7 @@ class _Design:
     heel_drop_rate: float = 12.0  # rad/s foot pitch rate (heel dropping) at strike, first guess (solved per step)
     landing_window: float = 0.006  # the toe's descent stops over the last 6 ms (the foot turns toe-up onto it)
     touchdown_foot_rate: float = 8.0  # rad/s the foot turns faster (toe up) in stance than at the end of swing
+    deficit_release_s: float = 0.06  # an asymmetric leg's hip-flexion deficit is released over the last 60 ms
 
 
 def _design(speed: float, leg_length_m: float = 0.886) -> _Design:
@@ -508,9 +509,7 @@ class _Gait:
             asym = spec.asymmetry_side == st.side
             st.hip_deficit = spec.hip_flexion_deficit_deg * _DEG if asym else 0.0
             st.knee_deficit = spec.knee_extension_deficit_deg * _DEG if asym else 0.0
-            # a hip-flexion deficit lowers the peak itself (holding it through late swing and releasing it just
-            # before strike asked for 3x the other leg's terminal-swing hip moment)
-            st.hip_peak = d.hip_peak + 1.2 * _DEG * jitter * rng.standard_normal() - st.hip_deficit
+            st.hip_peak = d.hip_peak + 1.2 * _DEG * jitter * rng.standard_normal()
             st.knee_peak = d.knee_peak + 2.0 * _DEG * jitter * rng.standard_normal()
             rng.standard_normal()  # (was the late-swing knee minimum's variation; keeps the random stream)
             st.ankle_peak = 8.0 * _DEG + 1.5 * _DEG * jitter * rng.standard_normal()
@@ -691,14 +690,17 @@ class _Gait:
             late = end[2] + ankle_rate_td * (x - dur) + 0.5 * ankle_acc * (x - dur) ** 2
             return np.where(x < 0.6 * dur, early_ankle(x), np.where(x < x_amin, mid_ankle(x), late))
 
-        # asymmetry: the hip-flexion deficit lowers the swing's hip peak (``_Gait``: st.hip_peak), and the hip
-        # plan joins that lower peak to the strike like any other (the leg lands as the other one does, with a
-        # terminal-swing demand like the other leg's); the knee-extension deficit holds from the knee's peak on
-        # (the leg lands with the knee flexed by it)
+        # asymmetry: the hip-flexion deficit holds from the hip's peak through late swing and is released just
+        # before strike (the leg lands as the other one does); the knee-extension deficit holds from the knee's
+        # peak on (the leg lands with the knee flexed by it)
+        def hip_deficit(x):
+            rise = _smoothstep5((x - 0.15 * dur) / (x_hip - 0.15 * dur))
+            return st.hip_deficit * rise * (1.0 - _smoothstep5((x - dur + d.deficit_release_s) / d.deficit_release_s))
+
         def knee_deficit(x):
             return st.knee_deficit * _smoothstep5((x - x_pk) / (0.6 * dur - x_pk))
 
-        hip = lambda s_: hip_x(np.asarray(s_) * dur)
+        hip = lambda s_: hip_x(np.asarray(s_) * dur) - hip_deficit(np.asarray(s_) * dur)
         knee = lambda s_: knee_x(np.asarray(s_) * dur) + knee_deficit(np.asarray(s_) * dur)
         ankle = lambda s_: ankle_x(np.asarray(s_) * dur)
         return {"side": st.side, "t0": t0, "t1": t1, "hip": hip, "knee": knee, "ankle": ankle, "next": nxt}
