@@ -16,7 +16,7 @@ from hamstride import dynamics as dyn
 from hamstride.segments import Frames, frames_from_x_y, frames_from_y_z
 from hamstride.signal import lowpass, residual_cutoff
 
-from _truth import truth_swing_moments  # tests/_truth.py
+from _generated_demand import generated_swing_moments  # tests/_generated_demand.py: demand, not truth
 
 # --------------------------------------------------------------------------- de Leva table, cell by cell
 # de Leva P. 1996, J Biomech 29:1223-1230, Table 4 (as transcribed in references.md, status [V]):
@@ -488,24 +488,10 @@ def swing_sharing(swing_sim):
     return t, moments, angles, states, dyn.share_swing_moments(moments, states, angles, RATE_HZ)
 
 
-def test_muscle_power_equals_minus_joint_power_of_carried_moments(swing_sharing):
-    """Sum_m F_m v_m = -Sum_j M_j w_j (tendon-excursion identity, DEVELOPERS.md) within 1 % on every frame where the
-    moments are met; sagittal M_j are the inverse-dynamics moments, the others what the hamstrings carry."""
-    t, moments, angles, states, res = swing_sharing
-    met = res.valid & ~res.unmet
-    assert met.sum() > 0.3 * res.valid.sum()  # late swing in particular must be met
-    rates = {k: np.gradient(v, 1 / RATE_HZ) for k, v in angles.items()}
-    muscle_power = sum(res.force_n[m] * res.velocity_m_per_s[m] for m in res.force_n)
-    joint_power = moments.hip_flexion_nm * rates["hip_flexion"] + moments.knee_flexion_nm * rates["knee_flexion"]
-    for j, name in ((1, "hip_adduction"), (2, "hip_rotation")):
-        joint_power = joint_power + sum(states[m].moment_arms_m[:, j] * res.force_n[m] for m in states) * rates[name]
-    scale = np.abs(joint_power[met]) + 1e-3 * np.nanmax(np.abs(joint_power[met]))
-    assert (np.abs(muscle_power[met] + joint_power[met]) <= 0.01 * scale).all()
-
-
 def test_shared_forces_reproduce_the_moments_within_bounds(swing_sharing):
     t, moments, angles, states, res = swing_sharing
     met = res.valid & ~res.unmet
+    assert met.sum() > 0.3 * res.valid.sum()  # late swing in particular must be met
     hip = sum(res.moment_arms_m[m][:, 0] * res.force_n[m] for m in res.force_n)
     knee = sum(res.moment_arms_m[m][:, 1] * res.force_n[m] for m in res.force_n)
     np.testing.assert_allclose(hip[met], moments.hip_flexion_nm[met], atol=1e-3)
@@ -528,7 +514,7 @@ def _sprint_swings(speed_m_s, side="right"):
     spec = synth.SprintSpec(speed_m_s=speed_m_s, noise_mm=0.0, n_gaps=0, seed=4, duration_s=2.0)
     _, _, tr = synth.simulate_sprint(spec)
     b, rate = tr.body, tr.rate_hz
-    moments = truth_swing_moments(tr, side)
+    moments = generated_swing_moments(tr, side)
     angles = {k: tr.angles[side][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
     states = muscle_states(angles, rate, MuscleDims(b.pelvis_width_m, b.pelvis_depth_m, b.thigh_length_m,
                                                     b.shank_length_m), body_mass_kg=b.mass_kg)
@@ -687,21 +673,6 @@ def test_share_forces_reaches_every_frame_and_met_frames_are_exact():
     assert (m1 == met[:17]).all()
 
 
-def test_muscle_power_equals_minus_power_of_carried_moments_on_every_frame(swing_sharing):
-    """Sum_m F_m v_m = -Sum_j M_carried,j w_j on met and unmet frames alike (tendon-excursion identity,
-    DEVELOPERS.md), with M_carried = sum_m r_m F_m what the muscles actually carry."""
-    t, moments, angles, states, res = swing_sharing
-    rates = {k: np.gradient(v, 1 / RATE_HZ) for k, v in angles.items()}
-    carried = res.carried_moments_nm
-    muscle_power = sum(res.force_n[m] * res.velocity_m_per_s[m] for m in res.force_n)
-    joint_power = carried[:, 0] * rates["hip_flexion"] + carried[:, 1] * rates["knee_flexion"]
-    for j, name in ((1, "hip_adduction"), (2, "hip_rotation")):
-        joint_power = joint_power + sum(states[m].moment_arms_m[:, j] * res.force_n[m] for m in states) * rates[name]
-    v = res.valid
-    scale = np.abs(joint_power[v]) + 1e-3 * np.nanmax(np.abs(joint_power[v]))
-    assert (np.abs(muscle_power[v] + joint_power[v]) <= 0.01 * scale).all()
-
-
 # --------------------------------------------------------------------------- a symmetric pair of legs
 @pytest.fixture(scope="module")
 def symmetric_pair():
@@ -716,7 +687,7 @@ def symmetric_pair():
     spec = synth.SprintSpec(speed_m_s=8.8, noise_mm=0.0, n_gaps=0, seed=4, duration_s=2.0)
     _, _, tr = synth.simulate_sprint(spec)
     b, rate, n = tr.body, tr.rate_hz, len(tr.time_s)
-    moments = truth_swing_moments(tr, side)
+    moments = generated_swing_moments(tr, side)
     angles = {k: tr.angles[side][k] for k in ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion")}
     dims = MuscleDims(b.pelvis_width_m, b.pelvis_depth_m, b.thigh_length_m, b.shank_length_m)
     rng = np.random.default_rng(1)

@@ -271,10 +271,10 @@ def test_faster_sprint_gives_more_hip_flexion_and_faster_late_swing_knee_extensi
 
 
 def _swing_moments_per_kg(truth, side):
-    """Swing inverse dynamics of the truth frames, per kg of body mass (hip flexion, knee flexion)."""
-    from _truth import truth_swing_moments
+    """Swing inverse dynamics of the generated (noise-free) frames, per kg of body mass (hip flexion, knee flexion)."""
+    from _generated_demand import generated_swing_moments
 
-    moments = truth_swing_moments(truth, side)
+    moments = generated_swing_moments(truth, side)
     return moments.hip_flexion_nm / truth.body.mass_kg, moments.knee_flexion_nm / truth.body.mass_kg
 
 

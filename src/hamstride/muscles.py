@@ -109,9 +109,10 @@ ARCHITECTURE: dict[str, Architecture] = {
     "biceps_femoris_short": Architecture(0.1103, 0.0206, np.deg2rad(12.3), np.deg2rad(3.6), _WARD),
 }
 
-#: Tendon slack length assumption. With a rigid tendon the fibre length follows the musculotendon length one to
-#: one, so l/l_opt is only as good as the tendon slack length. Our default: the fibres are at
-#: ``(1 + reference strain) * l_opt`` in a reference late-swing posture (hip flexion 65 deg, knee flexion 25 deg:
+#: Tendon slack length assumption. At a given tendon force the fibre length follows the musculotendon length one
+#: to one, so l/l_opt is only as good as the tendon slack length. Our default: the fibres are at
+#: ``(1 + reference strain) * l_opt`` with the tendon stretched as by F0 (``REFERENCE_TENDON_FORCE``, the loaded
+#: late-swing state) in a reference late-swing posture (hip flexion 65 deg, knee flexion 25 deg:
 #: typical sprint late-swing angles, references.md [from memory]; Guex et al. 2012: hip > 70 deg at end of swing).
 #: Reference strains are Wan et al. 2017 (J Sport Health Sci 6:283) peak sprint fibre strain relative to optimal
 #: length, mean and SD: BFlh 0.071 +- 0.059, ST 0.070 +- 0.055, SM 0.064 +- 0.054. No value is published for the
@@ -126,7 +127,8 @@ REFERENCE_FIBRE_STRAIN: dict[str, tuple[float, float]] = {
 }
 #: One-paragraph statement of the slack-length assumption for exports and reports.
 TENDON_SLACK_NOTE = (
-    "Fibre length relative to optimal length (l/l_opt) rests on an assumed tendon slack length: rigid tendon, "
+    "Fibre length relative to optimal length (l/l_opt) rests on an assumed tendon slack length and is given with "
+    "the tendon stretched as by the muscle's maximum isometric force (4.9 %, the loaded late-swing state): "
     "fibres at (1 + Wan et al. 2017 mean peak sprint strain) x l_opt, i.e. 1.071 (BFlh), 1.070 (ST), 1.064 (SM) "
     "and 1.0 (BFsh, assumed), at hip flexion 65 deg / knee flexion 25 deg. Each 1 cm of slack length shifts "
     "l/l_opt by 1 cm / l_opt (BFlh 0.10, ST 0.05, SM 0.14, BFsh 0.09); compare l/l_opt between legs and sessions "
@@ -527,10 +529,11 @@ def tendon_strain(force_norm) -> np.ndarray:
 class MuscleState:
     """One muscle over the frames of a trial (SI units).
 
-    strain: (L - L_upright) / L_upright; fibre_length_lopt: fibre length / optimal fibre length (depends on the
-    tendon slack length assumption, see ``tendon_slack_length``); velocity_m_per_s: musculotendon lengthening
-    velocity; velocity_lopt_per_s: fibre lengthening velocity (rigid tendon: v cos(alpha)) in l_opt/s, the input of
-    ``force_velocity``; moment_arms_m: [F, 4] in ``ANGLE_NAMES`` order; pennation_rad: [F].
+    strain: (L - L_upright) / L_upright; fibre_length_lopt: fibre length / optimal fibre length with the tendon at
+    its F0 stretch (depends on the tendon slack length assumption, see ``tendon_slack_length``); velocity_m_per_s:
+    musculotendon lengthening velocity; velocity_lopt_per_s: fibre lengthening velocity (v cos(alpha), the tendon's
+    stretch rate left out) in l_opt/s, the input of ``force_velocity``; moment_arms_m: [F, 4] in ``ANGLE_NAMES``
+    order; pennation_rad: [F]; tendon_slack_length_m: the tendon's length without force.
     """
 
     muscle: str
