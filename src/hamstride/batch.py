@@ -209,7 +209,9 @@ def default_config_toml() -> str:
         f"contact_range_s = [{a.contact_range_s[0]}, {a.contact_range_s[1]}]\n"
         "# Monte Carlo samples of model geometry and architecture for the uncertainty band (0 = off)\n"
         f"monte_carlo_samples = {a.monte_carlo_samples}\n"
-        "# scale hamstring maximum forces to body mass (athletes are stronger than the cadaver data)\n"
+        "# Monte Carlo samples of the force and negative-work band (each a full force-sharing solve; 0 = off)\n"
+        f"force_band_samples = {a.force_band_samples}\n"
+        "# no effect (kept so older config files load): muscle strength always scales with body mass x height\n"
         f"scale_force_to_mass = {'true' if a.scale_force_to_mass else 'false'}\n\n"
         + flag_config_toml()
     )

@@ -54,6 +54,7 @@ class AnalysisOptions:
     stride_time_range_s: tuple[float, float] = (0.3, 0.8)  # common practice
     contact_range_s: tuple[float, float] = (0.06, 0.3)  # common practice
     monte_carlo_samples: int = 200
+    force_band_samples: int = 20  # Monte Carlo samples of the force and work band (each a full sharing solve); 0: none
     scale_force_to_mass: bool = False  # no effect since issue 14: strength always scales with mass x height
     min_strides: int = 1
     min_speed_m_s: float = 4.0  # slower is a jog, not a sprint (checks.MIN_SPRINT_SPEED_M_S; common practice)
@@ -296,7 +297,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         if with_moments else {}
     _short_fibre_warning(sides, valid, leg_states, shared, legs, info)
     force_bands = {}
-    if with_moments and options.monte_carlo_samples > 0:
+    if with_moments and options.force_band_samples > 0:
         band_legs = []
         for side in with_moments:
             leg = legs[side]
@@ -308,7 +309,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         height = athlete.height_m or stature_from_dims(leg_dims[with_moments[0]])
         force_bands = dict(zip(with_moments, force_work_band(
             band_legs, rate, body_mass_kg=body_mass, height_m=height, strength_factor=athlete.strength_factor,
-            n_samples=max(2, options.monte_carlo_samples // 10))))
+            n_samples=max(2, int(options.force_band_samples)))))
     for side, (side_strides, joint, states, late_starts, bands, swing, moments) in legs.items():
         a = angles[side]
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
