@@ -161,3 +161,15 @@ def test_short_fibre_warning_fires_only_for_loaded_short_fibres():
     _short_fibre_warning(["left"], [stride], states, shared, {}, info)
     assert info["warning_codes"] == ["short_fibres"]
     assert "left semimembranosus 0.30" in info["warnings"][0] and BICEPS not in info["warnings"][0]
+
+
+def test_summary_carries_the_band_means_of_force_and_work(sprints):
+    from hamstride.metrics import summarise
+
+    strides = sprints[9.0, 75.0].strides
+    summary = summarise(strides)
+    for column in ("peak_force_n_p5", "peak_force_n_p95", "negative_work_j_p5", "negative_work_j_p95",
+                   "late_swing_hip_extension_met_pct", "late_swing_knee_flexion_met_pct"):
+        for _, row in summary.iterrows():
+            mine = strides[(strides.side == row.side) & (strides.muscle == row.muscle)][column]
+            assert row[f"{column}_mean"] == pytest.approx(mine.mean()), column
