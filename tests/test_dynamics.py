@@ -740,3 +740,25 @@ def test_window_work_equals_negative_positive_work_for_every_window():
     assert np.isnan(absorbed[3]).all() and np.isnan(absorbed[5]).all()  # one frame: no interval to integrate
     empty = dyn.window_work(force, velocity, 250.0, [5, 9], [5, 9])  # only empty windows (a stride without swing)
     assert all(np.isnan(part).all() and part.shape == (2, 4) for part in empty)
+
+
+def test_share_forces_warm_start_gives_the_cold_solution():
+    # The problem is strictly convex, so any starting multipliers end at the same solution up to the solver's
+    # tolerance; the warm start (another problem's multipliers, as the Monte Carlo band uses) saves Newton steps.
+    # On frames far beyond capacity the regularised tie-break is weak, so the tolerance there is looser (our lines:
+    # 2.5 % of a muscle's capacity, 1 N m of moment, the same met frames).
+    rng = np.random.default_rng(7)
+    n, m = 400, 8
+    arms = rng.normal(0.0, 0.04, (n, m, 2))
+    cap = rng.uniform(200.0, 3000.0, (n, m))
+    target = rng.normal(0.0, 150.0, (n, 2))
+    cold, met_cold, dual = dyn.share_forces(arms, cap, target, return_dual=True)
+    other, _, other_dual = dyn.share_forces(arms * 1.1, cap * 0.8, target * 1.2, return_dual=True)
+    warm, met_warm = dyn.share_forces(arms, cap, target, initial_dual=other_dual)
+    assert (np.abs(warm - cold) <= 0.025 * cap).all()
+    moments = [np.einsum("fmj,fm->fj", arms, f) for f in (warm, cold)]
+    assert np.abs(moments[0] - moments[1]).max() < 1.0
+    np.testing.assert_array_equal(met_warm, met_cold)
+    met = met_cold
+    np.testing.assert_allclose(warm[met], cold[met], atol=1e-3 * cap.max())  # reachable frames: the same forces
+    assert np.isfinite(dual).all()

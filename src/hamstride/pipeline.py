@@ -305,7 +305,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             starts = np.array([min(max(int(np.ceil(s.toe_off_s * rate)), s.start_frame), s.end_frame)
                                for s in leg.strides], dtype=int)
             force_norm = {m: shared[side].force_n[m] / leg.states[m].max_isometric_force_n for m in MUSCLES}
-            band_legs.append(BandLeg(leg.moments, leg.joint, leg_dims[side], starts, stops, force_norm))
+            band_legs.append(BandLeg(leg.moments, leg.joint, leg_dims[side], starts, stops, force_norm,
+                                     shared[side].dual))
         height = athlete.height_m or stature_from_dims(leg_dims[with_moments[0]])
         force_bands = dict(zip(with_moments, force_work_band(
             band_legs, rate, body_mass_kg=body_mass, height_m=height, strength_factor=athlete.strength_factor,
