@@ -173,3 +173,21 @@ def test_summary_carries_the_band_means_of_force_and_work(sprints):
         for _, row in summary.iterrows():
             mine = strides[(strides.side == row.side) & (strides.muscle == row.muscle)][column]
             assert row[f"{column}_mean"] == pytest.approx(mine.mean()), column
+
+
+def test_band_on_every_second_frame_stays_close_to_the_band_on_every_frame(tmp_path, monkeypatch):
+    # The band is solved at >= 100 Hz (dynamics.BAND_MIN_RATE_HZ); against every frame its percentiles move by a
+    # small part of the band's width (our lines: 10 % for force, 20 % for work, measured 5 % and 11 %).
+    from hamstride import dynamics
+
+    path = tmp_path / "sprint.c3d"
+    synth.write_sprint_trial(path, synth.SprintSpec(speed_m_s=9.0, seed=3))
+    athlete = AthleteInfo(body_mass_kg=75.0, height_m=1.80)
+    decimated = analyse_trial(path, athlete=athlete).strides
+    monkeypatch.setattr(dynamics, "BAND_MIN_RATE_HZ", 1e9)
+    full = analyse_trial(path, athlete=athlete).strides
+    for metric, line in (("peak_force_n", 0.10), ("negative_work_j", 0.20)):
+        width = full[f"{metric}_p95"] - full[f"{metric}_p5"]
+        for q in ("p5", "p95"):
+            moved = (decimated[f"{metric}_{q}"] - full[f"{metric}_{q}"]).abs()
+            assert (moved <= line * width + 1e-9).all(), (metric, q)

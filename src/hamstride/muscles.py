@@ -958,19 +958,23 @@ class SampledStates:
 def monte_carlo_states(angles: dict[str, np.ndarray], dims: MuscleDims, rate_hz: float, n_samples: int,
                        seed: int = 0, *, include_hip_centre_error: bool = True,
                        tendon_force_norm: dict[str, np.ndarray] | None = None,
-                       tendon_strain_scale=1.0) -> dict[str, SampledStates]:
+                       tendon_strain_scale=1.0, frames: np.ndarray | None = None) -> dict[str, SampledStates]:
     """Per-sample fibre lengths, velocities and moment arms of every muscle ([S, F]), from the same draws as
     ``monte_carlo_lengths`` (attachments, hip centre, l_opt, pennation, slack rule), for the force band; each
     tendon stretched by ``tendon_force_norm[muscle]`` ([F], F0 units; default the reference force) times
     ``tendon_strain_scale`` ([S, 1] or a number). Fibre velocity = MTU velocity along the fibres (see
-    ``dynamics._compliant_fibres``)."""
+    ``dynamics._compliant_fibres``). ``frames``: evaluate only these frames (rates still from all of them)."""
     arrays = _angle_arrays(angles)
     rates = np.stack([np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in arrays], axis=-1)
+    if frames is not None:
+        arrays, rates = [a[frames] for a in arrays], rates[frames]
     out = {}
     for muscle, sampled in _draw_samples(dims, n_samples, seed, include_hip_centre_error):
         length, arms = _length_and_moment_arms(sampled.paths, *arrays)  # [S, F], [S, F, 4]
         force = REFERENCE_TENDON_FORCE if tendon_force_norm is None else np.nan_to_num(
             np.asarray(tendon_force_norm[muscle], dtype=float), nan=0.0)
+        if frames is not None and np.ndim(force):
+            force = force[frames]
         fibre, pennation = fibre_length(length, sampled.slack_length_m, sampled.optimal_fibre_length_m,
                                         sampled.pennation_rad, force, tendon_strain_scale)
         velocity = -np.sum(arms * rates, axis=-1)
