@@ -124,7 +124,8 @@ def test_hamstring_relevant_demand_met_in_nine_tenths_of_late_swing(sprints):
 def test_resting_fibre_length_at_standing_is_on_the_ascending_limb(height_m):
     # Standing (hip 0, knee 0), no force: the biarticular hamstrings rest below their optimal length (Wan et al.
     # 2017, J Sport Health Sci 6:275 [V]: optimal lengths longer than standing lengths; Kellis & Blazevich 2022,
-    # BMC Sports Sci Med Rehabil 14:166 [V]: the hamstrings work on the ascending limb near hip and knee neutral)
+    # BMC Sports Sci Med Rehabil 14:166 [M for this point]: the hamstrings work on the ascending limb near hip and
+    # knee neutral)
     # and within the active range (0.5-1.5 l_opt, common practice). The short head, a knee-only muscle, is at its
     # longest with the knee straight: near optimal length (0.9-1.2, our line, common practice).
     from hamstride import muscles as M
