@@ -273,10 +273,10 @@ def test_faster_sprint_gives_more_hip_flexion_and_faster_late_swing_knee_extensi
 
 
 def _swing_moments_per_kg(truth, side):
-    """Swing inverse dynamics of the truth frames, per kg of body mass (hip flexion, knee flexion)."""
-    from _truth import truth_swing_moments
+    """Swing inverse dynamics of the generated (noise-free) frames, per kg of body mass (hip flexion, knee flexion)."""
+    from _generated_demand import generated_swing_moments
 
-    moments = truth_swing_moments(truth, side)
+    moments = generated_swing_moments(truth, side)
     return moments.hip_flexion_nm / truth.body.mass_kg, moments.knee_flexion_nm / truth.body.mass_kg
 
 
@@ -568,3 +568,30 @@ def test_hip_centre_agrees_with_both_harrington_forms(height, sex):
     assert np.allclose(local, [-0.24 * pd - 9.9, -0.30 * pw - 10.9, 0.33 * pw + 7.3], atol=1e-9)
     assert np.max(np.abs(full - local)) < 2.5  # mm; well inside the regression's own 3-5 mm error
     assert 200 <= pw <= 290 and 120 <= pd <= 175  # adult sizes, small women to tall men (common practice)
+
+
+@pytest.mark.xfail(strict=True, reason="issue 14, left open: the asymmetric leg holds its hip-flexion deficit through "
+                   "late swing and releases it in the last 60 ms before strike (same strike state as the other leg), "
+                   "asking for 8-15 N m/kg of terminal-swing hip extension. Lowering the swing peak instead keeps the "
+                   "demand in range but leaves only half the deficit at the stretch peak and raises the deficit "
+                   "leg's ST stretch; a leg that lands with less hip flexion needs a stance the generator cannot "
+                   "reach yet.")
+@pytest.mark.parametrize("hip_deficit, knee_deficit, speed", [(12.0, 10.0, 7.6), (6.0, 5.0, 8.1)])
+def test_an_asymmetric_leg_asks_for_published_terminal_swing_moments(hip_deficit, knee_deficit, speed):
+    # Every leg, also one with a late-swing deficit (the demo's returning athlete's first sessions), within the
+    # published terminal-swing sprint range (Schache et al. 2011, MSSE 43:1260; Dorn et al. 2012, J Exp Biol
+    # 215:1944 [M]): peak hip extension moment at most 5.0 N m/kg and knee flexion moment at most 2.2 N m/kg (the
+    # bounds of test_terminal_swing_joint_moments_are_of_published_sprint_size...).
+    body = synth.AthleteBody.from_height(1.77, 73.5, "male")
+    _, _, truth = _sim_kw(speed_m_s=speed, seed=3, noise_mm=0.0, n_gaps=0, body=body, asymmetry_side="right",
+                          hip_flexion_deficit_deg=hip_deficit, knee_extension_deficit_deg=knee_deficit)
+    t = truth.time_s
+    for side in SIDES:
+        hip, knee = _swing_moments_per_kg(truth, side)
+        fs = truth.foot_strikes_s[side]
+        for to in truth.toe_offs_s[side]:
+            nxt = fs[fs > to]
+            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
+                continue
+            late = (t >= to + 0.5 * (nxt[0] - to)) & (t <= nxt[0])
+            assert -np.nanmin(hip[late]) <= 5.0 and np.nanmax(knee[late]) <= 2.2, side

@@ -174,7 +174,8 @@ def discover_squad(root: str | Path, markers: str | Path | None = None, *, allow
         info = AthleteInfo(athlete=s.athlete, session=s.session,
                            body_mass_kg=_float(row["body_mass_kg"]) if row is not None else None,
                            height_m=_float(row["height_m"]) if row is not None else None,
-                           sex=row["sex"] if row is not None else "male")
+                           sex=row["sex"] if row is not None else "male",
+                           strength_factor=_float(row["strength_factor"]) or 1.0 if row is not None else 1.0)
         static = str(s.statics[0]) if s.statics else None
         jobs.extend(TrialJob(str(trial), s.athlete, s.session, static, info, str(markers) if markers else None)
                     for trial in s.trials)

@@ -496,7 +496,10 @@ def share_forces(
     weight: float = RESIDUAL_WEIGHT,
     tolerance: float = MOMENT_TOLERANCE,
     max_iter: int = 60,
-) -> tuple[np.ndarray, np.ndarray]:
+    *,
+    initial_dual: np.ndarray | None = None,
+    return_dual: bool = False,
+):
     """Static optimisation per frame, as one strictly convex problem on met and unmet frames alike.
 
     minimise  1/2 sum_m a_m^2 + w/2 sum_j ((M_j - sum_m r_mj a_m Fmax_m) / S)^2   subject to 0 <= a <= 1,
@@ -515,7 +518,11 @@ def share_forces(
 
     moment_arms [F,m,2] (m), max_force [F,m] (N, >= 0; NaN treated as 0), target [F,2] (N m).
     Returns forces [F,m] = a * max_force (NaN where the target or arms are not finite) and met [F]: both residuals
-    within ``tolerance`` x S.
+    within ``tolerance`` x S; with ``return_dual`` also the multipliers [F, 2] (NaN on unusable frames), which a
+    similar problem may take as ``initial_dual`` (a warm start, fewer Newton steps: the Monte Carlo band). Warm and
+    cold starts end within the solver's tolerance, which on frames far beyond capacity leaves the tie-break among
+    the saturated muscles loose: forces within 2 % of capacity, moments within 0.5 N m, the same met frames
+    (random problems, tested).
     """
     r = np.asarray(moment_arms, dtype=float)
     cap = np.nan_to_num(np.asarray(max_force, dtype=float), nan=0.0).clip(min=0.0)
@@ -536,11 +543,18 @@ def share_forces(
     g00, g01, g11 = ((a_mat[:, j] * a_mat[:, k]).sum(axis=1) for j, k in ((0, 0), (0, 1), (1, 1)))
     scale = g00 + g11 + 1.0
     lam0 = _solve_2x2(g00 + reserve, g01, g11 + reserve, bb)
+    if initial_dual is not None:
+        given = np.asarray(initial_dual, dtype=float)[usable]
+        lam0 = np.where(np.isfinite(given), given, lam0)
     lam = _solve_dual(a_mat, bb, lam0, reserve, max_iter, 1e-9, scale)
     act = np.clip(_transpose_times(a_mat, lam), 0.0, 1.0)
     residual = np.abs(bb - np.einsum("fjm,fm->fj", a_mat, act))  # fraction of the total capacity S
     met[usable] = (residual <= tolerance).all(axis=1)
     forces[usable] = act * cap_u
+    if return_dual:
+        dual = np.full((len(usable), 2), np.nan)
+        dual[usable] = lam
+        return forces, met, dual
     return forces, met
 
 
@@ -549,13 +563,15 @@ def share_forces(
 class OtherMuscle:
     """A non-hamstring muscle in the sharing problem: sagittal moment arms (r = -dL/dtheta) and strength.
 
-    ``pcsa_cm2`` times the specific tension gives the maximum isometric force before athlete scaling.
-    Moment arms are functions of the hip and knee flexion angles (rad) returning metres.
+    ``volume_share`` (of the athlete's lower-limb muscle volume, Handsfield et al. 2014) / optimal fibre length
+    x specific tension gives the maximum isometric force, as for the hamstrings (``muscles.max_isometric_force``;
+    pennation not modelled for these, cos ~ 1). Moment arms are functions of the hip and knee flexion angles (rad)
+    returning metres.
     """
 
     code: str
     name: str
-    pcsa_cm2: float
+    volume_share: float
     optimal_fibre_length_m: float
     hip_moment_arm: Callable[[np.ndarray], np.ndarray]
     knee_moment_arm: Callable[[np.ndarray], np.ndarray]
@@ -607,44 +623,44 @@ def _adductor_magnus_hip_arm(hip_flexion_rad: np.ndarray) -> np.ndarray:
 ADDUCTOR_MAGNUS_POSTERIOR_FRACTION = 0.5
 
 
-# PCSA from Ward et al. 2009 (Clin Orthop Relat Res 467:1074) - from memory, not checked against the table.
-# Optimal fibre lengths from the same paper - from memory. Moment arms as stated per function / entry.
+# Volume shares of the total lower-limb muscle volume: Handsfield et al. 2014 (J Biomech 47:631), Table 2, from
+# memory [M]. Optimal fibre lengths: Ward et al. 2009 (Clin Orthop Relat Res 467:1074), from memory [M].
+# Moment arms as stated per function / entry.
 OTHER_MUSCLES: dict[str, OtherMuscle] = {
     "gmax": OtherMuscle(
-        "gmax", "gluteus maximus", 33.4, 0.156, _gluteus_hip_arm, _const(0.0),
-        "PCSA, fibre length: Ward et al. 2009 (from memory); hip arm: Németh & Ohlsén 1985 (from memory)",
+        "gmax", "gluteus maximus", 0.121, 0.156, _gluteus_hip_arm, _const(0.0),
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; hip arm: Nemeth & Ohlsen "
+        "1985 [M]",
     ),
     "ilps": OtherMuscle(
-        "ilps", "iliopsoas (iliacus + psoas)", 9.9 + 7.7, 0.102, _const(0.030), _const(0.0),
-        "PCSA, fibre length: Ward et al. 2009 (from memory); hip-flexion arm 3 cm near neutral (from memory)",
+        "ilps", "iliopsoas (iliacus + psoas)", 0.025 + 0.032, 0.102, _const(0.030), _const(0.0),
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; hip-flexion arm 3 cm [M]",
     ),
     "rf": OtherMuscle(
-        "rf", "rectus femoris", 13.5, 0.076, _const(0.040), _quadriceps_knee_arm,
-        "PCSA, fibre length: Ward et al. 2009 (from memory); hip-flexion arm 4 cm (from memory); knee: quadriceps",
+        "rf", "rectus femoris", 0.037, 0.076, _const(0.040), _quadriceps_knee_arm,
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; hip-flexion arm 4 cm [M]",
     ),
     "vas": OtherMuscle(
-        "vas", "vasti (lateralis + medialis + intermedius)", 35.1 + 20.6 + 16.7, 0.090, _const(0.0),
-        _quadriceps_knee_arm, "PCSA, fibre length: Ward et al. 2009 (from memory); knee: quadriceps",
+        "vas", "vasti (lateralis + medialis + intermedius)", 0.119 + 0.062 + 0.056, 0.090, _const(0.0),
+        _quadriceps_knee_arm, "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]",
     ),
     "amag": OtherMuscle(
-        "amag", "adductor magnus, posterior (ischiocondylar) part", 20.5 * ADDUCTOR_MAGNUS_POSTERIOR_FRACTION, 0.144,
+        "amag", "adductor magnus, posterior (ischiocondylar) part", 0.076 * ADDUCTOR_MAGNUS_POSTERIOR_FRACTION, 0.144,
         _adductor_magnus_hip_arm, _const(0.0),
-        "PCSA 20.5 cm2 and fibre length 14.4 cm: Ward et al. 2009 (from memory, unverified), half of it posterior "
-        "(assumption); hip-extension arm from memory (Németh & Ohlsén 1985); no knee moment",
+        "volume share: Handsfield et al. 2014 [M], half of it posterior (assumption); fibre length: Ward et al. "
+        "2009 [M]; hip-extension arm [M] (Nemeth & Ohlsen 1985); no knee moment",
     ),
     "gas": OtherMuscle(
-        "gas", "gastrocnemius (medial + lateral)", 21.1 + 9.7, 0.055, _const(0.0), _gastrocnemius_knee_arm,
-        "PCSA, fibre length: Ward et al. 2009 (from memory); knee arm from memory; its ankle moment is not matched",
+        "gas", "gastrocnemius (medial + lateral)", 0.036 + 0.020, 0.055, _const(0.0), _gastrocnemius_knee_arm,
+        "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; knee arm [M]; its ankle "
+        "moment is not matched",
     ),
 }
 
-SPECIFIC_TENSION_N_PER_CM2 = 26.8  # Persad et al. 2024, J Appl Physiol 137:945 [V]; the muscles stage uses the same
-
-#: Multiplier on every muscle's maximum isometric force in the sharing problem. Cadaver PCSAs (Ward et al. 2009,
-#: elderly donors) underestimate young athletes' muscles (references.md); young adults' hamstring and quadriceps
-#: volumes are roughly twice those of elderly cadavers (Handsfield et al. 2014, J Biomech 47:631, from memory).
-#: Assumption: 2.0. Frames where even this cannot meet the moments are reported, never hidden.
-ATHLETE_STRENGTH_FACTOR = 2.0
+#: Reserve (unmet) moment that still counts as met: 1 N m + 1 % of the net moment (assumption, common practice:
+#: reserve actuators small against the net joint moment).
+RESERVE_TOLERANCE_NM = 1.0
+RESERVE_TOLERANCE_FRACTION = 0.01
 
 
 @dataclass(frozen=True)
@@ -661,15 +677,19 @@ def other_muscle_kinematics(
     hip_flexion_rad: np.ndarray,
     knee_flexion_rad: np.ndarray,
     rate_hz: float,
-    strength_scale: float = 1.0,
+    limb_force_scale_n_m: float = float("nan"),
     muscles: Mapping[str, OtherMuscle] = OTHER_MUSCLES,
 ) -> dict[str, OtherMuscleKinematics]:
-    """Moment arms and lengthening velocity v = -(r_hip dhip/dt + r_knee dknee/dt) of the non-hamstring muscles."""
+    """Moment arms and lengthening velocity v = -(r_hip dhip/dt + r_knee dknee/dt) of the non-hamstring muscles.
+
+    ``limb_force_scale_n_m``: limb muscle volume x specific tension x strength factor (N m), see
+    ``athlete_force_scale``; each muscle's maximum force is that x its volume share / its optimal fibre length.
+    """
     hip = np.asarray(hip_flexion_rad, dtype=float)
     knee = np.asarray(knee_flexion_rad, dtype=float)
     arms, velocity = _other_arms_and_velocities(hip, knee, *_angle_rates(hip, knee, rate_hz), muscles)
     return {code: OtherMuscleKinematics(code, arms[:, k], velocity[:, k],
-                                        m.pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * strength_scale)
+                                        limb_force_scale_n_m * m.volume_share / m.optimal_fibre_length_m)
             for k, (code, m) in enumerate(muscles.items())}
 
 
@@ -688,23 +708,44 @@ def _other_arms_and_velocities(hip, knee, hip_rate, knee_rate, muscles: Mapping[
     return arms, -(arms[:, :, 0] * hip_rate[:, None] + arms[:, :, 1] * knee_rate[:, None])
 
 
-def _mass_scale(states: Mapping[str, MuscleState]) -> float:
-    """How much the muscles stage scaled the hamstrings' PCSA-based forces (body-mass scaling), to apply alike to
-    the other muscles: ratio of the states' maximum forces to PCSA x specific tension of the same muscles."""
-    got = sum(float(states[m].max_isometric_force_n) for m in states if m in mus.ARCHITECTURE)
-    ref = sum(mus.ARCHITECTURE[m].max_isometric_force_n for m in states if m in mus.ARCHITECTURE)
-    return got / ref if ref > 0 and np.isfinite(got) and got > 0 else 1.0
+def athlete_force_scale(states: Mapping[str, MuscleState]) -> float:
+    """Limb muscle volume x specific tension x strength factor (N m) behind the states' maximum forces: the
+    muscles stage's F0 = share x volume / l_opt x tension x cos(pennation) x factor, solved for the product (the
+    same for every hamstring), so the other muscles are scaled exactly alike. NaN without forces (no body mass)."""
+    for m, st in states.items():
+        f0 = float(st.max_isometric_force_n)
+        if m in mus.ARCHITECTURE and np.isfinite(f0) and f0 > 0:
+            arch = mus.ARCHITECTURE[m]
+            return f0 * arch.optimal_fibre_length_m / (mus.VOLUME_SHARE[m] * np.cos(arch.pennation_rad))
+    return float("nan")
 
 
 @dataclass(frozen=True)
 class ForceSharing:
-    """Result of sharing the swing moments among the muscles: forces (N), velocities (m/s), frames not met."""
+    """Result of sharing the swing moments among the muscles: forces (N), velocities (m/s), frames not met.
+
+    ``demand_nm`` [F, 2]: the net hip and knee flexion moments (inverse dynamics); ``reserve_nm`` [F, 2]: the part
+    of them the muscles could not carry (demand - carried; 0 where met). ``hip_extension_unmet`` and
+    ``knee_flexion_unmet`` [F]: frames whose hip *extension* or knee *flexion* demand (what the hamstrings act
+    against) is short by more than ``RESERVE_TOLERANCE_NM`` + ``RESERVE_TOLERANCE_FRACTION`` of it.
+    """
 
     force_n: dict[str, np.ndarray]
     velocity_m_per_s: dict[str, np.ndarray]
     moment_arms_m: dict[str, np.ndarray]  # [F,2] hip flexion, knee flexion
     unmet: np.ndarray  # swing frames where no admissible activations reproduce the moments (share_forces tolerance)
     valid: np.ndarray  # swing frames with finite moments
+    demand_nm: np.ndarray | None = None
+    reserve_nm: np.ndarray | None = None
+    hip_extension_unmet: np.ndarray | None = None
+    knee_flexion_unmet: np.ndarray | None = None
+    fibre_length_lopt: dict[str, np.ndarray] | None = None  # hamstrings' fibre length at their own force (l_opt)
+    dual: np.ndarray | None = None  # [F, 2] the solve's multipliers (a warm start for the Monte Carlo band)
+
+    @property
+    def hamstring_demand_unmet(self) -> np.ndarray:
+        """Frames where the hip-extension or knee-flexion demand (the hamstrings' share) is not met."""
+        return self.hip_extension_unmet | self.knee_flexion_unmet
 
     @property
     def carried_moments_nm(self) -> np.ndarray:
@@ -720,34 +761,40 @@ def share_swing_moments(
     states: Mapping[str, MuscleState],
     angles: Mapping[str, np.ndarray],
     rate_hz: float,
-    strength_scale: float | None = None,
+    strength_scale: float = 1.0,
     include_passive: bool = True,
 ) -> ForceSharing:
     """Muscle forces that reproduce the net sagittal hip and knee moments with minimum squared activation.
 
-    Hamstrings: capacity = Fmax fl(l) fv(v) from the muscles stage's fibre length and velocity, plus the passive
-    force Fmax fp(l) that acts whatever the activation. Other muscles: Fmax fv(v) with v from their moment arms and a
-    rigid tendon (their length-force relation is not modelled: set to 1), no passive force. ``angles`` are the
-    joint angles in rad as given to ``muscles.muscle_states`` (keys ``hip_flexion``, ``knee_flexion``).
-    Maximum forces: the states' (hamstrings) and PCSA x specific tension x the states' body-mass scaling (others),
-    all multiplied by ``strength_scale`` (default ``ATHLETE_STRENGTH_FACTOR``).
+    Hamstrings: capacity = F0 fl(l) fv(v) from the muscles stage's fibre length and velocity, plus the passive
+    force F0 fp(l) that acts whatever the activation (De Groote et al. 2016 curves). Other muscles: F0 fv(v) with v
+    from their moment arms and a rigid tendon (their length-force relation is not modelled: set to 1), no passive
+    force. ``angles`` are the joint angles in rad as given to ``muscles.muscle_states`` (keys ``hip_flexion``,
+    ``knee_flexion``). Maximum forces: the states' (hamstrings, from the athlete's muscle volume) and the same
+    volume scaling for the others (``athlete_force_scale``), all multiplied by ``strength_scale`` (default 1).
     """
     return share_swing_moments_of_legs([(moments, states, angles, rate_hz)], strength_scale, include_passive)[0]
 
 
 def share_swing_moments_of_legs(
     legs: Sequence[tuple[JointMoments, Mapping[str, MuscleState], Mapping[str, np.ndarray], float]],
-    strength_scale: float | None = None,
+    strength_scale: float = 1.0,
     include_passive: bool = True,
 ) -> list[ForceSharing]:
     """``share_swing_moments`` for several legs, each (moments, states, angles, rate), with one solve: the problem
     is separate for every frame, so stacking the legs' frames gives the same forces in fewer solver steps."""
     if len({tuple(states) for _, states, _, _ in legs}) > 1:
         raise HamstrideError("legs shared together must have the same muscles", code="config")
-    p = _sharing_problem(legs, ATHLETE_STRENGTH_FACTOR if strength_scale is None else strength_scale, include_passive)
-    active, met = share_forces(p.arms, p.capacity, p.target)
-    force = active + p.passive
-    force[~p.valid] = np.nan
+    p = _sharing_problem(legs, strength_scale, include_passive)
+    solved = _solve_sharing(p)
+    n_h = p.lopt_alpha.shape[1]
+    fed = solved[0][:, :n_h]
+    for _ in range(TENDON_PASSES - 1):  # compliant tendons: fibre lengths from the forces, then solve again
+        p = _with_fibres(p, *_compliant_fibres(p, fed), include_passive)
+        solved = _solve_sharing(p)
+        fed = 0.5 * (fed + solved[0][:, :n_h])
+    force, met, reserve, hip_short, knee_short, dual = solved
+    fibre_lopt = _compliant_fibres(p, force[:, :n_h])[0]
     unmet = p.valid & ~met
     out = []
     for start, stop in zip(p.leg_starts[:-1], p.leg_starts[1:]):
@@ -757,6 +804,10 @@ def share_swing_moments_of_legs(
             moment_arms_m={c: p.arms[start:stop, i] for i, c in enumerate(p.names)},
             unmet=unmet[start:stop],
             valid=p.valid[start:stop],
+            demand_nm=p.demand[start:stop], reserve_nm=reserve[start:stop],
+            hip_extension_unmet=hip_short[start:stop], knee_flexion_unmet=knee_short[start:stop],
+            fibre_length_lopt={c: fibre_lopt[start:stop, i] for i, c in enumerate(p.names[:n_h])},
+            dual=dual[start:stop],
         ))
     return out
 
@@ -772,6 +823,43 @@ class _SharingProblem(NamedTuple):
     velocities: np.ndarray  # [F, m] musculotendon lengthening velocity (m/s)
     valid: np.ndarray  # [F]
     leg_starts: list[int]  # first frame of each leg, then the total
+    demand: np.ndarray  # [F, 2] net hip and knee flexion moments (N m)
+    fmax: np.ndarray  # [F, m] maximum isometric forces (N)
+    v_norm: np.ndarray  # [F, m] fibre velocities (l_opt/s) the capacities were taken at
+    mtu_length: np.ndarray  # [F, h] hamstring musculotendon lengths (m)
+    slack: np.ndarray  # [F, h] hamstring tendon slack lengths (m)
+    lopt_alpha: np.ndarray  # [2, h] hamstring optimal fibre length (m) and pennation at optimal length (rad)
+    rate_hz: float
+
+
+def _solve_sharing(p: _SharingProblem, initial_dual: np.ndarray | None = None):
+    """Forces [F, m] (active + passive, NaN off the valid frames), met [F] (both joints within ``share_forces``
+    tolerance), reserve [F, 2] (demand - carried) and the hip-extension / knee-flexion shortfalls [F]."""
+    active, met, dual = share_forces(p.arms, p.capacity, p.target, initial_dual=initial_dual, return_dual=True)
+    force = active + p.passive
+    force[~p.valid] = np.nan
+    carried = np.einsum("fmj,fm->fj", p.arms, np.nan_to_num(force))
+    reserve = np.where(p.valid[:, None], p.demand - carried, np.nan)
+    tolerance = RESERVE_TOLERANCE_NM + RESERVE_TOLERANCE_FRACTION * np.abs(p.demand)
+    with np.errstate(invalid="ignore"):
+        hip_short = p.valid & (p.demand[:, 0] < 0) & (reserve[:, 0] < -tolerance[:, 0])  # extension not reached
+        knee_short = p.valid & (p.demand[:, 1] > 0) & (reserve[:, 1] > tolerance[:, 1])  # flexion not reached
+    return force, met, reserve, hip_short, knee_short, dual
+
+
+def sharing_capacities(fmax, l_norm_hamstrings, v_norm, include_passive=True, *,
+                       max_velocity_lopt_per_s=mus.MAX_SHORTENING_VELOCITY_LOPT_PER_S):
+    """Active capacity F0 fl fv [F, m] and passive force F0 fp [F, m] of the muscles of the sharing problem; the
+    first ``l_norm_hamstrings.shape[1]`` muscles are the hamstrings (force-length and passive force modelled),
+    the rest have fl = 1 and no passive force. Arrays broadcast over leading axes (Monte Carlo samples)."""
+    n_ham = l_norm_hamstrings.shape[-1]
+    length_factor = np.ones(np.broadcast_shapes(np.shape(fmax), np.shape(v_norm)))
+    length_factor[..., :n_ham] = mus.active_force_length(l_norm_hamstrings)
+    cap = fmax * np.clip(length_factor * mus.force_velocity(v_norm, max_velocity_lopt_per_s), 0.0, None)
+    fp = np.zeros_like(cap)
+    if include_passive:
+        fp[..., :n_ham] = np.nan_to_num(fmax[..., :n_ham] * mus.passive_force_length(l_norm_hamstrings), nan=0.0)
+    return cap, fp
 
 
 def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
@@ -797,27 +885,67 @@ def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
     r = np.concatenate([arms, other_arms], axis=1)  # [F, m, 2]
     velocities = np.concatenate([hamstring_field(lambda st: st.velocity_m_per_s), other_vel], axis=1)
 
-    def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' PCSA x tension, scaled alike
-        other_scale = strength_scale * _mass_scale(states)
+    def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' from the same limb volume
+        scale = athlete_force_scale(states)
         return ([float(states[m].max_isometric_force_n) * strength_scale for m in hamstrings]
-                + [OTHER_MUSCLES[c].pcsa_cm2 * SPECIFIC_TENSION_N_PER_CM2 * other_scale for c in others])
+                + [scale * OTHER_MUSCLES[c].volume_share / OTHER_MUSCLES[c].optimal_fibre_length_m * strength_scale
+                   for c in others])
 
     # maximum forces per frame (each leg's own scaling), then capacities of all muscles at once: [F, muscles]
     fmax = np.repeat([leg_fmax(states) for _, states, _, _ in legs], sizes, axis=0)
     l_norm = hamstring_field(lambda st: st.fibre_length_lopt)
     v_norm = np.concatenate([hamstring_field(lambda st: st.velocity_lopt_per_s),
                              other_vel / np.array([OTHER_MUSCLES[c].optimal_fibre_length_m for c in others])], axis=1)
-    length_factor = np.ones_like(v_norm)  # the other muscles' length-force relation is not modelled
-    length_factor[:, :len(hamstrings)] = mus.active_force_length(l_norm)
-    cap = fmax * np.clip(length_factor * mus.force_velocity(v_norm), 0.0, None)
-    fp = np.zeros_like(cap)
-    if include_passive:
-        fp[:, :len(hamstrings)] = np.nan_to_num(fmax[:, :len(hamstrings)] * mus.passive_force_length(l_norm), nan=0.0)
-    target = np.concatenate([np.stack([m.hip_flexion_nm, m.knee_flexion_nm], axis=1) for m, _, _, _ in legs])
-    target = target - np.einsum("fmj,fm->fj", r, fp)
-    valid = np.concatenate([np.asarray(m.valid, dtype=bool) for m, _, _, _ in legs]) & np.isfinite(target).all(axis=1)
+    cap, fp = sharing_capacities(fmax, l_norm, v_norm, include_passive)
+    demand = np.concatenate([np.stack([m.hip_flexion_nm, m.knee_flexion_nm], axis=1) for m, _, _, _ in legs])
+    target = demand - np.einsum("fmj,fm->fj", r, fp)
+    valid = (np.concatenate([np.asarray(m.valid, dtype=bool) for m, _, _, _ in legs]) & np.isfinite(target).all(axis=1)
+             & np.isfinite(fmax).all(axis=1))
+    lopt_alpha = np.array([[states_lopt(legs[0][1][m]) for m in hamstrings],
+                           [mus.ARCHITECTURE[m].pennation_rad if m in mus.ARCHITECTURE else 0.0 for m in hamstrings]])
     return _SharingProblem([*hamstrings, *others], r, cap, fp, target, velocities, valid,
-                           [0, *np.cumsum(sizes).tolist()])
+                           [0, *np.cumsum(sizes).tolist()], demand, fmax, v_norm,
+                           hamstring_field(lambda st: st.length_m),
+                           hamstring_field(lambda st: np.full(np.shape(st.length_m), st.tendon_slack_length_m)),
+                           lopt_alpha, float(legs[0][3]))
+
+
+def states_lopt(state: MuscleState) -> float:
+    """A state's optimal fibre length (the architecture's when the state does not carry one)."""
+    l_opt = float(state.optimal_fibre_length_m)
+    return l_opt if l_opt > 0 else mus.ARCHITECTURE[state.muscle].optimal_fibre_length_m
+
+
+#: Passes of the compliant-tendon correction in the sharing problem: the first solve takes the muscles stage's fibre
+#: lengths (tendon at its F0 stretch); each further pass recomputes every hamstring's fibre length and velocity with
+#: the tendon stretched by the force of the previous pass (De Groote et al. 2016 tendon curve) and solves again,
+#: the force fed back as the mean of the last two solves (damping, assumption). On a generated 9 m/s sprint, four
+#: passes give peak forces within 0.2 %, negative work within 0.5 % and the same coverage as twenty (measured).
+TENDON_PASSES = 4
+
+
+def _compliant_fibres(p: _SharingProblem, force_h: np.ndarray, strain_scale=1.0, mtu_velocity_h=None):
+    """Hamstring fibre length (l_opt) and fibre velocity (l_opt/s) [F, h] with each tendon stretched by its force
+    ``force_h`` [F, h] (N; NaN = no force). The fibre velocity is the musculotendon velocity along the fibres
+    (``v cos(alpha) / l_opt`` at the loaded pennation): the tendon's own stretch rate is left out, because
+    frame-by-frame static optimisation forces are not smooth enough to differentiate (it made the passes
+    oscillate)."""
+    l_opt, alpha = p.lopt_alpha
+    n_h = l_opt.size
+    f_norm = np.nan_to_num(force_h / p.fmax[:, :n_h], nan=0.0)
+    fibre, pennation = mus.fibre_length(p.mtu_length, p.slack, l_opt, alpha, f_norm, strain_scale)
+    velocity = p.velocities[:, :n_h] if mtu_velocity_h is None else mtu_velocity_h
+    return fibre / l_opt, velocity * np.cos(pennation) / l_opt
+
+
+def _with_fibres(p: _SharingProblem, l_norm_h: np.ndarray, v_norm_h: np.ndarray, include_passive: bool = True):
+    """The sharing problem with other hamstring fibre lengths and velocities (capacities, passive forces, targets)."""
+    n_h = l_norm_h.shape[1]
+    v_norm = p.v_norm.copy()
+    v_norm[:, :n_h] = v_norm_h
+    cap, fp = sharing_capacities(p.fmax, l_norm_h, v_norm, include_passive)
+    target = p.demand - np.einsum("fmj,fm->fj", p.arms, fp)
+    return p._replace(capacity=cap, passive=fp, target=target, v_norm=v_norm)
 
 
 # --------------------------------------------------------------------------- power and work
@@ -896,3 +1024,116 @@ def muscle_dynamics(sharing: ForceSharing, rate_hz: float) -> dict[str, MuscleDy
         m: MuscleDynamics(m, f, sharing.velocity_m_per_s[m], -f * sharing.velocity_m_per_s[m], float(rate_hz))
         for m, f in sharing.force_n.items()
     }
+
+
+# --------------------------------------------------------------------------- uncertainty band of force and work
+#: Samples of the force and work band: each is a full sharing solve over the swing frames, so fewer than the
+#: strain band's 200 (the 5th/95th percentiles of 20 samples are the 2nd and 19th values; assumption, to keep a
+#: trial's analysis within its time budget).
+FORCE_BAND_SAMPLES = 20
+#: The band's samples are solved on every k-th frame, k = rate // this (250 Hz: every 2nd, 500 Hz: every 4th),
+#: which halves its cost or better. Against every frame (generated 9 m/s sprint at 250 Hz): the percentiles of
+#: peak force move by up to 5 % of the band's width, those of negative work by up to 11 % (the power peaks are
+#: sharp); both well inside the sampling error of 5th/95th percentiles from 20 samples.
+BAND_MIN_RATE_HZ = 100.0
+
+
+class BandLeg(NamedTuple):
+    """One leg's input to ``force_work_band``: moments, angles (the four of ``muscles.ANGLE_NAMES``), muscle
+    dimensions, and its stride windows (swing start, stride end) per stride."""
+
+    moments: JointMoments
+    angles: Mapping[str, np.ndarray]
+    dims: object  # muscles.MuscleDims
+    starts: np.ndarray
+    stops: np.ndarray
+    force_norm: Mapping[str, np.ndarray] | None = None  # nominal force / F0 per hamstring [F] (tendon stretch)
+    dual: np.ndarray | None = None  # [F, 2] nominal solve's multipliers: warm start of every sample's solve
+
+
+def force_work_band(legs: Sequence[BandLeg], rate_hz: float, *, body_mass_kg: float, height_m: float,
+                    strength_factor: float = 1.0, n_samples: int = FORCE_BAND_SAMPLES, seed: int = 1,
+                    q=(5, 95)) -> list[dict[str, np.ndarray]]:
+    """5th/95th percentiles of each stride's peak hamstring force and negative work over Monte Carlo samples.
+
+    Each sample draws: the muscle paths, hip-centre error (Harrington et al. 2007), l_opt and pennation (Ward et
+    al. 2009 SDs) and the slack rule's reference strain (``muscles.monte_carlo_states``); the specific tension
+    (one draw for all muscles, CV ``SPECIFIC_TENSION_CV``) and each muscle's volume (CV ``VOLUME_PREDICTION_CV``,
+    lognormal); the maximum shortening velocity (10 +- 2 l_opt/s, clipped to 6-14); the tendon compliance (strain
+    at a given force x lognormal, CV ``TENDON_STRAIN_CV``), each tendon stretched by the nominal solution's force
+    fraction ``leg.force_norm``. The moments are the nominal ones. All samples' frames are solved in one
+    ``share_forces`` call (one pass: the nominal force fractions stand for the samples' own), warm-started from
+    the nominal multipliers ``leg.dual``, on every k-th frame (``BAND_MIN_RATE_HZ``). Returns per leg
+    {"peak_force_n": [2, strides, hamstrings], "negative_work_j": [2, strides, hamstrings]}.
+    """
+    from .metrics import window_peaks
+
+    rng = np.random.default_rng(seed)
+    hamstrings = list(mus.MUSCLES)
+    others = list(OTHER_MUSCLES)
+    n_h, n_o = len(hamstrings), len(others)
+    tension = mus.SPECIFIC_TENSION_PA * np.exp(mus.SPECIFIC_TENSION_CV * rng.standard_normal(n_samples)
+                                               - 0.5 * mus.SPECIFIC_TENSION_CV ** 2)
+    volume = np.exp(mus.VOLUME_PREDICTION_CV * rng.standard_normal((n_samples, n_h + n_o))
+                    - 0.5 * mus.VOLUME_PREDICTION_CV ** 2)
+    v_max = np.clip(mus.MAX_SHORTENING_VELOCITY_LOPT_PER_S
+                    + mus.MAX_SHORTENING_VELOCITY_SD * rng.standard_normal(n_samples), 6.0, 14.0)
+    tendon_scale = np.exp(mus.TENDON_STRAIN_CV * rng.standard_normal((n_samples, 1)) - 0.5 * mus.TENDON_STRAIN_CV ** 2)
+    limb = mus.limb_muscle_volume_m3(body_mass_kg, height_m) * strength_factor
+    blocks, per_leg = [], []
+    for leg in legs:
+        valid = np.asarray(leg.moments.valid, dtype=bool)
+        step = max(1, int(rate_hz // BAND_MIN_RATE_HZ))  # every step-th frame (see BAND_MIN_RATE_HZ)
+        kept = np.arange(0, valid.size, step)
+        frames = kept[valid[kept]]
+        # the samples' states on the kept frames only: [S, K]; ``at`` maps a frame to its kept column
+        sampled = mus.monte_carlo_states(leg.angles, leg.dims, rate_hz, n_samples, seed=0,
+                                         tendon_force_norm=leg.force_norm, tendon_strain_scale=tendon_scale,
+                                         frames=kept)
+        col = frames // step
+        hip, knee = (np.asarray(leg.angles[k], dtype=float) for k in ("hip_flexion", "knee_flexion"))
+        o_arms, o_vel = _other_arms_and_velocities(hip, knee, *_angle_rates(hip, knee, rate_hz))
+        h_arms = np.stack([sampled[m].moment_arms_m[:, col] for m in hamstrings], axis=2)  # [S, Fv, h, 2]
+        arms = np.concatenate([h_arms, np.broadcast_to(o_arms[frames], (n_samples, frames.size, n_o, 2))], axis=2)
+        l_norm = np.stack([sampled[m].fibre_length_lopt[:, col] for m in hamstrings], axis=2)
+        o_lopt = np.array([OTHER_MUSCLES[c].optimal_fibre_length_m for c in others])
+        v_norm = np.concatenate([np.stack([sampled[m].velocity_lopt_per_s[:, col] for m in hamstrings], axis=2),
+                                 np.broadcast_to(o_vel[frames] / o_lopt, (n_samples, frames.size, n_o))], axis=2)
+        f0_h = np.stack([mus.max_isometric_force(m, body_mass_kg=body_mass_kg, height_m=height_m,
+                                                 strength_factor=strength_factor,
+                                                 volume_share=mus.VOLUME_SHARE[m] * volume[:, k],
+                                                 optimal_fibre_length_m=sampled[m].optimal_fibre_length_m[:, 0],
+                                                 pennation_rad=sampled[m].pennation_rad[:, 0],
+                                                 specific_tension_pa=tension) for k, m in enumerate(hamstrings)],
+                        axis=1)  # [S, h]
+        f0_o = (limb * tension[:, None] * volume[:, n_h:]
+                * np.array([OTHER_MUSCLES[c].volume_share for c in others]) / o_lopt)  # [S, o]
+        fmax = np.concatenate([f0_h, f0_o], axis=1)[:, None, :]  # [S, 1, m]
+        cap, fp = sharing_capacities(fmax, l_norm, v_norm, max_velocity_lopt_per_s=v_max[:, None, None])
+        demand = np.stack([leg.moments.hip_flexion_nm, leg.moments.knee_flexion_nm], axis=1)[frames]
+        target = demand[None] - np.einsum("sfmj,sfm->sfj", arms, fp)
+        warm = (np.full((n_samples * frames.size, 2), np.nan) if leg.dual is None else
+                np.broadcast_to(np.asarray(leg.dual, dtype=float)[frames], (n_samples, frames.size, 2)).reshape(-1, 2))
+        blocks.append((arms.reshape(-1, n_h + n_o, 2), cap.reshape(-1, n_h + n_o), target.reshape(-1, 2), warm))
+        per_leg.append((sampled, frames, fp[..., :n_h], kept, step))
+    if not blocks:
+        return []
+    arms_all, cap_all, target_all, warm_all = (np.concatenate(b) for b in zip(*blocks))
+    active, _ = share_forces(arms_all, cap_all, target_all, initial_dual=warm_all)
+    out, at = [], 0
+    for leg, (sampled, frames, fp, kept, step) in zip(legs, per_leg):
+        n = n_samples * frames.size
+        force_v = active[at:at + n, :n_h].reshape(n_samples, frames.size, n_h) + fp
+        at += n
+        force = np.full((kept.size, n_samples * n_h), np.nan)  # kept frames x (sample, muscle)
+        force[frames // step] = force_v.transpose(1, 0, 2).reshape(frames.size, -1)
+        velocity = np.stack([sampled[m].velocity_m_per_s for m in hamstrings], axis=2)  # [S, K, h]
+        velocity = velocity.transpose(1, 0, 2).reshape(kept.size, -1)
+        starts, stops = np.asarray(leg.starts, dtype=int), np.asarray(leg.stops, dtype=int)
+        first = -(-starts // step)  # the windows on the kept frames: peaks [start, stop], work [start, stop)
+        peaks, _ = window_peaks(force, first, stops // step)
+        absorbed, _ = window_work(np.nan_to_num(force), velocity, rate_hz / step, first, (stops - 1) // step + 1)
+        shape = (len(starts), n_samples, n_h)
+        out.append({"peak_force_n": np.nanpercentile(peaks.reshape(shape), q, axis=1),
+                    "negative_work_j": np.nanpercentile(absorbed.reshape(shape), q, axis=1)})
+    return out

@@ -102,7 +102,9 @@ def _cv(sd: float, mean: float) -> float:
     return float(sd / abs(mean) * 100.0) if np.isfinite(mean) and mean != 0 and np.isfinite(sd) else float("nan")
 
 
-_BAND_COLUMNS = ("peak_strain_p5_pct", "peak_strain_p95_pct", "peak_fibre_length_lopt_p5", "peak_fibre_length_lopt_p95")
+_BAND_COLUMNS = ("peak_strain_p5_pct", "peak_strain_p95_pct", "peak_fibre_length_lopt_p5", "peak_fibre_length_lopt_p95",
+                 "peak_force_n_p5", "peak_force_n_p95", "negative_work_j_p5", "negative_work_j_p95",
+                 "late_swing_hip_extension_met_pct", "late_swing_knee_flexion_met_pct")
 
 
 def _skipna_mean(values: np.ndarray) -> float:
@@ -186,17 +188,18 @@ def _real_difference(a: pd.Series, b: pd.Series, z: float) -> tuple[bool, float]
 
 
 def _capacity_note(metric: str, right, left) -> str:
-    """For work-based flags: say when the muscle model could not reproduce most late-swing joint moments."""
+    """For work-based flags: say when the muscle model could not carry the hamstrings' share of the late-swing
+    demand (hip extension and knee flexion) on at least 90 % of late-swing frames (pipeline's ``force_status``)."""
     if metric != "negative_work_j":
         return ""
     values = [v for v in (right.get("late_swing_moments_met_pct_mean", np.nan),
                           left.get("late_swing_moments_met_pct_mean", np.nan)) if np.isfinite(v)]
-    if not values or np.mean(values) >= 50.0:
+    if not values or np.mean(values) >= 90.0:
         return ""
     met = float(np.mean(values))
-    return (f" Note: the modelled muscles could reproduce the net joint moments in only {met:.0f}% of late-swing "
-            "frames, so forces there sit at the model's capacity and small timing differences change the work; "
-            "treat this work difference as indicative and look at the stretch results too.")
+    return (f" Note: the modelled muscles could carry the late-swing hip-extension and knee-flexion demand in only "
+            f"{met:.0f}% of late-swing frames, so forces there sit at the model's capacity and the work depends on the "
+            "assumed strength; treat this work difference as indicative and look at the stretch results too.")
 
 
 def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: FlagConfig = FlagConfig()

@@ -48,14 +48,34 @@ MUSCLE_NAMES = {
     "biceps_femoris_short": "biceps femoris short head",
 }
 
-#: Specific tension of human muscle, N/m^2: 26.8 N/cm^2 (Persad et al. 2024, J Appl Physiol 137:945).
+#: Specific tension of human muscle, N/m^2: 26.8 N/cm^2 (Persad et al. 2024, J Appl Physiol 137:945 [V]).
 SPECIFIC_TENSION_PA = 26.8e4
-#: Maximum shortening velocity of the fibres, optimal lengths per second. Common practice in Hill-type models
-#: (10 l_opt/s, e.g. Zajac 1989, Crit Rev Biomed Eng 17:359; from memory).
+#: Relative SD of the specific tension for the Monte Carlo band: 15 % (assumption: published human values span
+#: about 20-35 N/cm^2, Persad et al. 2024 review [V for the range's existence, M for its width]).
+SPECIFIC_TENSION_CV = 0.15
+#: Maximum shortening velocity of the fibres, optimal lengths per second: 10 l_opt/s (Zajac 1989, Crit Rev Biomed
+#: Eng 17:359; De Groote et al. 2016 normalise velocity by it) [M]; SD for the band 2 l_opt/s (assumption).
 MAX_SHORTENING_VELOCITY_LOPT_PER_S = 10.0
-#: Body mass the cadaver PCSAs are taken to represent when forces are scaled to an athlete's mass
-#: (assumption, common practice; Ward et al. 2009 specimens were elderly, see references.md).
-REFERENCE_BODY_MASS_KG = 75.0
+MAX_SHORTENING_VELOCITY_SD = 2.0
+#: Relative SD of tendon strain at a given force for the band: 20 % (assumption; published tendon strains at
+#: maximum isometric force range about 3-6 %, Zajac 1989 3.3 % [M], De Groote et al. 2016 4.9 %).
+TENDON_STRAIN_CV = 0.2
+
+# Lower-limb muscle volume from body size: Handsfield et al. 2014 (J Biomech 47:631): total lower-limb muscle
+# volume (one limb, 35 muscles) = 47 cm^3/(kg m) x body mass x height + 1285 cm^3 [M numbers, V finding], and each
+# muscle keeps a near-constant share of the total (shares below, % of the total, from memory [M]).
+LIMB_VOLUME_SLOPE_M3_PER_KG_M = 47.0e-6
+LIMB_VOLUME_INTERCEPT_M3 = 1285.0e-6
+#: Relative error of a predicted muscle volume (regression scatter plus each muscle's share; assumption, [M]:
+#: Handsfield et al. 2014 report individual muscles within roughly +-20 % of the share prediction).
+VOLUME_PREDICTION_CV = 0.12
+#: Share of the total lower-limb muscle volume, per muscle (Handsfield et al. 2014, Table 2, from memory [M]).
+VOLUME_SHARE = {
+    "biceps_femoris_long": 0.036,
+    "semitendinosus": 0.031,
+    "semimembranosus": 0.037,
+    "biceps_femoris_short": 0.016,
+}
 
 
 class MuscleModelError(HamstrideError):
@@ -75,28 +95,24 @@ class Architecture:
     optimal_fibre_length_sd_m: float
     pennation_rad: float
     pennation_sd_rad: float
-    pcsa_m2: float
     source: str
 
-    @property
-    def max_isometric_force_n(self) -> float:
-        """PCSA x specific tension (Persad et al. 2024: 26.8 N/cm^2)."""
-        return self.pcsa_m2 * SPECIFIC_TENSION_PA
 
 
-_WARD = ("Ward et al. 2009, Clin Orthop Relat Res 467:1074: optimal fibre length and pennation (mean, SD) [verified]; "
-         "PCSA from memory (sum of the three biarticular 34.5 cm^2 verified)")
-#: Ward et al. 2009 (Clin Orthop Relat Res 467:1074), references.md. cm -> m, deg -> rad, cm^2 -> m^2.
+_WARD = "Ward et al. 2009, Clin Orthop Relat Res 467:1074: optimal fibre length and pennation (mean, SD) [verified]"
+#: Ward et al. 2009 (Clin Orthop Relat Res 467:1074), references.md. cm -> m, deg -> rad. Strength comes from
+#: the athlete's muscle volume (``max_isometric_force``), not from these elderly cadavers' PCSAs.
 ARCHITECTURE: dict[str, Architecture] = {
-    "biceps_femoris_long": Architecture(0.0976, 0.0262, np.deg2rad(11.6), np.deg2rad(5.5), 11.3e-4, _WARD),
-    "semitendinosus": Architecture(0.1930, 0.0412, np.deg2rad(12.9), np.deg2rad(4.9), 4.8e-4, _WARD),
-    "semimembranosus": Architecture(0.0690, 0.0183, np.deg2rad(15.1), np.deg2rad(3.4), 18.4e-4, _WARD),
-    "biceps_femoris_short": Architecture(0.1103, 0.0206, np.deg2rad(12.3), np.deg2rad(3.6), 5.1e-4, _WARD),
+    "biceps_femoris_long": Architecture(0.0976, 0.0262, np.deg2rad(11.6), np.deg2rad(5.5), _WARD),
+    "semitendinosus": Architecture(0.1930, 0.0412, np.deg2rad(12.9), np.deg2rad(4.9), _WARD),
+    "semimembranosus": Architecture(0.0690, 0.0183, np.deg2rad(15.1), np.deg2rad(3.4), _WARD),
+    "biceps_femoris_short": Architecture(0.1103, 0.0206, np.deg2rad(12.3), np.deg2rad(3.6), _WARD),
 }
 
-#: Tendon slack length assumption. With a rigid tendon the fibre length follows the musculotendon length one to
-#: one, so l/l_opt is only as good as the tendon slack length. Our default: the fibres are at
-#: ``(1 + reference strain) * l_opt`` in a reference late-swing posture (hip flexion 65 deg, knee flexion 25 deg:
+#: Tendon slack length assumption. At a given tendon force the fibre length follows the musculotendon length one
+#: to one, so l/l_opt is only as good as the tendon slack length. Our default: the fibres are at
+#: ``(1 + reference strain) * l_opt`` with the tendon stretched as by F0 (``REFERENCE_TENDON_FORCE``, the loaded
+#: late-swing state) in a reference late-swing posture (hip flexion 65 deg, knee flexion 25 deg:
 #: typical sprint late-swing angles, references.md [from memory]; Guex et al. 2012: hip > 70 deg at end of swing).
 #: Reference strains are Wan et al. 2017 (J Sport Health Sci 6:283) peak sprint fibre strain relative to optimal
 #: length, mean and SD: BFlh 0.071 +- 0.059, ST 0.070 +- 0.055, SM 0.064 +- 0.054. No value is published for the
@@ -111,7 +127,8 @@ REFERENCE_FIBRE_STRAIN: dict[str, tuple[float, float]] = {
 }
 #: One-paragraph statement of the slack-length assumption for exports and reports.
 TENDON_SLACK_NOTE = (
-    "Fibre length relative to optimal length (l/l_opt) rests on an assumed tendon slack length: rigid tendon, "
+    "Fibre length relative to optimal length (l/l_opt) rests on an assumed tendon slack length and is given with "
+    "the tendon stretched as by the muscle's maximum isometric force (4.9 %, the loaded late-swing state): "
     "fibres at (1 + Wan et al. 2017 mean peak sprint strain) x l_opt, i.e. 1.071 (BFlh), 1.070 (ST), 1.064 (SM) "
     "and 1.0 (BFsh, assumed), at hip flexion 65 deg / knee flexion 25 deg. Each 1 cm of slack length shifts "
     "l/l_opt by 1 cm / l_opt (BFlh 0.10, ST 0.05, SM 0.14, BFsh 0.09); compare l/l_opt between legs and sessions "
@@ -391,15 +408,26 @@ def moment_arms(muscle: str, hip_flexion, hip_adduction, hip_rotation, knee_flex
 # --------------------------------------------------------------------------------------------------------------
 # Fibre length and force curves
 # --------------------------------------------------------------------------------------------------------------
-def fibre_length(mtu_length_m, tendon_slack_length_m, optimal_fibre_length_m, pennation_at_optimal_rad):
-    """Fibre length (m) and pennation (rad) with a rigid tendon and constant muscle thickness
-    (``l sin(alpha) = l_opt sin(alpha_opt)``; the planimetric model used in Hill-type muscle models, e.g.
-    Zajac 1989, from memory): ``l = sqrt((L - L_ts)^2 + (l_opt sin alpha_opt)^2)``.
+#: Tendon force (F0 units) at which the muscles stage's fibre lengths are given: 1, the tendon stretched as by the
+#: maximum isometric force (about 4.9 % strain, ``tendon_strain``). Late swing is when the hamstrings pull hardest,
+#: so the kinematic l/l_opt describes the loaded late-swing fibres; the dynamics stage recomputes the fibre length
+#: with each frame's own force (compliant tendon), and ``muscle_table`` also gives the resting (unloaded) value.
+REFERENCE_TENDON_FORCE = 1.0
 
-    A unit shorter than its tendon slack length has a slack tendon and fibres at their shortest (``L - L_ts`` taken
-    as 0: l = thickness, pennation 90 deg), so fibre length never falls as the unit lengthens."""
+
+def fibre_length(mtu_length_m, tendon_slack_length_m, optimal_fibre_length_m, pennation_at_optimal_rad,
+                 tendon_force_norm=REFERENCE_TENDON_FORCE, tendon_strain_scale=1.0):
+    """Fibre length (m) and pennation (rad) of a unit whose tendon carries ``tendon_force_norm`` (F0 units; default
+    the reference force 1), with constant muscle thickness (``l sin(alpha) = l_opt sin(alpha_opt)``; the planimetric
+    model of Hill-type muscle models, Zajac 1989 [M]): ``l = sqrt((L - L_T)^2 + (l_opt sin alpha_opt)^2)`` with the
+    tendon length ``L_T = L_ts (1 + strain(F))`` (De Groote et al. 2016 tendon curve; ``tendon_strain_scale``
+    scales the strain, for the Monte Carlo band).
+
+    A unit shorter than its tendon has fibres at their shortest (``L - L_T`` taken as 0: l = thickness, pennation
+    90 deg), so fibre length never falls as the unit lengthens."""
     thickness = optimal_fibre_length_m * np.sin(pennation_at_optimal_rad)
-    along = np.clip(np.asarray(mtu_length_m) - tendon_slack_length_m, 0.0, None)
+    tendon = tendon_slack_length_m * (1.0 + tendon_strain(tendon_force_norm) * tendon_strain_scale)
+    along = np.clip(np.asarray(mtu_length_m) - tendon, 0.0, None)
     length = np.sqrt(along * along + thickness * thickness)
     return length, np.arctan2(thickness, along)
 
@@ -425,59 +453,73 @@ def _reference_and_upright_lengths(path: MusclePath) -> tuple[np.ndarray, np.nda
 
 def _slack_rule(reference_length_m, optimal_fibre_length_m, pennation_rad, reference_strain):
     """The slack length that puts the fibres at ``(1 + reference strain) l_opt`` when the unit has its reference
-    length (rigid tendon, constant thickness ``l_opt sin(alpha_opt)``); broadcasts over legs, muscles, samples."""
+    length and the tendon carries the reference force (``REFERENCE_TENDON_FORCE``: stretched by its strain at F0,
+    4.9 %), constant thickness ``l_opt sin(alpha_opt)``; broadcasts over legs, muscles, samples."""
     fibre = (1.0 + reference_strain) * optimal_fibre_length_m
     thickness = optimal_fibre_length_m * np.sin(pennation_rad)
-    return reference_length_m - np.sqrt(fibre * fibre - thickness * thickness)
+    loaded_tendon = reference_length_m - np.sqrt(fibre * fibre - thickness * thickness)
+    return loaded_tendon / (1.0 + tendon_strain(REFERENCE_TENDON_FORCE))
 
 
-ACTIVE_FORCE_LENGTH_HALF_WIDTH = 0.5  # active range 0.5-1.5 l_opt: common practice (references.md)
+# Force curves of De Groote et al. 2016 (Ann Biomed Eng 44:2922, supplementary material): smooth, explicit Hill-type
+# curves. Constants as published [V: the same values are documented as the published ones by the independent sympy
+# implementation, sympy.physics.biomechanics, which the tests compare against at named points].
+#: Active force-length: sum of three Gaussian-like terms b1 exp(-(l - b2)^2 / (2 (b3 + b4 l)^2)).
+ACTIVE_FORCE_LENGTH_TERMS = ((0.814, 1.06, 0.162, 0.0633), (0.433, 0.717, -0.0299, 0.2), (0.1, 1.0, 0.354, 0.0))
+#: Passive force-length: (exp(k (l - 1) / e0) - 1) / (exp(k) - 1), k = 4, e0 = 0.6 (De Groote et al. 2016, after
+#: Thelen 2003, J Biomech Eng 125:70): 1 F0 at 1.6 l_opt; taken as 0 below l_opt.
+PASSIVE_SHAPE = 4.0
+PASSIVE_STRAIN_AT_F0 = 0.6
+#: Force-velocity: d1 log(d2 v + d3 + sqrt((d2 v + d3)^2 + 1)) + d4, v = fibre velocity / v_max (lengthening
+#: positive). Lengthening force rises to about 1.8 F0 (1.79 at v_max), isometric 1.00, zero near v_max shortening.
+FORCE_VELOCITY_CONSTANTS = (-0.318, -8.149, -0.374, 0.886)
+#: Tendon force-length: f = c0 exp(c3 (l_T / l_slack - c1)) - c2 (tendon strain about 4.9 % at F0).
+TENDON_CONSTANTS = (0.2, 0.995, 0.25, 33.93669377311689)
 
 
 def active_force_length(l_norm) -> np.ndarray:
-    """Active force-length multiplier: parabola ``1 - ((l - 1) / 0.5)^2``, zero outside 0.5-1.5 l_opt.
-
-    Parabolic form as in van Soest & Bobbert 1993 (Biol Cybern 69:195, from memory); the active range
-    0.5-1.5 l_opt is common practice (references.md).
-    """
-    x = (np.asarray(l_norm, dtype=float) - 1.0) / ACTIVE_FORCE_LENGTH_HALF_WIDTH
-    return np.clip(1.0 - x * x, 0.0, None)
-
-
-PASSIVE_STRAIN_AT_F0 = 0.6  # Thelen 2003 (J Biomech Eng 125:70), young adults, from memory
-PASSIVE_SHAPE = 4.0  # Thelen 2003, from memory
+    """Active force-length multiplier of De Groote et al. 2016 (three Gaussian-like terms; 0.994 at l_opt)."""
+    x = np.asarray(l_norm, dtype=float)
+    out = np.zeros(np.shape(x))
+    for b1, b2, b3, b4 in ACTIVE_FORCE_LENGTH_TERMS:
+        out = out + b1 * np.exp(-0.5 * (x - b2) ** 2 / (b3 + b4 * x) ** 2)
+    return out
 
 
 def passive_force_length(l_norm) -> np.ndarray:
-    """Passive force-length multiplier: ``(exp(k (l - 1) / e0) - 1) / (exp(k) - 1)`` for l > 1, else 0, with
-    k = 4, e0 = 0.6 (Thelen 2003, J Biomech Eng 125:70, from memory): 1 F0 at 1.6 l_opt."""
+    """Passive force-length multiplier ``(exp(k (l - 1) / e0) - 1) / (exp(k) - 1)``, k = 4, e0 = 0.6 (De Groote et
+    al. 2016; Thelen 2003): 1 F0 at 1.6 l_opt, 0 at and below l_opt (the published curve dips to -0.02 there)."""
     stretch = np.clip(np.asarray(l_norm, dtype=float) - 1.0, 0.0, None)
     return np.expm1(PASSIVE_SHAPE * stretch / PASSIVE_STRAIN_AT_F0) / np.expm1(PASSIVE_SHAPE)
 
 
-HILL_CURVATURE = 0.25  # a/F0 of Hill's hyperbola: common practice
-ECCENTRIC_FORCE_LIMIT = 1.5  # lengthening plateau, F0 units: Katz 1939 (1.5-1.8), from memory
-ECCENTRIC_SLOPE_RATIO = 2.0  # lengthening/shortening slope at v = 0: assumption (common practice)
+def force_velocity(v_norm_lopt_per_s, max_velocity_lopt_per_s=MAX_SHORTENING_VELOCITY_LOPT_PER_S) -> np.ndarray:
+    """Force-velocity multiplier of De Groote et al. 2016, fibre velocity in l_opt/s, lengthening positive.
 
-
-def force_velocity(v_norm_lopt_per_s) -> np.ndarray:
-    """Force-velocity multiplier, fibre velocity in l_opt/s, lengthening positive.
-
-    Shortening: Hill's (1938, Proc R Soc B 126:136) hyperbola ``(1 - u) / (1 + u / k)``, u = -v / v_max,
-    k = a/F0 = 0.25 (common practice). Lengthening: rectangular hyperbola ``1 + (F_ecc - 1) w / (w + c)``,
-    w = v / v_max, rising to F_ecc = 1.5 F0 (eccentric plateau 1.5-1.8 F0, Katz 1939, from memory) with a slope at
-    zero velocity twice that of the shortening side (c chosen accordingly; assumption, common practice).
-    v_max = ``MAX_SHORTENING_VELOCITY_LOPT_PER_S``. Zero at or beyond v_max shortening.
+    ``d1 log(d2 w + d3 + sqrt((d2 w + d3)^2 + 1)) + d4`` with w = v / v_max (v_max 10 l_opt/s, Zajac 1989):
+    1.00 isometric, rising on the lengthening (eccentric) side to 1.79 at w = 1, falling to 0.01 at w = -1;
+    clipped at 0 beyond maximum shortening velocity. ``max_velocity_lopt_per_s`` broadcasts (Monte Carlo draws).
     """
-    w = np.asarray(v_norm_lopt_per_s, dtype=float) / MAX_SHORTENING_VELOCITY_LOPT_PER_S
-    k = HILL_CURVATURE
-    shortening_slope = 1.0 + 1.0 / k
-    c = (ECCENTRIC_FORCE_LIMIT - 1.0) / (ECCENTRIC_SLOPE_RATIO * shortening_slope)
-    u = np.clip(-w, 0.0, 1.0)
-    concentric = (1.0 - u) / (1.0 + u / k)
-    lengthening = np.clip(w, 0.0, None)
-    eccentric = 1.0 + (ECCENTRIC_FORCE_LIMIT - 1.0) * lengthening / (lengthening + c)
-    return np.where(w < 0.0, concentric, eccentric)
+    d1, d2, d3, d4 = FORCE_VELOCITY_CONSTANTS
+    w = np.asarray(v_norm_lopt_per_s, dtype=float) / max_velocity_lopt_per_s
+    u = d2 * w + d3
+    return np.clip(d1 * np.log(u + np.sqrt(u * u + 1.0)) + d4, 0.0, None)
+
+
+def tendon_force_length(tendon_length_norm) -> np.ndarray:
+    """Tendon force (F0 units) at a tendon length in slack lengths: ``c0 exp(c3 (l - c1)) - c2`` (De Groote et al.
+    2016), 0 when slack."""
+    c0, c1, c2, c3 = TENDON_CONSTANTS
+    return np.clip(c0 * np.exp(c3 * (np.asarray(tendon_length_norm, dtype=float) - c1)) - c2, 0.0, None)
+
+
+def tendon_strain(force_norm) -> np.ndarray:
+    """Tendon strain at a force in F0 units: the inverse of ``tendon_force_length`` (0 for no force: the slack
+    length is where force starts)."""
+    c0, c1, c2, c3 = TENDON_CONSTANTS
+    f = np.clip(np.asarray(force_norm, dtype=float), 0.0, None)
+    # the published curve reaches zero force at 0.16 % strain; a tendon without force is at its slack length (0)
+    return np.where(f > 0.0, np.clip(c1 + np.log((f + c2) / c0) / c3 - 1.0, 0.0, None), 0.0)
 
 
 # --------------------------------------------------------------------------------------------------------------
@@ -487,10 +529,11 @@ def force_velocity(v_norm_lopt_per_s) -> np.ndarray:
 class MuscleState:
     """One muscle over the frames of a trial (SI units).
 
-    strain: (L - L_upright) / L_upright; fibre_length_lopt: fibre length / optimal fibre length (depends on the
-    tendon slack length assumption, see ``tendon_slack_length``); velocity_m_per_s: musculotendon lengthening
-    velocity; velocity_lopt_per_s: fibre lengthening velocity (rigid tendon: v cos(alpha)) in l_opt/s, the input of
-    ``force_velocity``; moment_arms_m: [F, 4] in ``ANGLE_NAMES`` order; pennation_rad: [F].
+    strain: (L - L_upright) / L_upright; fibre_length_lopt: fibre length / optimal fibre length with the tendon at
+    its F0 stretch (depends on the tendon slack length assumption, see ``tendon_slack_length``); velocity_m_per_s:
+    musculotendon lengthening velocity; velocity_lopt_per_s: fibre lengthening velocity (v cos(alpha), the tendon's
+    stretch rate left out) in l_opt/s, the input of ``force_velocity``; moment_arms_m: [F, 4] in ``ANGLE_NAMES``
+    order; pennation_rad: [F]; tendon_slack_length_m: the tendon's length without force.
     """
 
     muscle: str
@@ -517,20 +560,53 @@ def _angle_arrays(angles: dict) -> list[np.ndarray]:
     return arrays
 
 
-def max_isometric_force(muscle: str, *, body_mass_kg: float | None = None, scale_force_to_mass: bool = False) -> float:
-    """PCSA x 26.8 N/cm^2 (Persad et al. 2024); optionally x (body mass / 75 kg)^(2/3) (geometric similarity,
-    PCSA ~ mass^(2/3); reference mass an assumption, ``REFERENCE_BODY_MASS_KG``)."""
-    force = ARCHITECTURE[muscle].max_isometric_force_n
-    if scale_force_to_mass:
-        if body_mass_kg is None or not np.isfinite(body_mass_kg) or body_mass_kg <= 0:
-            raise MuscleModelError("force scaling to body mass was asked for but no valid body mass was given; "
-                                   "add body_mass_kg to athletes.csv or switch the scaling off")
-        force *= (body_mass_kg / REFERENCE_BODY_MASS_KG) ** (2.0 / 3.0)
-    return float(force)
+def limb_muscle_volume_m3(body_mass_kg: float, height_m: float) -> float:
+    """Total muscle volume of one lower limb (m^3) from body mass x height (Handsfield et al. 2014 regression)."""
+    if body_mass_kg is None or not np.isfinite(body_mass_kg) or body_mass_kg <= 0:
+        raise MuscleModelError("muscle strength needs the athlete's body mass; add body_mass_kg to athletes.csv")
+    if height_m is None or not np.isfinite(height_m) or not 1.0 <= height_m <= 2.5:
+        raise MuscleModelError(f"height {height_m!r} m is not a plausible stature; give height_m in metres")
+    return LIMB_VOLUME_SLOPE_M3_PER_KG_M * body_mass_kg * height_m + LIMB_VOLUME_INTERCEPT_M3
+
+
+def max_isometric_force(muscle: str, *, body_mass_kg: float, height_m: float, strength_factor: float = 1.0,
+                        volume_share: float | None = None, optimal_fibre_length_m=None, pennation_rad=None,
+                        specific_tension_pa=SPECIFIC_TENSION_PA):
+    """Maximum isometric force (N) of one muscle of this athlete.
+
+    volume = share x limb volume (Handsfield et al. 2014: body mass x height regression); PCSA = volume / l_opt
+    (Ward et al. 2009 optimal fibre length); F0 = PCSA x specific tension (26.8 N/cm^2, Persad et al. 2024) x
+    cos(pennation) x ``strength_factor`` (an athlete's own factor, default 1). Architecture arguments broadcast
+    (Monte Carlo draws).
+    """
+    _check_muscle(muscle)
+    if not np.isfinite(strength_factor) or strength_factor <= 0:
+        raise MuscleModelError(f"strength factor {strength_factor!r} must be a positive number (1 = typical)")
+    arch = ARCHITECTURE[muscle]
+    share = VOLUME_SHARE[muscle] if volume_share is None else volume_share
+    l_opt = arch.optimal_fibre_length_m if optimal_fibre_length_m is None else optimal_fibre_length_m
+    alpha = arch.pennation_rad if pennation_rad is None else pennation_rad
+    volume = share * limb_muscle_volume_m3(body_mass_kg, height_m)
+    return volume / l_opt * specific_tension_pa * np.cos(alpha) * strength_factor
+
+
+def stature_from_dims(dims: MuscleDims) -> float:
+    """Stature (m) estimated from thigh + shank length (the proportions of ``MuscleDims.from_height``), for
+    athletes without a height in athletes.csv."""
+    return (dims.thigh_length_m + dims.shank_length_m) / (0.245 + 0.246)
+
+
+def athlete_max_forces(body_mass_kg: float | None, height_m: float, strength_factor: float = 1.0,
+                       muscles: Sequence[str] = MUSCLES) -> dict[str, float]:
+    """``max_isometric_force`` of every muscle (NaN without a body mass: forces need it)."""
+    if body_mass_kg is None or not np.isfinite(body_mass_kg) or body_mass_kg <= 0:
+        return {m: float("nan") for m in muscles}
+    return {m: float(max_isometric_force(m, body_mass_kg=body_mass_kg, height_m=height_m,
+                                         strength_factor=strength_factor)) for m in muscles}
 
 
 def muscle_states(angles: dict[str, np.ndarray], rate_hz: float, dims: MuscleDims, *,
-                  body_mass_kg: float | None = None, scale_force_to_mass: bool = False,
+                  body_mass_kg: float | None = None, height_m: float | None = None, strength_factor: float = 1.0,
                   tendon_slack_lengths_m: dict[str, float] | None = None) -> dict[str, MuscleState]:
     """Length, strain, fibre length, velocities and moment arms of every hamstring over the frames.
 
@@ -538,13 +614,13 @@ def muscle_states(angles: dict[str, np.ndarray], rate_hz: float, dims: MuscleDim
     Velocity from the excursion identity ``v = -sum_j r_j dtheta_j/dt`` with dtheta/dt from ``np.gradient``.
     ``tendon_slack_lengths_m`` overrides the default slack-length assumption per muscle.
     """
-    return muscle_states_of_legs([(angles, dims)], rate_hz, body_mass_kg=body_mass_kg,
-                                 scale_force_to_mass=scale_force_to_mass,
+    return muscle_states_of_legs([(angles, dims)], rate_hz, body_mass_kg=body_mass_kg, height_m=height_m,
+                                 strength_factor=strength_factor,
                                  tendon_slack_lengths_m=tendon_slack_lengths_m)[0]
 
 
 def muscle_states_of_legs(legs, rate_hz: float, *, body_mass_kg: float | None = None,
-                          scale_force_to_mass: bool = False,
+                          height_m: float | None = None, strength_factor: float = 1.0,
                           tendon_slack_lengths_m: dict[str, float] | None = None) -> list[dict[str, MuscleState]]:
     """``muscle_states`` for several legs of one trial, each (angles, dims), evaluated together: every leg and
     muscle of a kind of path in one broadcast call ([leg, muscle, frame]), the same numbers as leg by leg."""
@@ -558,8 +634,8 @@ def muscle_states_of_legs(legs, rate_hz: float, *, body_mass_kg: float | None = 
     n_frames = per_leg[0][0].size
     rates = np.stack([np.gradient(a, 1.0 / rate_hz, axis=-1) if n_frames > 1 else np.zeros_like(a)
                       for a in arrays], axis=-1)  # [L, 1, F, 4]
-    forces = {m: max_isometric_force(m, body_mass_kg=body_mass_kg, scale_force_to_mass=scale_force_to_mass)
-              for m in MUSCLES}
+    forces = athlete_max_forces(body_mass_kg, height_m if height_m else stature_from_dims(all_dims[0]),
+                                strength_factor)
     states: list[dict[str, MuscleState]] = [{} for _ in legs]
     for group in _PATH_GROUPS:  # muscles of one kind of path in one vectorised evaluation
         path = _stacked_path(group, all_dims)
@@ -797,7 +873,8 @@ def peak_difference_band(samples_a: np.ndarray, window_a: tuple[int, int], sampl
 # --------------------------------------------------------------------------------------------------------------
 def muscle_table(hip_flexion_deg: float, knee_flexion_deg: float, dims: MuscleDims, *,
                  hip_adduction_deg: float = 0.0, hip_rotation_deg: float = 0.0) -> pd.DataFrame:
-    """One row per muscle at one posture: length, strain vs upright, l/l_opt (with the slack length it rests on)
+    """One row per muscle at one posture: length, strain vs upright, l/l_opt (tendon at its F0 stretch, with the
+    slack length it rests on) and at rest (no force, tendon at its slack length)
     and the four moment arms in mm (r = -dL/dtheta; negative at the hip = extensor, positive at the knee = flexor)."""
     posture = [np.deg2rad(v) for v in (hip_flexion_deg, hip_adduction_deg, hip_rotation_deg, knee_flexion_deg)]
     rows = []
@@ -808,10 +885,12 @@ def muscle_table(hip_flexion_deg: float, knee_flexion_deg: float, dims: MuscleDi
         upright = float(_path_length(path, 0.0, 0.0, 0.0, 0.0))
         slack = float(tendon_slack_length(muscle, dims, geometry=path))
         fibre, _ = fibre_length(length, slack, arch.optimal_fibre_length_m, arch.pennation_rad)
+        resting, _ = fibre_length(length, slack, arch.optimal_fibre_length_m, arch.pennation_rad, 0.0)
         arms = moment_arms(muscle, *posture, dims, geometry=path) * 1000.0
         rows.append({
             "muscle": muscle, "length_m": length, "strain_pct": 100.0 * (length / upright - 1.0),
             "fibre_length_lopt": float(fibre) / arch.optimal_fibre_length_m,
+            "resting_fibre_length_lopt": float(resting) / arch.optimal_fibre_length_m,
             "tendon_slack_length_m": slack,
             "hip_flexion_arm_mm": float(arms[0]), "hip_adduction_arm_mm": float(arms[1]),
             "hip_rotation_arm_mm": float(arms[2]), "knee_flexion_arm_mm": float(arms[3]),
@@ -856,4 +935,50 @@ def plot_moment_arms(path, dims: MuscleDims) -> Path:
                  f"pelvis width {dims.pelvis_width_m:.3f} m (r = -dL/dtheta)", fontsize=10)
     fig.savefig(out, dpi=120)
     plt.close(fig)
+    return out
+
+
+# --------------------------------------------------------------------------------------------------------------
+# Monte Carlo states for the force and work band
+# --------------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class SampledStates:
+    """One muscle's Monte Carlo kinematics over the frames: fibre length and velocity (l_opt, l_opt/s), MTU
+    velocity (m/s) and sagittal moment arms [S, F, 2] (hip flexion, knee flexion), with the sample's l_opt and
+    pennation at optimal length [S, 1]."""
+
+    fibre_length_lopt: np.ndarray
+    velocity_lopt_per_s: np.ndarray
+    velocity_m_per_s: np.ndarray
+    moment_arms_m: np.ndarray
+    optimal_fibre_length_m: np.ndarray
+    pennation_rad: np.ndarray
+
+
+def monte_carlo_states(angles: dict[str, np.ndarray], dims: MuscleDims, rate_hz: float, n_samples: int,
+                       seed: int = 0, *, include_hip_centre_error: bool = True,
+                       tendon_force_norm: dict[str, np.ndarray] | None = None,
+                       tendon_strain_scale=1.0, frames: np.ndarray | None = None) -> dict[str, SampledStates]:
+    """Per-sample fibre lengths, velocities and moment arms of every muscle ([S, F]), from the same draws as
+    ``monte_carlo_lengths`` (attachments, hip centre, l_opt, pennation, slack rule), for the force band; each
+    tendon stretched by ``tendon_force_norm[muscle]`` ([F], F0 units; default the reference force) times
+    ``tendon_strain_scale`` ([S, 1] or a number). Fibre velocity = MTU velocity along the fibres (see
+    ``dynamics._compliant_fibres``). ``frames``: evaluate only these frames (rates still from all of them)."""
+    arrays = _angle_arrays(angles)
+    rates = np.stack([np.gradient(a, 1.0 / rate_hz) if a.size > 1 else np.zeros_like(a) for a in arrays], axis=-1)
+    if frames is not None:
+        arrays, rates = [a[frames] for a in arrays], rates[frames]
+    out = {}
+    for muscle, sampled in _draw_samples(dims, n_samples, seed, include_hip_centre_error):
+        length, arms = _length_and_moment_arms(sampled.paths, *arrays)  # [S, F], [S, F, 4]
+        force = REFERENCE_TENDON_FORCE if tendon_force_norm is None else np.nan_to_num(
+            np.asarray(tendon_force_norm[muscle], dtype=float), nan=0.0)
+        if frames is not None and np.ndim(force):
+            force = force[frames]
+        fibre, pennation = fibre_length(length, sampled.slack_length_m, sampled.optimal_fibre_length_m,
+                                        sampled.pennation_rad, force, tendon_strain_scale)
+        velocity = -np.sum(arms * rates, axis=-1)
+        out[muscle] = SampledStates(fibre / sampled.optimal_fibre_length_m,
+                                    velocity * np.cos(pennation) / sampled.optimal_fibre_length_m, velocity,
+                                    arms[..., [0, 3]], sampled.optimal_fibre_length_m, sampled.pennation_rad)
     return out

@@ -23,8 +23,19 @@ STRIDE_COLUMNS = [
     "peak_knee_flexion_deg", "peak_strain_pct", "peak_strain_time_pct", "peak_strain_p5_pct", "peak_strain_p95_pct",
     "peak_fibre_length_lopt", "peak_fibre_length_lopt_p5", "peak_fibre_length_lopt_p95",
     "peak_lengthening_velocity_lopt_per_s", "peak_force_n", "negative_work_j", "positive_work_j",
-    "late_swing_moments_met_pct", "event_source",
+    "late_swing_moments_met_pct", "late_swing_hip_extension_met_pct", "late_swing_knee_flexion_met_pct",
+    "peak_hip_extension_reserve_nm_per_kg", "peak_knee_flexion_reserve_nm_per_kg", "force_status",
+    "peak_force_n_p5", "peak_force_n_p95", "negative_work_j_p5", "negative_work_j_p95", "event_source",
 ]
+#: ``force_status`` of a stride: the share of late-swing frames whose hip-extension and knee-flexion demand the
+#: modelled muscles meet (``late_swing_moments_met_pct``): all of them, at least this share, or fewer.
+FORCE_STATUS_MOSTLY_MET_PCT = 90.0
+#: Fibre length (l/l_opt) below which a trial warns: the lower end of the active force range (0.5-1.5 l_opt,
+#: common practice, references.md).
+SHORT_FIBRE_LOPT = 0.5
+#: ... while carrying at least this fraction of its maximum isometric force (assumption: below it the force is
+#: too small to matter).
+SHORT_FIBRE_FORCE_FRACTION = 0.05
 CURVE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "pct", "hip_flexion_deg", "hip_adduction_deg",
     "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w",
@@ -43,7 +54,8 @@ class AnalysisOptions:
     stride_time_range_s: tuple[float, float] = (0.3, 0.8)  # common practice
     contact_range_s: tuple[float, float] = (0.06, 0.3)  # common practice
     monte_carlo_samples: int = 200
-    scale_force_to_mass: bool = False
+    force_band_samples: int = 20  # Monte Carlo samples of the force and work band (each a full sharing solve); 0: none
+    scale_force_to_mass: bool = False  # no effect since issue 14: strength always scales with mass x height
     min_strides: int = 1
     min_speed_m_s: float = 4.0  # slower is a jog, not a sprint (checks.MIN_SPRINT_SPEED_M_S; common practice)
     strict: bool = False  # --strict: any warning fails the trial
@@ -57,6 +69,7 @@ class AthleteInfo:
     height_m: float | None = None
     sex: str = "male"
     leg_length_m: float | None = None
+    strength_factor: float = 1.0  # athlete's own multiplier on the volume-based muscle strength (athletes.csv)
 
 
 @dataclass(frozen=True, eq=False)
@@ -228,14 +241,17 @@ class _LegTable(NamedTuple):
     late_starts: np.ndarray  # first frame of late swing, per stride
     signals: np.ndarray  # [F, 5 + 6 x muscles]: the curve signals, per frame
     bands: dict  # muscle -> (strain %, l/l_opt) 5th/95th percentiles, each [2, strides]; empty without a band
-    unmet: np.ndarray  # [F] swing frames whose moments the muscles could not meet
+    unmet: np.ndarray  # [F, 2] swing frames whose hip-extension / knee-flexion demand the muscles could not meet
     velocities: np.ndarray  # [F, muscles] musculotendon lengthening velocity (m/s)
+    shortfall: np.ndarray  # [F, 2] unmet hip-extension and knee-flexion moment (N m/kg, >= 0), NaN off swing
+    force_bands: dict  # (peak force, negative work) -> [2 (p5, p95), strides, muscles]; empty without a band
 
 
 def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, speed, info):
     """Muscles and dynamics per side over the whole trial, then per-stride peaks and the normalised curves."""
-    from .dynamics import SwingLeg, leg_inertia, share_swing_moments_of_legs, swing_inverse_dynamics_of_legs
-    from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states_of_legs
+    from .dynamics import (BandLeg, SwingLeg, force_work_band, leg_inertia, share_swing_moments_of_legs,
+                           swing_inverse_dynamics_of_legs)
+    from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states_of_legs, stature_from_dims
     from .signal import percentiles
     from .strides import normalise_strides
 
@@ -253,8 +269,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                                  thigh_length_m=dims_body.thigh_length_m[side],
                                  shank_length_m=dims_body.shank_length_m[side]) for side in sides}
     leg_states = dict(zip(sides, muscle_states_of_legs([(joints[side], leg_dims[side]) for side in sides], rate,
-                                                       body_mass_kg=body_mass,
-                                                       scale_force_to_mass=options.scale_force_to_mass)))
+                                                       body_mass_kg=body_mass, height_m=athlete.height_m,
+                                                       strength_factor=athlete.strength_factor)))
     legs = {}  # per side: what the tables need, gathered first so both legs share one force-sharing solve
     for side in sides:
         side_strides = [s for s in valid if s.side == side]
@@ -289,17 +305,38 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     shared = dict(zip(with_moments, share_swing_moments_of_legs(
         [(legs[side].moments, legs[side].states, legs[side].joint, rate) for side in with_moments]))) \
         if with_moments else {}
+    _short_fibre_warning(sides, valid, leg_states, shared, legs, info)
+    force_bands = {}
+    if with_moments and options.force_band_samples > 0:
+        band_legs = []
+        for side in with_moments:
+            leg = legs[side]
+            stops = np.array([s.end_frame for s in leg.strides], dtype=int)
+            starts = np.array([min(max(int(np.ceil(s.toe_off_s * rate)), s.start_frame), s.end_frame)
+                               for s in leg.strides], dtype=int)
+            force_norm = {m: shared[side].force_n[m] / leg.states[m].max_isometric_force_n for m in MUSCLES}
+            band_legs.append(BandLeg(leg.moments, leg.joint, leg_dims[side], starts, stops, force_norm,
+                                     shared[side].dual))
+        height = athlete.height_m or stature_from_dims(leg_dims[with_moments[0]])
+        force_bands = dict(zip(with_moments, force_work_band(
+            band_legs, rate, body_mass_kg=body_mass, height_m=height, strength_factor=athlete.strength_factor,
+            n_samples=max(2, int(options.force_band_samples)))))
     for side, (side_strides, joint, states, late_starts, bands, swing, moments) in legs.items():
         a = angles[side]
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
         hip_moment = np.full(n_frames, np.nan)
         knee_moment = np.full(n_frames, np.nan)
-        unmet = np.zeros(n_frames, dtype=bool)
+        unmet = np.zeros((n_frames, 2), dtype=bool)
+        shortfall = np.full((n_frames, 2), np.nan)
         if side in shared:
             hip_moment = moments.hip_flexion_nm / body_mass
             knee_moment = moments.knee_flexion_nm / body_mass
-            forces_side, unmet = shared[side].force_n, shared[side].unmet
-            unmet_total += int(np.sum(unmet))
+            sh = shared[side]
+            forces_side = sh.force_n
+            unmet = np.column_stack([sh.hip_extension_unmet, sh.knee_flexion_unmet])
+            shortfall = np.column_stack([np.clip(-sh.reserve_nm[:, 0], 0.0, None),
+                                         np.clip(sh.reserve_nm[:, 1], 0.0, None)]) / body_mass
+            unmet_total += int(np.sum(sh.hamstring_demand_unmet))
             for m in MUSCLES:
                 if m in forces_side:
                     forces[m] = np.where(swing, forces_side[m], np.nan)
@@ -314,7 +351,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
                         power[m]]
         signals = np.column_stack(columns)
         table_legs.append(_LegTable(side, side_strides, late_starts, signals, bands, unmet,
-                                    np.column_stack([states[m].velocity_m_per_s for m in MUSCLES])))
+                                    np.column_stack([states[m].velocity_m_per_s for m in MUSCLES]), shortfall,
+                                    force_bands.get(side, {})))
         curve_blocks.extend(normalise_strides(signals, side_strides, rate))
         curve_keys.extend((side, s.index + 1) for s in side_strides)
     stride_columns = _stride_columns(table_legs, rate, bool(body_mass), speed, athlete, trial.name)
@@ -324,6 +362,35 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         info["warnings"].append("body mass missing: forces and work need it; add it to athletes.csv or use --body-mass")
         info["warning_codes"].append("no_body_mass")
     return {name: stride_columns[name] for name in STRIDE_COLUMNS}, curves
+
+
+def _short_fibre_warning(sides, valid, leg_states, shared, legs, info) -> None:
+    """Warn when a hamstring carries force (at least ``SHORT_FIBRE_FORCE_FRACTION`` of F0) with its fibres below
+    ``SHORT_FIBRE_LOPT`` during the valid strides (fibre length at the model's own force, compliant tendon).
+
+    Unloaded, the model's semimembranosus and biceps femoris long head fibres fall below 0.5 l_opt in mid-swing
+    (knee flexed 120-130 deg; the unit is then shorter than its slack tendon plus fibres); no force depends on
+    that, so it is stated in DEVELOPERS.md rather than warned on every trial."""
+    from .muscles import MUSCLES
+
+    short = []
+    for side in sides:
+        if side not in shared or shared[side].fibre_length_lopt is None:
+            continue
+        frames = np.concatenate([np.arange(s.start_frame, s.end_frame + 1) for s in valid if s.side == side])
+        for m in MUSCLES:
+            lopt = shared[side].fibre_length_lopt[m][frames]
+            loaded = shared[side].force_n[m][frames] >= SHORT_FIBRE_FORCE_FRACTION * \
+                leg_states[side][m].max_isometric_force_n
+            bad = loaded & (lopt < SHORT_FIBRE_LOPT)
+            if bad.any():
+                short.append(f"{side} {m} {float(lopt[bad].min()):.2f}")
+    if short:
+        info["warnings"].append(
+            f"a loaded hamstring's modelled fibre length falls below {SHORT_FIBRE_LOPT:g} of optimal length (the "
+            f"low end of the active range): {', '.join(short)} l_opt. Forces there are unreliable; check the "
+            "athlete's height and segment lengths (the model's tendon slack lengths follow from them)")
+        info["warning_codes"].append("short_fibres")
 
 
 def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, trial_name) -> dict[str, np.ndarray]:
@@ -356,7 +423,19 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
     with np.errstate(invalid="ignore"):
         peak_time = np.where(i_peak >= 0, 100.0 * (i_peak / rate - foot_strike[:, None]) / stride_time[:, None],
                              np.nan)
-    met = np.concatenate([[0], np.cumsum(~np.concatenate([leg.unmet for leg in legs]))])
+    unmet = np.concatenate([leg.unmet for leg in legs])  # [legs x F, 2] hip extension, knee flexion
+    n_late = stop + 1 - late
+
+    def met_pct(short):  # % of the late-swing frames [late, stop] without a shortfall
+        met = np.concatenate([[0], np.cumsum(~short)])
+        return 100.0 * (met[stop + 1] - met[late]) / n_late if with_mass else np.full(n_str, np.nan)
+
+    late_met = met_pct(unmet.any(axis=1))
+    reserve_peaks, _ = window_peaks(np.concatenate([leg.shortfall for leg in legs]), late, stop)
+    status = np.where(late_met >= 100.0, "met",
+                      np.where(late_met >= FORCE_STATUS_MOSTLY_MET_PCT, "mostly_met", "not_met")).astype(object)
+    if not with_mass:
+        status[:] = "no_body_mass"
     nan = np.full((n_str, n_mus), np.nan)
 
     def per_stride(values):
@@ -375,8 +454,12 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
         "speed_m_s": per_stride([speed] * n_str),
         "peak_hip_flexion_deg": per_stride(window_peaks(signals[:, 0], start, stop)[0]),
         "peak_knee_flexion_deg": per_stride(peak_knee),
-        "late_swing_moments_met_pct": per_stride(100.0 * ((met[stop + 1] - met[late]) / (stop + 1 - late))
-                                                 if with_mass else np.full(n_str, np.nan)),
+        "late_swing_moments_met_pct": per_stride(late_met),
+        "late_swing_hip_extension_met_pct": per_stride(met_pct(unmet[:, 0])),
+        "late_swing_knee_flexion_met_pct": per_stride(met_pct(unmet[:, 1])),
+        "peak_hip_extension_reserve_nm_per_kg": per_stride(reserve_peaks[:, 0] if with_mass else np.full(n_str, np.nan)),
+        "peak_knee_flexion_reserve_nm_per_kg": per_stride(reserve_peaks[:, 1] if with_mass else np.full(n_str, np.nan)),
+        "force_status": per_stride(status),
         "peak_strain_pct": peak_strain.ravel(), "peak_strain_time_pct": peak_time.ravel(),
         "peak_fibre_length_lopt": peak_lopt.ravel(), "peak_lengthening_velocity_lopt_per_s": peak_vel.ravel(),
     }
@@ -392,6 +475,10 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
                        positive_work_j=produced.ravel())
     else:
         columns.update(peak_force_n=nan.ravel(), negative_work_j=nan.ravel(), positive_work_j=nan.ravel())
+    for k, metric in enumerate(("peak_force_n", "negative_work_j")):
+        for q, suffix in enumerate(("p5", "p95")):
+            columns[f"{metric}_{suffix}"] = np.concatenate([
+                leg.force_bands[metric][q] if leg.force_bands else nan[:len(leg.strides)] for leg in legs]).ravel()
     return columns
 
 

@@ -157,8 +157,11 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("analysis", "monte_carlo_samples", "integer", "samples of model geometry and architecture for the "
             "uncertainty band (0 = no band)", "hamstride's model uncertainty (README, strides.csv _p5/_p95)",
             0, 5000),
-    Setting("analysis", "scale_force_to_mass", "boolean", "scale hamstring maximum forces to body mass",
-            "hamstride's muscle model (muscles.max_isometric_force)"),
+    Setting("analysis", "force_band_samples", "integer", "samples of the force and negative-work band (each a "
+            "full force-sharing solve; 0 = no band)", "hamstride's model uncertainty (README, strides.csv "
+            "peak_force_n_p5/_p95, negative_work_j_p5/_p95)", 0, 1000),
+    Setting("analysis", "scale_force_to_mass", "boolean", "no effect (kept so older configuration files load): "
+            "muscle strength always scales with body mass x height", "Handsfield et al. 2014 (muscles.max_isometric_force)"),
     Setting("analysis", "min_strides", "integer", "a trial needs at least this many complete strides per leg",
             COMMON, 1, 50),
     Setting("analysis", "min_speed_m_s", "number", "slower trials are refused as not running fast enough",

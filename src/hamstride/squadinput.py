@@ -30,7 +30,7 @@ OPTIONAL_ATHLETE_COLUMNS = ("injury_date", "strength_factor")
 # e.g. a height in centimetres or a mass in pounds, not unusual bodies).
 BODY_MASS_RANGE_KG = (30.0, 200.0)
 HEIGHT_RANGE_M = (1.20, 2.30)
-STRENGTH_FACTOR_RANGE = (0.1, 10.0)  # multiplies the model's muscle strength; 1 = the model's own estimate
+STRENGTH_FACTOR_RANGE = (0.3, 3.0)  # multiplies the model's muscle strength; 1 = the model's own estimate (assumption: beyond 0.3-3 a value is more likely a typo than an athlete)
 SIDES = ("left", "right", "none")
 SEXES = {"male": "male", "m": "male", "female": "female", "f": "female"}
 DATE_PREFIX = re.compile(r"^(\d{4}-\d{2}-\d{2})")
