@@ -258,12 +258,13 @@ def test_constructed_run_with_flight_is_detected():
     assert fs.size == 4
 
 
-def test_jog_without_flight_phase_fails_with_reason():
+def test_gait_without_flight_phase_fails_as_not_a_run():
     lm = _kinematic_run(250.0, 3.0, 0.70, 0.40, 3.0)  # contact 0.40 s > half stride 0.35 s: double support
     with pytest.raises(EventError) as info:
         detect_events(lm)
-    assert info.value.code == "no_flight"
-    assert "no flight phase" in info.value.message and "jog" in info.value.message
+    # (was code no_flight, "a jog or walk": jogging with a flight phase is analysed now; no flight means walking)
+    assert info.value.code == "not_running"
+    assert "no flight phase" in info.value.message and "not a run" in info.value.message
 
 
 def test_too_few_strides_fails_with_reason(tmp_path):
