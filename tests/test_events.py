@@ -341,4 +341,5 @@ def test_event_inside_a_long_marker_gap_is_not_used():
     assert any("right" in w and "missing" in w and f"{target:.2f} s" in w for w in events.warnings)
     strides = cut_strides(events, 250.0, lm.n_frames, None)
     spanning = [st for st in strides if st.side == "right" and st.foot_strike_s < target < st.next_foot_strike_s]
-    assert len(spanning) == 1 and not spanning[0].valid and "stride time" in spanning[0].reason
+    # the 0.88 s stride is inside the jogging stride limits (0.3-1.0 s): its two toe-offs give the missed strike away
+    assert len(spanning) == 1 and not spanning[0].valid and "2 toe-offs" in spanning[0].reason
