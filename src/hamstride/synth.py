@@ -46,7 +46,11 @@ from .errors import ConfigError, HamstrideError
 
 SIDES = ("left", "right")
 GRAVITY = 9.81  # m/s^2
-_RIGHT_SIGN = {"right": 1.0, "left": -1.0}  # lateral direction along the segment +Z (which points right)
+_RIGHT_SIGN = {"right": 1.0, "left": -1.0}
+# A person's true hip centre is not where the Harrington et al. 2007 regression puts it: its leave-one-out error is
+# about 5/4/3 mm (x/y/z) [V, references.md]. Bodies from ``AthleteBody.from_height`` carry an offset of that size
+# (7 mm: further back, lower and more lateral), so the pipeline's hip-centre estimate is not the truth by construction.
+TYPICAL_HIP_OFFSET_M = (-0.005, -0.004, 0.003)  # lateral direction along the segment +Z (which points right)
 _DEG = np.pi / 180.0
 ANGLE_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion", "ankle_dorsiflexion")
 
@@ -101,7 +105,7 @@ class AthleteBody:
         pd = (0.17 * pw * 1000.0 - 0.6) / 0.28 / 1000.0
         return cls(height_m=h, mass_kg=float(mass_kg), sex=sex, pelvis_width_m=pw, pelvis_depth_m=pd,
                    thigh_length_m=thigh * h, shank_length_m=shank * h, foot_length_m=foot * h,
-                   knee_width_m=0.056 * h, ankle_width_m=0.040 * h)
+                   knee_width_m=0.056 * h, ankle_width_m=0.040 * h, hip_centre_offset_m=TYPICAL_HIP_OFFSET_M)
 
 
 _DEFAULT_BODY = AthleteBody.from_height(1.80, 75.0, "male")
