@@ -53,38 +53,64 @@ def _fail(exc: HamstrideError, code: int = 1) -> None:
 def landmarks_cmd(
     trial: Path = typer.Argument(..., help="A C3D trial."),
     markers: Optional[Path] = typer.Option(None, "--markers", help="TOML marker map (landmark = C3D label)."),
+    static: Optional[Path] = typer.Option(None, "--static", help="Static standing trial: landmarks missing in the "
+                                          "trial are rebuilt from their segment's cluster, and shown as rebuilt."),
 ) -> None:
-    """Show how each anatomical landmark resolved in a trial (label used, % valid frames).
+    """Show how each anatomical landmark resolved in a trial (label used, % valid frames), which were rebuilt from a
+    static trial, and the window in which every required landmark is seen.
 
     Example: `hamstride landmarks demo_trials/KT07/2026-03-02_testing/sprint_01.c3d`
 
+    Example: `hamstride landmarks run_03.c3d --static static.c3d` (knee and ankle markers only in the static trial)
+
     Exit code 0 when every required landmark resolves, 1 otherwise.
     """
-    from .io import read_c3d_isolated
-    from .landmarks import LandmarkError, load_marker_map, plain_name, resolve_landmarks
+    from .io import finite_points, read_c3d_isolated
+    from .landmarks import LandmarkError, load_marker_map, plain_name, resolve_landmarks, visible_window
+    from .pipeline import landmarks_with_static
+    from .segments import rebuilt_landmarks
 
     try:
         marker_map = load_marker_map(markers)
         data = read_c3d_isolated(trial)
+        if static is not None:
+            read_c3d_isolated(static)
     except HamstrideError as exc:
         _fail(exc)
+    rebuilt: dict[str, float] = {}
     try:
-        lm = resolve_landmarks(data, marker_map)
+        lm, seen, _, _ = landmarks_with_static(data, marker_map, static)
+        rebuilt = rebuilt_landmarks(seen, lm)
         problem = None
     except LandmarkError as exc:
         problem = exc
-        lm = resolve_landmarks(data, marker_map, allow_missing=tuple(marker_map.landmarks))
+        lm = seen = resolve_landmarks(data, marker_map, allow_missing=tuple(marker_map.landmarks))
+    except HamstrideError as exc:
+        _fail(exc)
     table = Table(title=f"{trial.name}: {data.n_frames} frames at {data.rate_hz:g} Hz, "
                         f"vertical {data.lab.vertical_axis}, travel {data.lab.travel_axis} ({marker_map.source})")
     table.add_column("landmark")
     table.add_column("label")
     table.add_column("valid frames %", justify="right")
     table.add_column("")
-    for row in lm.report:
+    n = max(data.n_frames, 1)
+    for row in seen.report:
         status = "required" if row.required else "optional"
-        label = row.label if row.label is not None else f"[red]missing[/] ({row.note})"
-        table.add_row(plain_name(row.landmark), label, f"{row.valid_pct:.0f}", status)
-    console.print(table)
+        label = row.label if row.label is not None else f"missing ({row.note})"
+        valid = row.valid_pct
+        if row.landmark in rebuilt:
+            label = (f"{row.label}, gaps rebuilt from the static trial" if row.label is not None
+                     else "rebuilt from the static trial")
+            valid = 100.0 * finite_points(lm.points[row.landmark]).sum() / n
+        table.add_row(plain_name(row.landmark), label, f"{valid:.0f}", status)  # labels printed as they are
+    console.print(table, markup=False)
+    if static is not None:
+        names = ", ".join(f"{plain_name(k)} ({v:.0f}% of frames)" for k, v in rebuilt.items()) or "none"
+        console.print(f"rebuilt from {static.name}: {names}", markup=False, highlight=False)
+    if problem is None:
+        window = visible_window(lm)
+        where = "the whole trial" if window.whole else window.describe()
+        console.print(f"every required landmark seen: {where}", markup=False, highlight=False)
     if problem is not None:
         _fail(problem)
 
@@ -173,6 +199,12 @@ def analyze_cmd(
     console.print(f"{trial.name}: {n.get('left', 0)} left and {n.get('right', 0)} right strides, "
                   f"speed {result.info['speed_m_s']:.2f} m/s, cutoff {result.info['cutoff_hz']:.1f} Hz "
                   f"({result.info['cutoff_method']}); wrote {out}/strides.csv and curves.csv")
+    console.print(f"analysed window {result.info['window_start_s']:.2f}-{result.info['window_end_s']:.2f} s "
+                  f"({result.info['window_duration_s']:.2f} s: every required landmark seen)", highlight=False)
+    if result.info.get("rebuilt_landmarks"):
+        rebuilt = ", ".join(f"{name.replace('_', ' ')} ({pct:.0f}% of frames)"
+                            for name, pct in result.info["rebuilt_landmarks"].items())
+        console.print(f"rebuilt from the static trial: {rebuilt}", markup=False, highlight=False)
     for warning in result.info.get("warnings", []):
         console.print(f"[yellow]note[/] {warning}", highlight=False)
 

@@ -262,8 +262,13 @@ def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *
         if all(i is not None for i in idx):
             clusters[name] = trial.xyz[:, idx, :]
     if missing:
+        static_hint = ""
+        if any(name in STATIC_RECOVERABLE and name not in points and name not in allow_missing
+               for name in marker_map.landmarks):
+            static_hint = ("; knee and ankle markers placed only in the static trial are rebuilt from the thigh and "
+                           "shank clusters when the static trial is given (--static, or static*.c3d in the session)")
         raise LandmarkError("required landmark(s) not found: " + "; ".join(missing)
-                            + f". Map them in a markers.toml ([landmarks] section) — using {marker_map.source}",
-                            trial=trial.name, code="landmark_missing")
+                            + f". Map them in a markers.toml ([landmarks] section) — using {marker_map.source}"
+                            + static_hint, trial=trial.name, code="landmark_missing")
     return Landmarks(trial=trial.name, rate_hz=trial.rate_hz, points=points, clusters=clusters, labels_used=used,
                      report=tuple(report))

@@ -107,6 +107,31 @@ class Kinematics:
         return [s for s in self.strides if s.valid]
 
 
+def landmarks_with_static(trial, marker_map, static_path: str | Path | None = None):
+    """A trial's landmarks, with those missing rebuilt from a static trial's calibration (rigid fit of the segment's
+    cluster; segments.reconstruct_missing). Returns (landmarks, landmarks as seen in the file, the landmarks the
+    static trial could rebuild, the calibration or None). Errors in the static trial name the dynamic trial."""
+    from .io import read_c3d
+    from .landmarks import recoverable_landmarks, resolve_landmarks
+    from .segments import calibrate, reconstruct_missing
+    from .signal import smooth_landmarks
+
+    if static_path is None:
+        lm = resolve_landmarks(trial, marker_map)
+        return lm, lm, (), None
+    try:
+        static = read_c3d(static_path)
+        static_lm = resolve_landmarks(static, marker_map)
+        static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
+        calibration = calibrate(static_lm)
+    except HamstrideError as exc:  # name the sprint trial and say the problem is in its static trial
+        raise type(exc)(f"its static calibration trial {Path(static_path).name} failed ({exc.message}); fix or "
+                        "remove that file", trial=trial.name, code=exc.code) from None
+    recoverable = recoverable_landmarks(marker_map, static_lm, trial)
+    seen = resolve_landmarks(trial, marker_map, allow_missing=recoverable)
+    return reconstruct_missing(seen, calibration), seen, recoverable, calibration
+
+
 def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *,
                      athlete: AthleteInfo = AthleteInfo(), static_path: str | Path | None = None,
                      markers: str | Path | None = None) -> Kinematics:
@@ -116,31 +141,15 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
                          check_stride_count)
     from .events import detect_events, drop_events_near_edges, is_treadmill, running_speed
     from .io import read_c3d
-    from .landmarks import (crop_landmarks, crop_trial, load_marker_map, recoverable_landmarks, resolve_landmarks,
-                            visible_window)
-    from .segments import build_body, calibrate, rebuilt_landmarks, reconstruct_missing
+    from .landmarks import crop_landmarks, crop_trial, load_marker_map, visible_window
+    from .segments import build_body, rebuilt_landmarks
     from .signal import EDGE_GAP_NOTE, smooth_landmarks
     from .strides import cut_strides
 
     marker_map = load_marker_map(markers)
     trial = read_c3d(Path(path))
     warnings: list[TrialWarning] = list(check_marker_trial(trial, marker_map.landmarks.values()))
-    calibration = None
-    recoverable: tuple[str, ...] = ()
-    if static_path is not None:
-        try:
-            static = read_c3d(static_path)
-            static_lm = resolve_landmarks(static, marker_map)
-            static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
-            calibration = calibrate(static_lm)
-        except HamstrideError as exc:  # name the sprint trial and say the problem is in its static trial
-            raise type(exc)(f"its static calibration trial {Path(static_path).name} failed ({exc.message}); fix or "
-                            "remove that file", trial=trial.name, code=exc.code) from None
-        recoverable = recoverable_landmarks(marker_map, static_lm, trial)
-    lm = resolve_landmarks(trial, marker_map, allow_missing=recoverable)
-    seen = lm
-    if calibration is not None:
-        lm = reconstruct_missing(lm, calibration)
+    lm, seen, recoverable, calibration = landmarks_with_static(trial, marker_map, static_path)
     # overground capture volume: analyse where every required landmark is seen (missing before the athlete enters
     # and after they leave is not a gap)
     window = visible_window(lm, options.max_gap_frames)
