@@ -169,7 +169,8 @@ class VisibleWindow:
         return (self.stop - 1 - self.start) / self.rate_hz
 
     def describe(self) -> str:
-        return f"{self.start_s:.2f}-{self.end_s:.2f} s ({self.duration_s:.2f} s of {self.n_frames / self.rate_hz:.2f} s)"
+        total = self.n_frames / self.rate_hz
+        return f"{self.start_s:.2f}-{self.end_s:.2f} s ({self.duration_s:.2f} s of {total:.2f} s)"
 
 
 def visible_window(lm: "Landmarks", max_gap_frames: int = 10, *,

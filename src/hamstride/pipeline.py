@@ -175,8 +175,9 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     except EventError as exc:
         if exc.code != "few_strides" or window.whole:
             raise
-        raise EventError(f"{exc.message.removeprefix(f'trial {exc.trial}: ')} Every landmark is seen only {window.describe()} of the "
-                         "file (the capture volume)", trial=trial.name, code="few_strides") from None
+        message = exc.message.removeprefix(f"trial {exc.trial}: ")
+        raise EventError(f"{message} Every landmark is seen only {window.describe()} of the file (the capture "
+                         "volume)", trial=trial.name, code="few_strides") from None
     events, dropped = drop_events_near_edges(events, lm.n_frames, trial.rate_hz, start=window.start > 0,
                                              end=window.stop < window.n_frames)
     warnings.extend(TrialWarning("event_rules", w) for w in events.warnings)
