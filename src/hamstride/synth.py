@@ -3,9 +3,13 @@
 Truth is defined by construction in the conventions of DEVELOPERS.md: ISB segment frames (Wu et al. 2002) are
 built first, landmarks are then placed in those frames, and the truth joint angles are the Grood & Suntay JCS
 decomposition (intrinsic Z-X-Y Cardan of ``R_prox^T R_dist``) of the truth frames. Landmarks sit where the
-pipeline's marker-based frames reproduce the truth frames exactly: the hip centre lies on the Harrington et al. 2007
-pelvis-width regression (J Biomech 40:595), knee/ankle centres midway between epicondyles/malleoli, heel and
-metatarsal heads at one height in the foot frame.
+pipeline's marker-based frames reproduce the truth frames, except at the hip: the true hip centre lies a person's
+offset (``AthleteBody.hip_centre_offset_m``, 7 mm for bodies from ``from_height``) away from the Harrington et al. 2007
+pelvis-width regression (J Biomech 40:595) the pipeline uses; knee/ankle centres are midway between
+epicondyles/malleoli, heel and metatarsal heads at one height in the foot frame. Optional real-capture shapes:
+jogging (2.5-6 m/s), thigh/shank skin markers sliding on the bone (``soft_tissue_mm``), an overground capture volume
+(``capture_volume_m``), cluster-only runs without knee/ankle markers (``include_knee_ankle``), and walking
+(``simulate_walk``).
 
 Model: each leg is a planar hip-knee-ankle chain (thigh, shank, foot share the lab's medio-lateral Z axis) in the
 vertical plane through its hip centre; the pelvis translates, tilts, rolls and yaws (so hip adduction and rotation,
