@@ -170,8 +170,9 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     body = build_body(lm, hip_method=options.hip_method, leg_length_m=leg_length)
     angles = joint_angles(body)
     knee = {side: angles[side]["knee_flexion"] for side in SIDES}
-    try:
-        events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee, min_strides=options.min_strides)
+    try:  # in a capture volume's window the strides are counted after the edge guard (check_stride_count)
+        events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee,
+                               min_strides=options.min_strides if window.whole else 0)
     except EventError as exc:
         if exc.code != "few_strides" or window.whole:
             raise

@@ -143,8 +143,9 @@ class SprintSpec:
     # slightly different places). None: seen everywhere. Ignored on a treadmill.
     capture_volume_m: tuple[float, float] | None = None
     # Soft-tissue movement of the thigh and shank skin markers (clusters, epicondyles, malleoli) relative to the
-    # bone, in mm: a displacement that grows with knee flexion and a decaying wobble after each foot strike.
-    soft_tissue_mm: float = 0.0
+    # bone, in mm: a displacement that grows with knee flexion and a decaying wobble after each foot strike. A few
+    # mm by default, so the pipeline never sees markers rigidly fixed to the bone (0 = rigid).
+    soft_tissue_mm: float = 2.0
     seed: int = 0
     body: AthleteBody = _DEFAULT_BODY
     athlete: str = "SYN01"
