@@ -320,3 +320,19 @@ def test_walking_is_refused_as_not_a_run(tmp_path, full_body):
     assert info.value.code == "not_running"
     assert "not a run" in info.value.message and "no flight phase" in info.value.message
     assert "swapped" not in info.value.message
+
+
+def test_marker_events_at_the_window_edges_are_not_trusted():
+    from hamstride.events import GaitEvents, drop_events_near_edges
+
+    times = {"left": np.array([0.004, 0.30, 0.96]), "right": np.array([0.015, 0.60, 0.99])}
+    marker = GaitEvents(times, times, "markers")
+    # 251 frames at 250 Hz (0-1 s); a 20 ms guard (events.GAP_GUARD_S, as next to a gap) at both edges
+    kept, dropped = drop_events_near_edges(marker, 251, RATE, start=True, end=True)
+    assert list(kept.foot_strikes_s["left"]) == [0.30, 0.96] and list(kept.foot_strikes_s["right"]) == [0.60]
+    assert dropped == sorted([0.004, 0.015, 0.99] * 2)
+    # only the entry edge is a volume edge: the file's own end keeps its events
+    kept, _ = drop_events_near_edges(marker, 251, RATE, start=True, end=False)
+    assert list(kept.toe_offs_s["right"]) == [0.60, 0.99]
+    # events read from the file are kept
+    assert drop_events_near_edges(GaitEvents(times, times, "c3d"), 251, RATE, start=True, end=True)[1] == []

@@ -6,8 +6,8 @@ and ``--strict`` turns into errors. The checks only look at the objects handed b
 Landmarks), so they import nothing from a later stage.
 
 Codes raised here: too_short, rate_too_low, no_marker_data, bad_coordinates, duplicate_labels, long_gap,
-sides_swapped, units_suspect, body_size, pelvis_width, not_sprint, few_strides. Warnings: empty_frames, bad_coordinates,
-duplicate_labels.
+sides_swapped, units_suspect, body_size, pelvis_width, not_sprint, few_strides. Warnings: empty_frames,
+bad_coordinates, duplicate_labels.
 """
 from __future__ import annotations
 

@@ -21,7 +21,7 @@ delays the strike (about +7 ms at 10 Hz on generated sprints).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Iterable, Mapping
 
 import numpy as np
@@ -653,6 +653,5 @@ def drop_events_near_edges(events: GaitEvents, n_frames: int, rate_hz: float, *,
             out[side] = t[inside]
         return out
 
-    from dataclasses import replace
     kept = replace(events, foot_strikes_s=keep(events.foot_strikes_s), toe_offs_s=keep(events.toe_offs_s))
     return kept, sorted(dropped)

@@ -39,9 +39,9 @@ REQUIRED_LANDMARKS = tuple(f"{side}_{site}" for side in SIDES for site in REQUIR
 CLUSTER_SITES = {"thigh": ("lateral_epicondyle", "medial_epicondyle"),
                  "shank": ("lateral_malleolus", "medial_malleolus")}
 STATIC_RECOVERABLE = tuple(f"{side}_{site}" for side in SIDES for sites in CLUSTER_SITES.values() for site in sites)
-# Gaps in the required landmarks shorter than this inside the visible window are bridged (signal stage, common
-# practice); the window is where all are seen, from the athlete's entry into the capture volume to the exit.
-MIN_VISIBLE_RUN_S = 0.05  # shorter stretches with every landmark seen are flicker at the volume's edge (design choice)
+# The visible window (overground capture volumes) runs from the athlete's entry to their exit: stretches shorter than
+# this with every required landmark seen are flicker at the volume's edge, not the athlete inside (design choice).
+MIN_VISIBLE_RUN_S = 0.05
 
 
 def plain_name(landmark: str) -> str:
