@@ -966,7 +966,8 @@ def simulate_walk(body: AthleteBody = _DEFAULT_BODY, speed_m_s: float = 1.3, rat
                   noise_mm: float = 0.5, seed: int = 0, vertical_axis: str = "z", travel_sign: int = 1,
                   units: str = "mm") -> tuple[tuple[str, ...], np.ndarray, SprintTruth]:
     """A walking trial (no flight: each foot is on the ground about 62 % of the stride, both feet together twice
-    per stride for about 12 % each; Perry & Burnfield, Gait Analysis, 2010 [M]), for the refusal of walks.
+    per stride for about 12 % each; textbook values: stance 60-62 %, double support about 10 % twice, e.g. Perry &
+    Burnfield, Gait Analysis, 2010 [M, consistent with secondary sources]), for the refusal of walks.
 
     Simpler than the sprint: each foot rolls heel -> flat -> forefoot on the ground (pitch +15 deg at heel strike to
     -35 deg at toe-off) and swings forward along a smooth arc; thigh and shank come from planar inverse kinematics of
