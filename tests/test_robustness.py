@@ -22,7 +22,7 @@ import pytest
 from hamstride.errors import HamstrideError
 from hamstride.io import check_c3d_header, read_c3d, write_c3d
 from hamstride.pipeline import AnalysisOptions, AthleteInfo, analyse_trial
-from hamstride.synth import SprintSpec, simulate_sprint
+from hamstride.synth import SprintSpec, simulate_sprint, simulate_walk
 
 RATE = 250.0
 FAST = AnalysisOptions(monte_carlo_samples=0)  # the checks under test do not depend on the uncertainty band
@@ -187,10 +187,13 @@ def build_corpus(folder: Path) -> dict[str, Case]:
 
     # Data that read fine but are not an analysable sprint.
     write("rate_50hz", labels, xyz[::5], "rate_too_low", "50 Hz", rate=50.0)  # every 5th frame: sampled at 50 Hz
-    # A jog: the slowest synthetic run (6 m/s) slowed in time by 250/150 (3.6 m/s, stride 0.8 s, contacts about
-    # 0.2 s with a short flight: the gait of jogging; common practice: jogging 2.5-4 m/s).
+    # Too slow: a 6 m/s run slowed in time by 250/100 (2.4 m/s, with a flight phase) is below the 2.5 m/s floor.
+    # (This case was a 3.6 m/s jog refused as not_sprint; return-to-run jogs from about 3 m/s are analysed now.)
     lab_j, xyz_j = _base(duration_s=2.5, speed_m_s=6.0)
-    write("jog", lab_j, xyz_j, "not_sprint", "jog", rate=150.0)
+    write("too_slow", lab_j, xyz_j, "not_sprint", "jogging pace", rate=100.0)
+    # A walk (double support, no flight): refused as not a run, whatever its speed.
+    lab_w, xyz_w, _ = simulate_walk(duration_s=3.0, seed=3)
+    write("walk", list(lab_w), np.array(xyz_w), "not_running", "not a run")
     swap = {lab: ("l" + lab[1:] if lab.startswith("r.") else "r" + lab[1:] if lab.startswith("l.") else lab)
             for lab in labels}
     write("left_right_swapped", [swap[lab] for lab in labels], xyz, "sides_swapped", "right_asis")
@@ -250,7 +253,8 @@ CASE_NAMES = [
     "parameter_scale_sign", "parameter_frames_disagree", "parameter_fewer_labels", "parameter_offset_backwards",
     "parameter_211_dimensions", "parameter_unknown_type", "frame_count_beyond_data", "zero_frames",
     "zero_frames_everywhere", "one_frame",
-    "rate_50hz", "jog", "left_right_swapped", "metres_labelled_mm", "centimetres_labelled_m", "pelvis_too_wide",
+    "rate_50hz", "too_slow", "walk", "left_right_swapped", "metres_labelled_mm", "centimetres_labelled_m",
+    "pelvis_too_wide",
     "landmark_missing", "landmark_nan_60pct", "duplicate_landmark_label", "duplicate_other_label",
     "frames_all_missing", "all_frames_missing", "infinite_coordinates", "mostly_infinite", "few_strides",
     "unknown_units",

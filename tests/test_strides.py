@@ -47,12 +47,14 @@ def test_late_swing_start_at_swing_peak_knee_flexion():
 
 
 def test_implausible_strides_rejected_with_reason():
-    # 2nd stride of 1.0 s (a missed foot strike) and a 3rd with a 0.35 s contact; thresholds from issue 3
-    events = _events([0.10, 0.54, 1.54, 2.00], [0.20, 0.64, 1.89])
+    # 2nd stride of 1.1 s (a missed foot strike) and a 3rd with a 0.45 s contact; default limits 0.3-1.0 s and
+    # 0.06-0.4 s (issue 3's sprint limits widened for jogging in issue 13: a 3 m/s jog has 0.7-0.8 s strides and
+    # 0.25-0.30 s contacts)
+    events = _events([0.10, 0.54, 1.64, 2.30], [0.20, 0.64, 2.09])
     strides = cut_strides(events, RATE, n_frames=600, knee_flexion=None)
     assert [s.valid for s in strides] == [True, False, False]
-    assert "stride time 1.000 s" in strides[1].reason and "missed" in strides[1].reason
-    assert "contact time 0.350 s" in strides[2].reason
+    assert "stride time 1.100 s" in strides[1].reason and "missed" in strides[1].reason
+    assert "contact time 0.450 s" in strides[2].reason
     # stricter custom range rejects the first as well
     strict = cut_strides(events, RATE, 600, None, contact_range=(0.06, 0.09))
     assert not strict[0].valid and "contact time 0.100 s" in strict[0].reason

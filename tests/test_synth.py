@@ -82,7 +82,7 @@ def _unit(v):
 def test_landmarks_reproduce_the_truth_frames_by_the_developer_definitions():
     # Frames rebuilt here from the noise-free landmarks with the definitions of DEVELOPERS.md (written out
     # independently of synth), and the hip centre from the Harrington 2007 pelvis-width regression (references.md,
-    # mm: x = -0.24 PD - 9.9, y = -0.30 PW - 10.9, z = +/-(0.33 PW + 7.3)).
+    # mm: x = -0.24 PD - 9.9, y = -0.30 PW - 10.9, z = +/-(0.33 PW + 7.3)) plus the body's offset from it.
     _, _, truth = _sim_kw(speed_m_s=8.5, seed=5)
     p = truth.landmarks_lab
     mid_asis = 0.5 * (p["left_asis"] + p["right_asis"])
@@ -96,7 +96,8 @@ def test_landmarks_reproduce_the_truth_frames_by_the_developer_definitions():
     pd = np.linalg.norm(mid_asis - mid_psis, axis=-1)[0] * 1000
     for side in SIDES:
         sign = 1.0 if side == "right" else -1.0
-        local = np.array([-0.24 * pd - 9.9, -0.30 * pw - 10.9, sign * (0.33 * pw + 7.3)]) / 1000
+        offset = np.array(truth.body.hip_centre_offset_m) * [1.0, 1.0, sign]  # a person's deviation from it
+        local = np.array([-0.24 * pd - 9.9, -0.30 * pw - 10.9, sign * (0.33 * pw + 7.3)]) / 1000 + offset
         hip = mid_asis + pelvis @ local
         assert np.allclose(hip, truth.joint_centres[f"{side}_hip"], atol=1e-9)
         knee = 0.5 * (p[f"{side}_lateral_epicondyle"] + p[f"{side}_medial_epicondyle"])
@@ -356,7 +357,8 @@ def test_same_seed_same_trial_and_strides_vary_naturally():
 
 
 def test_noise_and_gaps_in_the_file_array():
-    labels, xyz, truth = _sim_kw(speed_m_s=8.5, seed=10, n_gaps=4)
+    # the noise model alone: without the (default 2 mm) skin movement of thigh and shank markers
+    labels, xyz, truth = _sim_kw(speed_m_s=8.5, seed=10, n_gaps=4, soft_tissue_mm=0.0)
     clean = np.stack([truth.markers_lab[lab] for lab in labels], axis=1) * 1000.0
     diff = xyz - clean
     gaps = np.isnan(xyz).any(axis=2)
@@ -515,7 +517,7 @@ def test_specs_outside_the_simulator_range_raise_config_errors():
     from hamstride.errors import ConfigError
 
     with pytest.raises(ConfigError):
-        simulate_sprint(SprintSpec(speed_m_s=3.0))
+        simulate_sprint(SprintSpec(speed_m_s=2.0))  # walking pace (the simulator jogs from 2.5 m/s)
     with pytest.raises(ConfigError):
         simulate_sprint(SprintSpec(vertical_axis="x"))
     with pytest.raises(ConfigError):
@@ -564,7 +566,10 @@ def test_hip_centre_agrees_with_both_harrington_forms(height, sex):
     pd = body.pelvis_depth_m * 1000
     ll = np.mean([np.linalg.norm(p[f"{s}_asis"] - p[f"{s}_medial_malleolus"], axis=1).mean() for s in SIDES]) * 1000
     full = np.array([-0.24 * pd - 9.9, -0.16 * pw - 0.04 * ll - 7.1, 0.28 * pd + 0.16 * pw + 7.9])
-    local = synth.hip_centre_local(body, "right") * 1000
+    # the true hip centre = the PW-only form + a person's offset of the regression's own size (5/4/3 mm, [V])
+    offset = np.array(body.hip_centre_offset_m) * 1000
+    assert 5.0 < np.linalg.norm(offset) < 15.0
+    local = synth.hip_centre_local(body, "right") * 1000 - offset
     assert np.allclose(local, [-0.24 * pd - 9.9, -0.30 * pw - 10.9, 0.33 * pw + 7.3], atol=1e-9)
     assert np.max(np.abs(full - local)) < 2.5  # mm; well inside the regression's own 3-5 mm error
     assert 200 <= pw <= 290 and 120 <= pd <= 175  # adult sizes, small women to tall men (common practice)

@@ -399,6 +399,9 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
             rec["cutoff_hz"] = meta.get("info", {}).get("cutoff_hz")
             rec["speed_m_s"] = meta.get("info", {}).get("speed_m_s")
             rec["n_strides"] = meta.get("info", {}).get("n_strides")
+            # the analysed window (overground capture volume) and the landmarks rebuilt from the static trial
+            for name in ("window_start_s", "window_end_s", "window_duration_s", "rebuilt_landmarks"):
+                rec[name] = meta.get("info", {}).get(name)
             key = rec["cache_key"]
             if key not in gathered:
                 gathered.add(key, (cache / f"{key}.strides.csv").read_text(encoding="utf-8"))

@@ -6,7 +6,7 @@ and ``--strict`` turns into errors. The checks only look at the objects handed b
 Landmarks), so they import nothing from a later stage.
 
 Codes raised here: too_short, rate_too_low, no_marker_data, bad_coordinates, duplicate_labels, long_gap,
-sides_swapped, units_suspect, body_size, pelvis_width, not_sprint. Warnings: frames_missing, empty_frames,
+sides_swapped, units_suspect, body_size, pelvis_width, not_sprint, few_strides. Warnings: frames_missing, empty_frames,
 bad_coordinates, duplicate_labels.
 """
 from __future__ import annotations
@@ -30,9 +30,11 @@ MIN_DURATION_S = 0.3
 MAX_MISSING_FRACTION = 0.2
 # More than this fraction of all points with NaN/inf/absurd coordinates: the data block itself is corrupt.
 MAX_BAD_COORDINATE_FRACTION = 0.2
-# Below this running speed a trial is a jog, not a sprint (jogging 2.5-4 m/s; common practice). Return-to-run
-# sessions at 50-70 % of top speed (about 4.5-7 m/s) still pass.
-MIN_SPRINT_SPEED_M_S = 4.0
+# Below this running speed a trial is not analysed. A return-to-run progression starts at jogging pace, about
+# 3-5 m/s (issue 13), so every run from about 3 m/s passes, with a margin for a slow first jog; walking is refused
+# by its missing flight phase (events: not_running), not by speed. The speed stays in the outputs and the
+# speed_low flag (metrics) keeps comparisons fair (common practice).
+MIN_SPRINT_SPEED_M_S = 2.5
 
 # Adult sizes used to recognise unit mistakes (from memory; common practice): inter-ASIS distance about 0.25 m
 # (range 0.15-0.40 m), lateral epicondyle to lateral malleolus about 0.42 m, heel to first metatarsal head about
@@ -101,6 +103,10 @@ def check_marker_trial(trial: MarkerTrial, landmark_labels: Iterable[str] = (), 
             f"probably cut short: full disk or interrupted copy?); the {trial.n_frames} frames were analysed"))
     visible = finite_points(trial.xyz)  # [frame, marker]
     empty = ~visible.any(axis=1)
+    seen = np.flatnonzero(~empty)
+    if seen.size:  # before the first and after the last marker the athlete is outside the capture volume: no gap
+        empty[:seen[0]] = False
+        empty[seen[-1] + 1:] = False
     bad = int(trial.meta.get("bad_coordinates", 0) or 0) if isinstance(trial.meta, Mapping) else 0
     n_points = max(trial.xyz.shape[0] * trial.xyz.shape[1], 1)
     if bad > MAX_BAD_COORDINATE_FRACTION * n_points:
@@ -108,7 +114,7 @@ def check_marker_trial(trial: MarkerTrial, landmark_labels: Iterable[str] = (), 
             f"{bad} of {n_points} marker positions ({100 * bad / n_points:.0f}%) are infinite or absurdly far "
             "(beyond 10 km); the data block is corrupt. Re-export the trial from the capture software",
             trial=name, code="bad_coordinates")
-    if empty.all():
+    if not seen.size:
         raise PlausibilityError("every marker is missing in every frame; there is nothing to analyse. Check that "
                                 "the trial was reconstructed (labelled) before export", trial=name,
                                 code="no_marker_data")
@@ -256,12 +262,31 @@ def check_body_size(lm: Landmarks, units_in_file: str = "mm") -> None:
 # ----------------------------------------------------------------------------------------------- speed
 
 def check_speed(speed_m_s: float, trial: str, *, min_speed_m_s: float = MIN_SPRINT_SPEED_M_S) -> None:
-    """Raise EventError 'not_sprint' when the running speed is jogging pace."""
+    """Raise EventError 'not_sprint' when the running speed is below the analysed range (default 2.5 m/s)."""
     if math.isfinite(speed_m_s) and speed_m_s < min_speed_m_s:
         raise EventError(
-            f"running speed {speed_m_s:.1f} m/s is below {min_speed_m_s:g} m/s: this looks like a jog or a walk, not "
-            "a sprint. Check the trial was filed under the right name; slow runs are not analysed", trial=trial,
-            code="not_sprint")
+            f"running speed {speed_m_s:.1f} m/s is below {min_speed_m_s:g} m/s, slower than the jogging pace "
+            "hamstride analyses. Check the trial was filed under the right name, or lower min_speed_m_s in the "
+            "configuration (hamstride config)", trial=trial, code="not_sprint")
+
+
+def check_stride_count(strides, min_strides: int, trial: str, window=None, dropped_s=()) -> None:
+    """Raise EventError 'few_strides' when a leg has fewer whole strides (foot strike to foot strike, valid or not)
+    than ``min_strides``, naming how many were visible and, for a capture volume, the window where every landmark
+    is seen (``landmarks.VisibleWindow``) and the events at its edges that were not trusted."""
+    counts = {side: sum(1 for s in strides if s.side == side) for side in ("left", "right")}
+    if min(counts.values()) >= min_strides:
+        return
+    where = ""
+    if window is not None and not window.whole:
+        where = f" in the {window.describe()} where every landmark is seen (the capture volume)"
+        if len(dropped_s):
+            where += (f"; {len(dropped_s)} foot event(s) within a few frames of the window's edges were not trusted "
+                      "(markers just appearing or vanishing)")
+    raise EventError(
+        f"too few strides: {counts['left']} left and {counts['right']} right whole stride(s) were visible{where}; at "
+        f"least {min_strides} per leg needed. Widen the capture volume or move it so it holds two whole strides per "
+        "leg, or record a longer trial", trial=trial, code="few_strides")
 
 
 def strict_failure(warnings: Iterable[TrialWarning], trial: str) -> PlausibilityError | None:

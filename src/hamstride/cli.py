@@ -97,18 +97,24 @@ def landmarks_cmd(
         None, "--write-map", help="Write a marker map for this file's labels (best guess per landmark, other "
                                   "candidates in comments, unresolved ones as commented lines to fill in)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Let --write-map replace an existing file."),
+    static: Optional[Path] = typer.Option(None, "--static", help="Static standing trial: landmarks missing in the "
+                                          "trial are rebuilt from their segment's cluster, and shown as rebuilt."),
 ) -> None:
-    """Show how each anatomical landmark resolved in a trial (label used, % valid frames).
+    """Show how each anatomical landmark resolved in a trial (label used, % valid frames), which were rebuilt from a
+    static trial, and the window in which every required landmark is seen.
 
     Example: `hamstride landmarks demo_trials/KT07/2026-03-02_testing/sprint_01.c3d`
 
     Your lab's labels: `hamstride landmarks TRIAL.c3d --write-map my_markers.toml`, check the file, then pass
-    `--markers my_markers.toml` to every command.
+    `--markers my_markers.toml` to every command. Knee and ankle markers only in the static trial:
+    `hamstride landmarks run_03.c3d --static static.c3d`.
 
     Exit code 0 when every required landmark resolves, 1 otherwise, 2 on usage errors.
     """
-    from .io import atomic_write_text, read_c3d_isolated
-    from .landmarks import LandmarkError, load_marker_map, plain_name, resolve_landmarks
+    from .io import atomic_write_text, finite_points, read_c3d_isolated
+    from .landmarks import LandmarkError, load_marker_map, plain_name, resolve_landmarks, visible_window
+    from .pipeline import landmarks_with_static
+    from .segments import rebuilt_landmarks
     from .squadinput import check_marker_map, require_file
 
     try:
@@ -125,6 +131,9 @@ def landmarks_cmd(
                                   code="usage")
         marker_map = check_marker_map(markers)
         data = read_c3d_isolated(trial)
+        if static is not None:
+            require_file(static, "static trial")
+            read_c3d_isolated(static)
     except HamstrideError as exc:
         _fail(exc)
     if write_map is not None:
@@ -137,14 +146,18 @@ def landmarks_cmd(
         say(f"wrote {write_map}: {guessed} of {len(proposal.landmarks)} landmarks guessed"
             + (f", to fill in: {', '.join(proposal.unresolved)}" if proposal.unresolved else "")
             + f". Check it, then use --markers {write_map}")
+    rebuilt: dict[str, float] = {}
     try:
-        lm = resolve_landmarks(data, marker_map)
+        lm, seen, _, _ = landmarks_with_static(data, marker_map, static)
+        rebuilt = rebuilt_landmarks(seen, lm)
         problem = None
     except LandmarkError as exc:
         if exc.code == "several_subjects":  # no table can be shown until the map names the subject
             _fail(exc)
         problem = exc
-        lm = resolve_landmarks(data, marker_map, allow_missing=tuple(marker_map.landmarks))
+        lm = seen = resolve_landmarks(data, marker_map, allow_missing=tuple(marker_map.landmarks))
+    except HamstrideError as exc:
+        _fail(exc)
     from .labframe import detect_lab_frame
 
     try:
@@ -158,11 +171,25 @@ def landmarks_cmd(
     table.add_column("label")
     table.add_column("valid frames %", justify="right")
     table.add_column("")
-    for row in lm.report:
+    n = max(data.n_frames, 1)
+    for row in seen.report:
         status = "required" if row.required else "optional"
-        label = Text(row.label) if row.label is not None else Text(f"missing ({row.note})", style="red")
-        table.add_row(Text(plain_name(row.landmark)), label, f"{row.valid_pct:.0f}", status)
+        label = row.label if row.label is not None else f"missing ({row.note})"
+        valid = row.valid_pct
+        if row.landmark in rebuilt:
+            label = (f"{row.label}, gaps rebuilt from the static trial" if row.label is not None
+                     else "rebuilt from the static trial")
+            valid = 100.0 * finite_points(lm.points[row.landmark]).sum() / n
+        style = "red" if row.label is None and row.landmark not in rebuilt else ""
+        table.add_row(Text(plain_name(row.landmark)), Text(label, style=style), f"{valid:.0f}", status)
     console.print(table)
+    if static is not None:
+        names = ", ".join(f"{plain_name(k)} ({v:.0f}% of frames)" for k, v in rebuilt.items()) or "none"
+        say(f"rebuilt from {static.name}: {names}")
+    if problem is None:
+        window = visible_window(lm)
+        where = "the whole trial" if window.whole else window.describe()
+        say(f"every required landmark seen: {where}")
     if problem is not None:
         _fail(problem)
 
@@ -311,6 +338,12 @@ def analyze_cmd(
     say(f"{trial.name} (athlete {athlete_code}, session {session_name}): {n.get('left', 0)} left and "
         f"{n.get('right', 0)} right strides, speed {result.info['speed_m_s']:.2f} m/s, cutoff "
         f"{result.info['cutoff_hz']:.1f} Hz ({result.info['cutoff_method']}); wrote {out}/strides.csv and curves.csv")
+    say(f"analysed window {result.info['window_start_s']:.2f}-{result.info['window_end_s']:.2f} s "
+        f"({result.info['window_duration_s']:.2f} s: every required landmark seen)")
+    if result.info.get("rebuilt_landmarks"):
+        rebuilt = ", ".join(f"{name.replace('_', ' ')} ({pct:.0f}% of frames)"
+                            for name, pct in result.info["rebuilt_landmarks"].items())
+        say(f"rebuilt from the static trial: {rebuilt}")
     plates = result.info.get("force_plates")
     if plates:
         offsets = plates["marker_offset_from_plates"]

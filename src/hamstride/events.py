@@ -21,7 +21,7 @@ delays the strike (about +7 ms at 10 Hz on generated sprints).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Iterable, Mapping
 
 import numpy as np
@@ -501,6 +501,15 @@ def _flight_times(foot_strikes: Mapping[str, np.ndarray], toe_offs: Mapping[str,
 
 def _check_strides(foot_strikes: Mapping[str, np.ndarray], toe_offs: Mapping[str, np.ndarray], rate_hz: float,
                    duration_s: float, trial: str | None, min_strides: int) -> None:
+    # walking first: a walk with few strikes found is still a walk, not a short run
+    flights = _flight_times(foot_strikes, toe_offs)
+    if flights.size and np.median(flights) < 1.0 / rate_hz:
+        raise EventError(
+            f"no flight phase: one foot lands before the other leaves the ground (median "
+            f"{-1000 * np.median(flights):.0f} ms with both feet down). This is walking, not a run: hamstride "
+            "analyses running (from jogging to sprinting), where both feet leave the ground between steps.",
+            trial=trial, code="not_running",
+        )
     for side in SIDES:
         n_fs = foot_strikes[side].size
         if n_fs - 1 < min_strides:
@@ -511,14 +520,6 @@ def _check_strides(foot_strikes: Mapping[str, np.ndarray], toe_offs: Mapping[str
                 "or check that both feet are labelled.",
                 trial=trial, code="few_strides",
             )
-    flights = _flight_times(foot_strikes, toe_offs)
-    if flights.size and np.median(flights) < 1.0 / rate_hz:
-        raise EventError(
-            f"no flight phase: one foot lands before or as the other leaves the ground (median "
-            f"{1000 * np.median(flights):.0f} ms from toe-off to the other foot's strike). This looks like a jog or "
-            "walk, not a sprint; the analysis needs running with a flight phase between steps.",
-            trial=trial, code="no_flight",
-        )
 
 
 def _c3d_events(c3d_events: Iterable) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
@@ -593,7 +594,7 @@ def detect_events(
     The vertical-only rules serve overground and treadmill trials alike, so `treadmill` (accepted for callers
     that know it) does not change the result.
     Raises EventError 'few_strides' when a leg has fewer than `min_strides` complete strides and
-    'no_flight' when there is no flight phase between steps.
+    'not_running' when there is no flight phase between steps (walking).
     """
     rate = float(lm.rate_hz)
     trial = getattr(lm, "trial", None)
@@ -652,3 +653,27 @@ def detect_events(
         marker_toe_offs_s={s: np.sort(marker_to[s]) for s in SIDES} if marker_to is not None else {},
         foot_strike_sources={s: ("file" if method == "c3d" else "markers",) * foot_strikes[s].size for s in SIDES},
     )
+
+
+def drop_events_near_edges(events: GaitEvents, n_frames: int, rate_hz: float, *, start: bool, end: bool,
+                           guard_s: float = GAP_GUARD_S) -> tuple[GaitEvents, list[float]]:
+    """Marker events within ``guard_s`` of the first (``start``) or last (``end``) frame removed: at the edge of a
+    capture volume markers have only just appeared (or are about to vanish), so, as next to a gap, they are not
+    trusted. Events read from the file are kept. Returns the events and the times dropped (s)."""
+    if events.method != "markers" or not (start or end):
+        return events, []
+    lo = guard_s if start else -np.inf
+    hi = (n_frames - 1) / rate_hz - guard_s if end else np.inf
+    dropped: list[float] = []
+
+    def keep(times: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+        out = {}
+        for side, t in times.items():
+            t = np.asarray(t, float)
+            inside = (t >= lo) & (t <= hi)
+            dropped.extend(float(x) for x in t[~inside])
+            out[side] = t[inside]
+        return out
+
+    kept = replace(events, foot_strikes_s=keep(events.foot_strikes_s), toe_offs_s=keep(events.toe_offs_s))
+    return kept, sorted(dropped)

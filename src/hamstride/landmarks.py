@@ -36,8 +36,14 @@ DEFAULT_LABELS: dict[str, str] = {f"{side}_{site}": f"{side[0]}.{label}" for sid
 DEFAULT_CLUSTERS: dict[str, tuple[str, ...]] = {f"{side}_{seg}_cluster": tuple(f"{side[0]}.{seg}.{k}" for k in "abc")
                                                 for side in SIDES for seg in CLUSTER_SEGMENTS}
 REQUIRED_LANDMARKS = tuple(f"{side}_{site}" for side in SIDES for site in REQUIRED_SITES)
-# Medial markers may come from a static trial instead (rigid-fit reconstruction in the segments stage).
-STATIC_RECOVERABLE = tuple(f"{side}_{site}" for side in SIDES for site in ("medial_epicondyle", "medial_malleolus"))
+# Landmarks a static trial can rebuild from a cluster on their segment (rigid fit in the segments stage): the
+# epicondyles from a thigh cluster, the malleoli from a shank cluster, lateral and medial alike.
+CLUSTER_SITES = {"thigh": ("lateral_epicondyle", "medial_epicondyle"),
+                 "shank": ("lateral_malleolus", "medial_malleolus")}
+STATIC_RECOVERABLE = tuple(f"{side}_{site}" for side in SIDES for sites in CLUSTER_SITES.values() for site in sites)
+# The visible window (overground capture volumes) runs from the athlete's entry to their exit: stretches shorter than
+# this with every required landmark seen are flicker at the volume's edge, not the athlete inside (design choice).
+MIN_VISIBLE_RUN_S = 0.05
 
 
 def plain_name(landmark: str) -> str:
@@ -129,6 +135,98 @@ class Landmarks:
         return dc_replace(self, **changes)
 
 
+def recoverable_landmarks(marker_map: MarkerMap, static_lm: "Landmarks", trial: MarkerTrial) -> tuple[str, ...]:
+    """Required landmarks a static trial can rebuild in ``trial``: those on a segment whose cluster is in the static
+    trial and whose cluster labels are all in the trial."""
+    labels = {label.lower() for label in trial.labels}
+    out = []
+    for side in SIDES:
+        for segment, sites in CLUSTER_SITES.items():
+            name = f"{side}_{segment}_cluster"
+            cluster = marker_map.clusters.get(name, ())
+            if name in static_lm.clusters and cluster and all(lab.lower() in labels for lab in cluster):
+                out += [f"{side}_{site}" for site in sites]
+    return tuple(out)
+
+
+@dataclass(frozen=True)
+class VisibleWindow:
+    """Frames ``start`` .. ``stop - 1`` of a file of ``n_frames``: where every required landmark is seen."""
+
+    start: int
+    stop: int
+    n_frames: int
+    rate_hz: float
+
+    @property
+    def whole(self) -> bool:
+        return self.start == 0 and self.stop == self.n_frames
+
+    @property
+    def start_s(self) -> float:
+        return self.start / self.rate_hz
+
+    @property
+    def end_s(self) -> float:
+        return (self.stop - 1) / self.rate_hz
+
+    @property
+    def duration_s(self) -> float:
+        return (self.stop - 1 - self.start) / self.rate_hz
+
+    def describe(self) -> str:
+        total = self.n_frames / self.rate_hz
+        return f"{self.start_s:.2f}-{self.end_s:.2f} s ({self.duration_s:.2f} s of {total:.2f} s)"
+
+
+def visible_window(lm: "Landmarks", max_gap_frames: int = 10, *,
+                   min_run_s: float = MIN_VISIBLE_RUN_S) -> VisibleWindow:
+    """The analysed window of an overground capture: from the first to the last frame in which every required
+    landmark is seen (markers appear as the athlete enters the capture volume and vanish as they leave).
+
+    Gaps of up to ``max_gap_frames`` inside are bridged (they are filled later), and stretches shorter than
+    ``min_run_s`` with every landmark seen do not open or close the window (flicker at the volume's edge). Longer
+    gaps inside the window stay gaps and are judged as such. The whole trial when no stretch qualifies (the gap
+    checks then say what is missing).
+    """
+    n = lm.n_frames
+    whole = VisibleWindow(0, n, n, float(lm.rate_hz))
+    names = [name for name in REQUIRED_LANDMARKS if name in lm.points]
+    if not names or n == 0:
+        return whole
+    seen = np.all([finite_points(np.asarray(lm.points[name], float)) for name in names], axis=0)
+    padded = np.concatenate([[False], seen, [False]]).astype(np.int8)
+    edges = np.flatnonzero(np.diff(padded))
+    starts, stops = edges[0::2], edges[1::2]
+    if starts.size == 0:
+        return whole
+    # bridge short interior gaps, then keep stretches long enough to be the athlete inside the volume
+    keep = np.concatenate([[True], (starts[1:] - stops[:-1]) > max_gap_frames])
+    group = np.cumsum(keep) - 1
+    run_start = starts[keep]
+    run_stop = np.array([stops[group == g].max() for g in range(len(run_start))])
+    long_enough = (run_stop - run_start) >= max(int(round(min_run_s * lm.rate_hz)), 2)
+    if not long_enough.any():
+        return whole
+    return VisibleWindow(int(run_start[long_enough][0]), int(run_stop[long_enough][-1]), n, float(lm.rate_hz))
+
+
+def crop_landmarks(lm: "Landmarks", window: VisibleWindow, *, keep_clusters: bool = True) -> "Landmarks":
+    """The landmarks (and clusters) of frames ``window.start`` .. ``window.stop - 1``."""
+    sl = slice(window.start, window.stop)
+    return lm.replace(points={k: v[sl] for k, v in lm.points.items()},
+                      clusters={k: v[sl] for k, v in lm.clusters.items()} if keep_clusters else {})
+
+
+def crop_trial(trial: MarkerTrial, window: VisibleWindow) -> MarkerTrial:
+    """The trial's frames ``window.start`` .. ``window.stop - 1``, its time starting again at 0 s there (the file's
+    events shifted with it; those outside the window dropped)."""
+    t0, t1 = window.start_s, window.end_s
+    events = tuple(dc_replace(ev, time_s=ev.time_s - t0) for ev in trial.events if t0 <= ev.time_s <= t1)
+    return dc_replace(trial, xyz=trial.xyz[window.start:window.stop], first_frame=trial.first_frame + window.start,
+                      events=events)
+
+
 def _suggest(label: str, labels: tuple[str, ...]) -> str:
     close = difflib.get_close_matches(label, labels, n=3, cutoff=0.4)
     lowered = {lab.lower(): lab for lab in labels}
@@ -214,8 +312,13 @@ def resolve_landmarks(trial: MarkerTrial, marker_map: MarkerMap | None = None, *
             f'prefix = "{first}" (or prefixed labels in [landmarks], e.g. right_asis = "{first}:r.asis"), and '
             f"rerun with --markers", trial=trial.name, code="several_subjects")
     if missing:
+        static_hint = ""
+        if any(name in STATIC_RECOVERABLE and name not in points and name not in allow_missing
+               for name in marker_map.landmarks):
+            static_hint = ("; knee and ankle markers placed only in the static trial are rebuilt from the thigh and "
+                           "shank clusters when the static trial is given (--static, or static*.c3d in the session)")
         raise LandmarkError("required landmark(s) not found: " + "; ".join(missing)
-                            + f". Map them in a markers.toml ([landmarks] section) — using {marker_map.source}",
-                            trial=trial.name, code="landmark_missing")
+                            + f". Map them in a markers.toml ([landmarks] section) — using {marker_map.source}"
+                            + static_hint, trial=trial.name, code="landmark_missing")
     return Landmarks(trial=trial.name, rate_hz=trial.rate_hz, points=points, clusters=clusters, labels_used=used,
                      report=tuple(report))

@@ -6,7 +6,7 @@ The same function serves the CLI, the squad batch and a notebook.
 from __future__ import annotations
 
 import functools
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Mapping, NamedTuple
 
@@ -15,7 +15,7 @@ import pandas as pd
 
 from . import __version__
 from .checks import strict_failure
-from .errors import HamstrideError, PlausibilityError, TrialWarning
+from .errors import EventError, HamstrideError, PlausibilityError, TrialWarning
 
 STRIDE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "foot_strike_s", "toe_off_s", "next_foot_strike_s",
@@ -51,13 +51,13 @@ class AnalysisOptions:
     cutoff_hz: float | None = None  # None: Winter's residual analysis per trial
     max_gap_frames: int = 10  # common practice
     hip_method: str = "harrington"
-    stride_time_range_s: tuple[float, float] = (0.3, 0.8)  # common practice
-    contact_range_s: tuple[float, float] = (0.06, 0.3)  # common practice
+    stride_time_range_s: tuple[float, float] = (0.3, 1.0)  # strides.DEFAULT_STRIDE_TIME_RANGE_S (sprint to jog)
+    contact_range_s: tuple[float, float] = (0.06, 0.4)  # strides.DEFAULT_CONTACT_RANGE_S (sprint to jog)
     monte_carlo_samples: int = 200
     force_band_samples: int = 20  # Monte Carlo samples of the force and work band (each a full sharing solve); 0: none
     scale_force_to_mass: bool = False  # no effect since issue 14: strength always scales with mass x height
     min_strides: int = 1
-    min_speed_m_s: float = 4.0  # slower is a jog, not a sprint (checks.MIN_SPRINT_SPEED_M_S; common practice)
+    min_speed_m_s: float = 2.5  # return-to-run jogging from about 3 m/s is analysed (checks.MIN_SPRINT_SPEED_M_S)
     strict: bool = False  # --strict: any warning fails the trial
 
 
@@ -113,10 +113,37 @@ class Kinematics:
     warnings: tuple[str, ...]
     warning_codes: tuple[str, ...] = ()  # one short code per warning (errors.TrialWarning)
     plates: object = None  # plates.PlateReport when the file has force plates
+    window: object = None  # landmarks.VisibleWindow: the file's frames analysed (the arrays above hold only those)
+    rebuilt: Mapping[str, float] = field(default_factory=dict)  # landmark -> % of window frames rebuilt (static)
 
     @property
     def valid_strides(self) -> list:
         return [s for s in self.strides if s.valid]
+
+
+def landmarks_with_static(trial, marker_map, static_path: str | Path | None = None):
+    """A trial's landmarks, with those missing rebuilt from a static trial's calibration (rigid fit of the segment's
+    cluster; segments.reconstruct_missing). Returns (landmarks, landmarks as seen in the file, the landmarks the
+    static trial could rebuild, the calibration or None). Errors in the static trial name the dynamic trial."""
+    from .io import read_c3d
+    from .landmarks import recoverable_landmarks, resolve_landmarks
+    from .segments import calibrate, reconstruct_missing
+    from .signal import smooth_landmarks
+
+    if static_path is None:
+        lm = resolve_landmarks(trial, marker_map)
+        return lm, lm, (), None
+    try:
+        static = read_c3d(static_path)
+        static_lm = resolve_landmarks(static, marker_map)
+        static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
+        calibration = calibrate(static_lm)
+    except HamstrideError as exc:  # name the sprint trial and say the problem is in its static trial
+        raise type(exc)(f"its static calibration trial {Path(static_path).name} failed ({exc.message}); fix or "
+                        "remove that file", trial=trial.name, code=exc.code) from None
+    recoverable = recoverable_landmarks(marker_map, static_lm, trial)
+    seen = resolve_landmarks(trial, marker_map, allow_missing=recoverable)
+    return reconstruct_missing(seen, calibration), seen, recoverable, calibration
 
 
 def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *,
@@ -124,48 +151,58 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
                      markers: str | Path | None = None) -> Kinematics:
     """io -> landmarks -> signal -> segments -> angles -> events -> strides for one trial."""
     from .angles import joint_angles
-    from .checks import check_body_size, check_landmark_gaps, check_marker_trial, check_sides, check_speed
-    from .events import detect_events, is_treadmill, running_speed
+    from .checks import (check_body_size, check_landmark_gaps, check_marker_trial, check_sides, check_speed,
+                         check_stride_count)
+    from .events import detect_events, drop_events_near_edges, is_treadmill, running_speed
     from .io import read_c3d
     from .labframe import to_lab_frame
-    from .landmarks import STATIC_RECOVERABLE, load_marker_map, resolve_landmarks
-    from .plates import apply_plate_contacts, attach_force_plates
-    from .segments import build_body, calibrate, reconstruct_missing
-    from .signal import smooth_landmarks
+    from .landmarks import crop_landmarks, crop_trial, load_marker_map, visible_window
+    from .plates import apply_plate_contacts, attach_force_plates, crop_force_plates
+    from .segments import build_body, rebuilt_landmarks
+    from .signal import EDGE_GAP_NOTE, smooth_landmarks
     from .strides import cut_strides
 
     marker_map = load_marker_map(markers)
     trial = read_c3d(Path(path))
     warnings: list[TrialWarning] = list(check_marker_trial(trial, marker_map.landmarks.values()))
-    calibration = None
-    if static_path is not None:
-        try:
-            static = read_c3d(static_path)
-            static_lm = resolve_landmarks(static, marker_map)
-            static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
-            calibration = calibrate(static_lm)
-        except HamstrideError as exc:  # name the sprint trial and say the problem is in its static trial
-            raise type(exc)(f"its static calibration trial {Path(static_path).name} failed ({exc.message}); fix or "
-                            "remove that file", trial=trial.name, code=exc.code) from None
-    lm = resolve_landmarks(trial, marker_map, allow_missing=STATIC_RECOVERABLE if calibration is not None else ())
-    if calibration is not None:
-        lm = reconstruct_missing(lm, calibration)
+    lm, seen, recoverable, calibration = landmarks_with_static(trial, marker_map, static_path)
+    # overground capture volume: analyse where every required landmark is seen (missing before the athlete enters
+    # and after they leave is not a gap)
+    window = visible_window(lm, options.max_gap_frames)
+    if not window.whole:
+        lm, seen = crop_landmarks(lm, window, keep_clusters=False), crop_landmarks(seen, window)
+        trial = crop_trial(trial, window)
     trial, lm = to_lab_frame(trial, lm)  # file axes -> x forward, y left, z up, from the landmarks
-    check_landmark_gaps(lm, skip=STATIC_RECOVERABLE if calibration is not None else ())
+    rebuilt = rebuilt_landmarks(seen, lm) if calibration is not None else {}
+    check_landmark_gaps(lm, skip=recoverable)
     check_sides(lm, marker_map)
     check_body_size(lm, trial.units_in_file)
     # the clusters have done their work (rebuilding landmarks from the static trial): only the points are filtered
     lm, filter_info = smooth_landmarks(lm, cutoff_hz=options.cutoff_hz, max_gap_frames=options.max_gap_frames,
                                        keep_clusters=False)
-    warnings.extend(TrialWarning("long_gap", w) for w in filter_info.long_gaps)
+    # at the edges of a capture volume's window, a marker not yet (or no longer) seen is outside it, not a gap
+    warnings.extend(TrialWarning("long_gap", w) for w in filter_info.long_gaps
+                    if window.whole or EDGE_GAP_NOTE not in w)
     leg_length = athlete.leg_length_m or getattr(calibration, "leg_length_m", None)
     body = build_body(lm, hip_method=options.hip_method, leg_length_m=leg_length)
     angles = joint_angles(body)
     knee = {side: angles[side]["knee_flexion"] for side in SIDES}
-    events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee, min_strides=options.min_strides)
+    try:  # in a capture volume's window the strides are counted after the edge guard (check_stride_count)
+        events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee,
+                               min_strides=options.min_strides if window.whole else 0)
+    except EventError as exc:
+        if exc.code != "few_strides" or window.whole:
+            raise
+        message = exc.message.removeprefix(f"trial {exc.trial}: ")
+        raise EventError(f"{message} Every landmark is seen only {window.describe()} of the file (the capture "
+                         "volume)", trial=trial.name, code="few_strides") from None
+    events, dropped = drop_events_near_edges(events, lm.n_frames, trial.rate_hz, start=window.start > 0,
+                                             end=window.stop < window.n_frames)
     warnings.extend(TrialWarning("event_rules", w) for w in events.warnings)
     warnings.extend(TrialWarning("event_disagreement", w) for w in events.disagreements)
     trial = attach_force_plates(trial)  # needs the trial's lab frame (file axes -> lab) for the plate corners
+    if window.start:  # plate samples from the analysed window's first frame, as the events' times
+        trial = replace(trial, force_plates=crop_force_plates(trial.force_plates, window.start_s))
     events, plate_report = apply_plate_contacts(events, trial.force_plates, lm)
     if plate_report is not None:
         warnings.extend(TrialWarning("plate_contact", w) for w in plate_report.left_out)
@@ -174,10 +211,12 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     check_speed(speed, trial.name, min_speed_m_s=options.min_speed_m_s)
     strides = cut_strides(events, trial.rate_hz, lm.n_frames, knee, stride_time_range=options.stride_time_range_s,
                           contact_range=options.contact_range_s)
+    check_stride_count(strides, options.min_strides, trial.name, window, dropped)
     warnings.extend(TrialWarning("stride_rejected", f"{s.side} stride {s.index + 1}: {s.reason}")
                     for s in strides if not s.valid)
     return Kinematics(trial, lm, filter_info, body, angles, events, tuple(strides), treadmill, speed,
-                      tuple(w.message for w in warnings), tuple(w.code for w in warnings), plate_report)
+                      tuple(w.message for w in warnings), tuple(w.code for w in warnings), plate_report,
+                      window, rebuilt)
 
 
 def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
@@ -191,8 +230,11 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
         raise PlausibilityError("no valid stride in the trial (" + "; ".join(rejected[:3]) + ")", trial=trial.name,
                                 code="few_strides")
     body_mass = athlete.body_mass_kg or trial.meta.get("body_mass_kg")
+    window = kin.window
     info = {
-        "trial": trial.name, "rate_hz": trial.rate_hz, "n_frames": trial.n_frames,
+        "trial": trial.name, "rate_hz": trial.rate_hz, "n_frames": window.n_frames,
+        "window_start_s": window.start_s, "window_end_s": window.end_s, "window_duration_s": window.duration_s,
+        "rebuilt_landmarks": dict(kin.rebuilt),
         "cutoff_hz": kin.filter_info.cutoff_hz, "cutoff_method": kin.filter_info.method,
         "vertical_axis": trial.lab.vertical_axis, "travel_axis": trial.lab.travel_axis, "treadmill": kin.treadmill,
         "speed_m_s": kin.speed_m_s, "event_method": kin.events.method,
@@ -205,6 +247,9 @@ def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions()
         info["force_plates"] = kin.plates.as_info()
     strides, curves = _muscle_tables(trial, kin.body, kin.angles, valid, options, athlete, body_mass,
                                      kin.speed_m_s, info)
+    if window.start:  # times from the file's first frame, as in the file and its events
+        for name in ("foot_strike_s", "toe_off_s", "next_foot_strike_s"):
+            strides[name] = strides[name] + window.start_s
     if options.strict:
         failure = strict_failure(map(TrialWarning, info["warning_codes"], info["warnings"]), trial.name)
         if failure is not None:

@@ -107,6 +107,12 @@ def attach_force_plates(trial: "MarkerTrial") -> "MarkerTrial":
     return replace(trial, force_plates=read_force_plates(trial.path, trial.lab.file_to_lab, trial.units_in_file))
 
 
+def crop_force_plates(plates: Sequence[ForcePlate], start_s: float) -> tuple[ForcePlate, ...]:
+    """The plates' samples from ``start_s`` on (time 0 s there), for a trial cropped to its visible window."""
+    return tuple(replace(p, vertical_force_n=p.vertical_force_n[int(round(start_s * p.analog_rate_hz)):])
+                 for p in plates)
+
+
 # --------------------------------------------------------------------------------------------------- contacts
 def force_contacts(force_n: np.ndarray, rate_hz: float, threshold_n: float = CONTACT_THRESHOLD_N
                    ) -> np.ndarray:

@@ -271,6 +271,18 @@ def reconstruct_missing(lm: Landmarks, cal: StaticCalibration) -> Landmarks:
     return lm.replace(points=points)
 
 
+def rebuilt_landmarks(before: Landmarks, after: Landmarks) -> dict[str, float]:
+    """Landmark -> percent of frames that ``reconstruct_missing`` filled (seen in ``after``, not in ``before``)."""
+    out = {}
+    for name, xyz in after.points.items():
+        now = finite_points(np.asarray(xyz, float))
+        was = finite_points(np.asarray(before.points[name], float)) if name in before.points else np.zeros_like(now)
+        filled = now & ~was
+        if filled.any():
+            out[name] = float(100.0 * filled.mean())
+    return out
+
+
 # --------------------------------------------------------------------------- body
 @dataclass(frozen=True)
 class BodyDims:

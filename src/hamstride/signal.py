@@ -28,6 +28,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from .landmarks import Landmarks
 
 DEFAULT_MAX_GAP_FRAMES = 10  # common practice (references.md, Filtering)
+EDGE_GAP_NOTE = "at the start or end of the trial"  # how FilterInfo.long_gaps names a gap touching an end
 FILTER_ORDER = 2
 
 
@@ -428,7 +429,7 @@ def _describe(gaps: tuple[Gap, ...], index, rate_hz: float, max_gap_frames: int)
         seen.add(key)
         kind, name, m0, m1 = next(entry for entry in index if entry[2] <= marker < entry[3])
         label = name if kind == "point" else f"{name} marker {marker - m0 + 1}"
-        why = "at the start or end of the trial" if g.at_edge else f"longer than {max_gap_frames} frames"
+        why = EDGE_GAP_NOTE if g.at_edge else f"longer than {max_gap_frames} frames"
         notes.append(
             f"{label}: frames {g.start}-{g.start + g.n_frames - 1} ({g.n_frames} frames, "
             f"{g.n_frames / rate_hz:.3f} s) left missing, {why}"

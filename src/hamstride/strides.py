@@ -13,8 +13,13 @@ import numpy as np
 from .events import SIDES, GaitEvents
 from .signal import cubic_spline
 
-DEFAULT_STRIDE_TIME_RANGE_S = (0.3, 0.8)  # issue 3, common practice for sprinting
-DEFAULT_CONTACT_RANGE_S = (0.06, 0.3)     # issue 3, common practice for sprinting
+# Plausible stride and contact times, sprinting to jogging (common practice, from the values below). Sprinting:
+# stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]. Jogging at 3 m/s: stride about 0.63-0.80 s
+# (75-95 strides/min; metabolic optimum 84.8 strides/min = 0.71 s; Lieberman et al. 2015, J Exp Biol 218:3406
+# [V, abstract]), contact about 0.25-0.30 s [M]. The upper limits leave room for a slow jog (60 strides/min, 0.33 s
+# contacts); a missed foot strike in a sprint (about 0.9 s) is caught by its two toe-offs.
+DEFAULT_STRIDE_TIME_RANGE_S = (0.3, 1.0)
+DEFAULT_CONTACT_RANGE_S = (0.06, 0.4)
 
 
 @dataclass(frozen=True)

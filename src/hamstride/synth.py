@@ -3,9 +3,13 @@
 Truth is defined by construction in the conventions of DEVELOPERS.md: ISB segment frames (Wu et al. 2002) are
 built first, landmarks are then placed in those frames, and the truth joint angles are the Grood & Suntay JCS
 decomposition (intrinsic Z-X-Y Cardan of ``R_prox^T R_dist``) of the truth frames. Landmarks sit where the
-pipeline's marker-based frames reproduce the truth frames exactly: the hip centre lies on the Harrington et al. 2007
-pelvis-width regression (J Biomech 40:595), knee/ankle centres midway between epicondyles/malleoli, heel and
-metatarsal heads at one height in the foot frame.
+pipeline's marker-based frames reproduce the truth frames, except at the hip: the true hip centre lies a person's
+offset (``AthleteBody.hip_centre_offset_m``, 7 mm for bodies from ``from_height``) away from the Harrington et al. 2007
+pelvis-width regression (J Biomech 40:595) the pipeline uses; knee/ankle centres are midway between
+epicondyles/malleoli, heel and metatarsal heads at one height in the foot frame. Optional real-capture shapes:
+jogging (2.5-6 m/s), thigh/shank skin markers sliding on the bone (``soft_tissue_mm``), an overground capture volume
+(``capture_volume_m``), cluster-only runs without knee/ankle markers (``include_knee_ankle``), and walking
+(``simulate_walk``).
 
 Model: each leg is a planar hip-knee-ankle chain (thigh, shank, foot share the lab's medio-lateral Z axis) in the
 vertical plane through its hip centre; the pelvis translates, tilts, rolls and yaws (so hip adduction and rotation,
@@ -46,7 +50,11 @@ from .errors import ConfigError, HamstrideError
 
 SIDES = ("left", "right")
 GRAVITY = 9.81  # m/s^2
-_RIGHT_SIGN = {"right": 1.0, "left": -1.0}  # lateral direction along the segment +Z (which points right)
+_RIGHT_SIGN = {"right": 1.0, "left": -1.0}
+# A person's true hip centre is not where the Harrington et al. 2007 regression puts it: its leave-one-out error is
+# about 5/4/3 mm (x/y/z) [V, references.md]. Bodies from ``AthleteBody.from_height`` carry an offset of that size
+# (7 mm: further back, lower and more lateral), so the pipeline's hip-centre estimate is not the truth by construction.
+TYPICAL_HIP_OFFSET_M = (-0.005, -0.004, 0.003)  # lateral direction along the segment +Z (which points right)
 _DEG = np.pi / 180.0
 ANGLE_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion", "ankle_dorsiflexion")
 
@@ -75,6 +83,10 @@ class AthleteBody:
     foot_length_m: float  # heel -> toe tip
     knee_width_m: float  # epicondyle to epicondyle
     ankle_width_m: float  # malleolus to malleolus
+    # True hip centre minus the Harrington et al. 2007 pelvis-width estimate, in the pelvis frame (x anterior, y up,
+    # z lateral: mirrored on the left), m. Real hip centres deviate from the regression: its leave-one-out error is
+    # about 5/4/3 mm (x/y/z) and 12.3 +/- 5.9 mm in a CT study (Mantovani et al. 2016) [V, references.md].
+    hip_centre_offset_m: tuple[float, float, float] = (0.0, 0.0, 0.0)
 
     @classmethod
     def from_height(cls, height_m: float, mass_kg: float = 75.0, sex: str = "male") -> "AthleteBody":
@@ -97,7 +109,7 @@ class AthleteBody:
         pd = (0.17 * pw * 1000.0 - 0.6) / 0.28 / 1000.0
         return cls(height_m=h, mass_kg=float(mass_kg), sex=sex, pelvis_width_m=pw, pelvis_depth_m=pd,
                    thigh_length_m=thigh * h, shank_length_m=shank * h, foot_length_m=foot * h,
-                   knee_width_m=0.056 * h, ankle_width_m=0.040 * h)
+                   knee_width_m=0.056 * h, ankle_width_m=0.040 * h, hip_centre_offset_m=TYPICAL_HIP_OFFSET_M)
 
 
 _DEFAULT_BODY = AthleteBody.from_height(1.80, 75.0, "male")
@@ -126,7 +138,17 @@ class SprintSpec:
     full_body: bool = False  # add trunk, head and arm markers (UPPER_BODY_LABELS) above the pelvis
     label_prefix: str = ""  # write labels as 'PREFIX:label', as capture software does for a named subject
     nul_padding: int = 0  # pad the labels and the unit with this many NUL bytes (C strings; ezc3d writes them)
-    soft_tissue_mm: float = 0.0  # slow wobble of each marker on its segment (soft tissue), amplitude per axis
+    # Cluster-only dynamic trial: False leaves out every knee and ankle marker (lateral and medial), as protocols do
+    # that track thigh and shank by clusters and place those markers only in the static trial.
+    include_knee_ankle: bool = True
+    # Overground capture volume: (start, end) in m along the travel from where the pelvis is at t = 0; a marker is
+    # seen only while it is inside (each marker's edges shifted by up to +/-0.15 m: cameras see markers enter at
+    # slightly different places). None: seen everywhere. Ignored on a treadmill.
+    capture_volume_m: tuple[float, float] | None = None
+    # Soft-tissue movement of the thigh and shank skin markers (clusters, epicondyles, malleoli) relative to the
+    # bone, in mm: a displacement that grows with knee flexion and a decaying wobble after each foot strike. A few
+    # mm by default, so the pipeline never sees markers rigidly fixed to the bone (0 = rigid).
+    soft_tissue_mm: float = 2.0
     seed: int = 0
     body: AthleteBody = _DEFAULT_BODY
     athlete: str = "SYN01"
@@ -283,12 +305,15 @@ def _derivatives(fun: Callable[[np.ndarray], np.ndarray], t0: float, eps: float 
 
 # ------------------------------------------------------------------------------------------------ local geometry
 def hip_centre_local(body: AthleteBody, side: str) -> np.ndarray:
-    """Hip joint centre in the pelvis frame (m): Harrington et al. 2007 pelvis-width-only regression.
+    """Hip joint centre in the pelvis frame (m): Harrington et al. 2007 pelvis-width-only regression, plus the
+    body's ``hip_centre_offset_m`` (a real person's deviation from the regression).
 
     x = -0.24 PD - 9.9, y = -0.30 PW - 10.9, z = +/-(0.33 PW + 7.3) mm (+ right); references.md table [V].
     """
     pw, pd = body.pelvis_width_m * 1000.0, body.pelvis_depth_m * 1000.0
-    return np.array([-0.24 * pd - 9.9, -0.30 * pw - 10.9, _RIGHT_SIGN[side] * (0.33 * pw + 7.3)]) / 1000.0
+    dx, dy, dz = body.hip_centre_offset_m
+    return (np.array([-0.24 * pd - 9.9, -0.30 * pw - 10.9, _RIGHT_SIGN[side] * (0.33 * pw + 7.3)]) / 1000.0
+            + np.array([dx, dy, _RIGHT_SIGN[side] * dz]))
 
 
 def _foot_local(body: AthleteBody, side: str) -> dict[str, np.ndarray]:
@@ -374,27 +399,39 @@ class _Design:
 
 
 def _design(speed: float, leg_length_m: float = 0.886) -> _Design:
-    """Sprint key values as a function of speed (7-9.5 m/s).
+    """Running key values as a function of speed: sprints 6-10.5 m/s, jogging 2.5-6 m/s.
 
-    Stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]; peak hip flexion 65-80 deg, knee 15-30 deg at foot
-    strike, peak knee flexion 120-135 deg, late-swing knee extension to 10-30 deg (here the late-swing minimum follows
-    from the knee's constant-acceleration design, about 5-8 deg below the strike value) [M, references.md].
-    Faster running: shorter stride time, more hip flexion, more late-swing knee extension (common practice). Stride
-    time scales with the square root of leg length (dynamic similarity; 0.886 m = hip-to-ankle of a 1.80 m man).
-    Strike: knee 27 deg and the hip a little further back at toe-off (pitch -53 deg, hip 25 mm below its strike
-    height) so that a less straight landing leg keeps the contact time (invented, within the ranges above).
+    Sprints (from 6 m/s): stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]; peak hip flexion 65-80 deg,
+    knee 15-30 deg at foot strike, peak knee flexion 120-135 deg, late-swing knee extension to 10-30 deg (here the
+    late-swing minimum follows from the knee's constant-acceleration design, about 5-8 deg below the strike value)
+    [M, references.md]. Faster running: shorter stride time, more hip flexion, more late-swing knee extension
+    (common practice). Stride time scales with the square root of leg length (dynamic similarity; 0.886 m =
+    hip-to-ankle of a 1.80 m man). Strike: knee 27 deg and the hip a little further back at toe-off (pitch -53 deg,
+    hip 25 mm below its strike height) so that a less straight landing leg keeps the contact time (invented, within
+    the ranges above).
+
+    Jogging (below 6 m/s, blending linearly to the values at 3 m/s): stride time 0.72 s at 3 m/s (Lieberman et al.
+    2015, J Exp Biol 218:3406: metabolically optimal 84.8 strides/min at 3.0 m/s [V, abstract]); the same strike and
+    toe-off geometry as a sprint, so the contact, covering the same ground at a lower speed, lasts about 0.26 s at
+    3 m/s (0.25-0.30 s [M]); peak hip flexion 50 deg and peak swing knee flexion 100 deg at 3 m/s (smaller than a
+    sprint's; from memory, common magnitudes of jogging kinematics).
     """
     k = float(np.clip((speed - 7.0) / 2.5, -0.4, 1.4))
+    jog = float(np.clip((6.0 - speed) / 3.0, 0.0, 1.0))  # 0 from 6 m/s up, 1 at 3 m/s and below
+
+    def blend(sprint: float, at_3_m_s: float) -> float:
+        return sprint + (at_3_m_s - sprint) * jog
+
     return _Design(
-        stride_time=(0.470 - 0.036 * k) * np.sqrt(leg_length_m / 0.886),
+        stride_time=blend(0.470 - 0.036 * k, 0.72) * np.sqrt(leg_length_m / 0.886),
         pelvis_tilt=-12.0 * _DEG,
         hip_td=(37.0 + 2.0 * k) * _DEG,
         knee_td=27.0 * _DEG,
         pitch_td=-14.0 * _DEG,
         knee_to=(20.0 - 4.0 * k) * _DEG,
         pitch_to=-53.0 * _DEG,
-        hip_peak=(70.0 + 6.0 * k) * _DEG,
-        knee_peak=(124.0 + 6.0 * k) * _DEG,
+        hip_peak=blend(70.0 + 6.0 * k, 50.0) * _DEG,
+        knee_peak=blend(124.0 + 6.0 * k, 100.0) * _DEG,
     )
 
 
@@ -605,11 +642,15 @@ class _Gait:
                 # the swing (the hip rate at strike is linear in it: two trials)
                 delta = st.hip_peak - self._hip_plan(st, nxt)[0]
                 target_rate = -2.0 * delta / ((1.0 - d.s_hip_peak) * (nxt.strike - st.toe_off))
+                # (a jog's longer contact takes the heel down more slowly: the rates scale with the sprint's
+                # 0.13 s contact over this one, so the heel does not outrun the hip; 1 for every sprint)
+                slow = min(1.0, 0.13 / (nxt.toe_off - nxt.strike))
                 rates = []
-                for trial in (8.0, 16.0):
+                for trial in (8.0 * slow, 16.0 * slow):
                     nxt.stance_pitch = self._stance_roll(nxt, trial, 0.0)
                     rates.append(self._hip_plan(st, nxt)[1])
-                drop = float(np.clip(8.0 + 8.0 * (target_rate - rates[0]) / (rates[1] - rates[0]), 4.0, 24.0))
+                drop = float(np.clip(slow * (8.0 + 8.0 * (target_rate - rates[0]) / (rates[1] - rates[0])),
+                                     4.0 * slow, 24.0 * slow))
                 target = self._hip_plan(st, nxt)[2] + _derivatives(
                     lambda t: self.pelvis_angles(np.asarray(t))[0], nxt.strike)[2]
                 trials = []
@@ -843,8 +884,9 @@ def _noise_and_gaps(xyz: np.ndarray, noise_mm: float, n_gaps: int, rng: np.rando
 
 # ------------------------------------------------------------------------------------------------ public API
 def _check_spec(spec: SprintSpec) -> None:
-    if not 6.0 <= spec.speed_m_s <= 10.5:
-        raise ConfigError(f"speed {spec.speed_m_s} m/s is not a sprint speed the simulator covers (6-10.5 m/s)")
+    if not 2.5 <= spec.speed_m_s <= 10.5:
+        raise ConfigError(f"speed {spec.speed_m_s} m/s is not a running speed the simulator covers (2.5-10.5 m/s: "
+                          "jogging below 6 m/s, sprinting above)")
     if spec.asymmetry_side not in (None, "left", "right"):
         raise ConfigError("asymmetry_side must be None, 'left' or 'right'")
     if spec.rate_hz < 100.0 or spec.duration_s < 0.5:
@@ -877,12 +919,127 @@ def simulate_sprint(spec: SprintSpec = SprintSpec()) -> tuple[tuple[str, ...], n
         upper = upper_body_markers(origin, axes, thigh_down, spec.body.height_m)
         labels = labels + tuple(upper)
         xyz = np.concatenate([xyz, np.stack(list(upper.values()), axis=1)], axis=1)
-    if spec.soft_tissue_mm > 0:
-        xyz = xyz + soft_tissue_wobble(t, xyz.shape[1], spec.soft_tissue_mm, np.random.default_rng(spec.seed + 7))
+    extra = np.random.default_rng([spec.seed, 13])  # a stream of its own: the sprint's own draws stay the same
+    if spec.soft_tissue_mm > 0.0:
+        xyz = _soft_tissue(labels, xyz, truth, spec.soft_tissue_mm / 1000.0, extra)
     noisy = _noise_and_gaps(xyz, spec.noise_mm, spec.n_gaps, rng)
+    if spec.capture_volume_m is not None and not spec.treadmill:
+        noisy = _capture_volume(noisy, spec.capture_volume_m, extra)
+    if not spec.include_knee_ankle:
+        keep = [i for i, label in enumerate(labels) if not label.split(".", 1)[-1].startswith(("knee.", "ankle."))]
+        labels, noisy = tuple(labels[i] for i in keep), noisy[:, keep]
     if spec.label_prefix:
         labels = tuple(f"{spec.label_prefix}:{label}" for label in labels)
     return labels, lab_to_file(noisy, spec.vertical_axis, spec.travel_sign, spec.units), truth
+
+
+def _capture_volume(xyz: np.ndarray, volume_m: tuple[float, float], rng: np.random.Generator) -> np.ndarray:
+    """Markers seen only inside the capture volume along the travel (x, internal lab frame); NaN elsewhere, as a
+    C3D file marks a point that no camera saw (residual -1). Each marker's edges move by up to +/-0.15 m."""
+    start, end = volume_m
+    shift = rng.uniform(-0.15, 0.15, size=(2, xyz.shape[1]))
+    x = xyz[:, :, 0]
+    inside = (x >= start + shift[0]) & (x <= end + shift[1])
+    return np.where(inside[:, :, None], xyz, np.nan)
+
+
+def _soft_tissue(labels, xyz: np.ndarray, truth: SprintTruth, amplitude_m: float,
+                 rng: np.random.Generator) -> np.ndarray:
+    """Move thigh and shank skin markers relative to the bone (soft-tissue artefact, invented shape): each marker
+    slides along its own random direction in the segment frame by ``amplitude_m`` times the knee flexion (rad, over
+    about 2 rad), and wobbles for about 60 ms after each foot strike of its leg (20 Hz, decaying), up to about
+    ``amplitude_m``."""
+    out = xyz.copy()
+    t = truth.time_s
+    for side in SIDES:
+        knee = truth.angles[side]["knee_flexion"] / 2.0
+        wobble = np.zeros_like(t)
+        for strike in truth.foot_strikes_s[side]:
+            after = np.clip(t - strike, 0.0, None)
+            wobble += np.where(t >= strike, np.exp(-after / 0.03) * np.sin(2 * np.pi * 20.0 * after), 0.0)
+        for seg in CLUSTER_SEGMENTS:
+            axes = truth.axes[f"{side}_{seg}"]
+            sites = ("knee.", "thigh.") if seg == "thigh" else ("ankle.", "shank.")
+            for i, label in enumerate(labels):
+                if not (label.startswith(side[0] + ".") and label[2:].startswith(sites)):
+                    continue
+                glide, shake = rng.normal(size=3), rng.normal(size=3)
+                glide /= np.linalg.norm(glide)
+                shake /= np.linalg.norm(shake)
+                local = amplitude_m * (knee[:, None] * glide + wobble[:, None] * shake)
+                out[:, i] += np.einsum("fij,fj->fi", axes, local)
+    return out
+
+
+def simulate_walk(body: AthleteBody = _DEFAULT_BODY, speed_m_s: float = 1.3, rate_hz: float = 250.0,
+                  duration_s: float = 3.0, *, stride_time_s: float = 1.08, stance_fraction: float = 0.62,
+                  noise_mm: float = 0.5, seed: int = 0, vertical_axis: str = "z", travel_sign: int = 1,
+                  units: str = "mm") -> tuple[tuple[str, ...], np.ndarray, SprintTruth]:
+    """A walking trial (no flight: each foot is on the ground about 62 % of the stride, both feet together twice
+    per stride for about 12 % each; textbook values: stance 60-62 %, double support about 10 % twice, e.g. Perry &
+    Burnfield, Gait Analysis, 2010 [M, consistent with secondary sources]), for the refusal of walks.
+
+    Simpler than the sprint: each foot rolls heel -> flat -> forefoot on the ground (pitch +15 deg at heel strike to
+    -35 deg at toe-off) and swings forward along a smooth arc; thigh and shank come from planar inverse kinematics of
+    hip to ankle, the pelvis height kept where both legs reach. Same labels and file conventions as the sprint.
+    """
+    rng = np.random.default_rng(seed)
+    n = int(round(duration_s * rate_hz))
+    t = np.arange(n) / rate_hz
+    lt, ls = body.thigh_length_m, body.shank_length_m
+    stride = speed_m_s * stride_time_s
+    foot = _foot_local(body, "right")
+    heel_l, met_l = foot["heel"][:2], foot["first_metatarsal"][:2]
+    pitch_hs, pitch_to = 15.0 * _DEG, -35.0 * _DEG
+    zero = np.zeros(n)
+    pelvis_axes = _pelvis_axes(-10.0 * _DEG + zero, zero, zero)
+    ankles, pitches = {}, {}
+    for side, lag in (("right", 0.0), ("left", 0.5)):
+        phase = (t / stride_time_s + lag) % 1.0
+        cycle = np.floor(t / stride_time_s + lag)
+        heel_x = (cycle - lag) * stride + 0.30  # heel strike 0.30 m ahead of where the hip is then
+        u = phase / stance_fraction
+        stance = u <= 1.0
+        # foot pitch in stance: heel rocker (to flat by 15 %), flat, forefoot rocker (from 60 % to toe-off)
+        pitch = np.where(u < 0.15, pitch_hs * (1.0 - _smoothstep5(u / 0.15)),
+                         np.where(u < 0.6, 0.0, pitch_to * _smoothstep5((u - 0.6) / 0.4)))
+        met_x = heel_x + (met_l[0] - heel_l[0])
+        on_heel = pitch >= 0.0
+        pivot = np.stack([np.where(on_heel, heel_x, met_x), zero], axis=-1)
+        local = np.where(on_heel[:, None], heel_l, met_l)
+        ankle_st = pivot - _rot2(pitch, local.T)
+        # swing: from the toe-off ankle position to the next heel strike's, along a raised arc
+        w = np.clip((phase - stance_fraction) / (1.0 - stance_fraction), 0.0, 1.0)
+        ankle_to = np.stack([met_x, zero], axis=-1) - _rot2(np.full(n, pitch_to), met_l)
+        ankle_hs = np.stack([heel_x + stride, zero], axis=-1) - _rot2(np.full(n, pitch_hs), heel_l)
+        blend = _smoothstep5(w)[:, None]
+        ankle_sw = ankle_to + (ankle_hs - ankle_to) * blend
+        ankle_sw[:, 1] += 0.06 * np.sin(np.pi * w)
+        pitch_sw = pitch_to + (pitch_hs - pitch_to) * _smoothstep5(w)
+        ankles[side] = np.where(stance[:, None], ankle_st, ankle_sw)
+        pitches[side] = np.where(stance, pitch, pitch_sw)
+    hip_local = {s: hip_centre_local(body, s) for s in SIDES}
+    x = speed_m_s * t
+    # pelvis height: as high as 98.5 % of the leg's reach allows for both legs (lowest in double support)
+    reach = 0.985 * (lt + ls)
+    allowed = []
+    for side in SIDES:
+        hip_dx = x + (pelvis_axes @ hip_local[side])[:, 0] - ankles[side][:, 0]
+        allowed.append(ankles[side][:, 1] + np.sqrt(np.clip(reach ** 2 - hip_dx ** 2, 0.0, None))
+                       - (pelvis_axes @ hip_local[side])[:, 2])
+    z = np.minimum(*allowed)
+    z = np.minimum(np.convolve(np.pad(z, 12, mode="edge"), np.ones(25) / 25.0, mode="valid"), z)
+    origin = np.stack([x, zero, z], axis=-1)
+    leg_pitches = {}
+    for side in SIDES:
+        hip = origin + pelvis_axes @ hip_local[side]
+        phi_t, phi_s = _two_link_ik(ankles[side] - hip[:, [0, 2]], body)
+        leg_pitches[side] = np.stack([phi_t, phi_s, pitches[side]], axis=-1)
+    labels, xyz, truth = _assemble(t, rate_hz, body, origin, pelvis_axes, leg_pitches, include_medial=True,
+                                   include_clusters=True, speed=speed_m_s, treadmill=False,
+                                   strikes={s: np.zeros(0) for s in SIDES}, toe_offs={s: np.zeros(0) for s in SIDES})
+    noisy = _noise_and_gaps(xyz, noise_mm, 0, rng)
+    return labels, lab_to_file(noisy, vertical_axis, travel_sign, units), truth
 
 
 def sprint_events(truth: SprintTruth) -> list[tuple[str, str, float]]:
@@ -958,16 +1115,6 @@ def upper_body_markers(pelvis_origin: np.ndarray, pelvis_axes: np.ndarray, thigh
         out[f"{s_}.wrist.in"] = wrist - 0.025 * k * lateral
         out[f"{s_}.hand"] = wrist + 0.08 * k * forearm
     return out
-
-
-def soft_tissue_wobble(time_s: np.ndarray, n_markers: int, amplitude_mm: float, rng: np.random.Generator
-                       ) -> np.ndarray:
-    """[F, M, 3] slow displacement of each marker against its bone (m): two sinusoids per axis at 3-15 Hz with
-    random phases, ``amplitude_mm`` each (soft-tissue movement of several mm in running; common practice)."""
-    freq = rng.uniform(3.0, 15.0, size=(2, n_markers, 3))
-    phase = rng.uniform(0.0, 2 * np.pi, size=(2, n_markers, 3))
-    wave = np.sin(2 * np.pi * freq[:, None] * time_s[None, :, None, None] + phase[:, None])
-    return 0.5 * amplitude_mm / 1000.0 * wave.sum(axis=0)
 
 
 def simulate_static(body: AthleteBody = _DEFAULT_BODY, rate_hz: float = 250.0, duration_s: float = 1.0, *,
