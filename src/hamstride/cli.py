@@ -208,16 +208,23 @@ def squad_cmd(
         cfg = load_config(config, strict=True if strict else None)
     except HamstrideError as exc:
         _fail(exc, 2)
-    with Progress(TextColumn("[bold]trials"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.fields[failed]}"),
+    with Progress(TextColumn("[bold]{task.description:<7}"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.fields[failed]}"),
                   TimeElapsedColumn(), console=err_console, transient=False) as bar:
         task = bar.add_task("trials", total=None, failed="")
 
         def progress(done: int, total: int, failed: int) -> None:
             bar.update(task, completed=done, total=total, failed=f"{failed} failed" if failed else "")
 
+        reports: list = []
+
+        def report_progress(done: int, total: int) -> None:  # one step per athlete while the reports are written
+            if not reports:
+                reports.append(bar.add_task("reports", total=total, failed="athletes"))
+            bar.update(reports[0], completed=done, total=total)
+
         try:
             run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=not no_report,
-                            progress=progress, cluster=cluster)
+                            progress=progress, cluster=cluster, report_progress=report_progress)
         except HamstrideError as exc:
             _fail(exc, 2)
     counts = run.manifest["counts"]
