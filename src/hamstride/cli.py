@@ -134,7 +134,7 @@ def muscles_cmd(
     console.print("Moment arms by tendon excursion, r = -dL/dtheta: negative at the hip = extensor, positive at the "
                   "knee = flexor. Strain is relative to standing upright (hip 0, knee 0 deg).")
     if plot is not None:
-        console.print(f"wrote {plot_moment_arms(plot, dims)}")
+        console.print(f"wrote {plot_moment_arms(plot, dims, hip_flexion, knee_flexion)}")
 
 
 @app.command("analyze")
