@@ -209,7 +209,8 @@ def test_caution_flags_and_notes_on_every_page(squad):
         assert "Kenneally-Dabrowski" in text
     athlete = (out / "athletes" / "ZZ99.html").read_text(encoding="utf-8")
     assert "left BFlh stretches 14 % less than right for ZZ99" in html.unescape(athlete)
-    assert athlete.count("<img ") == 3  # stretch, force/power, joints
+    # latest session: stretch, force/power, joints; plus the earlier session's stretch for the session picker
+    assert athlete.count("<img ") == 4 and athlete.count('data-figure-session="2026-01-15_pre"') == 1
     assert 'id="summary"' in athlete and 'id="strides"' in athlete and 'id="uncertainty"' in athlete
 
 

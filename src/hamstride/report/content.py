@@ -65,6 +65,8 @@ class Figure:
     caption: str
     raster: Raster
     alt: str
+    session: str | None = None  # with a session picker: the session it shows
+    latest: bool = True  # False: an earlier session's picture, shown in HTML when that session is picked (not in PDF)
     kind: ClassVar[str] = "figure"
 
 

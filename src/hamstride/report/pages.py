@@ -310,9 +310,9 @@ def athlete_page(athlete: str, *, info: Mapping, sessions: Sequence[str], muscle
         blocks.append(Text(BODY_MASS_MISSING + ".", "note", "body-mass-missing"))
     if timeline is not None:
         blocks.append(replace(timeline, title="Return-to-run timeline"))
-    blocks += list(figures)
     if len(sessions) > 1:
         blocks.append(SessionPicker(tuple(sessions), latest))
+    blocks += list(figures)
     n_latest = int((flags["session"].astype(str) == latest).sum()) if len(flags) else 0
     blocks += [Heading("Flags", "flags-heading"),
                Text(f"{plural(n_latest, 'flag')} in the latest session"

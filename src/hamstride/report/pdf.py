@@ -152,7 +152,8 @@ def _flowables(blocks, width: float, height: float) -> list:
         elif b.kind == "text":
             out.append(_paragraph(b.text, b.cls if b.cls in _styles() else "body", b.strong))
         elif b.kind == "figure":
-            out += _figure(b, width, height)
+            if b.latest:  # earlier sessions' pictures are for the HTML session picker; the PDF is the latest's
+                out += _figure(b, width, height)
         elif b.kind == "table":
             out += _table(b, width)
         elif b.kind == "items":

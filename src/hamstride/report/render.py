@@ -6,6 +6,7 @@ checked with :func:`inside`). Athlete pages render in a process pool when the ru
 from __future__ import annotations
 
 import functools
+from dataclasses import replace
 import math
 import os
 import time
@@ -34,6 +35,15 @@ _FLAG_MUSCLES = ("biceps_femoris_long", "semitendinosus", "semimembranosus")
 def _flag_muscles(run_info: Mapping | None) -> tuple[str, ...]:
     found = thresholds_of(run_info).get("muscles")
     return tuple(str(m) for m in found) if isinstance(found, (list, tuple)) and found else _FLAG_MUSCLES
+
+
+_STRETCH_CAPTION = (
+    "Each column is one hamstring muscle; lines are the average over strides (left solid with circles, right "
+    "dashed with triangles), bands show ± SD. The hatched ribbon at the top of each panel marks late swing, "
+    "where the curves are drawn bold; the small carets on the time axis mark toe-off (one per side). Stars "
+    "mark the average of each stride's peak (a little above the average curve because strides peak at "
+    "slightly different times); the bar through a star is the model range (5–95 %). The dotted line at 1.0 "
+    "in the middle row is the optimal fibre length.")
 
 
 def render_squad(out_dir: Path, strides: pd.DataFrame, curves, flags: pd.DataFrame, summary: pd.DataFrame,
@@ -135,12 +145,7 @@ def _athlete_outputs(athlete: str, strides: pd.DataFrame, curves: pd.DataFrame, 
     if len(cur_latest):
         figures.append(Figure(
             "fig-stretch", "Late-swing stretch, fibre length and lengthening velocity",
-            "Each column is one hamstring muscle; lines are the average over strides (left solid with circles, right "
-            "dashed with triangles), bands show ± SD. The hatched ribbon at the top of each panel marks late swing, "
-            "where the curves are drawn bold; the small carets on the time axis mark toe-off (one per side). Stars "
-            "mark the average of each stride's peak (a little above the average curve because strides peak at "
-            "slightly different times); the bar through a star is the model range (5–95 %). The dotted line at 1.0 "
-            "in the middle row is the optimal fibre length.",
+            _STRETCH_CAPTION,
             raster(stretch_figure(cur_latest, str_latest, muscles,
                                   f"{athlete} · {latest} · muscle stretch over the gait cycle (left vs right)")),
             "Stretch, fibre length and lengthening velocity over the gait cycle"))
@@ -160,6 +165,17 @@ def _athlete_outputs(athlete: str, strides: pd.DataFrame, curves: pd.DataFrame, 
             "hamstrings are longest when the hip is flexed and the knee straight, at the end of swing.",
             raster(joint_figure(cur_latest, str_latest, f"{athlete} · {latest} · hip and knee flexion")),
             "Hip and knee flexion over the gait cycle"))
+    if len(sessions) > 1 and figures:  # the picker shows an earlier session's curves too (HTML only)
+        figures = [replace(f, session=latest) for f in figures]
+        for i, session in enumerate(sessions[:-1]):
+            cur = curves[curves["session"].astype(str) == session]
+            if len(cur):
+                figures.insert(i, Figure(
+                    f"fig-stretch-{i}", f"Late-swing stretch, fibre length and lengthening velocity ({session})",
+                    _STRETCH_CAPTION,
+                    raster(stretch_figure(cur, strides[strides["session"].astype(str) == session], muscles,
+                                          f"{athlete} · {session} · muscle stretch over the gait cycle")),
+                    f"Stretch over the gait cycle, session {session}", session, latest=False))
     timeline_block = None
     links = [("PDF of this page", f"{quote(stem)}.pdf")]
     if tl is not None:

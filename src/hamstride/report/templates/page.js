@@ -15,7 +15,9 @@ th.addEventListener('keydown',function(e){if(e.key==='Enter'){sortBy(th);}});});
 var picker=document.getElementById('session-picker');
 function pick(){var s=picker.value;
 document.querySelectorAll('[data-session]').forEach(function(el){
-el.hidden=!(s===''||el.getAttribute('data-session')===s);});}
+el.hidden=!(s===''||el.getAttribute('data-session')===s);});
+document.querySelectorAll('[data-figure-session]').forEach(function(el){
+el.hidden=!(s===''?el.hasAttribute('data-latest'):el.getAttribute('data-figure-session')===s);});}
 if(picker){picker.addEventListener('change',pick);pick();}
 function check(){var imgs=document.images,ok=true;
 for(var i=0;i<imgs.length;i++){if(!(imgs[i].complete&&imgs[i].naturalWidth>0)){ok=false;}}
