@@ -313,13 +313,19 @@ def athlete_page(athlete: str, *, info: Mapping, sessions: Sequence[str], muscle
     if len(sessions) > 1:
         blocks.append(SessionPicker(tuple(sessions), latest))
     blocks += list(figures)
-    n_latest = int((flags["session"].astype(str) == latest).sum()) if len(flags) else 0
+    is_latest = flags["session"].astype(str) == latest if len(flags) else pd.Series(dtype=bool)
+    n_latest = int(is_latest.sum()) if len(flags) else 0
     blocks += [Heading("Flags", "flags-heading"),
                Text(f"{plural(n_latest, 'flag')} in the latest session"
                     + (f"; {earlier_flags_line(flags, latest)}" if len(sessions) > 1 else "")
                     + ". A flag is a prompt to look closer, not a finding.", "explain"),
-               Table("flags", FLAG_HEADERS, flag_rows(flags), widths=_FLAG_WIDTHS), flags_explained(),
-               Heading("Summary per session", "summary-heading")]
+               Table("flags", FLAG_HEADERS, flag_rows(flags[is_latest] if len(flags) else flags),
+                     widths=_FLAG_WIDTHS)]
+    if len(flags) and n_latest < len(flags):  # earlier sessions' flags folded under one line
+        blocks.append(Folded(f"Earlier sessions: {earlier_flags_line(flags, latest)}",
+                             (Table("flags-earlier", FLAG_HEADERS, flag_rows(flags[~is_latest]),
+                                    widths=_FLAG_WIDTHS),), "earlier-flags"))
+    blocks += [flags_explained(), Heading("Summary per session", "summary-heading")]
     blocks += summary_tables(summary, sessions, muscles, not mass_missing) if len(summary) else [
         Text("No summary rows.")]
     blocks += [Heading("Model uncertainty band", "uncertainty-heading"),

@@ -70,6 +70,7 @@ def _styles() -> dict:
         "cell": ParagraphStyle("cell", parent=base, fontSize=7, leading=8.4),
         "cellnum": ParagraphStyle("cellnum", parent=base, fontSize=7, leading=8.4, alignment=2),
         "head": ParagraphStyle("head", parent=base, fontName=bold, fontSize=7, leading=8.4),
+        "figtitle": ParagraphStyle("figtitle", parent=base, fontName=bold, fontSize=11.5, leading=14),
         "caption": ParagraphStyle("caption", parent=base, fontSize=7.8, leading=9.6, spaceAfter=6),
         "footer": ParagraphStyle("footer", parent=base, fontSize=6.8, leading=8.2,
                                  textColor=colors.HexColor("#333333")),
@@ -115,33 +116,42 @@ def _table(block, width: float) -> list:
     return out
 
 
-class _FitImage(Flowable):
-    """A picture that shrinks to the space left on the page, down to 60 % of its full-page size; below that it
-    asks for the full-page size, so platypus moves it to the next page (where it is drawn larger)."""
+class _FigureFlowable(Flowable):
+    """Title, picture and caption as one piece: the picture shrinks to the space left on the page, down to 60 % of
+    its full-page size; below that the piece asks for its full size, so platypus moves it to the next page."""
 
-    def __init__(self, png: bytes, size_in: tuple[float, float], width: float, height: float):
+    def __init__(self, block, width: float, height: float):
         super().__init__()
-        self.png = png
-        self.w_pt, self.h_pt = size_in[0] * 72.0, size_in[1] * 72.0
-        self.full = min(1.0, width / self.w_pt, height / self.h_pt)
-        self.scale = self.full
+        self.title = _paragraph(block.title, "figtitle")
+        self.caption = _paragraph(block.caption, "caption")
+        self.png = block.raster.png
+        self.w_pt, self.h_pt = block.raster.size_in[0] * 72.0, block.raster.size_in[1] * 72.0
+        self.frame_h = height
+        self.full = self.scale = min(1.0, width / self.w_pt)
+        self.parts = (0.0, 0.0)
 
     def wrap(self, avail_w, avail_h):
-        fit = min(self.full, avail_w / self.w_pt, avail_h / self.h_pt)
-        self.scale = fit if fit >= 0.6 * self.full else self.full
-        return self.w_pt * self.scale, self.h_pt * self.scale
+        title_h = self.title.wrap(avail_w, avail_h)[1] + 4.0
+        caption_h = self.caption.wrap(avail_w, avail_h)[1] + 6.0
+        self.parts = (title_h, caption_h)
+        full = min(self.full, avail_w / self.w_pt, (self.frame_h - title_h - caption_h) / self.h_pt)
+        fit = min(full, (avail_h - title_h - caption_h) / self.h_pt)
+        self.scale = fit if fit >= 0.6 * full else full
+        return avail_w, title_h + self.h_pt * self.scale + caption_h
 
     def draw(self):
         from reportlab.lib.utils import ImageReader
 
-        self.canv.drawImage(ImageReader(io.BytesIO(self.png)), 0, 0, width=self.w_pt * self.scale,
-                            height=self.h_pt * self.scale)
+        title_h, caption_h = self.parts
+        image_h = self.h_pt * self.scale
+        self.caption.drawOn(self.canv, 0, 0)
+        self.canv.drawImage(ImageReader(io.BytesIO(self.png)), 0, caption_h, width=self.w_pt * self.scale,
+                            height=image_h)
+        self.title.drawOn(self.canv, 0, caption_h + image_h + 4.0)
 
 
 def _figure(block, width: float, height: float) -> list:
-    """Title (kept with the picture), the picture scaled to fit, its caption."""
-    return [_paragraph(block.title, "h2"), _FitImage(block.raster.png, block.raster.size_in, width, height - 70.0),
-            _paragraph(block.caption, "caption")]
+    return [_FigureFlowable(block, width, height)]
 
 
 def _flowables(blocks, width: float, height: float) -> list:
