@@ -142,17 +142,16 @@ def window_of(strides: pd.DataFrame) -> tuple[dict[str, float], dict[str, float]
 
 def _mark_window(ax, starts: Mapping[str, float], toe_offs: Mapping[str, float], label: bool) -> None:
     """Late swing: a hatched ribbon along the top of the panel; toe-off: a caret on the time axis (per side)."""
-    from matplotlib.transforms import blended_transform_factory
-
-    trans = blended_transform_factory(ax.transData, ax.transAxes)
+    trans = ax.get_xaxis_transform()  # x in data, y in axes coordinates (cached by the axes)
     finite = [v for v in starts.values() if math.isfinite(v)]
     if finite:
         start = float(np.mean(finite))
         ax.axvspan(start, 100.0, ymin=_RIBBON[0], ymax=_RIBBON[1], facecolor="white", edgecolor=_HATCH_COLOUR,
                    hatch="////", lw=0.6, zorder=1)
         if label:
-            ax.text(0.5 * (start + 100.0), _RIBBON[0] - 0.015, "late swing", transform=trans, ha="center", va="top",
-                    fontsize=6.5, color="#333333")
+            ax.text(0.5 * (start + 100.0), 0.5 * (_RIBBON[0] + _RIBBON[1]), "late swing", transform=trans,
+                    ha="center", va="center", fontsize=6.5, color="#222222", zorder=7,
+                    bbox={"facecolor": "white", "edgecolor": "none", "pad": 0.6})
     for side in SIDES:
         value = toe_offs.get(side, math.nan)
         if math.isfinite(value):
@@ -268,14 +267,12 @@ def _share_rows(axes: np.ndarray) -> None:
             if i < n_rows - 1:
                 ax.xaxis.set_major_locator(NullLocator())
         y_grid = [v for v in axes[i, 0].yaxis.get_major_locator().tick_values(lo, hi) if lo <= v <= hi]
-        for j in range(n_cols):
+        for j in range(n_cols):  # one line collection per panel and direction, where ax.grid would draw
             ax = axes[i, j]
-            if j:
-                for v in y_grid:
-                    ax.axhline(v, color=GRID, lw=0.5, zorder=1.5)  # where ax.grid draws
+            if j and y_grid:
+                ax.hlines(y_grid, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
             if i < n_rows - 1:
-                for v in _CYCLE_TICKS:
-                    ax.axvline(v, color=GRID, lw=0.5, zorder=1.5)  # where ax.grid draws
+                ax.vlines(_CYCLE_TICKS, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
 
 
 def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
