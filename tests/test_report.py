@@ -348,3 +348,28 @@ def test_pages_load_in_headless_chromium_with_every_image(squad, tmp_path):
         assert n_images == page.read_text(encoding="utf-8").count("<img ")
         assert 'id="flags"' in dom
         assert "alert(1)</script>" not in dom
+
+
+def test_force_and_work_bands_are_drawn_when_present_and_skipped_when_absent(tmp_path):
+    strides, curves, flags, summary, athletes = _tables(athletes=("ZZ96",), sessions=("2026-03-02_week0",))
+    # issue 14's band columns (strides: _p5/_p95; summary: their means) — invented values
+    strides = strides.assign(peak_force_n_p5=1700.0, peak_force_n_p95=1900.0, negative_work_j_p5=18.0,
+                             negative_work_j_p95=24.0)
+    summary = summary.assign(peak_force_n_p5_mean=1700.0, peak_force_n_p95_mean=1900.0,
+                             negative_work_j_p5_mean=18.0, negative_work_j_p95_mean=24.0)
+    render_squad(tmp_path / "with", strides, curves, flags, summary, athletes, dict(RUN_INFO))
+    page = html.unescape((tmp_path / "with" / "athletes" / "ZZ96.html").read_text(encoding="utf-8"))
+    assert "peak force L model range (N)" in page and "negative work R model range (J)" in page
+    assert "1700 to 1900" in page and "18.0 to 24.0" in page
+    assert "bars its model range (5–95 %)" in page
+    plain = _tables(athletes=("ZZ96",), sessions=("2026-03-02_week0",))
+    render_squad(tmp_path / "without", *plain, dict(RUN_INFO))
+    page = html.unescape((tmp_path / "without" / "athletes" / "ZZ96.html").read_text(encoding="utf-8"))
+    assert "model range (N)" not in page and "bars its model range" not in page
+
+
+def test_progress_is_reported_once_per_athlete(tmp_path):
+    steps = []
+    tables = _tables(athletes=("ZZ95", "ZZ94"), sessions=("2026-03-02_week0",), n_strides=2)
+    render_squad(tmp_path, *tables, dict(RUN_INFO), progress=lambda done, total: steps.append((done, total)))
+    assert steps == [(0, 2), (1, 2), (2, 2)]
