@@ -275,9 +275,12 @@ def _share_rows(axes: np.ndarray) -> None:
                 ax.vlines(_CYCLE_TICKS, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
 
 
-def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
+def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
+                   compact: bool = False):
+    """Stretch, fibre length and lengthening velocity per muscle (``compact``: the stretch row only)."""
     groups = _stride_groups(strides)
-    peaks = {r[0]: r[2:] for r in _STRETCH_ROWS}
+    rows = _STRETCH_ROWS[:1] if compact else _STRETCH_ROWS
+    peaks = {r[0]: r[2:] for r in rows}
 
     def decorate(ax, col, muscle, drawn):
         if col == "fibre_length_lopt":
@@ -288,8 +291,8 @@ def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequenc
         if drawn:
             _mark_peaks(ax, drawn, groups, muscle, *peaks[col])
 
-    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 7.0)
-    _muscle_grid(fig, [r[:2] for r in _STRETCH_ROWS], muscles, curves, strides, decorate)
+    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 3.4 if compact else 7.0)
+    _muscle_grid(fig, [r[:2] for r in rows], muscles, curves, strides, decorate)
     _header(fig, title, side_handles(), ncol=3)
     _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
     return fig

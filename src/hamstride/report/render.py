@@ -171,10 +171,12 @@ def _athlete_outputs(athlete: str, strides: pd.DataFrame, curves: pd.DataFrame, 
             cur = curves[curves["session"].astype(str) == session]
             if len(cur):
                 figures.insert(i, Figure(
-                    f"fig-stretch-{i}", f"Late-swing stretch, fibre length and lengthening velocity ({session})",
-                    _STRETCH_CAPTION,
+                    f"fig-stretch-{i}", f"Late-swing stretch ({session})",
+                    "Stretch of each hamstring muscle over the gait cycle in an earlier session, drawn as in the "
+                    "latest session's picture (choose \"all sessions\" to see the latest session again).",
                     raster(stretch_figure(cur, strides[strides["session"].astype(str) == session], muscles,
-                                          f"{athlete} · {session} · muscle stretch over the gait cycle")),
+                                          f"{athlete} · {session} · muscle stretch over the gait cycle",
+                                          compact=True)),
                     f"Stretch over the gait cycle, session {session}", session, latest=False))
     timeline_block = None
     links = [("PDF of this page", f"{quote(stem)}.pdf")]
