@@ -380,6 +380,7 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
     from matplotlib.gridspec import GridSpec
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
+    from matplotlib.ticker import MaxNLocator, NullLocator
 
     n = max(1, len(muscles))
     nrows = 1 + len(_TIMELINE_ROWS) + 1
@@ -415,8 +416,7 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
     lsi_values: list[np.ndarray] = []
     for j, muscle in enumerate(muscles):
         for i, (col, label) in enumerate(_TIMELINE_ROWS, start=1):
-            share = rows_axes.get(i, [None])[0]
-            ax = fig.add_subplot(grid[i, j], sharey=share)
+            ax = fig.add_subplot(grid[i, j])
             rows_axes.setdefault(i, []).append(ax)
             vals = {side: values(side, muscle, col) for side in SIDES}
             row_values.setdefault(i, []).extend(vals.values())
@@ -432,14 +432,11 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
                 _muscle_title(ax, muscle)
             if j == 0:
                 ax.set_ylabel(label, fontsize=8.5)
-            else:
-                ax.tick_params(labelleft=False)
-            ax.set_xticks(x, [""] * len(x))
+            ax.xaxis.set_major_locator(NullLocator())  # grid lines below instead of tick objects (drawing time)
+            ax.vlines(x, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
             ax.set_xlim(*xlim)
             ax.tick_params(labelsize=7.5)
-            ax.grid(True, color=GRID, lw=0.5)
-        share = rows_axes.get(nrows - 1, [None])[0]
-        ax = fig.add_subplot(grid[nrows - 1, j], sharey=share)
+        ax = fig.add_subplot(grid[nrows - 1, j])
         rows_axes.setdefault(nrows - 1, []).append(ax)
         ax.axhline(lsi_line, color=FLAG, ls="-.", lw=1.3, zorder=1)
         drew = False
@@ -454,12 +451,10 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
                     ha="center", va="center", fontsize=7.5, color="#777777")
         if j == 0:
             ax.set_ylabel("LSI (%)", fontsize=8.5)
-        else:
-            ax.tick_params(labelleft=False)
         ax.set_xticks(x, [mpl_text(v) for v in xlabels], fontsize=6.5, rotation=30, ha="right")
         ax.set_xlim(*xlim)
         ax.tick_params(axis="y", labelsize=7.5)
-        ax.grid(True, color=GRID, lw=0.5)
+        ax.xaxis.grid(True, color=GRID, lw=0.5)
     for i, axes in rows_axes.items():  # a minimum span per row, so noise is not blown up into a trend
         if i <= len(_TIMELINE_ROWS):
             _min_span(axes[0], np.concatenate(row_values.get(i, [np.array([np.nan])])),
@@ -472,6 +467,16 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
             for ax in axes:
                 ax.axhspan(lsi_line, hi, color=TARGET_ZONE, lw=0, zorder=0)
             axes[0].set_ylim(lo, hi)
+        # one y range per row, as shared axes would give; tick labels on the left column only, grid lines elsewhere
+        limits = axes[0].get_ylim()
+        axes[0].yaxis.set_major_locator(MaxNLocator(nbins=4))
+        ticks = [v for v in axes[0].yaxis.get_major_locator().tick_values(*limits) if limits[0] <= v <= limits[1]]
+        axes[0].yaxis.grid(True, color=GRID, lw=0.5)
+        for ax in axes[1:]:
+            ax.set_ylim(*limits)
+            ax.yaxis.set_major_locator(NullLocator())
+            if ticks:
+                ax.hlines(ticks, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
     fig.text(0.5, 0.12 / height, mpl_text(x_title), ha="center", va="bottom", fontsize=8.5)
     fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(f"{athlete} · sessions in date order"), fontsize=10.5,
              va="top")
