@@ -18,7 +18,8 @@ import numpy as np
 import pandas as pd
 
 from ..io import atomic_write_bytes
-from ..style import MUSCLE_ORDER, MUSCLE_SHORT, SIDES
+from ..muscles import MUSCLE_NAMES as _MODEL_NAMES
+from ..style import MUSCLE_ORDER, MUSCLE_SHORT
 
 __all__ = ["CAUTION", "GLOSSARY", "FLAG_EXPLANATIONS", "BODY_MASS_MISSING", "MUSCLE_NAMES", "safe_component",
            "athlete_files", "session_sort_key"]
@@ -28,14 +29,8 @@ CAUTION = (
     "qualified clinicians and local practice."
 )
 
-# Our own palette. Left: deep blue (dark in greyscale); right: amber (light in greyscale); blue/amber stay apart for
-
-MUSCLE_NAMES = MappingProxyType({
-    "biceps_femoris_long": "biceps femoris long head (BFlh)",
-    "semitendinosus": "semitendinosus (ST)",
-    "semimembranosus": "semimembranosus (SM)",
-    "biceps_femoris_short": "biceps femoris short head (BFsh)",
-})
+#: display names, e.g. "biceps femoris long head (BFlh)": the model's names with the literature's abbreviations
+MUSCLE_NAMES = MappingProxyType({m: f"{_MODEL_NAMES[m]} ({MUSCLE_SHORT[m]})" for m in MUSCLE_ORDER})
 
 GLOSSARY = (
     ("gait cycle (%)", "0 % = foot strike of that leg, 100 % = its next foot strike."),
@@ -93,7 +88,6 @@ def safe_component(name: str) -> str:
     cleaned = re.sub(r"[^A-Za-z0-9_-]+", "_", ascii_text).strip("_-")[:40]
     digest = hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()[:10]
     return f"{cleaned or 'name'}-{digest}"
-
 
 
 def mpl_text(value: object) -> str:
@@ -187,7 +181,6 @@ def cell_text(value: object) -> str:
     return "–" if missing(value) else str(value)
 
 
-
 def run_info_get(run_info: Mapping | None, *keys: str, default: object = None) -> object:
     for key in keys:
         if run_info and run_info.get(key) not in (None, ""):
@@ -257,14 +250,12 @@ def thresholds_text(thresholds: Mapping) -> str:
     return "; ".join(parts)
 
 
-
 def plain(value: object) -> str:
     if isinstance(value, Mapping):
         return "; ".join(f"{k} = {plain(v)}" for k, v in value.items())
     if isinstance(value, (list, tuple)):
         return ", ".join(plain(v) for v in value)
     return str(value)
-
 
 
 def athlete_info(athletes: pd.DataFrame | None, athlete: str) -> dict:
@@ -299,8 +290,6 @@ def info_line(info: Mapping) -> str:
     return " · ".join(parts)
 
 
-
-
 def summary_value(rows: pd.DataFrame, side: str, name: str) -> float:
     sel = rows[rows["side"].astype(str) == side]
     if sel.empty or name not in sel.columns:
@@ -314,11 +303,8 @@ def first_finite(rows: pd.DataFrame, name: str) -> float:
     return float(finite[0]) if finite.size else math.nan
 
 
-
-
 def has_values(df: pd.DataFrame, columns: Sequence[str]) -> bool:
     return any(np.isfinite(column(df, c).to_numpy(dtype=float)).any() for c in columns)
-
 
 
 def athlete_files(names: Sequence[str]) -> dict[str, str]:
@@ -334,14 +320,12 @@ def athlete_files(names: Sequence[str]) -> dict[str, str]:
     return files
 
 
-
 def latest_summary(summary: pd.DataFrame) -> pd.DataFrame:
     if summary is None or len(summary) == 0:
         return empty_like(summary)
     keyed = summary.assign(_key=summary["session"].map(session_sort_key))
     latest_key = keyed.groupby(keyed["athlete"].astype(str))["_key"].transform("max")
     return keyed[keyed["_key"] == latest_key].drop(columns="_key")
-
 
 
 def plural(n: int, word: str, many: str | None = None) -> str:

@@ -10,7 +10,7 @@ import math
 from dataclasses import dataclass, field
 from typing import ClassVar
 
-from .common import fmt, num
+from .common import cell_text, fmt, num
 from .figures import Raster
 
 
@@ -34,8 +34,6 @@ def number(value: object, digits: int, text: str | None = None) -> Cell:
 
 
 def words(value: object, *, wrap: bool = False, href: str | None = None, title: str = "") -> Cell:
-    from .common import cell_text
-
     return Cell(cell_text(value), None, False, href, wrap, title)
 
 

@@ -16,7 +16,7 @@ import pandas as pd
 from ..style import SIDES
 from .common import (BODY_MASS_MISSING, CAUTION, FLAG_EXPLANATIONS, GLOSSARY, asymmetry_band, cell_text, column,
                      first_finite, fmt, fmt_pm, info_line, missing, muscle_label, notes_items, num, plural,
-                     session_sort_key, sessions_in_order, summary_value)
+                     run_info_get, session_sort_key, summary_value)
 from .content import Figure, Folded, Heading, Items, Links, Page, Row, SessionPicker, Table, Text, number, words
 
 FLAG_HEADERS = ("session", "side", "muscle", "flag", "value", "threshold", "message")
@@ -382,8 +382,6 @@ def squad_page(rows: Sequence[Row], latest_flags: Sequence[Row], earlier: Sequen
 
 
 def failed_rows(run_info: Mapping | None) -> tuple[Row, ...]:
-    from .common import run_info_get
-
     rows = []
     for item in run_info_get(run_info, "failed_trials", "failed", default=[]) or []:
         if isinstance(item, Mapping):
