@@ -359,7 +359,10 @@ def _index_page(out_dir: Path, names: Sequence[str], files: Mapping[str, str], g
     generated = str(run_info_get(run_info, "generated", "created",
                                  default=time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime())))
     muscles_note = ("The picture shows " + ", ".join(muscle_label(m) for m in flag_muscles)
-                    + " (the muscles the stretch flags look at); BFlh (biceps femoris long head) is the hamstring "
-                      "most often strained in sprinting.")
+                    + " (the muscles the stretch flags look at; BFlh, the biceps femoris long head, is the hamstring "
+                      "most often strained in sprinting): on the left each side's peak stretch (circle = left, "
+                      "triangle = right, bar = model range 5–95 %) on one scale for the whole squad, from "
+                      f"{lo - pad:.1f} % to {hi + pad:.1f} %; on the right each muscle's symmetry index against the "
+                      f"shaded ±{band:g} % zone (scale ±{si_limit:.0f} %; a bold outline = beyond the zone).")
     return squad_page(table_rows, latest_flag_rows, earlier, len(names), generated, version, headers_files,
                       failed_rows(run_info), run_info, muscles_note)
