@@ -13,6 +13,7 @@ from __future__ import annotations
 import functools
 import io
 from pathlib import Path
+from urllib.parse import unquote
 from xml.sax.saxutils import escape
 
 from reportlab.platypus import Flowable
@@ -168,8 +169,8 @@ def _flowables(blocks, width: float, height: float) -> list:
             out += _table(b, width)
         elif b.kind == "items":
             out += [_paragraph(d, "body", f"{t}:" if t else "") for t, d in b.items]
-        elif b.kind == "links":
-            names = ", ".join(label for label, _ in b.items)
+        elif b.kind == "links":  # the PDF travels alone: name the files (as they sit beside the HTML page)
+            names = ", ".join(f"{label} ({unquote(href)})" for label, href in b.items)
             out.append(_paragraph(f"{b.lead} {names}".strip(), "explain"))
         elif b.kind == "folded":
             out.append(_paragraph(b.summary, "h2"))
