@@ -527,11 +527,12 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     }
     atomic_write_text(out / "manifest.json", json.dumps(_jsonable(manifest), indent=1, sort_keys=False))
     run = SquadRun(out, manifest, strides, summary, flags, athletes, failed, analysed=len(todo), cached=n_cached)
-    from .report import athlete_files, render_squad
+    from .report import athlete_files
     stems = athlete_files(sorted(curve_files_by_athlete))
     for athlete, files in curve_files_by_athlete.items():  # athletes/CODE_curves.csv: the rows of curves.csv
         _stream_curves(out / "athletes" / f"{stems[athlete]}_curves.csv", files)
     if report:
+        from .report import render_squad
         run_info = {"version": __version__, "configuration": config.as_dict(), "failed": failed,
                     "tendon_note": _tendon_note(), "report_jobs": jobs}  # athlete pages render in parallel too
         # Curves are loaded one athlete at a time while the pages render, so memory does not grow with the squad.

@@ -13,7 +13,16 @@ from __future__ import annotations
 
 from .common import (BODY_MASS_MISSING, CAUTION, FLAG_EXPLANATIONS, GLOSSARY, athlete_files, safe_component,
                      session_sort_key)
-from .render import TABLE_FILES, render_squad, render_timeline
+
+
+def __getattr__(name: str):
+    """The renderers load matplotlib, jinja2 and reportlab only when first used (a tables-only run never does)."""
+    if name in ("render_squad", "render_timeline", "TABLE_FILES"):
+        from . import render
+
+        return getattr(render, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 __all__ = ["render_squad", "render_timeline", "athlete_files", "safe_component", "session_sort_key", "CAUTION",
            "GLOSSARY", "FLAG_EXPLANATIONS", "BODY_MASS_MISSING", "TABLE_FILES"]
