@@ -208,8 +208,9 @@ def squad_cmd(
         cfg = load_config(config, strict=True if strict else None)
     except HamstrideError as exc:
         _fail(exc, 2)
-    with Progress(TextColumn("[bold]{task.description:<7}"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.fields[failed]}"),
-                  TimeElapsedColumn(), console=err_console, transient=False) as bar:
+    with Progress(TextColumn("[bold]{task.description:<7}"), BarColumn(), MofNCompleteColumn(),
+                  TextColumn("{task.fields[failed]}"), TimeElapsedColumn(), console=err_console,
+                  transient=False) as bar:
         task = bar.add_task("trials", total=None, failed="")
 
         def progress(done: int, total: int, failed: int) -> None:
