@@ -661,8 +661,17 @@ def test_muscle_table_and_plot(tmp_path):
     np.testing.assert_allclose(upright["strain_pct"], 0.0, atol=1e-12)
     bf = table.set_index("muscle").loc["biceps_femoris_long"]
     assert bf["knee_flexion_arm_mm"] == pytest.approx(1000 * M.moment_arms("biceps_femoris_long", 70 * DEG, 0, 0, 30 * DEG, DIMS)[3])
-    png = M.plot_moment_arms(tmp_path / "arms.png", DIMS)
+    png = M.plot_moment_arms(tmp_path / "arms.png", DIMS, 70.0, 30.0)
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.stat().st_size > 10_000
+    # the plotted curves pass through the asked posture with the table's sign (they were drawn at 0 deg, sign flipped)
+    curves = M.moment_arm_curves(DIMS, 70.0, 30.0)
+    rows = table.set_index("muscle")
+    for muscle in M.MUSCLES:
+        knee = np.interp(30.0, curves["knee"]["angle_deg"], curves["knee"][muscle])
+        assert knee == pytest.approx(rows.loc[muscle, "knee_flexion_arm_mm"], rel=1e-3) and knee > 0
+        if muscle in M.BIARTICULAR:
+            hip = np.interp(70.0, curves["hip"]["angle_deg"], curves["hip"][muscle])
+            assert hip == pytest.approx(rows.loc[muscle, "hip_flexion_arm_mm"], rel=1e-3) and hip < 0
 
 
 def test_muscle_states_of_two_legs_equal_each_leg_alone():

@@ -16,6 +16,7 @@ import pytest
 
 from hamstride import report
 from hamstride.report import CAUTION, render_squad, render_timeline, safe_component
+from hamstride.report.common import csv_cell, mpl_text
 
 MUSCLES = ("biceps_femoris_long", "semitendinosus", "semimembranosus", "biceps_femoris_short")
 SIDES = ("left", "right")
@@ -138,7 +139,7 @@ def test_safe_component_is_stable_unique_and_keeps_plain_names():
 
 
 def test_case_insensitive_collisions_get_distinct_files():
-    files = report._unique_files(["AB1", "ab1", "CD2"])
+    files = report.athlete_files(["AB1", "ab1", "CD2"])
     assert len({f.casefold() for f in files.values()}) == 3
     assert files["CD2"] == "CD2"
 
@@ -183,7 +184,8 @@ def test_pages_fetch_nothing(squad):
             assert src.startswith("data:image/png;base64,")
         for href in re.findall(r'\shref="([^"]*)"', text):
             assert "://" not in href and not href.startswith("/") and not href.lower().startswith("javascript")
-        assert "Content-Security-Policy" in text and html.escape("default-src 'none'") in text
+        csp = re.search(r'http-equiv="Content-Security-Policy" content="([^"]*)"', text).group(1)
+        assert html.unescape(csp).startswith("default-src 'none'")
 
 
 def test_links_from_index_reach_athlete_pages(squad):
@@ -199,15 +201,16 @@ def test_caution_flags_and_notes_on_every_page(squad):
     _, out, _, _ = squad
     for page in _pages(out):
         text = page.read_text(encoding="utf-8")
-        assert html.escape(CAUTION) in text
+        assert CAUTION in html.unescape(text)
         assert 'id="flags"' in text
         assert "side_asymmetry" in text
         assert "tendon slack lengths assumed from the model" in text
         assert "active force only between about 0.5 and 1.5" in text
         assert "Kenneally-Dabrowski" in text
     athlete = (out / "athletes" / "ZZ99.html").read_text(encoding="utf-8")
-    assert html.escape("left BFlh stretches 14 % less than right for ZZ99") in athlete
-    assert athlete.count("<img ") == 3  # stretch, force/power, joints
+    assert "left BFlh stretches 14 % less than right for ZZ99" in html.unescape(athlete)
+    # latest session: stretch, force/power, joints; plus the earlier session's stretch for the session picker
+    assert athlete.count("<img ") == 4 and athlete.count('data-figure-session="2026-01-15_pre"') == 1
     assert 'id="summary"' in athlete and 'id="strides"' in athlete and 'id="uncertainty"' in athlete
 
 
@@ -234,11 +237,18 @@ def _pdf_pages_and_info(path: Path) -> tuple[int, bytes]:
 
 
 def test_pdf_has_caution_text_page_and_plots(squad):
+    # the layout engine changed (reportlab platypus instead of pages drawn by matplotlib): the caution is checked
+    # on every page's text and in the document information, with pdfplumber, instead of in raw bytes
+    pdfplumber = pytest.importorskip("pdfplumber")
     _, out, _, _ = squad
-    n_pages, data = _pdf_pages_and_info(out / "athletes" / "ZZ99.pdf")
-    assert n_pages >= 4  # text page + three plots
-    # matplotlib writes the Info dictionary uncompressed; the caution is its subject.
-    assert b"(" + CAUTION.encode("ascii") + b")" in data
+    n_pages, _ = _pdf_pages_and_info(out / "athletes" / "ZZ99.pdf")
+    assert n_pages >= 4  # text, three plots, tables
+    with pdfplumber.open(out / "athletes" / "ZZ99.pdf") as pdf:
+        assert pdf.metadata.get("Subject") == CAUTION
+        assert len(pdf.images_on_pages if hasattr(pdf, "images_on_pages") else
+                   [im for p in pdf.pages for im in p.images]) == 3
+        for page in pdf.pages:
+            assert " ".join(CAUTION.split()) in " ".join((page.extract_text() or "").split())
 
 
 @pytest.mark.slow
@@ -258,20 +268,14 @@ def test_session_order_uses_date_prefix():
                                                          "notes"]
 
 
-def test_symmetry_index_formula():
-    # SI = (R - L) / (0.5 (R + L)) x 100 (Robinson et al. 1987, from memory): L = 9, R = 11 -> 20 %
-    assert report._symmetry_index(9.0, 11.0) == pytest.approx(20.0)
-    assert report._symmetry_index(10.0, 10.0) == 0.0
-
-
 def test_matplotlib_text_cannot_switch_on_mathtext():
-    assert report._mpl_text("$x^2$") == r"\$x^2\$"
+    assert mpl_text("$x^2$") == r"\$x^2\$"
 
 
 def test_csv_cells_cannot_hold_formulas():
-    assert report._csv_cell("=HYPERLINK(1)") == "'=HYPERLINK(1)"
-    assert report._csv_cell("ZZ99") == "ZZ99"
-    assert report._csv_cell(-1.5) == -1.5
+    assert csv_cell("=HYPERLINK(1)") == "'=HYPERLINK(1)"
+    assert csv_cell("ZZ99") == "ZZ99"
+    assert csv_cell(-1.5) == -1.5
 
 
 # --- timeline -------------------------------------------------------------------------------------------------
@@ -305,7 +309,7 @@ def test_render_timeline_writes_png_html_csv_in_date_order(tmp_path):
     assert png.startswith(b"\x89PNG")
     page = next(p for p in paths if p.suffix == ".html").read_text(encoding="utf-8")
     assert "alert(1)</script>" not in page and html.escape(EVIL) in page
-    assert html.escape(CAUTION) in page and "90 %" in page and "days since injury" in page
+    assert CAUTION in html.unescape(page) and "90 %" in page and "days since injury" in page
     table = pd.read_csv(next(p for p in paths if p.suffix == ".csv"))
     assert list(dict.fromkeys(table["session"])) == ["2026-01-15_pre", "2026-03-02_week0", "2026-04-01_week4"]
     assert table["athlete"].iloc[0] == EVIL  # text kept as data, not altered (no leading formula character)
@@ -315,7 +319,7 @@ def test_timeline_without_injury_date_or_involved_side(tmp_path):
     table = _timeline_table("ZZ99").drop(columns=["days_since_injury"]).assign(lsi_pct=np.nan)
     paths = render_timeline(tmp_path, table, "ZZ99", None, {"configuration": {}})
     page = next(p for p in paths if p.suffix == ".html").read_text(encoding="utf-8")
-    assert "days since injury" not in page and html.escape(CAUTION) in page
+    assert "days since injury" not in page and CAUTION in html.unescape(page)
     assert next(p for p in paths if p.suffix == ".png").stat().st_size > 10_000
 
 
@@ -344,3 +348,28 @@ def test_pages_load_in_headless_chromium_with_every_image(squad, tmp_path):
         assert n_images == page.read_text(encoding="utf-8").count("<img ")
         assert 'id="flags"' in dom
         assert "alert(1)</script>" not in dom
+
+
+def test_force_and_work_bands_are_drawn_when_present_and_skipped_when_absent(tmp_path):
+    strides, curves, flags, summary, athletes = _tables(athletes=("ZZ96",), sessions=("2026-03-02_week0",))
+    # issue 14's band columns (strides: _p5/_p95; summary: their means) — invented values
+    strides = strides.assign(peak_force_n_p5=1700.0, peak_force_n_p95=1900.0, negative_work_j_p5=18.0,
+                             negative_work_j_p95=24.0)
+    summary = summary.assign(peak_force_n_p5_mean=1700.0, peak_force_n_p95_mean=1900.0,
+                             negative_work_j_p5_mean=18.0, negative_work_j_p95_mean=24.0)
+    render_squad(tmp_path / "with", strides, curves, flags, summary, athletes, dict(RUN_INFO))
+    page = html.unescape((tmp_path / "with" / "athletes" / "ZZ96.html").read_text(encoding="utf-8"))
+    assert "peak force L model range (N)" in page and "negative work R model range (J)" in page
+    assert "1700 to 1900" in page and "18.0 to 24.0" in page
+    assert "bars its model range (5–95 %)" in page
+    plain = _tables(athletes=("ZZ96",), sessions=("2026-03-02_week0",))
+    render_squad(tmp_path / "without", *plain, dict(RUN_INFO))
+    page = html.unescape((tmp_path / "without" / "athletes" / "ZZ96.html").read_text(encoding="utf-8"))
+    assert "model range (N)" not in page and "bars its model range" not in page
+
+
+def test_progress_is_reported_once_per_athlete(tmp_path):
+    steps = []
+    tables = _tables(athletes=("ZZ95", "ZZ94"), sessions=("2026-03-02_week0",), n_strides=2)
+    render_squad(tmp_path, *tables, dict(RUN_INFO), progress=lambda done, total: steps.append((done, total)))
+    assert steps == [(0, 2), (1, 2), (2, 2)]

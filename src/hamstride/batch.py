@@ -205,7 +205,7 @@ def code_fingerprint() -> str:
     """Hash of the analysis code itself, so a cache never outlives a change of the model (even within a version)."""
     h = hashlib.sha256()
     for path in sorted(Path(__file__).parent.glob("*.py")):
-        if path.name not in ("report.py", "cli.py"):  # presentation only: does not change the cached tables
+        if path.name not in ("style.py", "cli.py"):  # presentation only: does not change the cached tables
             h.update(path.name.encode())
             h.update(path.read_bytes())
     return h.hexdigest()[:16]
@@ -313,11 +313,14 @@ def _run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: 
 def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, markers: str | Path | None = None,
               config: RunConfig = RunConfig(), report: bool = True, athlete_filter: str | None = None,
               progress: Callable[[int, int, int], None] | None = None, cluster=None,
-              write_outputs: bool = True, allow_unlisted: bool = False) -> SquadRun:
+              write_outputs: bool = True, allow_unlisted: bool = False,
+              report_progress: Callable[[int, int], None] | None = None) -> SquadRun:
     """Analyse a whole squad folder and write the tables, manifest and (optionally) reports under ``out``.
 
     ``write_outputs=False`` analyses (through the cache under ``out``) and returns the tables without writing the
     squad exports, so a one-athlete view such as the timeline never overwrites the squad's tables.
+
+    ``report_progress(done, total)`` is called once per athlete while the reports are written.
 
     ``cluster`` (optional): send the trials to an existing Dask cluster instead of local processes; see
     :func:`run_on_cluster`.
@@ -440,13 +443,20 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     }
     atomic_write_text(out / "manifest.json", json.dumps(_jsonable(manifest), indent=1, sort_keys=False))
     run = SquadRun(out, manifest, strides, summary, flags, athletes, failed, analysed=len(todo), cached=n_cached)
+    from .report import athlete_files
+    stems = athlete_files(sorted(curve_files_by_athlete))
+    for athlete, files in curve_files_by_athlete.items():  # athletes/CODE_curves.csv: the rows of curves.csv
+        _stream_curves(out / "athletes" / f"{stems[athlete]}_curves.csv", files)
     if report:
         from .report import render_squad
         run_info = {"version": __version__, "configuration": config.as_dict(), "failed": failed,
                     "tendon_note": _tendon_note(), "report_jobs": jobs}  # athlete pages render in parallel too
         # Curves are loaded one athlete at a time while the pages render, so memory does not grow with the squad.
         curves_of = functools.partial(_athlete_curves, curve_files_by_athlete)
-        run.report_paths = render_squad(out, strides, curves_of, flags, summary, athletes, run_info)
+        timelines = {a: build_timeline(run, a) for a in sorted(curve_files_by_athlete)
+                     if summary.loc[summary["athlete"] == a, "session"].nunique() >= 2}
+        run.report_paths = render_squad(out, strides, curves_of, flags, summary, athletes, run_info,
+                                        timelines=timelines, progress=report_progress)
     return run
 
 

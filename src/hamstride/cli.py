@@ -242,7 +242,7 @@ def muscles_cmd(
     say("Moment arms by tendon excursion, r = -dL/dtheta: negative at the hip = extensor, positive at the "
         "knee = flexor. Strain is relative to standing upright (hip 0, knee 0 deg).")
     if plot is not None:
-        say(f"wrote {plot_moment_arms(plot, dims)}")
+        say(f"wrote {plot_moment_arms(plot, dims, hip_flexion, knee_flexion)}")
 
 
 def _squad_of(trial: Path) -> Path | None:
@@ -410,16 +410,25 @@ def squad_cmd(
         cfg, _ = _check_squad_inputs(root, out, markers, config, allow_unlisted, strict=True if strict else None)
     except HamstrideError as exc:
         _fail(exc, EXIT_USAGE)
-    with Progress(TextColumn("[bold]trials"), BarColumn(), MofNCompleteColumn(), TextColumn("{task.fields[failed]}"),
-                  TimeElapsedColumn(), console=err_console, transient=False) as bar:
+    with Progress(TextColumn("[bold]{task.description:<7}"), BarColumn(), MofNCompleteColumn(),
+                  TextColumn("{task.fields[failed]}"), TimeElapsedColumn(), console=err_console,
+                  transient=False) as bar:
         task = bar.add_task("trials", total=None, failed="")
 
         def progress(done: int, total: int, failed: int) -> None:
             bar.update(task, completed=done, total=total, failed=f"{failed} failed" if failed else "")
 
+        reports: list = []
+
+        def report_progress(done: int, total: int) -> None:  # one step per athlete while the reports are written
+            if not reports:
+                reports.append(bar.add_task("reports", total=total, failed="athletes"))
+            bar.update(reports[0], completed=done, total=total)
+
         try:
             run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=not no_report,
-                            progress=progress, cluster=cluster, allow_unlisted=allow_unlisted)
+                            progress=progress, cluster=cluster, allow_unlisted=allow_unlisted,
+                            report_progress=report_progress)
         except HamstrideError as exc:
             _fail(exc, EXIT_USAGE)
     counts = run.manifest["counts"]

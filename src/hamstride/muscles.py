@@ -898,41 +898,66 @@ def muscle_table(hip_flexion_deg: float, knee_flexion_deg: float, dims: MuscleDi
     return pd.DataFrame(rows)
 
 
-#: Our own colour-blind-safe palette (distinct in hue and lightness; checked under deuteranopia simulation).
-PALETTE = {"biceps_femoris_long": "#1b4f9c", "semitendinosus": "#e08a00", "semimembranosus": "#2a9d8f", "biceps_femoris_short": "#b5179e"}
-_LINESTYLES = {"biceps_femoris_long": "-", "semitendinosus": "--", "semimembranosus": "-.", "biceps_femoris_short": ":"}
+def moment_arm_curves(dims: MuscleDims, hip_flexion_deg: float = 0.0,
+                      knee_flexion_deg: float = 0.0) -> dict[str, dict[str, np.ndarray]]:
+    """Moment-arm curves through one posture, with the sign of :func:`muscle_table` (r = -dL/dtheta, mm).
+
+    ``hip``: hip flexion -20..120 deg at the given knee flexion; ``knee``: knee flexion 0..140 deg at the given hip
+    flexion. Returns ``{"hip": {"angle_deg": ..., muscle: arm_mm}, "knee": {...}}`` (BFsh has no hip curve)."""
+    hip_deg = np.linspace(-20.0, 120.0, 141)
+    knee_deg = np.linspace(0.0, 140.0, 141)
+    hip: dict[str, np.ndarray] = {"angle_deg": hip_deg}
+    knee: dict[str, np.ndarray] = {"angle_deg": knee_deg}
+    for muscle in MUSCLES:
+        if muscle in BIARTICULAR:
+            hip[muscle] = 1000.0 * moment_arms(muscle, np.deg2rad(hip_deg), 0.0, 0.0, np.deg2rad(knee_flexion_deg),
+                                               dims)[:, 0]
+        knee[muscle] = 1000.0 * moment_arms(muscle, np.deg2rad(hip_flexion_deg), 0.0, 0.0, np.deg2rad(knee_deg),
+                                            dims)[:, 3]
+    return {"hip": hip, "knee": knee}
 
 
-def plot_moment_arms(path, dims: MuscleDims) -> Path:
-    """Draw hip-extension and knee-flexion moment-arm curves of every muscle across the joint ranges to a PNG."""
+def plot_moment_arms(path, dims: MuscleDims, hip_flexion_deg: float = 0.0, knee_flexion_deg: float = 0.0) -> Path:
+    """Draw the hip-flexion and knee-flexion moment-arm curves of every muscle through the asked posture to a PNG.
+
+    Same sign as the ``muscles`` table (r = -dL/dtheta: negative at the hip = extensor, positive at the knee =
+    flexor); the asked posture is marked on every curve. Colours and markers: the one palette of
+    :mod:`hamstride.style`."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from .style import MUSCLE_SHORT, muscle_style
+
     out = Path(path)
     out.parent.mkdir(parents=True, exist_ok=True)
-    hip_deg = np.linspace(-20.0, 120.0, 141)
-    knee_deg = np.linspace(0.0, 140.0, 141)
+    curves = moment_arm_curves(dims, hip_flexion_deg, knee_flexion_deg)
+    asked = {"hip": hip_flexion_deg, "knee": knee_flexion_deg}
     fig, (ax_hip, ax_knee) = plt.subplots(1, 2, figsize=(10, 4.2), constrained_layout=True)
-    for muscle in MUSCLES:
-        style = dict(color=PALETTE[muscle], linestyle=_LINESTYLES[muscle], linewidth=2.0,
-                     label=f"{muscle} ({MUSCLE_NAMES[muscle]})")
-        if muscle in BIARTICULAR:
-            hip_arm = moment_arms(muscle, np.deg2rad(hip_deg), 0.0, 0.0, 0.0, dims)[:, 0]
-            ax_hip.plot(hip_deg, -1000.0 * hip_arm, **style)
-        knee_arm = moment_arms(muscle, 0.0, 0.0, 0.0, np.deg2rad(knee_deg), dims)[:, 3]
-        ax_knee.plot(knee_deg, 1000.0 * knee_arm, **style)
-    ax_hip.set(xlabel="hip flexion (deg), knee 0 deg", ylabel="hip extension moment arm (mm)",
-               title="hip extension moment arm (BFsh does not cross the hip)")
-    ax_knee.set(xlabel="knee flexion (deg), hip 0 deg", ylabel="knee flexion moment arm (mm)",
-                title="knee flexion moment arm")
-    for ax in (ax_hip, ax_knee):
+    for joint, ax in (("hip", ax_hip), ("knee", ax_knee)):
+        angle = curves[joint]["angle_deg"]
+        for muscle in MUSCLES:
+            if muscle not in curves[joint]:
+                continue
+            style = muscle_style(muscle)
+            arm = curves[joint][muscle]
+            ax.plot(angle, arm, color=style["color"], linestyle=style["linestyle"], linewidth=2.0,
+                    label=f"{MUSCLE_SHORT[muscle]} ({MUSCLE_NAMES[muscle]})")
+            ax.plot([asked[joint]], [np.interp(asked[joint], angle, arm)], marker=style["marker"],
+                    color=style["color"], markeredgecolor="black", markersize=7, ls="none")
+        ax.axvline(asked[joint], color="#555555", lw=0.8, ls=":")
+        ax.axhline(0.0, color="#555555", lw=0.6)
         ax.grid(True, alpha=0.3)
-        ax.set_ylim(bottom=0.0)
-    ax_knee.legend(fontsize=8, loc="lower center")
-    fig.suptitle(f"hamstride hamstring model: thigh {dims.thigh_length_m:.3f} m, shank {dims.shank_length_m:.3f} m, "
-                 f"pelvis width {dims.pelvis_width_m:.3f} m (r = -dL/dtheta)", fontsize=10)
+    ax_hip.set(xlabel=f"hip flexion (deg), knee flexion {knee_flexion_deg:g} deg",
+               ylabel="hip flexion moment arm r = -dL/dθ (mm)",
+               title="hip (negative = extensor; BFsh does not cross the hip)")
+    ax_knee.set(xlabel=f"knee flexion (deg), hip flexion {hip_flexion_deg:g} deg",
+                ylabel="knee flexion moment arm r = -dL/dθ (mm)", title="knee (positive = flexor)")
+    ax_knee.legend(fontsize=8, loc="best")
+    fig.suptitle(f"hamstride hamstring model through hip {hip_flexion_deg:g} deg, knee {knee_flexion_deg:g} deg "
+                 f"(markers): thigh {dims.thigh_length_m:.3f} m, shank {dims.shank_length_m:.3f} m, "
+                 f"pelvis width {dims.pelvis_width_m:.3f} m", fontsize=10)
     fig.savefig(out, dpi=120)
     plt.close(fig)
     return out

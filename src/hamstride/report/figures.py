@@ -1,0 +1,533 @@
+"""The report's pictures, drawn with matplotlib's Agg canvas once each and kept as PNG bytes for HTML and PDF.
+
+Our own look: late swing is a hatched ribbon along the top of each panel with the late-swing part of every curve
+drawn bold; toe-off is a small caret on the time axis. Sides differ by colour, line style and marker; muscles take
+the one palette of :mod:`hamstride.style` (column titles and markers), which shares no colour with the sides.
+"""
+from __future__ import annotations
+
+import io
+import math
+from dataclasses import dataclass
+from typing import Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from ..style import (BAND_ALPHA, FLAG, GRID, MUSCLE_COLOUR, MUSCLE_GLYPH, REFERENCE, SIDE_COLOUR, SIDE_LINESTYLE, SIDE_MARKER,
+                     SIDES, TARGET_ZONE, muscle_style)
+from .common import MUSCLE_NAMES, column, muscle_label, muscles_in_order, mpl_text
+
+RASTER_DPI = 110  # one raster serves the HTML page (shown at 100 px per inch) and the PDF (about 120 ppi on A4)
+_CYCLE_TICKS = (0, 25, 50, 75, 100)
+_RIBBON = (0.93, 1.0)  # late-swing ribbon: top 7 % of each panel, in axes coordinates
+_HATCH_COLOUR = "#5a5a5a"
+
+
+@dataclass(frozen=True)
+class Raster:
+    """A figure drawn once: PNG bytes and its size in inches (the HTML shows it at 100 px per inch)."""
+
+    png: bytes
+    size_in: tuple[float, float]
+
+
+def new_figure(width_in: float, height_in: float):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width_in, height_in), dpi=100)
+
+
+def raster(fig, dpi: int = RASTER_DPI) -> Raster:
+    """Draw ``fig`` once with Agg and keep the PNG (reused by the page and the PDF)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from PIL import Image
+
+    canvas = FigureCanvasAgg(fig)
+    fig.set_dpi(dpi)
+    canvas.draw()
+    rgb = np.asarray(canvas.buffer_rgba())[..., :3]
+    buffer = io.BytesIO()
+    Image.fromarray(rgb).save(buffer, format="PNG", compress_level=1)
+    width, height = fig.get_size_inches()
+    return Raster(buffer.getvalue(), (float(width), float(height)))
+
+
+def _margins(fig, *, top_in: float, left_in: float, bottom_in: float, right_in: float = 0.15,
+             wspace: float = 0.08, hspace: float = 0.12) -> None:
+    """Fixed margins in inches (much faster than tight_layout, which draws the figure once more)."""
+    width, height = fig.get_size_inches()
+    fig.subplots_adjust(left=left_in / width, right=1 - right_in / width, bottom=bottom_in / height,
+                        top=1 - top_in / height, wspace=wspace, hspace=hspace)
+
+
+def _header(fig, title: str, handles: list, ncol: int | None = None) -> None:
+    """Title on the first line, legend below it, both above the plots (never overlapping them)."""
+    width, height = fig.get_size_inches()
+    fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(title), fontsize=10.5, va="top", ha="left")
+    fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
+               ncol=ncol or len(handles), fontsize=7.5, frameon=False, borderaxespad=0.0, handlelength=2.6)
+
+
+def _cycle_axes(ax) -> None:
+    from matplotlib.ticker import FixedLocator, MaxNLocator
+
+    ax.set_xlim(0, 100)
+    ax.xaxis.set_major_locator(FixedLocator(_CYCLE_TICKS))
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=5))
+    ax.tick_params(labelsize=7.5)
+    ax.grid(True, color=GRID, lw=0.5)
+
+
+def side_handles(*, band: bool = True, peak: bool = True, window: bool = True) -> list:
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    handles = [Line2D([], [], color=SIDE_COLOUR[s], ls=SIDE_LINESTYLE[s], marker=SIDE_MARKER[s], label=f"{s} (mean)")
+               for s in SIDES]
+    if band:
+        handles.append(Patch(facecolor="#888888", alpha=BAND_ALPHA, label="± SD across strides"))
+    if window:
+        handles.append(Patch(facecolor="none", edgecolor=_HATCH_COLOUR, hatch="////", lw=0,
+                             label="late swing (curve drawn bold)"))
+        handles.append(Line2D([], [], color="#333333", marker=10, ls="none", markersize=7, label="toe-off"))
+    if peak:
+        handles.append(Line2D([], [], color="black", marker="*", ls="none", markersize=9,
+                              label="mean of stride peaks, bar = model range 5–95 %"))
+    return handles
+
+
+def curve_stats(curves: pd.DataFrame, columns: Sequence[str]) -> dict[tuple[str, str, str], tuple]:
+    """Mean and SD over strides per side, muscle and percent of cycle: {(side, muscle, column): (pct, mean, sd)}."""
+    cols = [c for c in columns if c in curves.columns]
+    if not cols or len(curves) == 0:
+        return {}
+    data = curves[["side", "muscle", "pct", *cols]].copy()
+    data["side"], data["muscle"] = data["side"].astype(str), data["muscle"].astype(str)
+    data[cols] = data[cols].apply(pd.to_numeric, errors="coerce")
+    grouped = data.groupby(["side", "muscle", "pct"], sort=True)[cols]
+    mean, sd = grouped.mean(), grouped.std()
+    out = {}
+    for (side, muscle), block in mean.groupby(level=[0, 1], sort=False):
+        pct = block.index.get_level_values(2).to_numpy(dtype=float)
+        sd_block = sd.loc[block.index]
+        for col in cols:
+            out[(side, muscle, col)] = (pct, block[col].to_numpy(dtype=float), sd_block[col].to_numpy(dtype=float))
+    return out
+
+
+def _stride_groups(strides: pd.DataFrame) -> dict[tuple[str, str], pd.DataFrame]:
+    if len(strides) == 0 or not {"side", "muscle"} <= set(strides.columns):
+        return {}
+    return {(str(k[0]), str(k[1])): g for k, g in strides.groupby([strides["side"].astype(str),
+                                                                   strides["muscle"].astype(str)], sort=False)}
+
+
+def _nanmean_of(df: pd.DataFrame | None, name: str | None) -> float:
+    if df is None or name is None or len(df) == 0:
+        return math.nan
+    v = column(df, name).to_numpy(dtype=float)
+    return float(np.nanmean(v)) if np.isfinite(v).any() else math.nan
+
+
+def window_of(strides: pd.DataFrame) -> tuple[dict[str, float], dict[str, float]]:
+    """Per side: mean late-swing start and mean toe-off (% of the gait cycle), NaN where unknown."""
+    starts, toe_offs = {}, {}
+    for side in SIDES:
+        sel = strides[strides["side"].astype(str) == side] if "side" in strides.columns else strides.iloc[:0]
+        starts[side] = _nanmean_of(sel, "late_swing_start_pct")
+        toe_offs[side] = _nanmean_of(sel, "toe_off_pct")
+    return starts, toe_offs
+
+
+def _mark_window(ax, starts: Mapping[str, float], toe_offs: Mapping[str, float], label: bool) -> None:
+    """Late swing: a hatched ribbon along the top of the panel; toe-off: a caret on the time axis (per side)."""
+    trans = ax.get_xaxis_transform()  # x in data, y in axes coordinates (cached by the axes)
+    finite = [v for v in starts.values() if math.isfinite(v)]
+    if finite:
+        start = float(np.mean(finite))
+        ax.axvspan(start, 100.0, ymin=_RIBBON[0], ymax=_RIBBON[1], facecolor="white", edgecolor=_HATCH_COLOUR,
+                   hatch="////", lw=0.6, zorder=1)
+        if label:
+            ax.text(0.5 * (start + 100.0), 0.5 * (_RIBBON[0] + _RIBBON[1]), "late swing", transform=trans,
+                    ha="center", va="center", fontsize=6.5, color="#222222", zorder=7,
+                    bbox={"facecolor": "white", "edgecolor": "none", "pad": 0.6})
+    for side in SIDES:
+        value = toe_offs.get(side, math.nan)
+        if math.isfinite(value):
+            ax.plot([value], [0.0], transform=trans, marker=10, markersize=7, color=SIDE_COLOUR[side],
+                    markeredgecolor="black", markeredgewidth=0.4, ls="none", clip_on=False, zorder=6)
+    if label:
+        toes = [v for v in toe_offs.values() if math.isfinite(v)]
+        if toes:
+            ax.text(float(np.mean(toes)) + 1.5, 0.03, "toe-off", transform=trans, ha="left", va="bottom",
+                    fontsize=6.5, color="#333333")
+
+
+def _plot_side_curves(ax, stats: Mapping, muscle: str, col: str, starts: Mapping[str, float]) -> dict[str, tuple]:
+    """Mean ± SD per side, the late-swing part drawn bold; returns per side the (pct, mean) arrays drawn."""
+    drawn = {}
+    for side in SIDES:
+        if (side, muscle, col) not in stats:
+            continue
+        pct, mv, sv = stats[(side, muscle, col)]
+        if not np.isfinite(mv).any():
+            continue
+        colour = SIDE_COLOUR[side]
+        sv = np.nan_to_num(sv)
+        ax.fill_between(pct, mv - sv, mv + sv, color=colour, alpha=BAND_ALPHA, lw=0, zorder=2)
+        ax.plot(pct, mv, color=colour, ls=SIDE_LINESTYLE[side], lw=1.1, marker=SIDE_MARKER[side], markersize=3.2,
+                markevery=max(1, len(pct) // 10), zorder=3)
+        start = starts.get(side, math.nan)
+        if math.isfinite(start):
+            late = pct >= start
+            ax.plot(pct[late], mv[late], color=colour, ls=SIDE_LINESTYLE[side], lw=2.6, zorder=3.5)
+        drawn[side] = (pct, mv)
+    return drawn
+
+
+def _mark_peaks(ax, drawn: Mapping[str, tuple], groups: Mapping, muscle: str, value_col: str | None,
+                low_col: str | None, high_col: str | None, time_col: str | None) -> None:
+    """Star at the mean of the stride peaks (at their mean time), with the model range as a vertical bar."""
+    for side, (pct, mv) in drawn.items():
+        sel = groups.get((side, muscle))
+        peak_time = _nanmean_of(sel, time_col)
+        if not math.isfinite(peak_time):
+            peak_time = float(pct[int(np.nanargmax(mv))])
+        peak_value = _nanmean_of(sel, value_col)
+        if not math.isfinite(peak_value):
+            peak_value = float(np.nanmax(mv))
+        lo, hi = _nanmean_of(sel, low_col), _nanmean_of(sel, high_col)
+        if math.isfinite(lo) and math.isfinite(hi):
+            ax.vlines(peak_time, lo, hi, color=SIDE_COLOUR[side], lw=2.2, zorder=4)
+        ax.plot([peak_time], [peak_value], marker="*", markersize=10, color=SIDE_COLOUR[side],
+                markeredgecolor="black", markeredgewidth=0.6, ls="none", zorder=5)
+
+
+def _muscle_title(ax, muscle: str) -> None:
+    """Column title in the muscle's palette colour led by its marker glyph, the same in every figure."""
+    ax.set_title(mpl_text(f"{MUSCLE_GLYPH.get(muscle, '●')} {MUSCLE_NAMES.get(muscle, muscle)}"), fontsize=9,
+                 color=MUSCLE_COLOUR.get(muscle, "#444444"), fontweight="bold")
+
+
+_STRETCH_ROWS = (
+    ("strain_pct", "stretch vs upright (%)", "peak_strain_pct", "peak_strain_p5_pct", "peak_strain_p95_pct",
+     "peak_strain_time_pct"),
+    # rigid tendon: fibre length rises with musculotendon length, so its late-swing peak comes with the strain peak
+    ("fibre_length_lopt", "fibre length l/l_opt (–)", "peak_fibre_length_lopt", "peak_fibre_length_lopt_p5",
+     "peak_fibre_length_lopt_p95", "peak_strain_time_pct"),
+    ("velocity_lopt_per_s", "lengthening velocity (l_opt/s)", None, None, None, None),
+)
+_FORCE_ROWS = (("force_n", "muscle force (N)"), ("power_w", "muscle power (W)"))
+
+
+def _muscle_grid(fig, rows: Sequence[tuple[str, str]], muscles: Sequence[str], curves: pd.DataFrame,
+                 strides: pd.DataFrame, decorate) -> np.ndarray:
+    """One column per muscle and one row per curve column, left and right overlaid, late swing marked."""
+    stats = curve_stats(curves, [r[0] for r in rows])
+    starts, toe_offs = window_of(strides)
+    axes = fig.subplots(len(rows), max(1, len(muscles)), squeeze=False)
+    for j, muscle in enumerate(muscles):
+        for i, (col, ylabel) in enumerate(rows):
+            ax = axes[i, j]
+            drawn = _plot_side_curves(ax, stats, muscle, col, starts)
+            decorate(ax, col, muscle, drawn)
+            if not drawn:
+                ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
+            if i == 0:
+                _muscle_title(ax, muscle)
+            if j == 0:
+                ax.set_ylabel(ylabel, fontsize=8.5)
+            if i == len(rows) - 1:
+                ax.set_xlabel("gait cycle (%)", fontsize=8.5)
+    _share_rows(axes)
+    for i in range(axes.shape[0]):
+        for j in range(axes.shape[1]):
+            _mark_window(axes[i, j], starts, toe_offs, label=(i == 0 and j == 0))
+    return axes
+
+
+def _share_rows(axes: np.ndarray) -> None:
+    """One y range per row (room at the top for the late-swing ribbon) and 0-100 % for all, as shared axes would
+    give; tick labels only on the left column and the bottom row. Inner panels get plain grid lines instead of
+    ticks: tick objects dominate drawing time, and inner tick labels would be hidden anyway."""
+    from matplotlib.ticker import NullLocator
+
+    n_rows, n_cols = axes.shape
+    for i in range(n_rows):
+        limits = np.array([axes[i, j].get_ylim() for j in range(n_cols)])
+        lo, hi = float(limits[:, 0].min()), float(limits[:, 1].max())
+        hi += 0.14 * (hi - lo)
+        for j in range(n_cols):
+            ax = axes[i, j]
+            ax.set_ylim(lo, hi)
+            _cycle_axes(ax)
+            if j:
+                ax.yaxis.set_major_locator(NullLocator())
+            if i < n_rows - 1:
+                ax.xaxis.set_major_locator(NullLocator())
+        y_grid = [v for v in axes[i, 0].yaxis.get_major_locator().tick_values(lo, hi) if lo <= v <= hi]
+        for j in range(n_cols):  # one line collection per panel and direction, where ax.grid would draw
+            ax = axes[i, j]
+            if j and y_grid:
+                ax.hlines(y_grid, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
+            if i < n_rows - 1:
+                ax.vlines(_CYCLE_TICKS, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
+
+
+def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
+                   compact: bool = False):
+    """Stretch, fibre length and lengthening velocity per muscle (``compact``: the stretch row only)."""
+    groups = _stride_groups(strides)
+    rows = _STRETCH_ROWS[:1] if compact else _STRETCH_ROWS
+    peaks = {r[0]: r[2:] for r in rows}
+
+    def decorate(ax, col, muscle, drawn):
+        if col == "fibre_length_lopt":
+            ax.axhline(1.0, color=REFERENCE, ls=":", lw=1.0, zorder=1)
+            ax.text(1.5, 1.0, "optimal length", fontsize=6.5, color=REFERENCE, va="bottom")
+        if col == "velocity_lopt_per_s":
+            ax.axhline(0.0, color=REFERENCE, ls="-", lw=0.6, zorder=1)
+        if drawn:
+            _mark_peaks(ax, drawn, groups, muscle, *peaks[col])
+
+    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 3.4 if compact else 7.0)
+    _muscle_grid(fig, [r[:2] for r in rows], muscles, curves, strides, decorate)
+    _header(fig, title, side_handles(), ncol=3)
+    _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
+    return fig
+
+
+def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
+    from matplotlib.lines import Line2D
+
+    groups = _stride_groups(strides)
+
+    def decorate(ax, col, muscle, drawn):
+        if col == "force_n" and drawn:
+            _mark_peaks(ax, drawn, groups, muscle, "peak_force_n", "peak_force_n_p5", "peak_force_n_p95", None)
+        if col == "power_w":
+            ax.axhline(0.0, color=REFERENCE, ls="-", lw=0.6, zorder=1)
+
+    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 5.0)
+    _muscle_grid(fig, _FORCE_ROWS, muscles, curves, strides, decorate)
+    has_band = {"peak_force_n_p5", "peak_force_n_p95"} <= set(strides.columns)
+    star = Line2D([], [], color="black", marker="*", ls="none", markersize=9,
+                  label="mean of stride peak forces" + (", bar = model range 5–95 %" if has_band else ""))
+    _header(fig, title, side_handles(peak=False) + [star], ncol=3)
+    _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
+    return fig
+
+
+def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
+    """Hip and knee flexion (one muscle's rows suffice: the joint angles are shared by all muscles)."""
+    cols = ("hip_flexion_deg", "knee_flexion_deg")
+    first = muscles_in_order(curves["muscle"])[:1]
+    one = curves[curves["muscle"].astype(str).isin(first)]
+    stats = curve_stats(one, [c for c in cols if c in curves.columns])
+    starts, toe_offs = window_of(strides)
+    fig = new_figure(9.0, 2.9)
+    axes = fig.subplots(1, 2, squeeze=False)[0]
+    labels = {"hip_flexion_deg": "hip flexion (deg)", "knee_flexion_deg": "knee flexion (deg)"}
+    for k, (ax, col) in enumerate(zip(axes, cols)):
+        drawn = _plot_side_curves(ax, stats, first[0] if first else "", col, starts)
+        if not drawn:
+            ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
+        ax.axhline(0.0, color=REFERENCE, lw=0.6)
+        lo, hi = ax.get_ylim()
+        ax.set_ylim(lo, hi + 0.14 * (hi - lo))
+        ax.set_ylabel(labels[col], fontsize=8.5)
+        ax.set_xlabel("gait cycle (%)", fontsize=8.5)
+        _cycle_axes(ax)
+        _mark_window(ax, starts, toe_offs, label=(k == 0))
+    _header(fig, title, side_handles(peak=False), ncol=5)
+    _margins(fig, top_in=0.75, left_in=0.75, bottom_in=0.5, wspace=0.25)
+    return fig
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# timeline
+
+
+_TIMELINE_ROWS = (
+    ("peak_strain_pct_mean", "peak stretch (%)"),
+    ("peak_fibre_length_lopt_mean", "peak l/l_opt (–)"),
+    ("negative_work_j_mean", "negative work (J)"),
+)
+_MIN_SPAN = {"speed_m_s": 1.0, "peak_strain_pct_mean": 2.0, "peak_fibre_length_lopt_mean": 0.1,
+             "negative_work_j_mean": 5.0}
+LSI_STYLES = (("-", "s", "#222222", "LSI of peak stretch"), (":", "P", "#666666", "LSI of negative work"))
+
+
+def _min_span(ax, values: np.ndarray, span: float) -> None:
+    """Give an axis at least ``span`` of range around its data, so small changes are not magnified."""
+    finite = np.asarray(values, dtype=float)
+    finite = finite[np.isfinite(finite)]
+    if not finite.size:
+        return
+    lo, hi = float(finite.min()), float(finite.max())
+    pad = 0.1 * (hi - lo)
+    if hi - lo + 2 * pad < span:
+        mid = 0.5 * (lo + hi)
+        ax.set_ylim(mid - span / 2, mid + span / 2)
+    else:
+        ax.set_ylim(lo - pad, hi + pad)
+
+
+def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xlabels: Sequence[str],
+                    muscles: Sequence[str], lsi_cols: Sequence[str], x_title: str, lsi_line: float = 90.0):
+    """Speed on top, then per muscle (columns) peak stretch, peak l/l_opt, negative work and LSI per session."""
+    from matplotlib.gridspec import GridSpec
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+    from matplotlib.ticker import MaxNLocator, NullLocator
+
+    n = max(1, len(muscles))
+    nrows = 1 + len(_TIMELINE_ROWS) + 1
+    width, height = 2.8 * n + 0.9, 1.6 * nrows + 1.6
+    fig = new_figure(width, height)
+    grid = GridSpec(nrows, n, figure=fig, left=0.85 / width, right=1 - 0.15 / width, top=1 - 0.9 / height,
+                    bottom=0.95 / height, hspace=0.5, wspace=0.12)
+    x = np.arange(len(sessions))
+    xlim = (-0.4, max(len(sessions) - 0.6, 0.4))
+    data = tl.assign(session=tl["session"].astype(str), side=tl["side"].astype(str), muscle=tl["muscle"].astype(str))
+
+    def values(side: str | None, muscle: str | None, name: str) -> np.ndarray:
+        sel = data
+        if side is not None:
+            sel = sel[sel["side"] == side]
+        if muscle is not None:
+            sel = sel[sel["muscle"] == muscle]
+        means = column(sel, name).groupby(sel["session"]).mean()
+        return means.reindex(list(sessions)).to_numpy(dtype=float)
+
+    ax = fig.add_subplot(grid[0, :])
+    speed = values(None, None, "speed_m_s")
+    ax.plot(x, speed, color="#333333", marker="s")
+    _min_span(ax, speed, _MIN_SPAN["speed_m_s"])
+    ax.set_ylabel("speed (m/s)", fontsize=8.5)
+    ax.set_title("running speed (mean of the session's strides)", fontsize=9, loc="left")
+    ax.set_xticks(x, [mpl_text(v) for v in xlabels], fontsize=7.5)
+    ax.set_xlim(*xlim)
+    ax.tick_params(axis="y", labelsize=7.5)
+    ax.grid(True, color=GRID, lw=0.5)
+    rows_axes: dict[int, list] = {}
+    row_values: dict[int, list] = {}
+    lsi_values: list[np.ndarray] = []
+    for j, muscle in enumerate(muscles):
+        for i, (col, label) in enumerate(_TIMELINE_ROWS, start=1):
+            ax = fig.add_subplot(grid[i, j])
+            rows_axes.setdefault(i, []).append(ax)
+            vals = {side: values(side, muscle, col) for side in SIDES}
+            row_values.setdefault(i, []).extend(vals.values())
+            if any(np.isfinite(v).any() for v in vals.values()):
+                for side in SIDES:
+                    ax.plot(x, vals[side], color=SIDE_COLOUR[side], ls=SIDE_LINESTYLE[side], marker=SIDE_MARKER[side])
+            else:
+                ax.text(0.5, 0.5, "body mass missing" if col.startswith("negative") else "no data",
+                        transform=ax.transAxes, ha="center", va="center", fontsize=7.5, color="#777777")
+            if col == "peak_fibre_length_lopt_mean":
+                ax.axhline(1.0, color=REFERENCE, ls=":", lw=1.0)
+            if i == 1:
+                _muscle_title(ax, muscle)
+            if j == 0:
+                ax.set_ylabel(label, fontsize=8.5)
+            ax.xaxis.set_major_locator(NullLocator())  # grid lines below instead of tick objects (drawing time)
+            ax.vlines(x, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
+            ax.set_xlim(*xlim)
+            ax.tick_params(labelsize=7.5)
+        ax = fig.add_subplot(grid[nrows - 1, j])
+        rows_axes.setdefault(nrows - 1, []).append(ax)
+        ax.axhline(lsi_line, color=FLAG, ls="-.", lw=1.3, zorder=1)
+        drew = False
+        for (ls, mk, colour, _), col in zip(LSI_STYLES, lsi_cols):
+            v = values(None, muscle, col)
+            if np.isfinite(v).any():
+                ax.plot(x, v, color=colour, ls=ls, marker=mk, zorder=3)
+                lsi_values.append(v)
+                drew = True
+        if not drew:
+            ax.text(0.5, 0.5, "LSI needs the injured side\nin athletes.csv", transform=ax.transAxes,
+                    ha="center", va="center", fontsize=7.5, color="#777777")
+        if j == 0:
+            ax.set_ylabel("LSI (%)", fontsize=8.5)
+        ax.set_xticks(x, [mpl_text(v) for v in xlabels], fontsize=6.5, rotation=30, ha="right")
+        ax.set_xlim(*xlim)
+        ax.tick_params(axis="y", labelsize=7.5)
+        ax.xaxis.grid(True, color=GRID, lw=0.5)
+    for i, axes in rows_axes.items():  # a minimum span per row, so noise is not blown up into a trend
+        if i <= len(_TIMELINE_ROWS):
+            _min_span(axes[0], np.concatenate(row_values.get(i, [np.array([np.nan])])),
+                      _MIN_SPAN[_TIMELINE_ROWS[i - 1][0]])
+        else:
+            both = np.concatenate(lsi_values) if lsi_values else np.array([np.nan])
+            finite = both[np.isfinite(both)]
+            lo = min(lsi_line - 10.0, float(finite.min()) - 5) if finite.size else lsi_line - 10.0
+            hi = max(lsi_line + 20.0, float(finite.max()) + 5) if finite.size else lsi_line + 20.0
+            for ax in axes:
+                ax.axhspan(lsi_line, hi, color=TARGET_ZONE, lw=0, zorder=0)
+            axes[0].set_ylim(lo, hi)
+        # one y range per row, as shared axes would give; tick labels on the left column only, grid lines elsewhere
+        limits = axes[0].get_ylim()
+        axes[0].yaxis.set_major_locator(MaxNLocator(nbins=4))
+        ticks = [v for v in axes[0].yaxis.get_major_locator().tick_values(*limits) if limits[0] <= v <= limits[1]]
+        axes[0].yaxis.grid(True, color=GRID, lw=0.5)
+        for ax in axes[1:]:
+            ax.set_ylim(*limits)
+            ax.yaxis.set_major_locator(NullLocator())
+            if ticks:
+                ax.hlines(ticks, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
+    fig.text(0.5, 0.12 / height, mpl_text(x_title), ha="center", va="bottom", fontsize=8.5)
+    fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(f"{athlete} · sessions in date order"), fontsize=10.5,
+             va="top")
+    handles = side_handles(band=False, peak=False, window=False)
+    handles += [Line2D([], [], color=c, ls=ls, marker=mk, label=lab)
+                for (ls, mk, c, lab), _ in zip(LSI_STYLES, lsi_cols)]
+    handles.append(Line2D([], [], color=FLAG, ls="-.", label=f"LSI {lsi_line:g} %"))
+    handles.append(Patch(facecolor=TARGET_ZONE, label=f"target zone: LSI ≥ {lsi_line:g} %"))
+    fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
+               ncol=min(len(handles), 4 if n < 3 else 6), fontsize=7.5, frameon=False, borderaxespad=0.0)
+    return fig
+
+
+def mini_geometry(rows: Sequence[dict], stretch_range: tuple[float, float], si_limit: float,
+                  band: float) -> dict:
+    """Coordinates (px) of the squad overview's small picture of one athlete, drawn by the index template as SVG.
+
+    ``rows``: one dict per muscle with ``muscle``, ``left``, ``right``, ``left_lo``, ``left_hi``, ``right_lo``,
+    ``right_hi`` (peak stretch and its model range, %) and ``si`` (symmetry index, %, NaN where undefined).
+    Left part: peak stretch per side on the squad's common scale; right part: SI against the ±band zone.
+    """
+    width, row_h, label_w, stretch_w, gap, si_w = 300, 16, 34, 150, 14, 96
+    lo, hi = stretch_range
+    si0 = label_w + stretch_w + gap
+
+    def sx(v: float) -> float:
+        return round(label_w + 4 + (stretch_w - 8) * (v - lo) / (hi - lo), 1) if hi > lo else label_w + stretch_w / 2
+
+    def six(v: float) -> float:
+        v = max(-si_limit, min(si_limit, v))
+        return round(si0 + si_w / 2 + (si_w / 2 - 4) * v / si_limit, 1)
+
+    out_rows = []
+    for k, r in enumerate(rows):
+        y = 4 + k * row_h + row_h / 2
+        sides = []
+        for side in SIDES:
+            value = r.get(side, math.nan)
+            if not math.isfinite(value):
+                continue
+            lo_v, hi_v = r.get(f"{side}_lo", math.nan), r.get(f"{side}_hi", math.nan)
+            dy = -3 if side == "left" else 3
+            sides.append({"side": side, "x": sx(value), "y": round(y + dy, 1), "colour": SIDE_COLOUR[side],
+                          "x0": sx(lo_v) if math.isfinite(lo_v) else None,
+                          "x1": sx(hi_v) if math.isfinite(hi_v) else None})
+        si = r.get("si", math.nan)
+        out_rows.append({"y": y, "label": muscle_label(r["muscle"]), "colour": MUSCLE_COLOUR.get(r["muscle"], "#444"),
+                         "marker": muscle_style(r["muscle"])["marker"], "sides": sides,
+                         "si_x": six(si) if math.isfinite(si) else None, "si_outside": math.isfinite(si)
+                         and abs(si) > band})
+    height = 8 + row_h * max(1, len(rows))
+    return {"width": width, "height": height, "rows": out_rows, "label_w": label_w, "stretch_x0": label_w,
+            "stretch_w": stretch_w, "si_x0": si0, "si_w": si_w, "zone_x0": six(-band), "zone_x1": six(band),
+            "si_mid": six(0.0), "colours": dict(SIDE_COLOUR), "zone_colour": TARGET_ZONE}

@@ -1,0 +1,208 @@
+"""The athlete PDF from the same content blocks as the HTML page, laid out by reportlab's platypus engine.
+
+Paragraphs wrap to the frame, tables get column widths that fit the page, wrap their cells and break across pages
+with the header row repeated, pictures are scaled to fit, and the caution is the footer of every page. The fonts
+are the DejaVu faces that ship with matplotlib, so nothing needs installing beyond pip packages.
+
+References
+----------
+reportlab user guide, chapter "Platypus" (flowables, ``Table(repeatRows=1)``, ``SimpleDocTemplate``).
+"""
+from __future__ import annotations
+
+import functools
+import io
+from pathlib import Path
+from urllib.parse import unquote
+from xml.sax.saxutils import escape
+
+from reportlab.platypus import Flowable
+
+from ..io import atomic_write_bytes
+from .common import CAUTION
+from .content import Page
+
+_FONT, _BOLD, _MONO = "hamstride-sans", "hamstride-sans-bold", "hamstride-mono"
+
+
+@functools.lru_cache(maxsize=1)
+def _fonts() -> tuple[str, str]:
+    """Register DejaVu Sans (matplotlib's own font files) once; it covers ±, −, ≥, ÷ and the other signs we print."""
+    from matplotlib import get_data_path
+    from reportlab import rl_config
+    from reportlab.pdfbase import pdfmetrics
+    from reportlab.pdfbase.ttfonts import TTFont
+
+    rl_config.useA85 = 0  # binary streams: the ASCII85 text encoding runs in pure Python and only adds size
+    folder = Path(get_data_path()) / "fonts" / "ttf"
+    pdfmetrics.registerFont(TTFont(_FONT, str(folder / "DejaVuSans.ttf")))
+    pdfmetrics.registerFont(TTFont(_BOLD, str(folder / "DejaVuSans-Bold.ttf")))
+    pdfmetrics.registerFontFamily(_FONT, normal=_FONT, bold=_BOLD, italic=_FONT, boldItalic=_BOLD)
+    return _FONT, _BOLD
+
+
+def para_text(value: object) -> str:
+    """Text for a reportlab Paragraph: its mini-markup (<, >, &) escaped, so data can never add markup."""
+    return escape(str(value))
+
+
+@functools.lru_cache(maxsize=1)
+def _styles() -> dict:
+    from reportlab.lib import colors
+    from reportlab.lib.styles import ParagraphStyle
+
+    font, bold = _fonts()
+    base = ParagraphStyle("body", fontName=font, fontSize=8.5, leading=11, splitLongWords=True)
+    return {
+        "body": base,
+        "h1": ParagraphStyle("h1", parent=base, fontName=bold, fontSize=15, leading=19, spaceAfter=4),
+        "h2": ParagraphStyle("h2", parent=base, fontName=bold, fontSize=11.5, leading=14, spaceBefore=9,
+                             spaceAfter=3, keepWithNext=1),
+        "explain": ParagraphStyle("explain", parent=base, textColor=colors.HexColor("#444444"), fontSize=8,
+                                  leading=10, spaceAfter=3, keepWithNext=1),
+        "headline": ParagraphStyle("headline", parent=base, fontSize=10, leading=13.5, borderPadding=5,
+                                   backColor=colors.HexColor("#f6f6ef"), borderColor=colors.HexColor("#d9d9c8"),
+                                   borderWidth=0.6, spaceBefore=6, spaceAfter=8),
+        "caution": ParagraphStyle("caution", parent=base, borderPadding=5, backColor=colors.HexColor("#fbf1ef"),
+                                  borderColor=colors.HexColor("#a8322d"), borderWidth=0.6, spaceBefore=5,
+                                  spaceAfter=7),
+        "note": ParagraphStyle("note", parent=base, borderPadding=4, backColor=colors.HexColor("#f3f5f8"),
+                               spaceBefore=4, spaceAfter=6),
+        "cell": ParagraphStyle("cell", parent=base, fontSize=7, leading=8.4),
+        "cellnum": ParagraphStyle("cellnum", parent=base, fontSize=7, leading=8.4, alignment=2),
+        "head": ParagraphStyle("head", parent=base, fontName=bold, fontSize=7, leading=8.4),
+        "figtitle": ParagraphStyle("figtitle", parent=base, fontName=bold, fontSize=11.5, leading=14),
+        "caption": ParagraphStyle("caption", parent=base, fontSize=7.8, leading=9.6, spaceAfter=6),
+        "footer": ParagraphStyle("footer", parent=base, fontSize=6.8, leading=8.2,
+                                 textColor=colors.HexColor("#333333")),
+    }
+
+
+def _paragraph(text: str, style: str, strong: str = ""):
+    from reportlab.platypus import Paragraph
+
+    lead = f"<b>{para_text(strong)}</b> " if strong else ""
+    return Paragraph(lead + para_text(text), _styles()[style])
+
+
+def _table(block, width: float) -> list:
+    """A wrapping table that fits ``width`` and repeats its header row on every page it spans."""
+    from reportlab.lib import colors
+    from reportlab.platypus import Paragraph, Table, TableStyle
+
+    styles = _styles()
+    n = len(block.headers)
+    weights = list(block.widths) if len(block.widths) == n else [1.0] * n
+    total = sum(weights)
+    widths = [width * w / total for w in weights]
+    data = [[Paragraph(para_text(h), styles["head"]) for h in block.headers]]
+    for row in block.rows:
+        data.append([Paragraph(para_text(c.text), styles["cellnum" if c.numeric else "cell"]) for c in row.cells])
+    if len(data) == 1:
+        data.append([Paragraph("none", styles["cell"])] + [""] * (n - 1))
+    table = Table(data, colWidths=widths, repeatRows=1, hAlign="LEFT")
+    commands = [("GRID", (0, 0), (-1, -1), 0.4, colors.HexColor("#c8c8c8")),
+                ("BACKGROUND", (0, 0), (-1, 0), colors.HexColor("#eef0f3")),
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                ("LEFTPADDING", (0, 0), (-1, -1), 2.5), ("RIGHTPADDING", (0, 0), (-1, -1), 2.5),
+                ("TOPPADDING", (0, 0), (-1, -1), 1.5), ("BOTTOMPADDING", (0, 0), (-1, -1), 1.5)]
+    for i, row in enumerate(block.rows, start=1):
+        if row.flagged:
+            commands.append(("LINEBEFORE", (0, i), (0, i), 3.0, colors.HexColor("#a8322d")))
+    table.setStyle(TableStyle(commands))
+    out = []
+    if block.caption:
+        out.append(_paragraph(block.caption, "explain"))
+    out.append(table)
+    return out
+
+
+class _FigureFlowable(Flowable):
+    """Title, picture and caption as one piece: the picture shrinks to the space left on the page, down to 60 % of
+    its full-page size; below that the piece asks for its full size, so platypus moves it to the next page."""
+
+    def __init__(self, block, width: float, height: float):
+        super().__init__()
+        self.title = _paragraph(block.title, "figtitle")
+        self.caption = _paragraph(block.caption, "caption")
+        self.png = block.raster.png
+        self.w_pt, self.h_pt = block.raster.size_in[0] * 72.0, block.raster.size_in[1] * 72.0
+        self.frame_h = height
+        self.full = self.scale = min(1.0, width / self.w_pt)
+        self.parts = (0.0, 0.0)
+
+    def wrap(self, avail_w, avail_h):
+        title_h = self.title.wrap(avail_w, avail_h)[1] + 4.0
+        caption_h = self.caption.wrap(avail_w, avail_h)[1] + 6.0
+        self.parts = (title_h, caption_h)
+        full = min(self.full, avail_w / self.w_pt, (self.frame_h - title_h - caption_h) / self.h_pt)
+        fit = min(full, (avail_h - title_h - caption_h) / self.h_pt)
+        self.scale = fit if fit >= 0.6 * full else full
+        return avail_w, title_h + self.h_pt * self.scale + caption_h
+
+    def draw(self):
+        from reportlab.lib.utils import ImageReader
+
+        title_h, caption_h = self.parts
+        image_h = self.h_pt * self.scale
+        self.caption.drawOn(self.canv, 0, 0)
+        self.canv.drawImage(ImageReader(io.BytesIO(self.png)), 0, caption_h, width=self.w_pt * self.scale,
+                            height=image_h)
+        self.title.drawOn(self.canv, 0, caption_h + image_h + 4.0)
+
+
+def _figure(block, width: float, height: float) -> list:
+    return [_FigureFlowable(block, width, height)]
+
+
+def _flowables(blocks, width: float, height: float) -> list:
+    out = []
+    for b in blocks:
+        if b.kind == "heading":
+            out.append(_paragraph(b.text, "h2"))
+        elif b.kind == "text":
+            out.append(_paragraph(b.text, b.cls if b.cls in _styles() else "body", b.strong))
+        elif b.kind == "figure":
+            if b.latest:  # earlier sessions' pictures are for the HTML session picker; the PDF is the latest's
+                out += _figure(b, width, height)
+        elif b.kind == "table":
+            out += _table(b, width)
+        elif b.kind == "items":
+            out += [_paragraph(d, "body", f"{t}:" if t else "") for t, d in b.items]
+        elif b.kind == "links":  # the PDF travels alone: name the files (as they sit beside the HTML page)
+            names = ", ".join(f"{label} ({unquote(href)})" for label, href in b.items)
+            out.append(_paragraph(f"{b.lead} {names}".strip(), "explain"))
+        elif b.kind == "folded":
+            out.append(_paragraph(b.summary, "h2"))
+            out += _flowables(b.blocks, width, height)
+        # "picker" is interactive: the PDF shows every session instead
+    return out
+
+
+def write_pdf(path: Path, page: Page) -> Path:
+    """Lay ``page`` out on A4 landscape pages (caution and page number in every footer) and write it atomically."""
+    from reportlab.lib.pagesizes import A4, landscape
+    from reportlab.platypus import Paragraph, SimpleDocTemplate
+
+    page_w, page_h = landscape(A4)
+    margin, bottom = 28.0, 40.0
+    styles = _styles()
+    footer = Paragraph(f"<b>Caution.</b> {para_text(CAUTION)}", styles["footer"])
+
+    def on_page(canvas, doc) -> None:
+        canvas.saveState()
+        w, h = footer.wrap(page_w - 2 * margin - 60, bottom)
+        footer.drawOn(canvas, margin, max(6.0, (bottom - h) / 2))
+        canvas.setFont(_FONT, 7)
+        canvas.drawRightString(page_w - margin, max(6.0, (bottom - h) / 2), f"page {doc.page}")
+        canvas.restoreState()
+
+    buffer = io.BytesIO()
+    doc = SimpleDocTemplate(buffer, pagesize=(page_w, page_h), leftMargin=margin, rightMargin=margin,
+                            topMargin=margin, bottomMargin=bottom, title=page.title, subject=CAUTION,
+                            author="hamstride", creator="hamstride")
+    story = [_paragraph(page.heading, "h1")] + _flowables(page.blocks, doc.width, doc.height)
+    doc.build(story, onFirstPage=on_page, onLaterPages=on_page)
+    return atomic_write_bytes(path, buffer.getvalue())
+
+
