@@ -154,26 +154,28 @@ def test_analyse_trial_reports_event_source_and_marker_offset(tmp_path):
 
 
 @functools.lru_cache(maxsize=None)
-def _marker_rule_run(speed: float, seed: int, heel_map: bool = False):
+def _marker_rule_run(speed: float, seed: int, heel_map: bool = False, noise_mm: float = 0.5,
+                     soft_tissue_mm: float = 2.0):
     """Generator truth and marker-rule events (no plates in the file), optionally with the heels mapped to other
-    markers of the heel cluster."""
+    markers of the heel cluster, more marker noise or more soft-tissue wobble."""
     with tempfile.TemporaryDirectory() as tmp:
         path = pathlib.Path(tmp) / "run.c3d"
-        truth = write_run_trial(path, RunSpec(speed_m_s=speed, plates="none", seed=seed))
+        spec = RunSpec(speed_m_s=speed, plates="none", seed=seed, noise_mm=noise_mm, soft_tissue_mm=soft_tissue_mm)
+        truth = write_run_trial(path, spec)
         markers = None
         if heel_map:
             markers = pathlib.Path(tmp) / "markers.toml"
             markers.write_text('[landmarks]\nright_heel = "r.heel.up"\nleft_heel = "l.heel.side"\n')
-        _, lm = _lab_trial(path, markers)
+        trial, lm = _lab_trial(path, markers)
         lm, _ = smooth_landmarks(lm, keep_clusters=False)
-        return truth, detect_events(lm)
+        return truth, detect_events(lm), (trial.n_frames - 1) / spec.rate_hz
 
 
-def _marker_rule_errors(speed: float, seeds=range(4), heel_map: bool = False):
+def _marker_rule_errors(speed: float, seeds=range(4), heel_map: bool = False, **spec):
     """(foot strike, toe-off, hover flag per foot strike): marker rule minus the generator's contact times, ms."""
     fs, to, hover = [], [], []
     for seed in seeds:
-        truth, events = _marker_rule_run(speed, seed, heel_map)
+        truth, events, _ = _marker_rule_run(speed, seed, heel_map, **spec)
         for side in SIDES:
             fs.append(-_nearest_errors_ms(truth.foot_strikes_s[side], events.foot_strikes_s[side]))
             to.append(-_nearest_errors_ms(truth.toe_offs_s[side], events.toe_offs_s[side]))
@@ -208,12 +210,52 @@ def test_heel_cluster_any_heel_marker_mapped():
         assert fs.size >= 20 and np.abs(fs).max() <= 25.0 and np.median(np.abs(fs)) <= 5.0
 
 
+@pytest.mark.parametrize("soft_tissue_mm", [2.0, 6.0])
+@pytest.mark.parametrize("speed", [2.5, 3.5, 5.0, 7.0, 9.0])
+def test_marker_rule_finds_every_contact_and_no_other_from_jogging_to_sprinting(speed, soft_tissue_mm):
+    # marker rule alone (no plates, no toe marker, heel cluster) from a 2.5 m/s jog (heel landings) to a 9 m/s sprint
+    # (forefoot landings), with the generator's default and a threefold skin-marker wobble after touchdown: every
+    # contact seen whole (truth event >= 30 ms inside the recording) is found, nothing else is found, and every event
+    # lies within 25 ms of the contact model's (measured max 21.7 ms for foot strikes, 20.2 ms for toe-offs; the
+    # published marker-vs-plate limits of agreement are about -12 to +18 ms, Handsaker et al. 2016, references.md)
+    for seed in range(4):
+        truth, events, end = _marker_rule_run(speed, seed, soft_tissue_mm=soft_tissue_mm)
+        for side in SIDES:
+            for kind, found, true in (("foot strike", events.foot_strikes_s[side], truth.foot_strikes_s[side]),
+                                      ("toe-off", events.toe_offs_s[side], truth.toe_offs_s[side])):
+                seen = true[(true >= 0.03) & (true <= end - 0.03)]
+                missed = np.abs(_nearest_errors_ms(seen, found)) if found.size else np.full(seen.size, np.inf)
+                extra = np.abs(_nearest_errors_ms(found, true))
+                assert seen.size >= 2 and np.all(missed <= 25.0), (seed, side, kind, missed)
+                assert np.all(extra <= 25.0), (seed, side, kind, found, true)
+
+
 @pytest.mark.parametrize("speed", [3.5, 9.0])
-@pytest.mark.xfail(strict=True, reason="issue 13 acceptance not met yet by the marker rule alone on the running-feet "
-                   "generator (no toe marker, heel cluster, flat-foot hovers): measured over 8 seeds, 3.5 m/s FS "
-                   "median 9.0 / p95 18.1 ms (heel strikes found ~12 ms early: the heel enters the 5 mm floor band "
-                   "while still descending), TO median 11.8 / p95 15.2 ms; 9 m/s FS 3.0 / 14.3 ms, TO 10.8 / 12.1 ms "
-                   "(first-metatarsal jerk peak ~11 ms after the toe leaves)")
+@pytest.mark.xfail(strict=True, reason="3 mm marker noise: Winter's residual analysis then picks 9 Hz (3.5 m/s) and "
+                   "12.5 Hz (9 m/s) instead of 17-21 Hz, below the ~15 Hz the event timing needs (events.py); over "
+                   "8 seeds 3.5 m/s FS median 8.3 / p95 16.6 ms with one strike 93 ms early, TO 19.4 / 34.4 ms; 9 m/s "
+                   "FS 8.9 / 13.8 ms, TO 15.3 / 24.7 ms")
+def test_marker_rule_with_3_mm_marker_noise_meets_issue_13_acceptance(speed):
+    # robustness of the acceptance (below) to 3 mm of marker noise, the largest the issue asks about
+    fs, to, _ = _marker_rule_errors(speed, noise_mm=3.0)
+    assert np.median(np.abs(fs)) <= 5.0 and np.percentile(np.abs(fs), 95) <= 12.0
+    assert np.median(np.abs(to)) <= 10.0 and np.percentile(np.abs(to), 95) <= 20.0
+
+
+@pytest.mark.parametrize("speed", [3.5, 9.0])
+@pytest.mark.xfail(strict=True, reason="issue 13 acceptance not met by the marker rule alone on the running-feet "
+                   "generator (no toe marker, heel cluster, flat-foot hovers); the 4 seeds here, |error| median / p95: "
+                   "3.5 m/s FS 11.9 / 17.0 ms (early), TO 12.4 / 15.0 ms (late); 9 m/s FS 2.9 / 14.5 ms, TO 11.0 / "
+                   "12.0 ms (8 seeds in benchmarks/events_running.py: 9.0 / 18.1, 11.8 / 15.2, 3.0 / 14.3, 10.8 / "
+                   "12.1). Foot strikes at 3.5 m/s cannot be timed closer from "
+                   "heel and metatarsal markers alone: the generator's landings are smooth (no kink at touchdown in "
+                   "any marker path) and the heel marker is -3.9 to +7.8 mm from its stance floor level at touchdown, "
+                   "descending at only 0.04-0.43 m/s, so on noise-free paths the best height threshold chosen with "
+                   "hindsight gives median 10.8 / p95 17.3 ms and Handsaker's acceleration peak runs 4.0 ms early "
+                   "unfiltered, 7-8 ms early after the pipeline's 17 Hz filter. Toe-offs: the generator's foot leaves "
+                   "the floor with no kink either and its lowest sole point is only 0.1 mm up 10 ms after toe-off at "
+                   "3.5 m/s (0.6 mm at 9 m/s), below the marker noise, so no position rule (an estimated toe tip "
+                   "rising off the floor) can see it; the jerk peak of the metatarsal marker runs 11-12 ms late")
 def test_marker_rule_alone_meets_issue_13_acceptance(speed):
     fs, to, _ = _marker_rule_errors(speed)
     assert np.median(np.abs(fs)) <= 5.0 and np.percentile(np.abs(fs), 95) <= 12.0
