@@ -308,6 +308,38 @@ def test_terminal_swing_joint_moments_are_of_published_sprint_size_without_a_lan
     assert n_swings >= 4
 
 
+@pytest.mark.xfail(strict=True, reason="issue 14, measured: the generator's swing asks for more work than sprinters "
+                   "do: at 9 m/s hip positive work 6.0-6.3 J/kg and knee negative work 3.9-4.0 J/kg per swing (8 m/s: "
+                   "5.2-5.5 and 3.4-3.5), against about 4.3 and 2.9 J/kg at 9.7-10 m/s (Nagahara et al. 2017); the "
+                   "early-swing hip flexion moment peaks at 7-8 N m/kg. Its terminal-swing extension moment is in "
+                   "range (test above); a smoother swing design is left open")
+def test_swing_joint_work_is_of_published_sprint_size():
+    # Outside reference: Nagahara et al. 2017, Biol Open 6:633 [V, abstract]: over the whole swing of male sprinters
+    # at 9.7-10 m/s, positive hip work about 4.3 J/kg and negative knee work about -2.9 J/kg. At 9 m/s the generator
+    # should ask for no more (our margin +25 %, common practice: group means, slower speed). Work = integral of the
+    # net moment x joint angular velocity (flexion positive for both), swing frames only.
+    _, _, truth = _sim_kw(speed_m_s=9.0, seed=4, noise_mm=0.0, n_gaps=0)
+    t = truth.time_s
+    dt_s = t[1] - t[0]
+    n_swings = 0
+    for side in SIDES:
+        hip, knee = _swing_moments_per_kg(truth, side)
+        hip_power = hip * np.gradient(truth.angles[side]["hip_flexion"], dt_s)
+        knee_power = knee * np.gradient(truth.angles[side]["knee_flexion"], dt_s)
+        fs = truth.foot_strikes_s[side]
+        for to in truth.toe_offs_s[side]:
+            nxt = fs[fs > to]
+            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
+                continue
+            swing = (t >= to) & (t <= nxt[0])
+            hip_positive = np.trapezoid(np.clip(np.nan_to_num(hip_power[swing]), 0.0, None), dx=dt_s)
+            knee_negative = -np.trapezoid(np.clip(np.nan_to_num(knee_power[swing]), None, 0.0), dx=dt_s)
+            assert 2.0 <= hip_positive <= 1.25 * 4.3, side
+            assert 1.5 <= knee_negative <= 1.25 * 2.9, side
+            n_swings += 1
+    assert n_swings >= 4
+
+
 def test_asymmetry_reduces_late_swing_hip_flexion_and_knee_extension_on_one_side():
     kw = dict(speed_m_s=8.0, seed=9, stride_jitter=0.0)
     base = _sim_kw(**kw)[2]
