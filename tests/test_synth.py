@@ -308,6 +308,38 @@ def test_terminal_swing_joint_moments_are_of_published_sprint_size_without_a_lan
     assert n_swings >= 4
 
 
+@pytest.mark.xfail(strict=True, reason="issue 14, measured: the generator's swing asks for more work than sprinters "
+                   "do: at 9 m/s hip positive work 6.0-6.3 J/kg and knee negative work 3.9-4.0 J/kg per swing (8 m/s: "
+                   "5.2-5.5 and 3.4-3.5), against about 4.3 and 2.9 J/kg at 9.7-10 m/s (Nagahara et al. 2017); the "
+                   "early-swing hip flexion moment peaks at 7-8 N m/kg. Its terminal-swing extension moment is in "
+                   "range (test above); a smoother swing design is left open")
+def test_swing_joint_work_is_of_published_sprint_size():
+    # Outside reference: Nagahara et al. 2017, Biol Open 6:633 [V, abstract]: over the whole swing of male sprinters
+    # at 9.7-10 m/s, positive hip work about 4.3 J/kg and negative knee work about -2.9 J/kg. At 9 m/s the generator
+    # should ask for no more (our margin +25 %, common practice: group means, slower speed). Work = integral of the
+    # net moment x joint angular velocity (flexion positive for both), swing frames only.
+    _, _, truth = _sim_kw(speed_m_s=9.0, seed=4, noise_mm=0.0, n_gaps=0)
+    t = truth.time_s
+    dt_s = t[1] - t[0]
+    n_swings = 0
+    for side in SIDES:
+        hip, knee = _swing_moments_per_kg(truth, side)
+        hip_power = hip * np.gradient(truth.angles[side]["hip_flexion"], dt_s)
+        knee_power = knee * np.gradient(truth.angles[side]["knee_flexion"], dt_s)
+        fs = truth.foot_strikes_s[side]
+        for to in truth.toe_offs_s[side]:
+            nxt = fs[fs > to]
+            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
+                continue
+            swing = (t >= to) & (t <= nxt[0])
+            hip_positive = np.trapezoid(np.clip(np.nan_to_num(hip_power[swing]), 0.0, None), dx=dt_s)
+            knee_negative = -np.trapezoid(np.clip(np.nan_to_num(knee_power[swing]), None, 0.0), dx=dt_s)
+            assert 2.0 <= hip_positive <= 1.25 * 4.3, side
+            assert 1.5 <= knee_negative <= 1.25 * 2.9, side
+            n_swings += 1
+    assert n_swings >= 4
+
+
 def test_asymmetry_reduces_late_swing_hip_flexion_and_knee_extension_on_one_side():
     kw = dict(speed_m_s=8.0, seed=9, stride_jitter=0.0)
     base = _sim_kw(**kw)[2]
@@ -487,8 +519,10 @@ def test_demo_squad_layout_and_story(tmp_path):
     total = sum(p.stat().st_size for p in paths)
     assert total < 15e6
     # the returning athlete's right-side deficit shrinks session by session
-    deficits = [s.hip_deficit_deg for a in synth.DEMO_SQUAD if a.code == rtr for s in a.sessions]
-    assert deficits == sorted(deficits, reverse=True) and deficits[-1] < 2.0
+    # (guarding by a late-swing knee-extension deficit: the hip deficit's terminal-swing demand is out of the
+    # published range, see test_an_asymmetric_leg_asks_for_published_terminal_swing_moments)
+    deficits = [s.knee_deficit_deg for a in synth.DEMO_SQUAD if a.code == rtr for s in a.sessions]
+    assert deficits == sorted(deficits, reverse=True) and deficits[0] >= 5.0 and deficits[-1] < 2.0
 
 
 def test_committed_demo_trials_match_the_generator(tmp_path):
@@ -575,18 +609,26 @@ def test_hip_centre_agrees_with_both_harrington_forms(height, sex):
     assert 200 <= pw <= 290 and 120 <= pd <= 175  # adult sizes, small women to tall men (common practice)
 
 
-@pytest.mark.xfail(strict=True, reason="issue 14, left open: the asymmetric leg holds its hip-flexion deficit through "
-                   "late swing and releases it in the last 60 ms before strike (same strike state as the other leg), "
-                   "asking for 8-15 N m/kg of terminal-swing hip extension. Lowering the swing peak instead keeps the "
-                   "demand in range but leaves only half the deficit at the stretch peak and raises the deficit "
-                   "leg's ST stretch; a leg that lands with less hip flexion needs a stance the generator cannot "
-                   "reach yet.")
-@pytest.mark.parametrize("hip_deficit, knee_deficit, speed", [(12.0, 10.0, 7.6), (6.0, 5.0, 8.1)])
+_HIP_DEFICIT_REASON = (
+    "generator option not used by the demo: a hip-flexion deficit held through late swing and released in the last "
+    "60 ms before strike (same strike state as the other leg) asks for 9-15 N m/kg of terminal-swing hip "
+    "extension (measured: 14.4-14.8 at 12 deg / 7.6 m/s, 9.3-9.7 at 6 deg / 8.1 m/s), physics of landing in the "
+    "same posture 40 ms after the stretch peak; lowering the swing peak instead leaves half the deficit at the "
+    "stretch peak; a leg landing with less hip flexion needs a stance the generator cannot reach yet")
+
+
+@pytest.mark.parametrize("hip_deficit, knee_deficit, speed", [
+    pytest.param(12.0, 10.0, 7.6, marks=pytest.mark.xfail(strict=True, reason=_HIP_DEFICIT_REASON)),
+    pytest.param(6.0, 5.0, 8.1, marks=pytest.mark.xfail(strict=True, reason=_HIP_DEFICIT_REASON)),
+    *[(s.hip_deficit_deg, s.knee_deficit_deg, s.speeds[0])
+      for a in synth.DEMO_SQUAD if a.involved_side != "none" for s in a.sessions
+      if s.hip_deficit_deg or s.knee_deficit_deg]])
 def test_an_asymmetric_leg_asks_for_published_terminal_swing_moments(hip_deficit, knee_deficit, speed):
-    # Every leg, also one with a late-swing deficit (the demo's returning athlete's first sessions), within the
-    # published terminal-swing sprint range (Schache et al. 2011, MSSE 43:1260; Dorn et al. 2012, J Exp Biol
-    # 215:1944 [M]): peak hip extension moment at most 5.0 N m/kg and knee flexion moment at most 2.2 N m/kg (the
-    # bounds of test_terminal_swing_joint_moments_are_of_published_sprint_size...).
+    # Every leg, also one with a late-swing deficit (the demo's returning athlete's guarding sessions: a
+    # knee-extension deficit alone), within the published terminal-swing sprint range (Schache et al. 2011, MSSE
+    # 43:1260; Dorn et al. 2012, J Exp Biol 215:1944 [M]): peak hip extension moment at most 5.0 N m/kg and knee
+    # flexion moment at most 2.2 N m/kg (the bounds of test_terminal_swing_joint_moments_are_of_published_sprint_size).
+    # Measured with the knee deficit alone: 4.0-4.6 and 1.75-1.95 N m/kg on the guarding leg.
     body = synth.AthleteBody.from_height(1.77, 73.5, "male")
     _, _, truth = _sim_kw(speed_m_s=speed, seed=3, noise_mm=0.0, n_gaps=0, body=body, asymmetry_side="right",
                           hip_flexion_deficit_deg=hip_deficit, knee_extension_deficit_deg=knee_deficit)

@@ -1085,12 +1085,18 @@ def force_work_band(legs: Sequence[BandLeg], rate_hz: float, *, body_mass_kg: fl
         valid = np.asarray(leg.moments.valid, dtype=bool)
         step = max(1, int(rate_hz // BAND_MIN_RATE_HZ))  # every step-th frame (see BAND_MIN_RATE_HZ)
         kept = np.arange(0, valid.size, step)
-        frames = kept[valid[kept]]
-        # the samples' states on the kept frames only: [S, K]; ``at`` maps a frame to its kept column
+        # only the kept frames some stride's window reads (peaks [first, stop // step], work up to the same):
+        # swings outside the valid strides (e.g. cut by the trial's ends) are not solved
+        starts, stops = np.asarray(leg.starts, dtype=int), np.asarray(leg.stops, dtype=int)
+        read = np.zeros(kept.size + 1, dtype=int)
+        np.add.at(read, np.clip(-(-starts // step), 0, kept.size), 1)
+        np.add.at(read, np.clip(stops // step + 1, 0, kept.size), -1)
+        frames = kept[valid[kept] & (np.cumsum(read[:-1]) > 0)]
+        # the samples' states on the solved frames only: [S, Fv]
         sampled = mus.monte_carlo_states(leg.angles, leg.dims, rate_hz, n_samples, seed=0,
                                          tendon_force_norm=leg.force_norm, tendon_strain_scale=tendon_scale,
-                                         frames=kept)
-        col = frames // step
+                                         frames=frames)
+        col = slice(None)
         hip, knee = (np.asarray(leg.angles[k], dtype=float) for k in ("hip_flexion", "knee_flexion"))
         o_arms, o_vel = _other_arms_and_velocities(hip, knee, *_angle_rates(hip, knee, rate_hz))
         h_arms = np.stack([sampled[m].moment_arms_m[:, col] for m in hamstrings], axis=2)  # [S, Fv, h, 2]
@@ -1127,13 +1133,24 @@ def force_work_band(legs: Sequence[BandLeg], rate_hz: float, *, body_mass_kg: fl
         at += n
         force = np.full((kept.size, n_samples * n_h), np.nan)  # kept frames x (sample, muscle)
         force[frames // step] = force_v.transpose(1, 0, 2).reshape(frames.size, -1)
-        velocity = np.stack([sampled[m].velocity_m_per_s for m in hamstrings], axis=2)  # [S, K, h]
-        velocity = velocity.transpose(1, 0, 2).reshape(kept.size, -1)
+        velocity = np.zeros((kept.size, n_samples * n_h))  # (no force, no work off the solved frames)
+        velocity[frames // step] = np.stack([sampled[m].velocity_m_per_s for m in hamstrings],
+                                            axis=2).transpose(1, 0, 2).reshape(frames.size, -1)
         starts, stops = np.asarray(leg.starts, dtype=int), np.asarray(leg.stops, dtype=int)
         first = -(-starts // step)  # the windows on the kept frames: peaks [start, stop], work [start, stop)
         peaks, _ = window_peaks(force, first, stops // step)
         absorbed, _ = window_work(np.nan_to_num(force), velocity, rate_hz / step, first, (stops - 1) // step + 1)
         shape = (len(starts), n_samples, n_h)
-        out.append({"peak_force_n": np.nanpercentile(peaks.reshape(shape), q, axis=1),
-                    "negative_work_j": np.nanpercentile(absorbed.reshape(shape), q, axis=1)})
+        out.append({"peak_force_n": _sample_percentiles(peaks.reshape(shape), q),
+                    "negative_work_j": _sample_percentiles(absorbed.reshape(shape), q)})
     return out
+
+
+def _sample_percentiles(values: np.ndarray, q) -> np.ndarray:
+    """``np.nanpercentile(values, q, axis=1)`` of [W, S, h]: by ``signal.percentiles`` (one sort) when no value
+    is NaN, numpy's NaN-skipping version otherwise (the same numbers either way)."""
+    from .signal import percentiles
+
+    if np.isnan(values).any():
+        return np.nanpercentile(values, q, axis=1)
+    return percentiles(np.moveaxis(values, 1, 0), q)

@@ -30,7 +30,9 @@ a real one). Swing joins stance at toe-off with matched rates (the toe lifts wit
 peak). Key values: references.md "Typical sprint kinematics" [M]. Foot strike / toe-off truth = the instants the
 toe tip reaches / leaves the ground. Strides vary slightly (seeded jitter of timing and key angles). An asymmetric
 leg has less hip flexion from its peak through late swing (released over the last 60 ms before strike) and less
-knee extension from its knee peak on (it lands with the knee flexed by that deficit).
+knee extension from its knee peak on (it lands with the knee flexed by that deficit). Only the knee deficit keeps the
+terminal-swing moments of published size (the hip deficit's release asks for 8-15 N m/kg of hip extension), so the
+demo squad's guarding leg uses the knee deficit alone.
 
 Internal lab frame: x forward (travel), y to the athlete's left, z up, metres. Files may be Y-up, travel along -x,
 and in mm, cm or m.
@@ -1186,9 +1188,11 @@ DEMO_SQUAD: tuple[_DemoAthlete, ...] = (
     _DemoAthlete("KT07", "male", 1.82, 78.0, "none", "", (_DemoTrialSet("2026-03-02_testing", (8.9, 9.0)),),
                  events_in=("sprint_01.c3d",)),
     _DemoAthlete("RB12", "male", 1.77, 73.5, "right", "2026-01-19", (
-        _DemoTrialSet("2026-02-09_return1", (7.6, 7.8), 12.0, 10.0),
-        _DemoTrialSet("2026-02-23_return2", (8.1, 8.3), 6.0, 5.0),
-        _DemoTrialSet("2026-03-09_return3", (8.7, 8.8), 1.5, 1.0))),
+        # guarding: less late-swing knee extension only (the leg lands with the knee flexed by it); a hip-flexion
+        # deficit with the same strike asks for 8-15 N m/kg of terminal-swing hip extension (tests/test_synth.py)
+        _DemoTrialSet("2026-02-09_return1", (7.6, 7.8), 0.0, 10.0),
+        _DemoTrialSet("2026-02-23_return2", (8.1, 8.3), 0.0, 5.0),
+        _DemoTrialSet("2026-03-09_return3", (8.7, 8.8), 0.0, 1.0))),
     _DemoAthlete("MA03", "female", 1.68, 59.0, "none", "", (_DemoTrialSet("2026-03-02_testing", (8.0, 8.1)),),
                  rate_hz=300.0, vertical_axis="y"),
     _DemoAthlete("JS21", "male", 1.86, 82.0, "left", "2025-09-14",
@@ -1204,8 +1208,9 @@ def write_demo_squad(root: str | Path) -> list[Path]:
     """Write the invented demo squad (athletes.csv and C3D trials) under ``root``; deterministic (fixed seeds).
 
     Layout as in design.md: ``root/<athlete>/<YYYY-MM-DD_label>/sprint_01.c3d, sprint_02.c3d, static.c3d``.
-    RB12 returns from a right-side strain: three sessions two weeks apart, the right leg's late-swing hip-flexion
-    and knee-extension deficit shrinking (12/10, 6/5, 1.5/1 deg) while speed rises. JS21 runs on a treadmill.
+    RB12 returns from a right-side strain: three sessions two weeks apart, the right leg guarding with a late-swing
+    knee-extension deficit that shrinks (10, 5, 1 deg) while speed rises; every leg's terminal-swing demand stays
+    within the published sprint range (tests/test_synth.py). JS21 runs on a treadmill.
     Files vary in rate (250/300/500 Hz), vertical axis, travel direction and units, and two carry C3D events.
     """
     root = Path(root)
