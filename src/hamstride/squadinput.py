@@ -8,6 +8,7 @@ listed as skipped.
 """
 from __future__ import annotations
 
+import contextlib
 import csv
 import datetime as dt
 import difflib
@@ -40,11 +41,11 @@ MARKER_MAP_KEYS = ("prefix",)  # top-level keys (landmarks.load_marker_map: whos
 
 # --------------------------------------------------------------------------------------------- input files
 
-def read_input_bytes(path: str | Path, what: str) -> bytes:
-    """The bytes of an input file, or a ConfigError naming ``what`` it is (missing, a folder, unreadable)."""
-    path = Path(path)
+@contextlib.contextmanager
+def _opening(path: Path, what: str):
+    """Turn the errors of opening an input file into one ConfigError naming ``what`` it is (exit code 2)."""
     try:
-        return path.read_bytes()
+        yield
     except FileNotFoundError:
         raise ConfigError(f"{what} {path} not found", code="not_found") from None
     except IsADirectoryError:
@@ -54,6 +55,13 @@ def read_input_bytes(path: str | Path, what: str) -> bytes:
                           code="unreadable") from None
     except OSError as exc:
         raise ConfigError(f"{what} {path} cannot be read ({exc.strerror or exc})", code="unreadable") from None
+
+
+def read_input_bytes(path: str | Path, what: str) -> bytes:
+    """The bytes of an input file, or a ConfigError naming ``what`` it is (missing, a folder, unreadable)."""
+    path = Path(path)
+    with _opening(path, what):
+        return path.read_bytes()
 
 
 def read_input_text(path: str | Path, what: str) -> str:
@@ -78,16 +86,8 @@ def require_file(path: str | Path, what: str) -> Path:
     path = Path(path)
     if path.is_dir():
         raise ConfigError(f"{what} {path} is a folder; give the path of the file itself", code="not_a_file")
-    try:
-        with path.open("rb"):
-            pass
-    except FileNotFoundError:
-        raise ConfigError(f"{what} {path} not found", code="not_found") from None
-    except PermissionError:
-        raise ConfigError(f"{what} {path} cannot be read (permission denied); check the file's permissions",
-                          code="unreadable") from None
-    except OSError as exc:
-        raise ConfigError(f"{what} {path} cannot be read ({exc.strerror or exc})", code="unreadable") from None
+    with _opening(path, what), path.open("rb"):
+        pass
     return path
 
 
