@@ -179,6 +179,19 @@ def test_cluster_only_trial_with_static_rebuilds_every_knee_and_ankle_landmark(s
         assert np.nanmedian(error) < 0.008, (name, np.nanmedian(error))
 
 
+def test_cluster_only_trial_with_subject_prefixed_labels_rebuilds_from_the_static_trial(tmp_path):
+    # Shape: capture software prefixes every label with the subject ('Ath07:r.thigh.a') in the runs but not in the
+    # static trial; the default (unprefixed) cluster labels must still find the run's clusters.
+    run = tmp_path / "prefixed_clusters_only.c3d"
+    write_sprint_trial(run, SprintSpec(speed_m_s=8.5, duration_s=1.6, seed=44, include_knee_ankle=False,
+                                       label_prefix="Ath07", body=BODY))
+    static = tmp_path / "static.c3d"
+    write_static_trial(static, BODY, seed=45)
+    assert all(label.startswith("Ath07:") for label in read_c3d(run).labels)
+    result = analyse_trial(run, FAST, static_path=static)
+    assert set(STATIC_RECOVERABLE) <= set(result.info["rebuilt_landmarks"])
+
+
 def test_cluster_only_angles_within_2_deg_rms_of_truth(shapes):
     path, truth = shapes["clusters"]
     rms = _rms_deg(trial_kinematics(path, FAST, static_path=shapes["static"]), truth)

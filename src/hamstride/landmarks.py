@@ -138,13 +138,13 @@ class Landmarks:
 def recoverable_landmarks(marker_map: MarkerMap, static_lm: "Landmarks", trial: MarkerTrial) -> tuple[str, ...]:
     """Required landmarks a static trial can rebuild in ``trial``: those on a segment whose cluster is in the static
     trial and whose cluster labels are all in the trial."""
-    labels = {label.lower() for label in trial.labels}
+    finder = _LabelFinder(trial.labels, marker_map.prefix)  # the same matching as resolve_landmarks (prefixes, case)
     out = []
     for side in SIDES:
         for segment, sites in CLUSTER_SITES.items():
             name = f"{side}_{segment}_cluster"
             cluster = marker_map.clusters.get(name, ())
-            if name in static_lm.clusters and cluster and all(lab.lower() in labels for lab in cluster):
+            if name in static_lm.clusters and cluster and all(finder.find(lab) is not None for lab in cluster):
                 out += [f"{side}_{site}" for site in sites]
     return tuple(out)
 
