@@ -349,3 +349,27 @@ def test_marker_events_at_the_window_edges_are_not_trusted():
     assert list(kept.toe_offs_s["right"]) == [0.60, 0.99]
     # events read from the file are kept
     assert drop_events_near_edges(GaitEvents(times, times, "c3d"), 251, RATE, start=True, end=True)[1] == []
+
+
+def test_plate_contacts_keep_file_time_when_the_window_starts_late(tmp_path):
+    # Shape: an instrumented treadmill whose markers are seen only from 0.4 s (labelling started late), so the
+    # analysed window starts there; the plates' vertical force still starts at the file's first frame. Truth: the
+    # generator's contact model (synth.simulate_run), independent of both the plates and the marker rule.
+    from hamstride.synth import RunSpec, simulate_run
+
+    spec = RunSpec(speed_m_s=3.5, plates="treadmill", treadmill=True, seed=3)
+    labels, xyz, truth = simulate_run(spec)
+    late = int(0.4 * spec.rate_hz)
+    xyz = xyz.copy()
+    xyz[:late] = np.nan
+    path = tmp_path / "treadmill_seen_late.c3d"
+    write_c3d(path, labels, xyz * 1000.0, spec.rate_hz, units="mm", force_plates=truth.plates,
+              analog_rate_hz=spec.analog_rate_hz)
+    result = analyse_trial(path, FAST, markers=None)
+    assert result.info["window_start_s"] == pytest.approx(0.4, abs=0.01)
+    strides = result.strides.drop_duplicates(["side", "stride"])
+    plate = strides[strides["event_source"] == "plate"]
+    assert len(plate) >= 2
+    for side, rows in plate.groupby("side"):
+        errors = [1000.0 * np.min(np.abs(truth.foot_strikes_s[side] - t)) for t in rows["foot_strike_s"]]
+        assert max(errors) < 1.0, errors  # the 20 N threshold: under 1 ms at strike (test_plates)
