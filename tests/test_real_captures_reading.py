@@ -198,9 +198,10 @@ def test_walking_full_body_is_never_called_swapped(tmp_path, vertical, travel):
     assert trial_lab.lab.travel_axis == ("+x" if travel > 0 else "-x")
     np.testing.assert_allclose(lm_lab.points["left_asis"], lab_xyz[:, labels.index("l.asis")], atol=1e-6)
     check_sides(lm_lab)  # does not raise
-    with pytest.raises(HamstrideError) as info:  # a walk is not analysed (its message belongs to issue 13 part B)
+    with pytest.raises(HamstrideError) as info:  # issue 13 acceptance: refused as not a run, never as swapped sides
         analyse_trial(path, FAST, athlete=ATHLETE)
-    assert info.value.code != "sides_swapped"
+    assert info.value.code == "not_running"
+    assert "not a run" in str(info.value)
 
 
 def test_landmarks_command_shows_the_lab_axes_and_prefixed_labels(tmp_path):
