@@ -18,10 +18,10 @@ the foot is on the floor (a low percentile of its height over the trial, so mark
 and the floor level cancel). Derivatives use a symmetric Savitzky-Golay kernel (zero phase).
 Timing needs marker data filtered at about 15 Hz or above: heavier smoothing spreads the landing and
 delays the strike (about +7 ms at 10 Hz on generated sprints).
-Measured limits (benchmarks/events_running.py, running-feet generator, no toe marker): heel landings at 2.5-3.5 m/s
-are found about 9 ms early and toe-offs without a toe marker about 12 ms late; there the generator's foot lands and
-leaves with no kink in any marker path and the sole rises only 0.1 mm in the 10 ms after toe-off, so the marker
-paths alone do not pin those instants closer (issue 13 acceptance, a strict xfail in tests/test_plates.py).
+Measured limits (benchmarks/events_running.py, running-feet generator whose feet land and lift like runners' feet,
+no toe marker, 8 seeds): foot strikes |error| median 4.3 / p95 7.7 ms at 3.5 m/s (heel landings) and 6.1 / 6.8 ms
+at 9 m/s (forefoot landings, +6 ms late: the metatarsal marker is still ~9 mm above its stance floor level at
+touchdown); toe-offs without a toe marker 5.1 / 9.0 ms (-5 ms early) and 2.5 / 3.4 ms.
 """
 from __future__ import annotations
 
@@ -55,6 +55,8 @@ FLOOR_TOLERANCE_M = 0.005       # "on the floor" within 5 mm of its floor level:
 TOE_OFF_SEARCH_S = (0.07, 0.05)  # search window around the end of the low run (before, after)
 RULE_DISAGREEMENT_S = 0.025     # primary vs fallback rule: Fellin et al. 2010 report 22-25 ms foot-strike error
 EDGE_PEAK_FRACTION = 0.5        # a toe-off next to a trial end needs half the median jerk peak of the others
+EDGE_CONTACT_FRACTION = 0.75    # ... and a contact at least 3/4 of the side's median contact time (design choice;
+                                # contact times vary by a few per cent from step to step at a steady speed)
 C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2 frames apart
 GAP_GUARD_S = 0.02              # events this close to missing foot-marker data are not trusted (design choice)
 MISSING_EVENT_S = 0.03          # a marker event this far from every C3D event means the file lacks one
@@ -296,9 +298,10 @@ def _detect_side(
     refine_before, refine_after = (int(round(s * rate_hz)) for s in STRIKE_REFINE_S)
 
     strikes, toe_offs, strikes_fb, toe_offs_fb = [], [], [], []
-    toe_off_peaks, toe_off_cut = [], []
+    toe_off_peaks, toe_off_cut, toe_off_contact = [], [], []
     n_fallback = 0
     for start, end in contacts:
+        fs = None
         # foot strike: only when the foot comes down inside the trial (the low run does not start at frame 0)
         if start > 0:
             lo, hi = _strike_window(lowest, start, end, before_fs, after_fs, refine_after)
@@ -342,6 +345,7 @@ def _detect_side(
                 toe_offs_fb.append(np.nan if fb is None else fb)
                 toe_off_peaks.append(np.interp(to, np.arange(n), toe_jerk))
                 toe_off_cut.append(start == 0 or end + after_to > n)
+                toe_off_contact.append(np.nan if fs is None or start == 0 else to - fs)
     # A contact already under way when the recording starts may have ended just before it, and a search window cut
     # by the recording's end may miss the toe-off: such windows can hold only swing jerk. Keep a toe-off found
     # there only if its jerk peak is as sharp as the trial's other toe-offs.
@@ -349,6 +353,12 @@ def _detect_side(
     cut, peaks = np.asarray(toe_off_cut, bool), np.asarray(toe_off_peaks, float)
     if cut.any() and (~cut).sum() >= 2:
         keep = ~cut | (peaks >= EDGE_PEAK_FRACTION * np.median(peaks[~cut]))
+        # a window cut short can also hold the stance's own motion: a toe-off found there must end a contact of
+        # about the usual length (one whose strike was seen)
+        contact = np.asarray(toe_off_contact, float)
+        whole = contact[~cut & np.isfinite(contact)]
+        if whole.size >= 2:
+            keep &= ~(cut & (contact < EDGE_CONTACT_FRACTION * np.median(whole)))
     side = _SideEvents(
         np.asarray(strikes, float), np.asarray(toe_offs, float)[keep],
         np.asarray(strikes_fb, float), np.asarray(toe_offs_fb, float)[keep], n_fallback,

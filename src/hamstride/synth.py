@@ -1252,11 +1252,29 @@ def write_demo_squad(root: str | Path) -> list[Path]:
 # over a contact stiffness), with the skin markers wobbling after touchdown (soft tissue). The truth foot strike and
 # toe-off are the instants the undeformed sole first touches and last leaves the floor, which is where the
 # written force plates' vertical force rises from and falls back to zero. None of this is the event rules' own
-# model (they see markers only): touchdown is a roll onto a curved pad, not a kink in a marker's path; forefoot
+# model (they see markers only): touchdown is a fall onto a curved, stiffening pad (the foot is stopped within the
+# impact, not at a point of any marker), toe-off releases the rolling sole to the swing's lift; forefoot
 # markers sit 2-3 cm above the floor in stance; the heel has a cluster of three markers and there is no toe marker
 # by default; in some strides the forefoot marker levels off above the floor in late swing (a flat-foot landing)
 # before the heel touches.
-RUN_CONTACT_STIFFNESS_N_M = {"heel": 2.0e5, "forefoot": 3.0e5}  # pad + shoe, invented (8-12 mm at peak force)
+RUN_CONTACT_STIFFNESS_N_M = {"heel": 3.5e5, "forefoot": 4.5e5}  # pad + shoe, bulk (linear) part, invented
+# The heel pad and shoe stiffen as they compress (the heel pad is strongly non-linear: Aerts et al. 1995, J Biomech
+# 28:1299, from memory): a soft first few millimetres ("set", x_s, taken up over the first F_s newtons), then the
+# bulk stiffness above; 8-12 mm at peak force in all. The soft start is what lets the foot arrive at the floor at
+# the vertical speed runners' feet have (0.5-1.5 m/s for heel landings, from memory) and be stopped within the
+# impact: in the two-mass model of Clark et al. 2017 (J Exp Biol 220:247, verified) the stance foot and shank,
+# 0.08 of body mass, make the impact part of the force through their vertical deceleration (that they come to rest
+# in the impact interval is from memory).
+RUN_PAD_SET_M_N = {"heel": (0.004, 400.0), "forefoot": (0.003, 500.0)}  # (x_s m, F_s N), invented
+# Vertical kinematics at the two contact ends (checked by tests/test_plates.py):
+# - touchdown: in late swing the foot comes down with no vertical acceleration (nothing acts on it vertically
+#   but gravity and the leg; common practice in impact models) and the floor's force starts at contact: the
+#   foot's acceleration steps there (earlier generator: it was matched across touchdown, so no impact);
+# - toe-off: once the toe is released the foot is lifted by the swinging shank; an upward acceleration of the
+#   order of the shank's angular velocity squared times its length (about 8-20 rad/s x 0.43 m from jogging to
+#   top speed, so 25-170 m/s^2; from memory, physics estimate) rather than the floor's rolling constraint.
+RUN_TOE_OFF_PITCH_RATE_RAD_S = -3.0  # foot still pitching toe-down at toe-off (about -170 deg/s), invented
+RUN_LIFT_ACC_M_S2 = (25.0, 50.0)  # upward foot acceleration just after toe-off at 3.5 and 9 m/s (linear in speed)
 
 
 @dataclass(frozen=True)
@@ -1377,6 +1395,13 @@ class _RunFoot:
         impact = (uu / c["u_imp"]) * np.exp(1.0 - uu / c["u_imp"]) * (1.0 - uu)
         return np.where(inside, self.w * (c["a_act"] * np.sin(np.pi * uu) + c["b_imp"] * impact), 0.0)
 
+    @staticmethod
+    def compression(c, f):
+        """Sole compression (m) under vertical force f (N): a soft set x_s taken up over about F_s, then the bulk
+        stiffness (stiffening pad; see RUN_PAD_SET_M_N)."""
+        x_s, f_s = c["pad_set"]
+        return x_s * (1.0 - np.exp(-f / f_s)) + f / c["stiffness"]
+
     def stance_pose(self, c, t):
         t = np.asarray(t, float)
         u = (t - c["t0"]) / (c["t1"] - c["t0"])
@@ -1388,7 +1413,7 @@ class _RunFoot:
         th0 = self.pitch(c, np.zeros(1))
         k0 = int(np.argmin(self.pts[:, 0] * np.sin(th0) + self.pts[:, 1] * np.cos(th0)))
         x_contact = c["x_contact"] + self.arc[k] - self.arc[k0]  # rolling without slip
-        comp = self.force(c, u) / c["stiffness"]
+        comp = self.compression(c, self.force(c, u))
         return np.stack([x_contact - rx, -rz[np.arange(len(k)), k] - comp, th], axis=-1)
 
     def sole_x(self, c) -> np.ndarray:
@@ -1433,8 +1458,14 @@ class _RunFoot:
         in a level-off landing the met-head point hovers 2-6 mm above its touchdown height over 30-65 ms before
         the strike (the forefoot marker levels off above the floor)."""
         t0, t1 = c0["t1"], c1["t0"]
-        q0, v0, a0 = self._end_state(c0, t0 + 1e-4)
+        q0, v0, a0 = self._end_state(c0, t0 - 1e-4)  # inside the stance (past its end the stance pose is frozen)
         q1, v1, a1 = self._end_state(c1, t1 + 1e-4)
+        # vertical accelerations are not carried across the contact ends (the floor's force starts and stops
+        # there): the foot falls freely onto the floor and is lifted by the shank after toe-off (RUN_LIFT_ACC_M_S2)
+        k = float(np.clip((c0["speed"] - 3.5) / 5.5, 0.0, 1.2))
+        lift = RUN_LIFT_ACC_M_S2[0] + k * (RUN_LIFT_ACC_M_S2[1] - RUN_LIFT_ACC_M_S2[0])
+        a0 = np.array([a0[0], a0[1] + lift, a0[2] + lift])
+        a1 = np.array([a1[0], 0.0, 0.0])
         dur = t1 - t0
         apex = 0.10 + 0.025 * c1["speed"]  # heel lift in swing (m), higher when faster (invented)
         keys = []
@@ -1482,10 +1513,21 @@ class _RunFoot:
         return sum(self.force(c, (t - c["t0"]) / (c["t1"] - c["t0"])) for c in self.contacts)
 
 
+def _pitch_law(keys_u, keys_p, end_slope: float):
+    """Stance foot pitch over the stance fraction: a C4 quintic spline through the keys (de Boor), starting with
+    the slope of the monotone cubic through them (PCHIP, Fritsch & Carlson 1980) and ending at ``end_slope``
+    (rad per stance), with no angular acceleration at either end. The swing starts from the stance's end state, so
+    the foot's angular velocity at toe-off is its real one rather than the PCHIP end formula's (up to -24 rad/s in
+    a sprint); and with a continuous jerk the only jerk spikes in the marker paths are the floor's, where its force
+    starts and stops."""
+    from scipy.interpolate import PchipInterpolator, make_interp_spline
+
+    start = float(PchipInterpolator(keys_u, keys_p).derivative()(keys_u[0]))
+    return make_interp_spline(keys_u, keys_p, k=5, bc_type=([(1, start), (2, 0.0)], [(1, end_slope), (2, 0.0)]))
+
+
 def _run_contacts(spec: RunSpec, rng) -> tuple[dict[str, list[dict]], str, float]:
     """Contact timeline of both feet (ground frame), alternating, starting before t = 0."""
-    from scipy.interpolate import PchipInterpolator
-
     strike = spec.strike if spec.strike != "auto" else ("heel" if spec.speed_m_s < 5.0 else "forefoot")
     tc, stride = _run_timing(spec.speed_m_s)
     v = spec.speed_m_s
@@ -1514,8 +1556,10 @@ def _run_contacts(spec: RunSpec, rng) -> tuple[dict[str, list[dict]], str, float
         out[side].append({
             "t0": t, "t1": t + ct, "strike": strike, "speed": v, "level_off": level,
             "hover_m": rng.uniform(0.002, 0.006), "hover_s": rng.uniform(0.03, 0.065),
-            "pitch_fun": PchipInterpolator(keys_u, keys_p), "a_act": a_act, "b_imp": b_imp, "u_imp": u_imp,
-            "stiffness": RUN_CONTACT_STIFFNESS_N_M[strike], "x_contact": v * t + reach,
+            "pitch_fun": _pitch_law(keys_u, keys_p, RUN_TOE_OFF_PITCH_RATE_RAD_S * ct),
+            "a_act": a_act, "b_imp": b_imp, "u_imp": u_imp,
+            "stiffness": RUN_CONTACT_STIFFNESS_N_M[strike], "pad_set": RUN_PAD_SET_M_N[strike],
+            "x_contact": v * t + reach,
         })
         t += step * (1.0 + 0.015 * rng.standard_normal())
         side = "left" if side == "right" else "right"
@@ -1574,12 +1618,13 @@ def simulate_run(spec: RunSpec = RunSpec()) -> tuple[tuple[str, ...], np.ndarray
         x, z, th = pose.T
         x = x - belt * t
         y_line = sway[side]
-        # soft tissue: markers wobble after each touchdown (20 Hz, 30 ms decay)
+        # soft tissue: markers wobble after each touchdown (20 Hz, 30 ms decay), first downwards: the floor stops
+        # the bone and the tissue under the marker carries on in the direction the foot was moving (inertia)
         wobble = np.zeros(n)
         for c in foot.contacts:
             dt = t - c["t0"]
             on = dt >= 0
-            wobble[on] += spec.soft_tissue_mm / 1000.0 * np.exp(-dt[on] / 0.03) * np.sin(2 * np.pi * 20.0 * dt[on])
+            wobble[on] -= spec.soft_tissue_mm / 1000.0 * np.exp(-dt[on] / 0.03) * np.sin(2 * np.pi * 20.0 * dt[on])
         local = _foot_markers_local(body.foot_length_m, foot.h_a, side, spec.toe_marker, spec.heel_cluster)
         c_, s_ = np.cos(th), np.sin(th)
         for name, p in local.items():
