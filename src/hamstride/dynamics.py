@@ -576,6 +576,14 @@ class OtherMuscle:
     hip_moment_arm: Callable[[np.ndarray], np.ndarray]
     knee_moment_arm: Callable[[np.ndarray], np.ndarray]
     source: str
+    #: sprinters' volume / the general population's per height x mass: ``muscles.SPRINTER_VOLUME_RATIO`` for hip-
+    #: and knee-crossing muscles, 1 where Handsfield et al. 2017 found no difference (gastrocnemius)
+    sprinter_volume_ratio: float = mus.SPRINTER_VOLUME_RATIO
+
+    @property
+    def volume_ratio_share(self) -> float:
+        """Volume share x sprinters' ratio: the muscle's part of the (general-population) limb volume."""
+        return self.volume_share * self.sprinter_volume_ratio
 
 
 def _const(value: float) -> Callable[[np.ndarray], np.ndarray]:
@@ -653,7 +661,8 @@ OTHER_MUSCLES: dict[str, OtherMuscle] = {
     "gas": OtherMuscle(
         "gas", "gastrocnemius (medial + lateral)", 0.036 + 0.020, 0.055, _const(0.0), _gastrocnemius_knee_arm,
         "volume share: Handsfield et al. 2014 [M]; fibre length: Ward et al. 2009 [M]; knee arm [M]; its ankle "
-        "moment is not matched",
+        "moment is not matched; an ankle-crossing muscle, not larger in sprinters (Handsfield et al. 2017 [V])",
+        sprinter_volume_ratio=1.0,
     ),
 }
 
@@ -689,7 +698,7 @@ def other_muscle_kinematics(
     knee = np.asarray(knee_flexion_rad, dtype=float)
     arms, velocity = _other_arms_and_velocities(hip, knee, *_angle_rates(hip, knee, rate_hz), muscles)
     return {code: OtherMuscleKinematics(code, arms[:, k], velocity[:, k],
-                                        limb_force_scale_n_m * m.volume_share / m.optimal_fibre_length_m)
+                                        limb_force_scale_n_m * m.volume_ratio_share / m.optimal_fibre_length_m)
             for k, (code, m) in enumerate(muscles.items())}
 
 
@@ -716,7 +725,8 @@ def athlete_force_scale(states: Mapping[str, MuscleState]) -> float:
         f0 = float(st.max_isometric_force_n)
         if m in mus.ARCHITECTURE and np.isfinite(f0) and f0 > 0:
             arch = mus.ARCHITECTURE[m]
-            return f0 * arch.optimal_fibre_length_m / (mus.VOLUME_SHARE[m] * np.cos(arch.pennation_rad))
+            return f0 * arch.optimal_fibre_length_m / (mus.VOLUME_SHARE[m] * mus.SPRINTER_VOLUME_RATIO
+                                                       * np.cos(arch.pennation_rad))
     return float("nan")
 
 
@@ -888,7 +898,7 @@ def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
     def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' from the same limb volume
         scale = athlete_force_scale(states)
         return ([float(states[m].max_isometric_force_n) * strength_scale for m in hamstrings]
-                + [scale * OTHER_MUSCLES[c].volume_share / OTHER_MUSCLES[c].optimal_fibre_length_m * strength_scale
+                + [scale * OTHER_MUSCLES[c].volume_ratio_share / OTHER_MUSCLES[c].optimal_fibre_length_m * strength_scale
                    for c in others])
 
     # maximum forces per frame (each leg's own scaling), then capacities of all muscles at once: [F, muscles]
@@ -1113,7 +1123,7 @@ def force_work_band(legs: Sequence[BandLeg], rate_hz: float, *, body_mass_kg: fl
                                                  specific_tension_pa=tension) for k, m in enumerate(hamstrings)],
                         axis=1)  # [S, h]
         f0_o = (limb * tension[:, None] * volume[:, n_h:]
-                * np.array([OTHER_MUSCLES[c].volume_share for c in others]) / o_lopt)  # [S, o]
+                * np.array([OTHER_MUSCLES[c].volume_ratio_share for c in others]) / o_lopt)  # [S, o]
         fmax = np.concatenate([f0_h, f0_o], axis=1)[:, None, :]  # [S, 1, m]
         cap, fp = sharing_capacities(fmax, l_norm, v_norm, max_velocity_lopt_per_s=v_max[:, None, None])
         demand = np.stack([leg.moments.hip_flexion_nm, leg.moments.knee_flexion_nm], axis=1)[frames]
