@@ -898,8 +898,8 @@ def _sharing_problem(legs, strength_scale, include_passive) -> _SharingProblem:
     def leg_fmax(states):  # the hamstrings' from the muscles stage; the others' from the same limb volume
         scale = athlete_force_scale(states)
         return ([float(states[m].max_isometric_force_n) * strength_scale for m in hamstrings]
-                + [scale * OTHER_MUSCLES[c].volume_ratio_share / OTHER_MUSCLES[c].optimal_fibre_length_m * strength_scale
-                   for c in others])
+                + [scale * OTHER_MUSCLES[c].volume_ratio_share / OTHER_MUSCLES[c].optimal_fibre_length_m
+                   * strength_scale for c in others])
 
     # maximum forces per frame (each leg's own scaling), then capacities of all muscles at once: [F, muscles]
     fmax = np.repeat([leg_fmax(states) for _, states, _, _ in legs], sizes, axis=0)

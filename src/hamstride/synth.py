@@ -24,8 +24,8 @@ under the least constant acceleration that joins the peak to the strike state; k
 its early-swing peak, then extends and flexes again into the strike under two constant accelerations switching
 at the hip's peak (so their changes of acceleration cancel in the hip moment; two equal ones, the least that cover
 the range, where that does not fit). The hips' height in stance: whichever of two C2 designs (a mid-stance knot, or
-one quintic strike to toe-off) falls less below -g. The swing ends in the stance's first state (angles and rates; the heel-drop rate at
-strike is set per step so the thigh arrives at the rate the hip peak timing asks for, and the foot's acceleration
+one quintic strike to toe-off) falls less below -g. The swing ends in the stance's first state (angles and rates;
+the heel-drop rate at strike is set per step so the thigh arrives at the rate the hip peak timing asks for, and the foot's acceleration
 so the thigh's angular acceleration carries on into stance), so there is no impact in thigh and shank; in the last
 6 ms the light foot turns toe-up and stops the toe's descent (a sharp upward-acceleration peak at touchdown, as at
 a real one). Swing joins stance at toe-off with matched rates (the toe lifts with an acceleration step, a jerk
