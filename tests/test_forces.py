@@ -111,12 +111,13 @@ def test_force_status_says_where_the_demand_is_not_met(sprints):
     assert (met <= both + 1e-9).all()
 
 
-@pytest.mark.xfail(strict=True, reason="issue 14 acceptance not reached (measured 48 % at 8 m/s, 40 % at 9 m/s): from "
-                   "65 % of the swing on the hip extensors shorten (gluteus maximus 1-3, hamstrings 2-6.5 l_opt/s; "
+@pytest.mark.xfail(strict=True, reason="issue 14 acceptance not reached (measured 58 % at 8 m/s, 52 % at 9 m/s with "
+                   "sprinters' volumes, Handsfield et al. 2017; 48 / 40 % without): from 65 % of the swing on the "
+                   "hip extensors shorten (gluteus maximus 1-3, hamstrings 2-6.5 l_opt/s; "
                    "force-velocity 0.2-0.6) and give 1.0-2.6 N m/kg against a net demand of 2.8-4.8 N m/kg; 64-100 % "
                    "of those frames are unmet, and they are about half of late swing; even isometric the modelled "
-                   "hip extensors give only 2.4-2.9 N m/kg. Not reached either with sprinters' volumes (x1.3, "
-                   "Handsfield et al. 2017: 55-61 %), v_max 15 l_opt/s, tendon recoil in the fibre velocity, or "
+                   "hip extensors give only 2.4-2.9 N m/kg (x1.3 with sprinters' volumes). Not reached either with "
+                   "v_max 15 l_opt/s, tendon recoil in the fibre velocity, or "
                    "the demand halved (69-73 %); see DEVELOPERS.md 'The force model'")
 def test_hamstring_relevant_demand_met_in_nine_tenths_of_late_swing(sprints):
     # Issue 14 acceptance: >= 90 % of late-swing frames at default strength, at 8 and 9 m/s.

@@ -353,9 +353,13 @@ def test_architecture_is_ward_2009_and_strength_comes_from_the_athletes_muscle_v
     assert M.ARCHITECTURE["semimembranosus"].pennation_rad == pytest.approx(np.deg2rad(15.1))
     # Worked by hand: 75 kg x 1.80 m -> limb volume 47 x 135 + 1285 = 7630 cm^3 (Handsfield et al. 2014 [M]);
     # SM 3.7 % of it = 282.31 cm^3 / 6.90 cm = 40.914 cm^2 x 26.8 N/cm^2 (Persad et al. 2024 [V]) x cos 15.1 deg
-    # = 1058.6 N.
-    hand = 0.037 * (47.0 * 75.0 * 1.80 + 1285.0) / 6.90 * 26.8 * np.cos(np.deg2rad(15.1))
-    assert hand == pytest.approx(1058.6, abs=0.1)
+    # = 1058.6 N for the general population; x 1.30 for a sprinter's hip- and knee-crossing muscles (Handsfield et
+    # al. 2017, Scand J Med Sci Sports 27:1072: +30 % per height x mass [V abstract]) = 1376.2 N by default.
+    general = 0.037 * (47.0 * 75.0 * 1.80 + 1285.0) / 6.90 * 26.8 * np.cos(np.deg2rad(15.1))
+    assert general == pytest.approx(1058.6, abs=0.1)
+    assert M.max_isometric_force("semimembranosus", body_mass_kg=75.0, height_m=1.80, sprinter_volume_ratio=1.0) \
+        == pytest.approx(general)
+    hand = 1.30 * general
     assert M.max_isometric_force("semimembranosus", body_mass_kg=75.0, height_m=1.80) == pytest.approx(hand)
     # the athlete's own factor multiplies it; volume grows with mass x height
     assert M.max_isometric_force("semimembranosus", body_mass_kg=75.0, height_m=1.80, strength_factor=1.3) \
@@ -640,9 +644,10 @@ def test_muscle_states_fields_and_mirror_use():
     n = len(angles["hip_flexion"])
     assert st.moment_arms_m.shape == (n, 4) and st.length_m.shape == (n,)
     np.testing.assert_allclose(st.strain, st.length_m / st.upright_length_m - 1.0)
-    # by hand: 3.6 % of (47 x 80 x 1.80 + 1285) cm^3 / 9.76 cm x 26.8 N/cm^2 x cos 11.6 deg (Handsfield 2014 [M])
+    # by hand: 3.6 % of (47 x 80 x 1.80 + 1285) cm^3 (Handsfield 2014 [M]) x 1.30 (sprinters, Handsfield 2017 [V])
+    # / 9.76 cm x 26.8 N/cm^2 x cos 11.6 deg
     assert st.max_isometric_force_n == pytest.approx(
-        0.036 * (47.0 * 80.0 * 1.80 + 1285.0) / 9.76 * 26.8 * np.cos(np.deg2rad(11.6)))
+        1.30 * 0.036 * (47.0 * 80.0 * 1.80 + 1285.0) / 9.76 * 26.8 * np.cos(np.deg2rad(11.6)))
     # rigid tendon: fibre velocity = MTU velocity x cos(pennation), in l_opt/s
     np.testing.assert_allclose(st.velocity_lopt_per_s * st.optimal_fibre_length_m,
                                st.velocity_m_per_s * np.cos(st.pennation_rad))

@@ -21,9 +21,11 @@ planar two-link inverse kinematics. Swing is built so that the net joint moments
 dynamics) stay of published sprint size: hip and knee angles are piecewise constant-acceleration curves (C2 bridges
 at the switches) - hip flexion speeds up, slows to its peak (s_hip_peak of the swing), then extends into the strike
 under the least constant acceleration that joins the peak to the strike state; knee flexion speeds up and slows to
-its early-swing peak, then extends and flexes again into the strike under two equal constant accelerations (the
-least that cover the range). The swing ends in the stance's first state (angles and rates; the heel-drop rate at
-strike is set per step so the thigh arrives at the rate the hip peak timing asks for, and the foot's acceleration
+its early-swing peak, then extends and flexes again into the strike under two constant accelerations switching
+at the hip's peak (so their changes of acceleration cancel in the hip moment; two equal ones, the least that cover
+the range, where that does not fit). The hips' height in stance: whichever of two C2 designs (a mid-stance knot, or
+one quintic strike to toe-off) falls less below -g. The swing ends in the stance's first state (angles and rates;
+the heel-drop rate at strike is set per step so the thigh arrives at the rate the hip peak timing asks for, and the foot's acceleration
 so the thigh's angular acceleration carries on into stance), so there is no impact in thigh and shank; in the last
 6 ms the light foot turns toe-up and stops the toe's descent (a sharp upward-acceleration peak at touchdown, as at
 a real one). Swing joins stance at toe-off with matched rates (the toe lifts with an acceleration step, a jerk
@@ -392,6 +394,7 @@ class _Design:
     knee_brake_ratio: float = 1.2  # early swing: knee flexion slows to its peak at this fraction of its speed-up
     knee_switch_s: float = 0.07  # early swing: the knee's flexion turns from speeding up to slowing down over 70 ms
     switch_s: float = 0.04  # other changes of a joint's angular acceleration take 40 ms (C2 bridges)
+    knee_switch_with_hip: bool = True  # late swing: the knee's extension switch at the hip's peak (see _swing)
     ankle_acc_td: float = 800.0  # rad/s^2: at least this ankle dorsiflexion acceleration before strike
     ankle_floor: float = -35.0 * _DEG  # late-swing plantar flexion stays above this
     heel_drop_rate: float = 12.0  # rad/s foot pitch rate (heel dropping) at strike, first guess (solved per step)
@@ -531,14 +534,20 @@ class _Gait:
             v_to = (z_next - z_to) / flight + 0.5 * GRAVITY * flight
             if v_td is None:
                 v_td = v_to - GRAVITY * flight
-            # first half of stance: the upward acceleration grows linearly from -g and stops the fall at mid-stance
+            # stance: either the upward acceleration grows linearly from -g and stops the fall at mid-stance, then
+            # a second quintic to toe-off, or one quintic from strike to toe-off (a single hump); whichever falls
+            # less below -g (the ground can only push): at sprint speeds the end states ask for a late push, which
+            # the mid-stance knot turned into a swing of about -54 / +87 m/s^2 just before toe-off
             half = 0.5 * (st.toe_off - st.strike)
             a_mid = -2.0 * v_td / half + GRAVITY
             dip = -(v_td * half + (a_mid - 2.0 * GRAVITY) / 6.0 * half * half)
-            knots_t += [st.strike, st.strike + half, st.toe_off]
-            knots_z += [z_td, z_td - dip, z_to]
-            knots_v += [v_td, 0.0, v_to]
-            knots_a += [-GRAVITY, a_mid, -GRAVITY]
+            candidates = ([[st.strike, st.strike + half, st.toe_off], [z_td, z_td - dip, z_to], [v_td, 0.0, v_to],
+                           [-GRAVITY, a_mid, -GRAVITY]],
+                          [[st.strike, st.toe_off], [z_td, z_to], [v_td, v_to], [-GRAVITY, -GRAVITY]])
+            grid = np.linspace(st.strike, st.toe_off, 201)
+            lowest = [np.gradient(np.gradient(_QuinticKeys(*c)(grid), grid), grid)[2:-2].min() for c in candidates]
+            for keys, new in zip((knots_t, knots_z, knots_v, knots_a), candidates[int(np.argmax(lowest))]):
+                keys += new
             v_td = v_to - GRAVITY * flight  # arriving at the next strike
         last = steps[-1]
         knots_t.append(last.strike)
@@ -714,12 +723,25 @@ class _Gait:
 
         tau_v = brentq(mismatch, tau_pk * (1 - 1e-9), 0.5 * tau_pk * (1 + 1e-6))
         knee_acc = -knee_rate_td / (2.0 * tau_v - tau_pk)
+        late_knee = [(x_pk, st.knee_peak, 0.0, -knee_acc),
+                     (dur + tau_v, knee_td + knee_rate_td * tau_v + 0.5 * knee_acc * tau_v ** 2,
+                      knee_rate_td + knee_acc * tau_v, knee_acc)]
+        if d.knee_switch_with_hip and x_pk + bridge < x_hip < dur - bridge:
+            # the knee's extension turns from speeding up to slowing down when the hip turns from flexing to
+            # extending (x_hip), over the same bridge: the two changes of acceleration move the net hip moment in
+            # opposite directions, so at one instant they make a step; a few ms apart they made a spike (about
+            # +4.7 N m/kg for 16 ms at 9 m/s). Accelerations -a1 then +a2 from (x_pk, knee_peak, rate 0) to the
+            # strike state: v = -a1 T1 + a2 T2, p = peak - a1 (T1^2 / 2 + T1 T2) + a2 T2^2 / 2 (linear in a1, a2)
+            t1_, t2_ = x_hip - x_pk, dur - x_hip
+            a1, a2 = np.linalg.solve([[-t1_, t2_], [-(0.5 * t1_ ** 2 + t1_ * t2_), 0.5 * t2_ ** 2]],
+                                     [knee_rate_td, knee_td - st.knee_peak])
+            if a1 > 0.0 and a2 > 0.0:
+                late_knee = [(x_pk, st.knee_peak, 0.0, -a1),
+                             (x_hip, st.knee_peak - 0.5 * a1 * t1_ ** 2, -a1 * t1_, a2)]
         t_k, acc_k, brake_k = _bang_bang(start[1], rate0[1], st.knee_peak, x_pk, d.knee_brake_ratio)
         knee_x = _Parabolas([(0.0, start[1], rate0[1], acc_k),
                              (t_k, start[1] + rate0[1] * t_k + 0.5 * acc_k * t_k ** 2, rate0[1] + acc_k * t_k, brake_k),
-                             (x_pk, st.knee_peak, 0.0, -knee_acc),
-                             (dur + tau_v, knee_td + knee_rate_td * tau_v + 0.5 * knee_acc * tau_v ** 2,
-                              knee_rate_td + knee_acc * tau_v, knee_acc)],
+                             *late_knee],
                             [min(d.knee_switch_s, 1.8 * min(t_k, x_pk - t_k - 0.5 * bridge)), bridge, bridge])
         # ankle (relative foot pitch): plantar flexion eases off to a small dorsiflexion peak in mid swing, then
         # plantar flexes to a late minimum from which it dorsiflexes into the strike at a constant acceleration
