@@ -176,27 +176,6 @@ def test_columns_csv_is_pandas_to_csv_of_the_same_columns():
     assert columns_csv(empty) == pd.DataFrame(empty).to_csv(**_PANDAS_CSV)
 
 
-def test_strides_gatherer_equals_reading_each_text(monkeypatch):
-    # Chunks of trials' strides CSVs are parsed with one read; the rows must be those of reading each text alone,
-    # also across chunk boundaries, with a missing final newline, and with a text written by another version.
-    from hamstride import batch
-
-    monkeypatch.setattr(batch._StridesGatherer, "CHUNK", 3)
-    texts = [f"athlete,session,trial,stride,value\nA{k},s1,0{k},{k},{k / 3:.6g}\nA{k},s1,0{k},{k + 1},nan\n"
-             for k in range(7)]
-    texts[3] = texts[3].rstrip("\n")  # joined with the next text of its chunk
-    texts[1] = "athlete,session,trial,stride,value,extra\nA1,s1,01,1,1.5,x\n"  # its chunk is read text by text
-    gatherer = batch._StridesGatherer()
-    for k, text in enumerate(texts):
-        gatherer.add(f"key{k}", text)
-    assert "key6" in gatherer and "key9" not in gatherer
-    got = pd.concat(gatherer.tables(), ignore_index=True)
-    expected = pd.concat([batch._read_table(io.StringIO(t)) for t in texts], ignore_index=True)
-    pd.testing.assert_frame_equal(got.sort_values(["athlete", "stride"]).reset_index(drop=True),
-                                  expected.sort_values(["athlete", "stride"]).reset_index(drop=True))
-    assert got["trial"].tolist().count("01") == 1 and got["athlete"].map(type).eq(str).all()
-
-
 def test_tuned_allocator_stops_the_page_faults_of_each_analysis(tmp_path):
     # batch.tune_allocator lets glibc reuse freed memory: after it, analysing a trial again should map next to no
     # fresh pages (minor page faults, counted by the kernel; without it about 450 per 2 s trial on Linux/glibc).

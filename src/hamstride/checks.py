@@ -18,7 +18,8 @@ from typing import Iterable, Mapping
 import numpy as np
 
 from .errors import EventError, FileFormatError, LandmarkError, PlausibilityError, TrialWarning
-from .io import UNIT_TO_METRES, MarkerTrial, finite_points
+from .io import UNIT_TO_METRES, MarkerTrial
+from .numerics import finite_points
 from .landmarks import REQUIRED_LANDMARKS, Landmarks, MarkerMap, plain_name
 
 # Sprint foot contacts last about 0.1 s [M, references.md]; below 100 Hz a contact spans fewer than 10 frames and

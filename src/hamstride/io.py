@@ -23,7 +23,9 @@ from typing import TYPE_CHECKING, Iterable, Mapping, Sequence
 
 import numpy as np
 
+from .atomic import atomic_open, atomic_path, atomic_write_bytes, atomic_write_text, safe_name  # noqa: F401
 from .errors import FileFormatError
+from .numerics import all_xyz, any_xyz, cross_rows, dot_rows, finite_points, norm_rows  # noqa: F401
 
 if TYPE_CHECKING:
     from .labframe import LabFrame
@@ -502,41 +504,6 @@ def _trial_from_ezc3d(c, path: Path, layout: C3DLayout) -> MarkerTrial:
                            header_events, layout.frames_promised)
 
 
-# Operations over a last axis of x, y, z written out by component: numpy reduces or crosses a length-3 last axis
-# through its general machinery, several times slower on [frame, 3] and [frame, marker, 3] arrays; the arithmetic
-# is the same.
-def all_xyz(mask: np.ndarray) -> np.ndarray:
-    """``mask.all(axis=-1)`` for a last axis of x, y, z."""
-    return mask[..., 0] & mask[..., 1] & mask[..., 2]
-
-
-def any_xyz(mask: np.ndarray) -> np.ndarray:
-    """``mask.any(axis=-1)`` for a last axis of x, y, z (see ``all_xyz``)."""
-    return mask[..., 0] | mask[..., 1] | mask[..., 2]
-
-
-def finite_points(xyz: np.ndarray) -> np.ndarray:
-    """Points whose three coordinates are finite: ``np.isfinite(xyz).all(axis=-1)``, faster (see ``all_xyz``)."""
-    return all_xyz(np.isfinite(xyz))
-
-
-def dot_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise dot product of [..., 3] arrays."""
-    return a[..., 0] * b[..., 0] + a[..., 1] * b[..., 1] + a[..., 2] * b[..., 2]
-
-
-def norm_rows(v: np.ndarray) -> np.ndarray:
-    """Row-wise Euclidean length of [..., 3] arrays (``np.linalg.norm(v, axis=-1)``)."""
-    return np.sqrt(dot_rows(v, v))
-
-
-def cross_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise cross product of [..., 3] arrays (``np.cross``)."""
-    ax, ay, az = a[..., 0], a[..., 1], a[..., 2]
-    bx, by, bz = b[..., 0], b[..., 1], b[..., 2]
-    return np.stack([ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx], axis=-1)
-
-
 def _assemble_trial(path: Path, labels: tuple[str, ...], file_xyz: np.ndarray, invalid: np.ndarray, units: str,
                     rate: float, first_frame: int, params: Mapping, header_events,
                     frames_promised: int = 0) -> MarkerTrial:
@@ -725,56 +692,3 @@ def write_c3d(path: str | Path, labels: Sequence[str], xyz: np.ndarray, rate_hz:
     with atomic_path(path, suffix=".partial.c3d") as tmp:  # ezc3d insists on a .c3d ending
         c.write(str(tmp))
     return path
-
-
-
-# --------------------------------------------------------------------------------------------------- atomic files
-
-@contextlib.contextmanager
-def atomic_path(path: str | Path, suffix: str = ".partial"):
-    """Yield a temporary path beside ``path``; on success it replaces ``path`` atomically, on failure it is removed.
-
-    The file gets the usual permissions (0666 less the umask), not the private mode of temporary files.
-    """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix, dir=path.parent)
-    os.close(fd)
-    try:
-        yield Path(tmp)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-
-
-@contextlib.contextmanager
-def atomic_open(path: str | Path, mode: str = "wb", **open_kwargs):
-    """Open a temporary file beside ``path`` for writing; when the block ends it is flushed to disk and renamed
-    over ``path`` (on failure it is removed, ``path`` untouched). For writers that stream their output."""
-    with atomic_path(path) as tmp:
-        with open(tmp, mode, **open_kwargs) as fh:
-            yield fh
-            fh.flush()
-            os.fsync(fh.fileno())
-
-
-def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
-    """Write ``data`` to ``path`` through a temporary file in the same folder and an atomic rename."""
-    with atomic_open(path) as fh:
-        fh.write(data)
-    return Path(path)
-
-
-def atomic_write_text(path: str | Path, text: str) -> Path:
-    """UTF-8 text version of :func:`atomic_write_bytes`."""
-    return atomic_write_bytes(path, text.encode("utf-8"))
-
-
-def safe_name(text: str) -> str:
-    """A file-system-safe version of an athlete/session/trial name (no path separators, no dot-dot)."""
-    cleaned = re.sub(r"[^A-Za-z0-9_.-]+", "_", str(text)).strip("._")
-    return cleaned or "unnamed"

@@ -17,9 +17,9 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError
-from .io import MarkerTrial, finite_points
+from .io import MarkerTrial
+from .numerics import SIDES, finite_points
 
-SIDES = ("left", "right")
 REQUIRED_SITES = ("asis", "psis", "lateral_epicondyle", "medial_epicondyle", "lateral_malleolus", "medial_malleolus",
                   "heel", "first_metatarsal", "fifth_metatarsal")
 OPTIONAL_SITES = ("toe_tip",)

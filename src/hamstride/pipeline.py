@@ -16,6 +16,7 @@ import pandas as pd
 from . import __version__
 from .checks import strict_failure
 from .errors import EventError, HamstrideError, PlausibilityError, TrialWarning
+from .numerics import SIDES
 
 STRIDE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "foot_strike_s", "toe_off_s", "next_foot_strike_s",
@@ -41,7 +42,6 @@ CURVE_COLUMNS = [
     "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w",
     "hip_moment_nm_per_kg", "knee_moment_nm_per_kg",
 ]
-SIDES = ("left", "right")
 
 
 @dataclass(frozen=True)
@@ -297,7 +297,6 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     from .dynamics import (BandLeg, SwingLeg, force_work_band, leg_inertia, share_swing_moments_of_legs,
                            swing_inverse_dynamics_of_legs)
     from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states_of_legs, stature_from_dims
-    from .signal import percentiles
     from .strides import normalise_strides
 
     rate = trial.rate_hz
@@ -328,8 +327,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             peaks = monte_carlo_peaks(joint, windows, dims, n_samples=options.monte_carlo_samples, seed=0,
                                       nominal_lengths_m={m: states[m].length_m for m in MUSCLES})
             # 5th/95th percentiles of every muscle's peaks in one call: [2 (p5, p95), muscle, strain | l/l_opt, stride]
-            q = percentiles(np.stack([np.stack([100.0 * peaks[m][0], peaks[m][1]], axis=1) for m in MUSCLES],
-                                      axis=1), (5, 95))
+            q = np.percentile(np.stack([np.stack([100.0 * peaks[m][0], peaks[m][1]], axis=1) for m in MUSCLES],
+                                      axis=1), (5, 95), axis=0)
             bands = {m: (q[:, k, 0], q[:, k, 1]) for k, m in enumerate(MUSCLES)}  # each [2, strides]
         swing = np.zeros(n_frames, dtype=bool)
         if body_mass:

@@ -23,10 +23,9 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError, PlausibilityError
-from .io import cross_rows, dot_rows, finite_points, norm_rows
+from .numerics import SIDES, cross_rows, dot_rows, finite_points, norm_rows
 from .landmarks import Landmarks, plain_name
 
-SIDES = ("left", "right")
 HIP_METHODS = ("harrington", "harrington_pw", "bell")
 MIN_RIGID_MARKERS = 3
 # Metatarsal heads sit at about 0.72 of foot length (heel -> longest toe tip) from the heel: from memory; used only

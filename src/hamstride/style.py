@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from types import MappingProxyType
 
-SIDES = ("left", "right")
+from .numerics import SIDES  # noqa: E402  (one home for the side names)
 MUSCLE_ORDER = ("biceps_femoris_long", "semitendinosus", "semimembranosus", "biceps_femoris_short")
 
 #: left: deep blue (dark in grey-scale), right: amber (light in grey-scale).
