@@ -6,6 +6,7 @@ The same function serves the CLI, the squad batch and a notebook.
 from __future__ import annotations
 
 import functools
+import os
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Mapping, NamedTuple
@@ -121,23 +122,47 @@ class Kinematics:
         return [s for s in self.strides if s.valid]
 
 
+def static_calibration(static_path: str | Path, marker_map):
+    """A static trial's filtered landmarks and segment calibration (segments.calibrate), worked out once per
+    process for each file and marker map: the sprints of a session share them. The file's size and modification
+    time are part of the key, so a changed file is read again."""
+    stat = os.stat(static_path)
+    key = (os.path.realpath(static_path), stat.st_mtime_ns, stat.st_size, marker_map.source, marker_map.prefix,
+           tuple(sorted(marker_map.landmarks.items())),
+           tuple(sorted((name, tuple(labels)) for name, labels in marker_map.clusters.items())))
+    if key not in _STATIC_CALIBRATIONS:
+        if len(_STATIC_CALIBRATIONS) >= 8:  # a few sessions at a time: the oldest goes
+            _STATIC_CALIBRATIONS.pop(next(iter(_STATIC_CALIBRATIONS)))
+        _STATIC_CALIBRATIONS[key] = _static_calibration(str(static_path), marker_map)
+    return _STATIC_CALIBRATIONS[key]
+
+
+_STATIC_CALIBRATIONS: dict[tuple, tuple] = {}
+
+
+def _static_calibration(static_path: str, marker_map):
+    from .io import read_c3d
+    from .landmarks import resolve_landmarks
+    from .segments import calibrate
+    from .signal import smooth_landmarks
+
+    static_lm = resolve_landmarks(read_c3d(static_path), marker_map)
+    static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
+    return static_lm, calibrate(static_lm)
+
+
 def landmarks_with_static(trial, marker_map, static_path: str | Path | None = None):
     """A trial's landmarks, with those missing rebuilt from a static trial's calibration (rigid fit of the segment's
     cluster; segments.reconstruct_missing). Returns (landmarks, landmarks as seen in the file, the landmarks the
     static trial could rebuild, the calibration or None). Errors in the static trial name the dynamic trial."""
-    from .io import read_c3d
     from .landmarks import recoverable_landmarks, resolve_landmarks
-    from .segments import calibrate, reconstruct_missing
-    from .signal import smooth_landmarks
+    from .segments import reconstruct_missing
 
     if static_path is None:
         lm = resolve_landmarks(trial, marker_map)
         return lm, lm, (), None
     try:
-        static = read_c3d(static_path)
-        static_lm = resolve_landmarks(static, marker_map)
-        static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
-        calibration = calibrate(static_lm)
+        static_lm, calibration = static_calibration(static_path, marker_map)
     except HamstrideError as exc:  # name the sprint trial and say the problem is in its static trial
         raise type(exc)(f"its static calibration trial {Path(static_path).name} failed ({exc.message}); fix or "
                         "remove that file", trial=trial.name, code=exc.code) from None

@@ -93,7 +93,7 @@ CLUSTER_CONNECT_TIMEOUT_S = 30.0
 
 def _worker_software() -> str:
     """Runs on a cluster worker: the hamstride version it would analyse with."""
-    from . import __version__ as worker_version
+    from .. import __version__ as worker_version
     return worker_version
 
 
@@ -172,15 +172,16 @@ def run_on_cluster(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, c
     ``cluster`` is a scheduler address (``tcp://HOST:PORT``), a scheduler file written by
     ``dask scheduler --scheduler-file FILE``, a ``distributed.Client`` or anything with ``scheduler_address``
     (e.g. a ``LocalCluster``). Workers read the C3D files themselves, so they need the squad folder at the same
-    path (shared disk) and the same hamstride version. The analysis code and the CSV text are the ones of the
-    local pool (the tables travel as binary columns), so the exports are byte-identical; caching and the manifest stay on this computer.
+    path (shared disk) and the same hamstride version. The analysis code and the tables are those of the
+    local pool (the tables travel as binary columns), so the exports are byte-identical; caching and the manifest
+    stay on this computer.
     """
     if not todo:
         return
     client, owned = _connect_cluster(cluster)
     try:
         from distributed import KilledWorker, as_completed
-        from . import __version__ as local_version
+        from .. import __version__ as local_version
 
         try:
             client.wait_for_workers(1, timeout=CLUSTER_CONNECT_TIMEOUT_S)
