@@ -17,7 +17,8 @@ import pandas as pd
 
 from ..atomic import atomic_open, atomic_write_bytes
 
-__all__ = ["table_csv", "columns_csv", "write_table", "write_curves", "exported_frame", "CSV_FLOAT_FORMAT"]
+__all__ = ["table_csv", "columns_csv", "write_table", "write_curves", "CurvesExport", "exported_frame",
+           "CSV_FLOAT_FORMAT"]
 
 CSV_FLOAT_FORMAT = "%.6g"
 _PANDAS_CSV = {"index": False, "lineterminator": "\n", "float_format": CSV_FLOAT_FORMAT}
@@ -139,6 +140,32 @@ def write_curves(targets: Mapping[Path, Iterable[int]], names: list[str],
             text = text.getvalue()
             for fh in handles:
                 fh.write(text)
+
+
+class CurvesExport:
+    """``curves.csv`` and each athlete's ``athletes/STEM_curves.csv`` written while the trials finish: each trial's
+    curves are formatted once (:meth:`add`, in run order) and appended to both files. The files are atomic
+    temporaries opened in ``stack`` (a ``contextlib.ExitStack``): they appear when the stack closes normally and
+    are removed if it closes with an error."""
+
+    def __init__(self, stack: contextlib.ExitStack, out: Path, names: list[str], stems: Mapping[str, str]) -> None:
+        self._stack, self._out, self._names, self._stems = stack, Path(out), list(names), stems
+        self._all = self._open(self._out / "curves.csv")
+        self._athletes: dict[str, object] = {}
+
+    def _open(self, path: Path):
+        fh = self._stack.enter_context(atomic_open(path, "w", encoding="utf-8", newline=""))
+        csv.writer(fh, lineterminator="\n").writerow(self._names)
+        return fh
+
+    def add(self, athlete: str, columns: Mapping[str, np.ndarray]) -> None:
+        if athlete not in self._athletes:
+            self._athletes[athlete] = self._open(self._out / "athletes" / f"{self._stems[athlete]}_curves.csv")
+        text = _io.StringIO()
+        _write_columns({name: columns[name] for name in self._names}, text, header=False)
+        text = text.getvalue()
+        self._all.write(text)
+        self._athletes[athlete].write(text)
 
 
 def exported_frame(tables: list[Mapping[str, np.ndarray]], names: list[str]) -> pd.DataFrame:

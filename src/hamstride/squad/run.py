@@ -6,6 +6,7 @@ curves files in one formatting pass (:mod:`.export`); reports read the binary ta
 """
 from __future__ import annotations
 
+import contextlib
 import functools
 import json
 import os
@@ -26,7 +27,7 @@ from .cache import CACHE_DIR, cache_key, code_fingerprint, file_sha256, has_entr
 from .cache import write_entry
 from .discovery import TrialJob, discover_squad
 from .executor import run_pool
-from .export import exported_frame, write_curves, write_table
+from .export import CurvesExport, exported_frame, write_curves, write_table
 from .timeline import build_timeline
 
 __all__ = ["run_squad", "SquadRun"]
@@ -111,16 +112,42 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     if progress:
         progress(done[0], total, failures[0])
 
+    # The curves files are written while the workers run (the parent is idle then): each trial's curves go out, in
+    # run order, as soon as it and every trial before it have finished.
+    exports = contextlib.ExitStack()
+    curves_out = None
+    if write_outputs:
+        from ..report import athlete_files
+        planned_stems = athlete_files(sorted({job.athlete for job in all_jobs}))
+        curves_out = CurvesExport(exports, out, CURVE_COLUMNS, planned_stems)
+    finished = {key for job in all_jobs if (key := records[job.path]["cache_key"]) and has_entry(cache, key)}
+    position = [0]
+
+    def export_ready() -> None:
+        while position[0] < len(all_jobs):
+            job = all_jobs[position[0]]
+            key = records[job.path]["cache_key"]
+            if key is not None and key not in finished:
+                return
+            if curves_out is not None and key is not None and read_record(cache, key)["status"] == "ok":
+                curves_out.add(job.athlete, read_table(cache, key, "curves"))
+            position[0] += 1
+
     def on_done(job: TrialJob, key: str, result: dict) -> None:
         if not result.pop("cached_by_worker", False):
             write_entry(cache, key, result)  # cluster results and crash records: written here
         if result["status"] != "ok":
             failures[0] += 1
         done[0] += 1
+        finished.add(key)
+        export_ready()
         if progress:
             progress(done[0], total, failures[0])
 
-    run_pool(todo, config.analysis, jobs, on_done, cache, cluster=cluster)
+    with exports:
+        export_ready()
+        run_pool(todo, config.analysis, jobs, on_done, cache, cluster=cluster)
+        export_ready()
 
     failed = []
     ok_keys: list[str] = []
@@ -159,13 +186,15 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
         return SquadRun(out, manifest, strides, summary, flags, athletes, failed, analysed=len(todo), cached=n_cached)
     out.mkdir(parents=True, exist_ok=True)
     write_table(out, "strides", strides)
-    from ..report import athlete_files
     stems = athlete_files(sorted(keys_by_athlete))
-    position = {key: i for i, key in enumerate(ok_keys)}
-    targets = {out / "curves.csv": range(len(ok_keys))}
-    targets.update((out / "athletes" / f"{stems[a]}_curves.csv", [position[k] for k in keys])
-                   for a, keys in keys_by_athlete.items())  # athletes/CODE_curves.csv: the rows of curves.csv
-    write_curves(targets, CURVE_COLUMNS, ((i, read_table(cache, key, "curves")) for i, key in enumerate(ok_keys)))
+    renamed = {a for a in keys_by_athlete if stems[a] != planned_stems[a]}
+    if renamed:  # athletes whose names differ only in letter case, some without a finished trial: names again
+        for a in renamed:
+            (out / "athletes" / f"{planned_stems[a]}_curves.csv").unlink(missing_ok=True)
+        position = {key: i for i, key in enumerate(ok_keys)}
+        write_curves({out / "athletes" / f"{stems[a]}_curves.csv": [position[k] for k in keys_by_athlete[a]]
+                      for a in renamed}, CURVE_COLUMNS,
+                     ((i, read_table(cache, key, "curves")) for i, key in enumerate(ok_keys)))
     write_table(out, "summary", summary)
     write_table(out, "flags", flags)
     manifest = {
