@@ -197,20 +197,26 @@ def section(title: str) -> None:
 
 
 # --------------------------------------------------------------------------------------------- where the user waits
-def cli_run(arguments: list[str], watch: bool = False) -> tuple[float, float]:
+def cli_run(arguments: list[str], watch: bool = False) -> tuple[float, float, float]:
     """Run the ``hamstride`` command as a user does (a fresh process: imports, pool start and all); returns the
-    wall time and, with ``watch``, the peak memory (PSS summed over the process tree, MB; else NaN)."""
+    wall time, the CPU time of the whole process tree (user + system; on a shared machine the steadier figure) and,
+    with ``watch``, the peak memory (PSS summed over the process tree, MB; else NaN)."""
     import subprocess
 
     cmd = [sys.executable, "-m", "hamstride.cli", *map(str, arguments)]
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     if watch:
         peak = run_and_watch(cmd, interval_s=0.05)
-        return peak.wall_s, peak.pss_mb
-    t0 = time.perf_counter()
-    proc = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    if proc.returncode not in (0, 1):
-        raise RuntimeError(f"{' '.join(cmd)} failed ({proc.returncode}): {proc.stderr.decode()[-2000:]}")
-    return time.perf_counter() - t0, float("nan")
+        wall, pss = peak.wall_s, peak.pss_mb
+    else:
+        t0 = time.perf_counter()
+        proc = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        if proc.returncode not in (0, 1):
+            raise RuntimeError(f"{' '.join(cmd)} failed ({proc.returncode}): {proc.stderr.decode()[-2000:]}")
+        wall, pss = time.perf_counter() - t0, float("nan")
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return wall, cpu, pss
 
 
 def user_waits(args, work: Path, results: dict) -> None:
@@ -233,20 +239,24 @@ def user_waits(args, work: Path, results: dict) -> None:
              f"tables, --jobs {args.jobs}": ["squad", squad, "--out", work / "u_tj", "--no-report", "--jobs", args.jobs],
              f"tables + reports, --jobs {args.jobs}": ["squad", squad, "--out", work / "u_rj", "--jobs", args.jobs]}
     times: dict[str, list[float]] = {k: [] for k in cases}
+    cpus: dict[str, list[float]] = {k: [] for k in cases}
     memory: dict[str, float] = {}
     cli_run(cases["one trial, tables"])  # warm the file cache and Python's bytecode
     for r in range(args.user_rounds):
         for label, arguments in cases.items():
             if "--out" in arguments:
                 shutil.rmtree(arguments[arguments.index("--out") + 1], ignore_errors=True)
-            wall, pss = cli_run(arguments, watch=label.startswith("tables"))
+            wall, cpu, pss = cli_run(arguments, watch=label.startswith("tables"))
             times[label].append(wall)
+            cpus[label].append(cpu)
             if pss == pss:
                 memory[label] = max(memory.get(label, 0.0), pss)
     med = {k: float(statistics.median(v)) for k, v in times.items()}
+    cpu = {k: float(statistics.median(v)) for k, v in cpus.items()}
     for label in cases:
         extra = f", peak {memory[label]:.0f} MB" if label in memory else ""
-        print(f"{label:<32} {med[label]:7.2f} s  (rounds: {', '.join(f'{t:.2f}' for t in times[label])}){extra}")
+        print(f"{label:<32} wall {med[label]:6.2f} s, CPU {cpu[label]:6.2f} s  "
+              f"(wall of each round: {', '.join(f'{t:.2f}' for t in times[label])}){extra}")
     trial = sorted(squad.glob("*/*/sprint_*.c3d"))[0]
     read = statistics.median(time_ezc3d_wall(trial) for _ in range(5))
     jobs_label = f"tables, --jobs {args.jobs}"
@@ -258,7 +268,12 @@ def user_waits(args, work: Path, results: dict) -> None:
                     "user_marginal_ratio_jobs1": marginal1 / read, "user_speedup": speedup,
                     "user_one_trial_s": med["one trial, tables"], "user_version_s": med["version"],
                     "user_reports_add": report_share, "user_peak_mb": max(memory.values())})
+    cpu_marginal = (cpu["tables, --jobs 1"] - cpu["one trial, tables"]) / max(n - 1, 1)
+    results.update({"user_cpu_marginal_ratio": cpu_marginal / read,
+                    "user_cpu_reports_add": cpu[f"tables + reports, --jobs {args.jobs}"] / cpu[jobs_label] - 1.0})
     print(f"ezc3d read of one trial (wall, warm): {1000 * read:.1f} ms")
+    print(f"CPU per extra trial (--jobs 1, whole process tree): {1000 * cpu_marginal:.1f} ms = "
+          f"{cpu_marginal / read:.1f}x the read; reports add {100 * results['user_cpu_reports_add']:.0f} % CPU")
     print(f"marginal time per trial, --jobs {args.jobs}: {1000 * marginal:.1f} ms = {marginal / read:.1f}x the read; "
           f"--jobs 1: {1000 * marginal1:.1f} ms = {marginal1 / read:.1f}x  (target <= 4x, aim 3x: "
           f"{check(marginal / read, 4.0)})")

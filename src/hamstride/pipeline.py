@@ -19,6 +19,10 @@ from .checks import strict_failure
 from .errors import EventError, HamstrideError, PlausibilityError, TrialWarning
 from .numerics import SIDES
 
+__all__ = ["STRIDE_COLUMNS", "FORCE_STATUS_MOSTLY_MET_PCT", "SHORT_FIBRE_LOPT", "SHORT_FIBRE_FORCE_FRACTION",
+           "CURVE_COLUMNS", "AnalysisOptions", "AthleteInfo", "TrialResult", "Kinematics", "static_calibration",
+           "landmarks_with_static", "trial_kinematics", "analyse_trial"]
+
 STRIDE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "foot_strike_s", "toe_off_s", "next_foot_strike_s",
     "stride_time_s", "toe_off_pct", "late_swing_start_pct", "speed_m_s", "peak_hip_flexion_deg",

@@ -24,6 +24,10 @@ from scipy.signal import butter, filtfilt, savgol_coeffs, savgol_filter
 from .errors import ConfigError
 from .numerics import runs
 
+__all__ = ["DEFAULT_MAX_GAP_FRAMES", "EDGE_GAP_NOTE", "FILTER_ORDER", "savgol_derivative", "percentiles",
+           "dual_pass_correction", "design_cutoff_hz", "lowpass", "Gap", "GapReport", "find_gaps", "fill_gaps",
+           "residuals", "residual_cutoff", "FilterInfo", "smooth_landmarks"]
+
 if TYPE_CHECKING:  # pragma: no cover
     from .landmarks import Landmarks
 

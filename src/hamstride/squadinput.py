@@ -20,6 +20,12 @@ from typing import TYPE_CHECKING, Iterable, Mapping
 
 from .errors import ConfigError
 
+__all__ = ["ATHLETE_COLUMNS", "REQUIRED_ATHLETE_COLUMNS", "OPTIONAL_ATHLETE_COLUMNS", "BODY_MASS_RANGE_KG",
+           "HEIGHT_RANGE_M", "STRENGTH_FACTOR_RANGE", "SIDES", "SEXES", "DATE_PREFIX", "MARKER_MAP_SECTIONS",
+           "MARKER_MAP_KEYS", "read_input_bytes", "read_input_text", "require_file", "did_you_mean",
+           "read_athletes", "session_date", "SessionTrials", "SquadLayout", "scan_squad", "match_athlete",
+           "check_marker_map"]
+
 if TYPE_CHECKING:  # pandas loads only when a table is read: `hamstride --help` stays fast
     import pandas as pd
 

@@ -14,6 +14,9 @@ from scipy.interpolate import CubicSpline
 from .events import GaitEvents
 from .numerics import SIDES
 
+__all__ = ["DEFAULT_STRIDE_TIME_RANGE_S", "DEFAULT_CONTACT_RANGE_S", "Stride", "cut_strides", "normalise",
+           "normalise_strides", "window_frames"]
+
 # Plausible stride and contact times, sprinting to jogging (common practice, from the values below). Sprinting:
 # stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]. Jogging at 3 m/s: stride about 0.63-0.80 s
 # (75-95 strides/min; metabolic optimum 84.8 strides/min = 0.71 s; Lieberman et al. 2015, J Exp Biol 218:3406

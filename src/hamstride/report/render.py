@@ -17,7 +17,7 @@ from urllib.parse import quote
 import numpy as np
 import pandas as pd
 
-from ..style import SIDES
+from ..numerics import SIDES
 from .common import (DATE_PREFIX, asymmetry_band, athlete_files, athlete_info, by_athlete, column, csv_cell,
                      empty_like, first_finite, fmt, guarding_lsi, has_values, inside, latest_summary, missing,
                      muscle_label, muscles_in_order, num, plural, run_info_get, sessions_in_order, session_sort_key,
@@ -27,6 +27,8 @@ from .figures import force_figure, joint_figure, mini_geometry, raster, stretch_
 from .pages import athlete_page, earlier_flags_line, failed_rows, flag_rows, squad_page, timeline_page
 from .pdf import write_pdf
 from .web import render_html
+
+__all__ = ["TABLE_FILES", "render_squad", "render_timeline"]
 
 TABLE_FILES = ("strides.csv", "curves.csv", "summary.csv", "flags.csv", "manifest.json")
 _FLAG_MUSCLES = ("biceps_femoris_long", "semitendinosus", "semimembranosus")
