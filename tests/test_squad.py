@@ -208,7 +208,7 @@ def test_tuned_allocator_stops_the_page_faults_of_each_analysis(tmp_path):
 
 
 def test_exports_are_pandas_text_of_each_trials_own_tables(squad_run):
-    # The squad's tables make one binary pass (worker -> npz cache -> CSV once). Reference: pandas' to_csv of the
+    # The squad's tables make one binary pass (worker -> binary .npy cache -> CSV once). Reference: pandas' to_csv of the
     # tables analyse_trial returns in memory (no cache), and pandas' read_csv of that text for the squad tables, as
     # hamstride did before the binary cache (strides CSV text parsed back; main 9308986): byte-identical files.
     from hamstride.metrics import summarise
@@ -236,7 +236,7 @@ def test_exports_are_pandas_text_of_each_trials_own_tables(squad_run):
     header = curves_text[0].split("\n", 1)[0] + "\n"
     assert (out / "athletes" / f"{athlete}_curves.csv").read_text() == header + mine.removeprefix(header)
     cache = out / ".hamstride-cache"
-    assert not list(cache.glob("*.csv")) and list(cache.glob("*.curves.npz"))  # binary cache, no CSV text
+    assert not list(cache.glob("*.csv")) and list(cache.glob("*.curves.npy"))  # binary cache, no CSV text
 
 
 def test_exported_frame_is_what_read_csv_gives_back():

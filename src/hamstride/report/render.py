@@ -86,14 +86,20 @@ def render_squad(out_dir: Path, strides: pd.DataFrame, curves, flags: pd.DataFra
     if progress:
         progress(done, len(jobs))
     if workers > 1:
+        import gc
         from concurrent.futures import ProcessPoolExecutor, as_completed
 
-        with ProcessPoolExecutor(max_workers=workers) as pool:
-            for future in as_completed([pool.submit(_render_athlete, job) for job in jobs]):
-                future.result()
-                done += 1
-                if progress:
-                    progress(done, len(jobs))
+        _warm_renderers()  # once here: the forked page workers inherit the loaded renderers
+        gc.freeze()  # what the workers inherit is never collected again there (nor copied by a collection)
+        try:
+            with ProcessPoolExecutor(max_workers=workers) as pool:
+                for future in as_completed([pool.submit(_render_athlete, job) for job in jobs]):
+                    future.result()
+                    done += 1
+                    if progress:
+                        progress(done, len(jobs))
+        finally:
+            gc.unfreeze()
     else:
         for job in jobs:
             _render_athlete(job)
@@ -104,6 +110,24 @@ def render_squad(out_dir: Path, strides: pd.DataFrame, curves, flags: pd.DataFra
     write_atomic(index, render_html(_index_page(out_dir, names, files, groups, strides, flags, summary, athletes,
                                                 run_info)))
     return [index] + written
+
+
+def _warm_renderers() -> None:
+    """Load matplotlib (with its font cache), reportlab with our fonts and styles, PIL and the jinja2 templates in
+    this process, so page workers forked from it do not each load them again (about 0.4 s of CPU per worker)."""
+    from . import figures, pdf, web
+
+    fig = figures.new_figure(1.0, 1.0)
+    fig.subplots().set_title("warm-up")
+    figures.raster(fig, dpi=20)
+    pdf._fonts()
+    pdf._styles()
+    env = web._environment()
+    for name in env.list_templates():
+        env.get_template(name)
+    import reportlab.platypus  # noqa: F401
+    from matplotlib import gridspec, lines, patches, ticker  # noqa: F401
+    from reportlab.lib import pagesizes, utils  # noqa: F401
 
 
 def _report_workers(run_info: Mapping | None, n_athletes: int) -> int:
