@@ -196,6 +196,103 @@ def section(title: str) -> None:
     print(f"\n== {title} " + "=" * max(0, 100 - len(title)), flush=True)
 
 
+# --------------------------------------------------------------------------------------------- where the user waits
+def cli_run(arguments: list[str], watch: bool = False) -> tuple[float, float, float]:
+    """Run the ``hamstride`` command as a user does (a fresh process: imports, pool start and all); returns the
+    wall time, the CPU time of the whole process tree (user + system; on a shared machine the steadier figure) and,
+    with ``watch``, the peak memory (PSS summed over the process tree, MB; else NaN)."""
+    import subprocess
+
+    cmd = [sys.executable, "-m", "hamstride.cli", *map(str, arguments)]
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if watch:
+        peak = run_and_watch(cmd, interval_s=0.05)
+        wall, pss = peak.wall_s, peak.pss_mb
+    else:
+        t0 = time.perf_counter()
+        proc = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        if proc.returncode not in (0, 1):
+            raise RuntimeError(f"{' '.join(cmd)} failed ({proc.returncode}): {proc.stderr.decode()[-2000:]}")
+        wall, pss = time.perf_counter() - t0, float("nan")
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return wall, cpu, pss
+
+
+def user_waits(args, work: Path, results: dict) -> None:
+    """End-to-end ``hamstride squad`` times of a squad of ``--user-trials`` trials (3 sprints and a static trial
+    per session, one session per athlete), fresh output folder each time: tables only and with reports,
+    ``--jobs 1`` and ``--jobs N``; the marginal time per trial against ezc3d reading the same file; start-up
+    (``--version``, ``--help``, a one-trial squad); peak memory. Medians over ``--user-rounds`` interleaved rounds."""
+    n = args.user_trials
+    squad = write_squad(work / f"user{n}", n, trials_per_session=3, sessions_per_athlete=1,
+                        duration_s=args.base_s, statics=True)
+    one = write_squad(work / "user1", 1, trials_per_session=1, sessions_per_athlete=1, duration_s=args.base_s,
+                      statics=True)
+    n_athletes = len([p for p in squad.iterdir() if p.is_dir()])
+    section(f"where the user waits: `hamstride squad` end to end, {n} trials of {args.base_s:g} s "
+            f"({n_athletes} athletes, a static trial per session); wall time, fresh outputs; "
+            f"median of {args.user_rounds} rounds")
+    cases = {"version": ["--version"], "help": ["--help"],
+             "one trial, tables": ["squad", one, "--out", work / "u_one", "--no-report", "--jobs", args.jobs],
+             "tables, --jobs 1": ["squad", squad, "--out", work / "u_t1", "--no-report", "--jobs", 1],
+             f"tables, --jobs {args.jobs}": ["squad", squad, "--out", work / "u_tj", "--no-report", "--jobs", args.jobs],
+             f"tables + reports, --jobs {args.jobs}": ["squad", squad, "--out", work / "u_rj", "--jobs", args.jobs]}
+    times: dict[str, list[float]] = {k: [] for k in cases}
+    cpus: dict[str, list[float]] = {k: [] for k in cases}
+    memory: dict[str, float] = {}
+    cli_run(cases["one trial, tables"])  # warm the file cache and Python's bytecode
+    for r in range(args.user_rounds):
+        for label, arguments in cases.items():
+            if "--out" in arguments:
+                shutil.rmtree(arguments[arguments.index("--out") + 1], ignore_errors=True)
+            wall, cpu, pss = cli_run(arguments, watch=label.startswith("tables"))
+            times[label].append(wall)
+            cpus[label].append(cpu)
+            if pss == pss:
+                memory[label] = max(memory.get(label, 0.0), pss)
+    med = {k: float(statistics.median(v)) for k, v in times.items()}
+    cpu = {k: float(statistics.median(v)) for k, v in cpus.items()}
+    for label in cases:
+        extra = f", peak {memory[label]:.0f} MB" if label in memory else ""
+        print(f"{label:<32} wall {med[label]:6.2f} s, CPU {cpu[label]:6.2f} s  "
+              f"(wall of each round: {', '.join(f'{t:.2f}' for t in times[label])}){extra}")
+    trial = sorted(squad.glob("*/*/sprint_*.c3d"))[0]
+    read = statistics.median(time_ezc3d_wall(trial) for _ in range(5))
+    jobs_label = f"tables, --jobs {args.jobs}"
+    marginal = (med[jobs_label] - med["one trial, tables"]) / max(n - 1, 1)
+    marginal1 = (med["tables, --jobs 1"] - med["one trial, tables"]) / max(n - 1, 1)
+    report_share = med[f"tables + reports, --jobs {args.jobs}"] / med[jobs_label] - 1.0
+    speedup = med["tables, --jobs 1"] / med[jobs_label]
+    results.update({"user_marginal_per_trial_s": marginal, "user_marginal_ratio": marginal / read,
+                    "user_marginal_ratio_jobs1": marginal1 / read, "user_speedup": speedup,
+                    "user_one_trial_s": med["one trial, tables"], "user_version_s": med["version"],
+                    "user_reports_add": report_share, "user_peak_mb": max(memory.values())})
+    cpu_marginal = (cpu["tables, --jobs 1"] - cpu["one trial, tables"]) / max(n - 1, 1)
+    results.update({"user_cpu_marginal_ratio": cpu_marginal / read,
+                    "user_cpu_reports_add": cpu[f"tables + reports, --jobs {args.jobs}"] / cpu[jobs_label] - 1.0})
+    print(f"ezc3d read of one trial (wall, warm): {1000 * read:.1f} ms")
+    print(f"CPU per extra trial (--jobs 1, whole process tree): {1000 * cpu_marginal:.1f} ms = "
+          f"{cpu_marginal / read:.1f}x the read; reports add {100 * results['user_cpu_reports_add']:.0f} % CPU")
+    print(f"marginal time per trial, --jobs {args.jobs}: {1000 * marginal:.1f} ms = {marginal / read:.1f}x the read; "
+          f"--jobs 1: {1000 * marginal1:.1f} ms = {marginal1 / read:.1f}x  (target <= 4x, aim 3x: "
+          f"{check(marginal / read, 4.0)})")
+    print(f"--jobs {args.jobs} speedup {speedup:.2f} (target >= 1.7: {check(speedup, 1.7, False)}); one-trial squad "
+          f"{med['one trial, tables']:.2f} s (target <= 0.8 s: {check(med['one trial, tables'], 0.8)}); "
+          f"--version {med['version']:.2f} s")
+    print(f"reports add {100 * report_share:.0f} % (target <= 50 %: {check(report_share, 0.5)}); "
+          f"peak memory {max(memory.values()):.0f} MB (target <= 600 MB)")
+    print(load_note())
+
+
+def time_ezc3d_wall(path: Path) -> float:
+    import ezc3d
+
+    t0 = time.perf_counter()
+    ezc3d.c3d(str(path), extract_forceplat_data=False)
+    return time.perf_counter() - t0
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--quick", action="store_true", help="small sizes (one to two minutes)")
@@ -207,7 +304,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--jobs", type=int, default=2, help="worker processes for the parallel runs (default 2)")
     ap.add_argument("--speedup-rounds", type=int, default=3, help="--jobs 1 / --jobs N pairs to run (median; default 3)")
     ap.add_argument("--no-dask", action="store_true", help="skip the Dask LocalCluster comparison")
-    ap.add_argument("--skip", nargs="*", default=[], choices=["stages", "scaling", "speedup", "memory", "report",
+    ap.add_argument("--user-trials", type=int, default=24, help="trials of the end-to-end squad (default 24: 8 athletes)")
+    ap.add_argument("--user-rounds", type=int, default=None, help="rounds of the end-to-end runs (median; default 3, quick 1)")
+    ap.add_argument("--skip", nargs="*", default=[], choices=["user", "stages", "scaling", "speedup", "memory", "report",
                                                                "dask"], help="sections to skip")
     ap.add_argument("--clock", choices=sorted(CLOCKS), default="cpu",
                     help="per-trial timings in CPU time of the process (default; robust on a shared machine, equal "
@@ -236,6 +335,9 @@ def main(argv: list[str] | None = None) -> int:
           f"{os.cpu_count()} cores; allocator tuned as in hamstride's workers: {tuned}; work folder {work}")
     print(load_note())
     results: dict[str, object] = {}
+    args.user_rounds = args.user_rounds or (1 if args.quick else 3)
+    if "user" not in skip:
+        user_waits(args, work, results)
 
     # ---------------------------------------------------------------- per trial: stages, ratio to ezc3d, scaling
     factors = [1] if "scaling" in skip else [1, 4, 16]

@@ -5,7 +5,7 @@ import shutil
 from dataclasses import fields
 from pathlib import Path
 
-from hamstride.synth import AthleteBody, SprintSpec, write_sprint_trial
+from hamstride.synth import AthleteBody, SprintSpec, write_sprint_trial, write_static_trial
 
 SPEC_FIELDS = {f.name for f in fields(SprintSpec)}
 
@@ -25,11 +25,12 @@ def write_trial(path: Path, duration_s: float = 2.0, speed_m_s: float = 8.5, see
 
 
 def write_squad(root: Path, n_trials: int, *, trials_per_session: int = 4, sessions_per_athlete: int = 2,
-                duration_s: float = 2.0, distinct: int = 16, pool: Path | None = None) -> Path:
+                duration_s: float = 2.0, distinct: int = 16, pool: Path | None = None, statics: bool = False) -> Path:
     """ROOT/athletes.csv + ROOT/<athlete>/<YYYY-MM-DD_sN>/sprint_XX.c3d with ``n_trials`` trials in total.
 
     Only ``distinct`` different trials are simulated (speeds 7.5-9.5 m/s, different seeds); the rest are copies
-    placed in other athlete/session folders, so every trial still has its own cache key.
+    placed in other athlete/session folders, so every trial still has its own cache key. ``statics``: every
+    session also gets a 1 s static calibration trial (``static.c3d``), as a lab records them.
     """
     root = Path(root)
     if root.exists():
@@ -37,6 +38,10 @@ def write_squad(root: Path, n_trials: int, *, trials_per_session: int = 4, sessi
     root.mkdir(parents=True)
     pool = Path(pool) if pool is not None else root.parent / f".pool-{duration_s:g}s"
     sources = []
+    static_src = pool / "static.c3d"
+    if statics and not static_src.exists():
+        pool.mkdir(parents=True, exist_ok=True)
+        write_static_trial(static_src, athlete="BENCH")
     for k in range(min(distinct, n_trials)):
         src = pool / f"trial_{k:02d}.c3d"
         if not src.exists():
@@ -57,6 +62,8 @@ def write_squad(root: Path, n_trials: int, *, trials_per_session: int = 4, sessi
                     break
                 session.mkdir(parents=True, exist_ok=True)
                 shutil.copyfile(sources[written % len(sources)], session / f"sprint_{t + 1:02d}.c3d")
+                if statics and t == 0:
+                    shutil.copyfile(static_src, session / "static.c3d")
                 written += 1
     (root / "athletes.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
     return root

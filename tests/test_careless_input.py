@@ -469,18 +469,18 @@ def test_messages_print_literally(real_squad, tmp_path, capsys):
 def test_unreadable_trial_fails_alone(real_squad, tmp_path, capsys, monkeypatch):
     """A trial file that cannot be read (permissions, simulated: tests may run as root) fails as `unreadable`
     with exit code 1; the rest of the squad is analysed."""
-    import hamstride.batch as batch
+    import hamstride.squad.run as squad_run
 
     _, root, config = real_squad
     target = root / "QX01" / "2026-02-02_return1" / "sprint_01.c3d"
-    real = batch.file_sha256
+    real = squad_run.file_sha256
 
     def hash_or_deny(path):
         if Path(path) == target:
             raise PermissionError(13, "Permission denied", str(path))
         return real(path)
 
-    monkeypatch.setattr(batch, "file_sha256", hash_or_deny)
+    monkeypatch.setattr(squad_run, "file_sha256", hash_or_deny)  # the module that hashes the inputs
     code, _, text = run(["squad", root, "--out", tmp_path / "out", "--config", config, "--no-report"], capsys)
     assert code == 1 and "Traceback" not in text
     listed = [line for line in text.splitlines() if "QX01" in line and "[unreadable]" in line]

@@ -17,6 +17,7 @@ import hamstride
 from hamstride import batch
 from hamstride.batch import RunConfig, TrialJob, run_on_cluster, run_squad
 from hamstride.errors import ConfigError
+from hamstride.squad import executor
 from hamstride.pipeline import AnalysisOptions, AthleteInfo
 from hamstride.synth import SprintSpec, write_sprint_trial
 
@@ -129,7 +130,7 @@ def test_unreachable_scheduler_is_a_config_error(squad, tmp_path, monkeypatch):
     with socket.socket() as sock:  # a port nobody listens on
         sock.bind(("127.0.0.1", 0))
         port = sock.getsockname()[1]
-    monkeypatch.setattr(batch, "CLUSTER_CONNECT_TIMEOUT_S", 1.0)
+    monkeypatch.setattr(executor, "CLUSTER_CONNECT_TIMEOUT_S", 1.0)
     with pytest.raises(ConfigError, match="dask scheduler"):
         run_squad(squad, tmp_path, cluster=f"tcp://127.0.0.1:{port}", report=False)
     with pytest.raises(ConfigError, match="scheduler file"):
@@ -156,7 +157,7 @@ def _crash_on_file_plugin(name: str):
         def setup(self, worker):
             import os
 
-            from hamstride import batch as worker_batch
+            from hamstride.squad import executor as worker_batch
 
             original = worker_batch._analyse_job
 
@@ -186,8 +187,8 @@ def test_worker_crash_gives_the_local_pool_record(squad, tmp_path, monkeypatch):
     distributed = pytest.importorskip("distributed")
     import dask
 
-    monkeypatch.setattr(sys.modules[__name__], "_ORIGINAL_ANALYSE_JOB", batch._analyse_job)
-    monkeypatch.setattr(batch, "_analyse_job", _crashing_local)  # forked pool workers inherit the patch
+    monkeypatch.setattr(sys.modules[__name__], "_ORIGINAL_ANALYSE_JOB", executor._analyse_job)
+    monkeypatch.setattr(executor, "_analyse_job", _crashing_local)  # forked pool workers inherit the patch
     local = run_squad(squad, tmp_path / "local", jobs=2, config=CONFIG, report=False)
     monkeypatch.undo()
     with dask.config.set({"distributed.scheduler.allowed-failures": 1}):

@@ -330,7 +330,7 @@ def test_native_crash_becomes_a_failed_trial(sources, tmp_path, monkeypatch):
 
     if multiprocessing.get_start_method(allow_none=False) != "fork":
         pytest.skip("the validator can only be switched off in fork-started workers")
-    import hamstride.io as hio
+    import hamstride.c3d.reader as hio  # the module whose globals the reader looks up
     from hamstride.batch import run_squad
     from hamstride.synth import SprintSpec, write_sprint_trial
 
@@ -381,7 +381,7 @@ def test_single_trial_read_survives_a_native_crash(sources, tmp_path, monkeypatc
 
     if multiprocessing.get_start_method(allow_none=False) != "fork":
         pytest.skip("the validator can only be switched off in fork-started children")
-    import hamstride.io as hio
+    import hamstride.c3d.reader as hio  # the module whose globals the reader looks up
 
     data = bytearray((sources / "a_zup_events.c3d").read_bytes())
     labels = data.index(b"LABELS", data.index(b"ROTATION"))

@@ -168,7 +168,7 @@ def test_cut_short_file_reads_its_whole_frames_like_both_readers(tmp_path):
 
 # ------------------------------------------------------------------ numpy reader against the native reader (ezc3d)
 def _both_readers(path, monkeypatch):
-    import hamstride.io as hio
+    import hamstride.c3d.reader as hio  # the module whose globals the reader looks up
 
     fast = read_c3d(path)
     with monkeypatch.context() as m:

@@ -205,19 +205,6 @@ def test_savgol_derivative_matches_scipy_including_the_fitted_edges(window, poly
         np.testing.assert_allclose(cubic, 3 * t ** 2, rtol=0, atol=1e-9)
 
 
-@pytest.mark.parametrize("rate_hz, cutoff_hz", [(200.0, 6.0), (250.0, 12.5), (500.0, 30.0), (300.0, 80.0)])
-def test_closed_form_coefficients_equal_scipy_butter(rate_hz, cutoff_hz):
-    # Reference: scipy.signal.butter (bilinear design with pre-warping) at the dual-pass design frequency.
-    from scipy.signal import butter
-
-    from hamstride import signal as sig
-
-    b_ref, a_ref = butter(2, sig.design_cutoff_hz(rate_hz, cutoff_hz), btype="low", fs=rate_hz)
-    b, a = sig._coefficients(rate_hz, cutoff_hz)
-    np.testing.assert_allclose(b, b_ref, rtol=1e-12, atol=0)
-    np.testing.assert_allclose(a, a_ref, rtol=1e-12, atol=1e-15)
-
-
 def test_smoothing_without_clusters_keeps_the_points_and_the_cutoff():
     # keep_clusters=False filters the points only; the residual analysis still sees every marker, so the cutoff and
     # the filtered points are those of the full smoothing.
@@ -236,40 +223,3 @@ def test_smoothing_without_clusters_keeps_the_points_and_the_cutoff():
     assert info == info_full and not points_only.clusters
     for name in points:
         np.testing.assert_array_equal(points_only.points[name], full.points[name])
-
-
-@pytest.mark.parametrize("n", [4, 5, 8, 9, 40, 500])
-@pytest.mark.parametrize("spacing", ["frames", "gaps"])
-def test_cubic_spline_equals_scipy_not_a_knot_spline(n, spacing):
-    # Reference: scipy.interpolate.CubicSpline (not-a-knot ends) through the same knots, unit-spaced frames or
-    # frames with gaps; one and two dimensions, at the knots, between them and at both ends.
-    from scipy.interpolate import CubicSpline
-
-    from hamstride.signal import cubic_spline
-
-    rng = np.random.default_rng(n)
-    knots = np.arange(n, dtype=float)
-    if spacing == "gaps":
-        knots = np.cumsum(rng.integers(1, 6, n)).astype(float)
-    y = np.cumsum(rng.normal(size=(n, 4)), axis=0)
-    t = np.concatenate([knots, rng.uniform(knots[0], knots[-1], 50)])
-    expected = CubicSpline(knots, y, axis=0)(t)
-    scale = np.abs(y).max()
-    given = None if spacing == "frames" else knots  # None: unit-spaced frames
-    np.testing.assert_allclose(cubic_spline(given, y, t), expected, rtol=0, atol=1e-12 * scale)
-    np.testing.assert_allclose(cubic_spline(given, y[:, 2], t), expected[:, 2], rtol=0, atol=1e-12 * scale)
-
-
-@pytest.mark.parametrize("n_samples", [1, 7, 200])
-def test_percentiles_equal_numpy_percentile(n_samples):
-    # signal.percentiles is np.percentile(..., axis=0) (linear method) by one sort (reference: numpy), NaN
-    # wherever a column holds NaN.
-    from hamstride.signal import percentiles
-
-    rng = np.random.default_rng(n_samples)
-    x = rng.normal(size=(n_samples, 4, 2, 5))
-    x[:, 1, 0, 2] = np.nan
-    x[0, 2, 1, 1] = np.nan
-    with np.errstate(all="ignore"):
-        expected = np.percentile(x, (5, 95), axis=0)
-    np.testing.assert_array_equal(percentiles(x, (5, 95)), expected)

@@ -176,27 +176,6 @@ def test_columns_csv_is_pandas_to_csv_of_the_same_columns():
     assert columns_csv(empty) == pd.DataFrame(empty).to_csv(**_PANDAS_CSV)
 
 
-def test_strides_gatherer_equals_reading_each_text(monkeypatch):
-    # Chunks of trials' strides CSVs are parsed with one read; the rows must be those of reading each text alone,
-    # also across chunk boundaries, with a missing final newline, and with a text written by another version.
-    from hamstride import batch
-
-    monkeypatch.setattr(batch._StridesGatherer, "CHUNK", 3)
-    texts = [f"athlete,session,trial,stride,value\nA{k},s1,0{k},{k},{k / 3:.6g}\nA{k},s1,0{k},{k + 1},nan\n"
-             for k in range(7)]
-    texts[3] = texts[3].rstrip("\n")  # joined with the next text of its chunk
-    texts[1] = "athlete,session,trial,stride,value,extra\nA1,s1,01,1,1.5,x\n"  # its chunk is read text by text
-    gatherer = batch._StridesGatherer()
-    for k, text in enumerate(texts):
-        gatherer.add(f"key{k}", text)
-    assert "key6" in gatherer and "key9" not in gatherer
-    got = pd.concat(gatherer.tables(), ignore_index=True)
-    expected = pd.concat([batch._read_table(io.StringIO(t)) for t in texts], ignore_index=True)
-    pd.testing.assert_frame_equal(got.sort_values(["athlete", "stride"]).reset_index(drop=True),
-                                  expected.sort_values(["athlete", "stride"]).reset_index(drop=True))
-    assert got["trial"].tolist().count("01") == 1 and got["athlete"].map(type).eq(str).all()
-
-
 def test_tuned_allocator_stops_the_page_faults_of_each_analysis(tmp_path):
     # batch.tune_allocator lets glibc reuse freed memory: after it, analysing a trial again should map next to no
     # fresh pages (minor page faults, counted by the kernel; without it about 450 per 2 s trial on Linux/glibc).
@@ -226,3 +205,76 @@ def test_tuned_allocator_stops_the_page_faults_of_each_analysis(tmp_path):
     if out == "unavailable":
         pytest.skip("no glibc mallopt here")
     assert float(out) < 50, out
+
+
+def test_exports_are_pandas_text_of_each_trials_own_tables(squad_run):
+    # The squad's tables make one binary pass (worker -> binary .npy cache -> CSV once). Reference: pandas' to_csv of the
+    # tables analyse_trial returns in memory (no cache), and pandas' read_csv of that text for the squad tables, as
+    # hamstride did before the binary cache (strides CSV text parsed back; main 9308986): byte-identical files.
+    from hamstride.metrics import summarise
+    from hamstride.pipeline import AnalysisOptions, analyse_trial
+    from hamstride.squad.discovery import discover_squad
+
+    root, out, _ = squad_run
+    _, jobs = discover_squad(root)
+    csv_args = {"index": False, "lineterminator": "\n", "float_format": "%.6g"}
+    strides_text, curves_text = [], []
+    for job in jobs:
+        if job.path.endswith("_cut.c3d"):
+            continue
+        result = analyse_trial(job.path, AnalysisOptions(), athlete=job.info, static_path=job.static_path)
+        strides_text.append(result.strides.to_csv(header=not strides_text, **csv_args))
+        curves_text.append(result.curves.to_csv(header=not curves_text, **csv_args))
+    assert (out / "curves.csv").read_text() == "".join(curves_text)
+    strides = pd.read_csv(io.StringIO("".join(strides_text)), dtype={"athlete": str, "session": str, "trial": str})
+    strides = strides.sort_values(["athlete", "session", "trial", "side", "stride", "muscle"], kind="stable")
+    assert (out / "strides.csv").read_text() == strides.to_csv(**csv_args)
+    assert (out / "summary.csv").read_text() == summarise(strides, _athletes()).to_csv(**csv_args)
+    athlete = jobs[-1].athlete
+    mine = "".join(t for t, job in zip(curves_text, [j for j in jobs if not j.path.endswith("_cut.c3d")])
+                   if job.athlete == athlete)
+    header = curves_text[0].split("\n", 1)[0] + "\n"
+    assert (out / "athletes" / f"{athlete}_curves.csv").read_text() == header + mine.removeprefix(header)
+    cache = out / ".hamstride-cache"
+    assert not list(cache.glob("*.csv")) and list(cache.glob("*.curves.npy"))  # binary cache, no CSV text
+
+
+def test_exported_frame_is_what_read_csv_gives_back():
+    # squad.export.exported_frame builds the squad's strides table with the values strides.csv holds; reference:
+    # pandas read_csv of pandas' to_csv text of the same columns (six significant digits, whole-number float
+    # columns read as integers, empty text as missing).
+    from hamstride.squad.export import exported_frame
+
+    tables = [{"athlete": np.array(["A1", "A1"]), "trial": np.array(["01", "02"]),
+               "value": np.array([1 / 3, np.nan]), "whole": np.array([2.0, 3.0]), "big": np.array([1.23456789e7, -0.0]),
+               "status": np.array(["ok", None], dtype=object), "n": np.array([1, 2])},
+              {"athlete": np.array(["B2"]), "trial": np.array(["03"]), "value": np.array([np.inf]),
+               "whole": np.array([4.0]), "big": np.array([5e-300]), "status": np.array(["", ], dtype=object),
+               "n": np.array([3])}]
+    names = list(tables[0])
+    got = exported_frame(tables, names)
+    text = pd.concat([pd.DataFrame(t) for t in tables]).to_csv(index=False, lineterminator="\n", float_format="%.6g")
+    expected = pd.read_csv(io.StringIO(text), dtype={"athlete": str, "trial": str})
+    pd.testing.assert_frame_equal(got, expected)
+
+
+def test_static_trial_is_calibrated_once_per_file_and_again_when_it_changes(tmp_path):
+    # pipeline.static_calibration: the sprints of a session share one calibration; a rewritten static file
+    # (new size/modification time) is read again.
+    import os
+
+    from hamstride.landmarks import load_marker_map
+    from hamstride.pipeline import static_calibration
+
+    static = tmp_path / "static.c3d"
+    by_athlete = {p.parent.parent.name: p for p in sorted(DEMO.glob("*/*/static.c3d"))}
+    source = list(by_athlete.values())  # two athletes of different heights
+    static.write_bytes(source[0].read_bytes())
+    mm = load_marker_map(None)
+    first = static_calibration(static, mm)
+    assert static_calibration(static, load_marker_map(None)) is first  # same file, equal map: shared
+    static.write_bytes(source[1].read_bytes())
+    os.utime(static, ns=(1, 1))
+    again = static_calibration(static, mm)
+    assert again is not first
+    assert again[1].leg_length_m != pytest.approx(first[1].leg_length_m, abs=1e-3)

@@ -12,7 +12,10 @@ from typing import Mapping
 
 import numpy as np
 
-from .segments import SIDES, Body
+from .numerics import SIDES
+from .segments import Body
+
+__all__ = ["ANGLE_NAMES", "jcs_angles", "JointAngles", "to_degrees", "joint_angles"]
 
 ANGLE_NAMES = ("hip_flexion", "hip_adduction", "hip_rotation", "knee_flexion", "knee_adduction", "knee_rotation",
                "ankle_dorsiflexion")

@@ -18,8 +18,14 @@ from typing import Iterable, Mapping
 import numpy as np
 
 from .errors import EventError, FileFormatError, LandmarkError, PlausibilityError, TrialWarning
-from .io import UNIT_TO_METRES, MarkerTrial, finite_points
+from .io import UNIT_TO_METRES, MarkerTrial
+from .numerics import finite_points
 from .landmarks import REQUIRED_LANDMARKS, Landmarks, MarkerMap, plain_name
+
+__all__ = ["MIN_RATE_HZ", "MIN_DURATION_S", "MAX_MISSING_FRACTION", "MAX_BAD_COORDINATE_FRACTION",
+           "MIN_SPRINT_SPEED_M_S", "NOMINAL_LENGTHS_M", "PELVIS_WIDTH_RANGE_M", "BODY_SCALE_RANGE",
+           "check_marker_trial", "check_landmark_gaps", "swapped_marker_map", "check_sides", "check_body_size",
+           "check_speed", "check_stride_count", "strict_failure"]
 
 # Sprint foot contacts last about 0.1 s [M, references.md]; below 100 Hz a contact spans fewer than 10 frames and
 # foot strike / toe-off cannot be timed to the 10 ms the stride metrics need (common practice).

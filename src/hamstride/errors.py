@@ -7,6 +7,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+__all__ = ["HamstrideError", "FileFormatError", "LandmarkError", "PlausibilityError", "EventError", "ConfigError",
+           "AnalysisWarning", "TrialWarning"]
+
 
 class HamstrideError(Exception):
     """Base of every error hamstride raises on purpose."""

@@ -23,7 +23,11 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .errors import LandmarkError
-from .landmarks import Landmarks, SIDES
+from .landmarks import Landmarks
+from .numerics import SIDES
+
+__all__ = ["PELVIS_SITES", "FOOT_SITES", "OVERGROUND_TRAVEL_M", "MIN_BELT_SPEED_M_S", "SAMPLE_FRAMES", "LabFrame",
+           "detect_lab_frame", "rotate_landmarks", "to_lab_frame"]
 
 PELVIS_SITES = ("asis", "psis")
 FOOT_SITES = ("heel", "first_metatarsal", "fifth_metatarsal", "toe_tip", "lateral_malleolus", "medial_malleolus")

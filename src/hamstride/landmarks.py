@@ -17,9 +17,14 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError
-from .io import MarkerTrial, finite_points
+from .io import MarkerTrial
+from .numerics import SIDES, finite_points
 
-SIDES = ("left", "right")
+__all__ = ["REQUIRED_SITES", "OPTIONAL_SITES", "CLUSTER_SEGMENTS", "DEFAULT_LABELS", "DEFAULT_CLUSTERS",
+           "REQUIRED_LANDMARKS", "CLUSTER_SITES", "STATIC_RECOVERABLE", "MIN_VISIBLE_RUN_S", "plain_name",
+           "MarkerMap", "load_marker_map", "LandmarkReport", "Landmarks", "recoverable_landmarks", "VisibleWindow",
+           "visible_window", "crop_landmarks", "crop_trial", "split_prefix", "resolve_landmarks"]
+
 REQUIRED_SITES = ("asis", "psis", "lateral_epicondyle", "medial_epicondyle", "lateral_malleolus", "medial_malleolus",
                   "heel", "first_metatarsal", "fifth_metatarsal")
 OPTIONAL_SITES = ("toe_tip",)

@@ -14,7 +14,11 @@ import re
 from dataclasses import dataclass
 from typing import Sequence
 
-from .landmarks import CLUSTER_SEGMENTS, OPTIONAL_SITES, REQUIRED_SITES, SIDES
+from .landmarks import CLUSTER_SEGMENTS, OPTIONAL_SITES, REQUIRED_SITES
+from .numerics import SIDES
+
+__all__ = ["SIDE_WORDS", "SITE_PATTERNS", "CLUSTER_PATTERNS", "ParsedLabel", "Guess", "ProposedMap", "parse_label",
+           "propose_map", "map_toml"]
 
 SIDE_WORDS = {"l": "left", "left": "left", "lt": "left", "lft": "left",
               "r": "right", "right": "right", "rt": "right", "rgt": "right"}

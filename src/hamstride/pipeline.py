@@ -6,6 +6,7 @@ The same function serves the CLI, the squad batch and a notebook.
 from __future__ import annotations
 
 import functools
+import os
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Mapping, NamedTuple
@@ -16,6 +17,11 @@ import pandas as pd
 from . import __version__
 from .checks import strict_failure
 from .errors import EventError, HamstrideError, PlausibilityError, TrialWarning
+from .numerics import SIDES
+
+__all__ = ["STRIDE_COLUMNS", "FORCE_STATUS_MOSTLY_MET_PCT", "SHORT_FIBRE_LOPT", "SHORT_FIBRE_FORCE_FRACTION",
+           "CURVE_COLUMNS", "AnalysisOptions", "AthleteInfo", "TrialResult", "Kinematics", "static_calibration",
+           "landmarks_with_static", "trial_kinematics", "analyse_trial"]
 
 STRIDE_COLUMNS = [
     "athlete", "session", "trial", "side", "stride", "muscle", "foot_strike_s", "toe_off_s", "next_foot_strike_s",
@@ -41,7 +47,6 @@ CURVE_COLUMNS = [
     "knee_flexion_deg", "length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w",
     "hip_moment_nm_per_kg", "knee_moment_nm_per_kg",
 ]
-SIDES = ("left", "right")
 
 
 @dataclass(frozen=True)
@@ -121,23 +126,47 @@ class Kinematics:
         return [s for s in self.strides if s.valid]
 
 
+def static_calibration(static_path: str | Path, marker_map):
+    """A static trial's filtered landmarks and segment calibration (segments.calibrate), worked out once per
+    process for each file and marker map: the sprints of a session share them. The file's size and modification
+    time are part of the key, so a changed file is read again."""
+    stat = os.stat(static_path)
+    key = (os.path.realpath(static_path), stat.st_mtime_ns, stat.st_size, marker_map.source, marker_map.prefix,
+           tuple(sorted(marker_map.landmarks.items())),
+           tuple(sorted((name, tuple(labels)) for name, labels in marker_map.clusters.items())))
+    if key not in _STATIC_CALIBRATIONS:
+        if len(_STATIC_CALIBRATIONS) >= 8:  # a few sessions at a time: the oldest goes
+            _STATIC_CALIBRATIONS.pop(next(iter(_STATIC_CALIBRATIONS)))
+        _STATIC_CALIBRATIONS[key] = _static_calibration(str(static_path), marker_map)
+    return _STATIC_CALIBRATIONS[key]
+
+
+_STATIC_CALIBRATIONS: dict[tuple, tuple] = {}
+
+
+def _static_calibration(static_path: str, marker_map):
+    from .io import read_c3d
+    from .landmarks import resolve_landmarks
+    from .segments import calibrate
+    from .signal import smooth_landmarks
+
+    static_lm = resolve_landmarks(read_c3d(static_path), marker_map)
+    static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
+    return static_lm, calibrate(static_lm)
+
+
 def landmarks_with_static(trial, marker_map, static_path: str | Path | None = None):
     """A trial's landmarks, with those missing rebuilt from a static trial's calibration (rigid fit of the segment's
     cluster; segments.reconstruct_missing). Returns (landmarks, landmarks as seen in the file, the landmarks the
     static trial could rebuild, the calibration or None). Errors in the static trial name the dynamic trial."""
-    from .io import read_c3d
     from .landmarks import recoverable_landmarks, resolve_landmarks
-    from .segments import calibrate, reconstruct_missing
-    from .signal import smooth_landmarks
+    from .segments import reconstruct_missing
 
     if static_path is None:
         lm = resolve_landmarks(trial, marker_map)
         return lm, lm, (), None
     try:
-        static = read_c3d(static_path)
-        static_lm = resolve_landmarks(static, marker_map)
-        static_lm, _ = smooth_landmarks(static_lm, cutoff_hz=6.0)
-        calibration = calibrate(static_lm)
+        static_lm, calibration = static_calibration(static_path, marker_map)
     except HamstrideError as exc:  # name the sprint trial and say the problem is in its static trial
         raise type(exc)(f"its static calibration trial {Path(static_path).name} failed ({exc.message}); fix or "
                         "remove that file", trial=trial.name, code=exc.code) from None
@@ -297,7 +326,6 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     from .dynamics import (BandLeg, SwingLeg, force_work_band, leg_inertia, share_swing_moments_of_legs,
                            swing_inverse_dynamics_of_legs)
     from .muscles import MUSCLES, MuscleDims, monte_carlo_peaks, muscle_states_of_legs, stature_from_dims
-    from .signal import percentiles
     from .strides import normalise_strides
 
     rate = trial.rate_hz
@@ -328,8 +356,8 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
             peaks = monte_carlo_peaks(joint, windows, dims, n_samples=options.monte_carlo_samples, seed=0,
                                       nominal_lengths_m={m: states[m].length_m for m in MUSCLES})
             # 5th/95th percentiles of every muscle's peaks in one call: [2 (p5, p95), muscle, strain | l/l_opt, stride]
-            q = percentiles(np.stack([np.stack([100.0 * peaks[m][0], peaks[m][1]], axis=1) for m in MUSCLES],
-                                      axis=1), (5, 95))
+            q = np.percentile(np.stack([np.stack([100.0 * peaks[m][0], peaks[m][1]], axis=1) for m in MUSCLES],
+                                      axis=1), (5, 95), axis=0)
             bands = {m: (q[:, k, 0], q[:, k, 1]) for k, m in enumerate(MUSCLES)}  # each [2, strides]
         swing = np.zeros(n_frames, dtype=bool)
         if body_mass:

@@ -23,10 +23,14 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError, PlausibilityError
-from .io import cross_rows, dot_rows, finite_points, norm_rows
+from .numerics import SIDES, cross_rows, dot_rows, finite_points, norm_rows
 from .landmarks import Landmarks, plain_name
 
-SIDES = ("left", "right")
+__all__ = ["HIP_METHODS", "MIN_RIGID_MARKERS", "METATARSAL_HEAD_FRACTION", "SEGMENT_SITES", "REQUIRED_SITES",
+           "Frames", "frames_from_y_z", "frames_from_z_x", "frames_from_x_y", "hip_centre_local_mm",
+           "hip_joint_centre", "pelvis_frames", "rigid_fit", "RigidSet", "StaticCalibration", "calibrate",
+           "reconstruct_missing", "rebuilt_landmarks", "BodyDims", "Body", "check_landmarks", "build_body"]
+
 HIP_METHODS = ("harrington", "harrington_pw", "bell")
 MIN_RIGID_MARKERS = 3
 # Metatarsal heads sit at about 0.72 of foot length (heel -> longest toe tip) from the heel: from memory; used only

@@ -17,6 +17,9 @@ from .metrics import FlagConfig
 from .pipeline import AnalysisOptions
 from .squadinput import did_you_mean, read_input_text
 
+__all__ = ["SECTIONS", "Setting", "COMMON", "SETTINGS", "settings_of", "jsonable", "RunConfig", "load_config",
+           "config_toml"]
+
 SECTIONS = ("analysis", "flags")
 
 

@@ -18,11 +18,15 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy.interpolate import CubicSpline
-from scipy.linalg import lapack
 from scipy.ndimage import convolve1d
-from scipy.signal import filtfilt, savgol_coeffs, savgol_filter
+from scipy.signal import butter, filtfilt, savgol_coeffs, savgol_filter
 
 from .errors import ConfigError
+from .numerics import runs
+
+__all__ = ["DEFAULT_MAX_GAP_FRAMES", "EDGE_GAP_NOTE", "FILTER_ORDER", "savgol_derivative", "percentiles",
+           "dual_pass_correction", "design_cutoff_hz", "lowpass", "Gap", "GapReport", "find_gaps", "fill_gaps",
+           "residuals", "residual_cutoff", "FilterInfo", "smooth_landmarks"]
 
 if TYPE_CHECKING:  # pragma: no cover
     from .landmarks import Landmarks
@@ -72,69 +76,11 @@ def savgol_derivative(x: np.ndarray, window: int, poly: int, order: int, rate_hz
     return y * float(rate_hz) ** order
 
 
-# --------------------------------------------------------------------------- cubic spline
-def cubic_spline(knots: np.ndarray | None, y: np.ndarray, t: np.ndarray) -> np.ndarray:
-    """The not-a-knot cubic spline through ``y`` [n, ...] at increasing ``knots`` [n] (None: frames 0 .. n-1),
-    evaluated at ``t`` [Q] (inside the knots) -> [Q, ...]; the same curve as ``scipy.interpolate.CubicSpline``
-    (tested) without its general-purpose overhead.
-
-    Second derivatives M from the continuity of the slope, h[i-1] M[i-1] + 2 (h[i-1] + h[i]) M[i] + h[i] M[i+1] =
-    6 (s[i] - s[i-1]) with h the knot spacings and s the chord slopes; not-a-knot ends (continuous third
-    derivative at the second and last-but-one knots), M[0] = (1 + h0/h1) M[1] - (h0/h1) M[2], are substituted
-    into the first and last equations, leaving one tridiagonal solve (LAPACK gtsv) (de Boor 1978, A Practical
-    Guide to Splines, ch. IV). On [x[i], x[i+1]] with u = t - x[i], w = x[i+1] - t:
-    S = (M[i] w^3 + M[i+1] u^3) / (6 h) + (y[i] / h - M[i] h / 6) w + (y[i+1] / h - M[i+1] h / 6) u.
-    """
-    y_in = np.asarray(y, dtype=float)
-    t = np.asarray(t, dtype=float)
-    n = y_in.shape[0]
-    x = np.arange(n, dtype=float) if knots is None else np.asarray(knots, dtype=float)
-    if n < 4:  # a line or a parabola: the general routine
-        return CubicSpline(x, y_in, axis=0)(t)
-    y2 = y_in.reshape(n, -1)
-    h = np.ones(n - 1) if knots is None else np.diff(x)
-    slope = np.diff(y2, axis=0) if knots is None else np.diff(y2, axis=0) / h[:, None]
-    rhs = 6.0 * np.diff(slope, axis=0)  # equations 1 .. n-2
-    lower, diag, upper = h[1:-1].copy(), 2.0 * (h[:-1] + h[1:]), h[1:-1].copy()
-    diag[0] += h[0] * (1.0 + h[0] / h[1])
-    upper[0] -= h[0] * h[0] / h[1]
-    diag[-1] += h[-1] * (1.0 + h[-1] / h[-2])
-    lower[-1] -= h[-1] * h[-1] / h[-2]
-    m = np.empty_like(y2)
-    *_, m[1:-1], info = lapack.dgtsv(lower, diag, upper, rhs, overwrite_dl=True, overwrite_d=True, overwrite_du=True,
-                                     overwrite_b=True)
-    if info != 0:  # singular only for coincident knots, which callers never pass
-        return CubicSpline(x, y_in, axis=0)(t)
-    m[0] = (1.0 + h[0] / h[1]) * m[1] - (h[0] / h[1]) * m[2]
-    m[-1] = (1.0 + h[-1] / h[-2]) * m[-2] - (h[-1] / h[-2]) * m[-3]
-    if knots is None:  # unit spacing
-        i = np.clip(np.floor(t).astype(int), 0, n - 2)
-        u = (t - i)[:, None]
-        w = 1.0 - u
-        out = w * y2[i] + u * y2[i + 1] + ((w * w * w - w) * m[i] + (u * u * u - u) * m[i + 1]) / 6.0
-    else:
-        i = np.clip(np.searchsorted(x, t, side="right") - 1, 0, n - 2)
-        step = h[i][:, None]
-        u = (t - x[i])[:, None]
-        w = (x[i + 1] - t)[:, None]
-        out = ((m[i] * (w * w * w) + m[i + 1] * (u * u * u)) / (6.0 * step)
-               + (y2[i] / step - m[i] * step / 6.0) * w + (y2[i + 1] / step - m[i + 1] * step / 6.0) * u)
-    return out.reshape(t.shape + y_in.shape[1:])
-
-
 # --------------------------------------------------------------------------- percentiles
 def percentiles(samples: np.ndarray, q) -> np.ndarray:
-    """``np.percentile(samples, q, axis=0)`` (linear method, Hyndman & Fan type 7) by one sort and numpy's own
-    interpolation steps, without its general-purpose overhead; NaN wherever a column holds NaN (tested)."""
-    ordered = np.sort(samples, axis=0)  # NaN sorts last
-    virtual = (len(ordered) - 1) * (np.asarray(q, dtype=float) / 100.0)
-    below = np.floor(virtual).astype(int)
-    above = np.minimum(below + 1, len(ordered) - 1)
-    gamma = (virtual - below).reshape((-1,) + (1,) * (ordered.ndim - 1))
-    a, b = ordered[below], ordered[above]
-    diff = b - a
-    out = np.where(gamma >= 0.5, b - diff * (1 - gamma), a + diff * gamma)  # numpy's _lerp
-    return np.where(np.isnan(ordered[-1]), np.nan, out)
+    """``np.percentile(samples, q, axis=0)`` (linear method, Hyndman & Fan type 7); kept as a name only because
+    ``events`` imports it (call numpy directly elsewhere)."""
+    return np.percentile(samples, q, axis=0)
 
 
 # --------------------------------------------------------------------------- Butterworth
@@ -169,15 +115,10 @@ def _check_cutoff(rate_hz: float, cutoff_hz: float) -> None:
 
 
 def _coefficients(rate_hz: float, cutoff_hz: float) -> tuple[np.ndarray, np.ndarray]:
-    """One pass of the 2nd-order Butterworth low-pass in closed form: the bilinear transform of
-    1 / (s^2 + sqrt(2) s + 1) at the pre-warped, dual-pass-corrected cutoff K = tan(pi fc / fs) / C gives
-    b = K^2 (1, 2, 1) / D, a = (1, 2 (K^2 - 1) / D, (1 - sqrt(2) K + K^2) / D) with D = 1 + sqrt(2) K + K^2
-    (the textbook biquad; equal to scipy.signal.butter to rounding, tested)."""
+    """One pass of the 2nd-order Butterworth low-pass (``scipy.signal.butter``, bilinear design with pre-warping) at
+    the dual-pass-corrected design frequency (Robertson & Dowling 2003, :func:`design_cutoff_hz`)."""
     _check_cutoff(rate_hz, cutoff_hz)
-    k = math.tan(math.pi * cutoff_hz / rate_hz) / dual_pass_correction(2, FILTER_ORDER)
-    k2, root2k = k * k, math.sqrt(2.0) * k
-    d = 1.0 + root2k + k2
-    return np.array([k2, 2.0 * k2, k2]) / d, np.array([1.0, 2.0 * (k2 - 1.0) / d, (1.0 - root2k + k2) / d])
+    return butter(FILTER_ORDER, design_cutoff_hz(rate_hz, cutoff_hz), btype="low", fs=rate_hz)
 
 
 def _padlen(n_frames: int, rate_hz: float, cutoff_hz: float) -> int:
@@ -192,17 +133,6 @@ def _filter_columns(x2: np.ndarray, b: np.ndarray, a: np.ndarray, rate_hz: float
     if n < 2:
         return x2.copy()
     return filtfilt(b, a, x2, axis=0, padtype="odd", padlen=_padlen(n, rate_hz, cutoff_hz))
-
-
-def _runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Runs of True along axis 0 of a [F, C] mask: (column, start, stop) arrays sorted by column then start."""
-    n_frames, n_cols = mask.shape
-    padded = np.zeros((n_frames + 2, n_cols), dtype=np.int8)
-    padded[1:-1] = mask
-    edges = np.diff(padded, axis=0).T  # [C, F+1]
-    col_s, start = np.nonzero(edges == 1)
-    _, stop = np.nonzero(edges == -1)
-    return col_s, start, stop
 
 
 def _group_by_mask(mask: np.ndarray, cols: np.ndarray) -> list[np.ndarray]:
@@ -231,7 +161,7 @@ def lowpass(x: np.ndarray, rate_hz: float, cutoff_hz: float, axis: int = 0) -> n
         out[:, whole] = _filter_columns(x2[:, whole], b, a, rate_hz, cutoff_hz)
     partial = np.nonzero(~whole & finite.any(axis=0))[0]
     for group in _group_by_mask(finite, partial):
-        _, starts, stops = _runs(finite[:, group[:1]])
+        _, starts, stops = runs(finite[:, group[:1]])
         for s, e in zip(starts, stops):
             block = x2[s:e, group]
             out[s:e, group] = _filter_columns(block, b, a, rate_hz, cutoff_hz) if e - s >= 3 else block
@@ -258,7 +188,7 @@ class GapReport:
 def find_gaps(x: np.ndarray) -> tuple[Gap, ...]:
     """All NaN runs along axis 0 of ``x`` (any trailing shape), column = flat index of the trailing dimensions."""
     x2 = np.asarray(x, dtype=float).reshape(len(x), -1)
-    cols, starts, stops = _runs(~np.isfinite(x2))
+    cols, starts, stops = runs(~np.isfinite(x2))
     n = x2.shape[0]
     return tuple(
         Gap(int(c), int(s), int(e - s), bool(s == 0 or e == n)) for c, s, e in zip(cols, starts, stops)
@@ -287,7 +217,7 @@ def fill_gaps(x: np.ndarray, max_gap_frames: int = DEFAULT_MAX_GAP_FRAMES) -> tu
         if ok.sum() < 4:  # a cubic needs four samples; leave it and report below
             long_.extend(g for g in short if g.column in set(group.tolist()))
             continue
-        x2[np.ix_(to_fill, group)] = cubic_spline(frames[ok], x2[ok][:, group], frames[to_fill])
+        x2[np.ix_(to_fill, group)] = CubicSpline(frames[ok], x2[ok][:, group], axis=0)(frames[to_fill])
     not_filled = set(long_)
     filled = tuple(g for g in short if g not in not_filled)
     unfilled = tuple(sorted(long_, key=lambda g: (g.column, g.start)))
@@ -335,7 +265,7 @@ def _analysis_window(x2: np.ndarray) -> np.ndarray:
     finite = np.isfinite(x2)
     if finite.all(axis=0).any() or not finite.any():
         return x2
-    _, starts, stops = _runs((finite.mean(axis=1) >= 0.5)[:, None])
+    _, starts, stops = runs((finite.mean(axis=1) >= 0.5)[:, None])
     if not len(starts):
         return x2[:0]
     k = int(np.argmax(stops - starts))

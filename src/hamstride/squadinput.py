@@ -17,12 +17,18 @@ import re
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable, Mapping
-
-import numpy as np
-import pandas as pd
+from typing import TYPE_CHECKING, Iterable, Mapping
 
 from .errors import ConfigError
+
+__all__ = ["ATHLETE_COLUMNS", "REQUIRED_ATHLETE_COLUMNS", "OPTIONAL_ATHLETE_COLUMNS", "BODY_MASS_RANGE_KG",
+           "HEIGHT_RANGE_M", "STRENGTH_FACTOR_RANGE", "SIDES", "SEXES", "DATE_PREFIX", "MARKER_MAP_SECTIONS",
+           "MARKER_MAP_KEYS", "read_input_bytes", "read_input_text", "require_file", "did_you_mean",
+           "read_athletes", "session_date", "SessionTrials", "SquadLayout", "scan_squad", "match_athlete",
+           "check_marker_map"]
+
+if TYPE_CHECKING:  # pandas loads only when a table is read: `hamstride --help` stays fast
+    import pandas as pd
 
 ATHLETE_COLUMNS = ["athlete", "body_mass_kg", "height_m", "sex", "involved_side", "injury_date"]
 REQUIRED_ATHLETE_COLUMNS = ("athlete", "body_mass_kg", "height_m", "sex", "involved_side")
@@ -186,6 +192,8 @@ def read_athletes(path: str | Path) -> pd.DataFrame:
         records.append(_athlete_record(cells, path, i, seen))
     if not records:
         raise _athletes_error(path, None, "no athlete rows under the header")
+    import pandas as pd
+
     df = pd.DataFrame.from_records(records)
     extras = [c for c in df.columns if c not in ATHLETE_COLUMNS]
     return df[ATHLETE_COLUMNS + extras]
@@ -202,9 +210,9 @@ def _athlete_record(cells: Mapping[str, str], path: Path, line: int, seen: dict[
     record: dict[str, object] = dict(cells)
     record["athlete"] = code
     mass, height = cells["body_mass_kg"], cells["height_m"]
-    record["body_mass_kg"] = _number(mass, path, line, "body_mass_kg", *BODY_MASS_RANGE_KG, "kg") if mass else np.nan
+    record["body_mass_kg"] = _number(mass, path, line, "body_mass_kg", *BODY_MASS_RANGE_KG, "kg") if mass else math.nan
     record["height_m"] = (_number(height, path, line, "height_m", *HEIGHT_RANGE_M, "metres",
-                                  _unit_hint(height)) if height else np.nan)
+                                  _unit_hint(height)) if height else math.nan)
     sex = cells["sex"].lower()
     if sex not in SEXES:
         raise _athletes_error(path, line, f"sex = '{cells['sex']}': expected male or female (it chooses the "
@@ -216,7 +224,7 @@ def _athlete_record(cells: Mapping[str, str], path: Path, line: int, seen: dict[
                               + did_you_mean(side, SIDES))
     record["involved_side"] = side
     injury = cells.get("injury_date", "")
-    record["injury_date"] = _iso_date(injury, path, line, "injury_date") if injury else np.nan
+    record["injury_date"] = _iso_date(injury, path, line, "injury_date") if injury else math.nan
     factor = cells.get("strength_factor", "")  # always in the table: 1 when the column or the cell is empty
     record["strength_factor"] = (_number(factor, path, line, "strength_factor", *STRENGTH_FACTOR_RANGE,
                                          "a positive factor") if factor else 1.0)
@@ -306,6 +314,8 @@ def scan_squad(root: str | Path, *, allow_unlisted: bool = False, exclude: Itera
         athletes = read_athletes(csv_path)
         listed_csv: Path | None = csv_path
     else:
+        import pandas as pd
+
         athletes = pd.DataFrame(columns=ATHLETE_COLUMNS)
         listed_csv = None
     codes = {str(code).lower(): str(code) for code in athletes["athlete"]}

@@ -9,9 +9,13 @@ from dataclasses import dataclass
 from typing import Mapping
 
 import numpy as np
+from scipy.interpolate import CubicSpline
 
-from .events import SIDES, GaitEvents
-from .signal import cubic_spline
+from .events import GaitEvents
+from .numerics import SIDES
+
+__all__ = ["DEFAULT_STRIDE_TIME_RANGE_S", "DEFAULT_CONTACT_RANGE_S", "Stride", "cut_strides", "normalise",
+           "normalise_strides", "window_frames"]
 
 # Plausible stride and contact times, sprinting to jogging (common practice, from the values below). Sprinting:
 # stride 0.40-0.46 s, contact 0.09-0.12 s [M, references.md]. Jogging at 3 m/s: stride about 0.63-0.80 s
@@ -138,7 +142,7 @@ def normalise(signal: np.ndarray, stride: Stride, rate_hz: float, n_points: int 
     out = np.empty((n_points, window.shape[1]))
     finite = np.isfinite(window).all(axis=0)
     if finite.any() and window.shape[0] >= 4:
-        out[:, finite] = cubic_spline(None, window[:, finite], t_query - lo)
+        out[:, finite] = CubicSpline(np.arange(window.shape[0]), window[:, finite], axis=0)(t_query - lo)
     else:
         finite[:] = False
     if (~finite).any():
@@ -168,7 +172,8 @@ def normalise_strides(signal: np.ndarray, strides, rate_hz: float, n_points: int
         raise ValueError("stride extends beyond the signal")
     whole = np.isfinite(flat).all(axis=0) if n >= 4 else np.zeros(flat.shape[1], dtype=bool)
     if whole.any():
-        out[:, :, whole] = cubic_spline(None, flat[:, whole], queries.ravel()).reshape(len(strides), n_points, -1)
+        spline = CubicSpline(np.arange(n), flat[:, whole], axis=0)  # not-a-knot ends
+        out[:, :, whole] = spline(queries.ravel()).reshape(len(strides), n_points, -1)
     rest = np.flatnonzero(~whole)
     if rest.size:
         # as normalise(): a window of the stride's frames plus two each side; linear where it holds a gap

@@ -13,7 +13,10 @@ from __future__ import annotations
 
 from types import MappingProxyType
 
-SIDES = ("left", "right")
+
+__all__ = ["MUSCLE_ORDER", "SIDE_COLOUR", "SIDE_LINESTYLE", "SIDE_MARKER", "MUSCLE_COLOUR", "MUSCLE_MARKER",
+           "MUSCLE_GLYPH", "MUSCLE_LINESTYLE", "MUSCLE_SHORT", "REFERENCE", "GRID", "FLAG", "TARGET_ZONE",
+           "BAND_ALPHA", "muscle_style", "side_style"]
 MUSCLE_ORDER = ("biceps_femoris_long", "semitendinosus", "semimembranosus", "biceps_femoris_short")
 
 #: left: deep blue (dark in grey-scale), right: amber (light in grey-scale).

@@ -13,6 +13,9 @@ from typing import ClassVar
 from .common import cell_text, fmt, num
 from .figures import Raster
 
+__all__ = ["Cell", "number", "words", "Row", "Table", "Figure", "Heading", "Text", "Items", "Links",
+           "SessionPicker", "Folded", "Page"]
+
 
 @dataclass(frozen=True)
 class Cell:

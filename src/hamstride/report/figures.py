@@ -14,9 +14,13 @@ from typing import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from ..numerics import SIDES
 from ..style import (BAND_ALPHA, FLAG, GRID, MUSCLE_COLOUR, MUSCLE_GLYPH, REFERENCE, SIDE_COLOUR, SIDE_LINESTYLE, SIDE_MARKER,
-                     SIDES, TARGET_ZONE, muscle_style)
+                     TARGET_ZONE, muscle_style)
 from .common import MUSCLE_NAMES, column, muscle_label, muscles_in_order, mpl_text
+
+__all__ = ["RASTER_DPI", "Raster", "new_figure", "raster", "side_handles", "curve_stats", "window_of",
+           "stretch_figure", "force_figure", "joint_figure", "LSI_STYLES", "timeline_figure", "mini_geometry"]
 
 RASTER_DPI = 110  # one raster serves the HTML page (shown at 100 px per inch) and the PDF (about 120 ppi on A4)
 _CYCLE_TICKS = (0, 25, 50, 75, 100)

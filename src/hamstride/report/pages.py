@@ -13,7 +13,7 @@ from typing import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from ..style import SIDES
+from ..numerics import SIDES
 from .common import (BODY_MASS_MISSING, CAUTION, FLAG_EXPLANATIONS, GLOSSARY, asymmetry_band, cell_text, column,
                      first_finite, fmt, fmt_pm, info_line, missing, muscle_label, notes_items, num, plural,
                      run_info_get, session_sort_key, summary_value)

@@ -22,6 +22,8 @@ from ..io import atomic_write_bytes
 from .common import CAUTION
 from .content import Page
 
+__all__ = ["para_text", "write_pdf"]
+
 _FONT, _BOLD, _MONO = "hamstride-sans", "hamstride-sans-bold", "hamstride-mono"
 
 

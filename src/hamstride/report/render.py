@@ -17,7 +17,7 @@ from urllib.parse import quote
 import numpy as np
 import pandas as pd
 
-from ..style import SIDES
+from ..numerics import SIDES
 from .common import (DATE_PREFIX, asymmetry_band, athlete_files, athlete_info, by_athlete, column, csv_cell,
                      empty_like, first_finite, fmt, guarding_lsi, has_values, inside, latest_summary, missing,
                      muscle_label, muscles_in_order, num, plural, run_info_get, sessions_in_order, session_sort_key,
@@ -27,6 +27,8 @@ from .figures import force_figure, joint_figure, mini_geometry, raster, stretch_
 from .pages import athlete_page, earlier_flags_line, failed_rows, flag_rows, squad_page, timeline_page
 from .pdf import write_pdf
 from .web import render_html
+
+__all__ = ["TABLE_FILES", "render_squad", "render_timeline"]
 
 TABLE_FILES = ("strides.csv", "curves.csv", "summary.csv", "flags.csv", "manifest.json")
 _FLAG_MUSCLES = ("biceps_femoris_long", "semitendinosus", "semimembranosus")
@@ -84,14 +86,20 @@ def render_squad(out_dir: Path, strides: pd.DataFrame, curves, flags: pd.DataFra
     if progress:
         progress(done, len(jobs))
     if workers > 1:
+        import gc
         from concurrent.futures import ProcessPoolExecutor, as_completed
 
-        with ProcessPoolExecutor(max_workers=workers) as pool:
-            for future in as_completed([pool.submit(_render_athlete, job) for job in jobs]):
-                future.result()
-                done += 1
-                if progress:
-                    progress(done, len(jobs))
+        _warm_renderers()  # once here: the forked page workers inherit the loaded renderers
+        gc.freeze()  # what the workers inherit is never collected again there (nor copied by a collection)
+        try:
+            with ProcessPoolExecutor(max_workers=workers) as pool:
+                for future in as_completed([pool.submit(_render_athlete, job) for job in jobs]):
+                    future.result()
+                    done += 1
+                    if progress:
+                        progress(done, len(jobs))
+        finally:
+            gc.unfreeze()
     else:
         for job in jobs:
             _render_athlete(job)
@@ -102,6 +110,24 @@ def render_squad(out_dir: Path, strides: pd.DataFrame, curves, flags: pd.DataFra
     write_atomic(index, render_html(_index_page(out_dir, names, files, groups, strides, flags, summary, athletes,
                                                 run_info)))
     return [index] + written
+
+
+def _warm_renderers() -> None:
+    """Load matplotlib (with its font cache), reportlab with our fonts and styles, PIL and the jinja2 templates in
+    this process, so page workers forked from it do not each load them again (about 0.4 s of CPU per worker)."""
+    from . import figures, pdf, web
+
+    fig = figures.new_figure(1.0, 1.0)
+    fig.subplots().set_title("warm-up")
+    figures.raster(fig, dpi=20)
+    pdf._fonts()
+    pdf._styles()
+    env = web._environment()
+    for name in env.list_templates():
+        env.get_template(name)
+    import reportlab.platypus  # noqa: F401
+    from matplotlib import gridspec, lines, patches, ticker  # noqa: F401
+    from reportlab.lib import pagesizes, utils  # noqa: F401
 
 
 def _report_workers(run_info: Mapping | None, n_athletes: int) -> int:

@@ -13,6 +13,8 @@ from pathlib import Path
 from .common import CAUTION
 from .content import Page
 
+__all__ = ["render_html"]
+
 _TEMPLATES = Path(__file__).with_name("templates")
 
 

@@ -1,0 +1,221 @@
+"""Where the trials run: a local process pool (started once per run; even one job runs in a worker process, so a
+native crash never takes the squad down) or an existing Dask cluster. Either way each trial becomes a record
+(``status`` ok with its tables as columns, or failed with a code and reason); a bad trial never stops the squad.
+"""
+from __future__ import annotations
+
+import concurrent.futures as cf
+import os
+from dataclasses import replace
+from pathlib import Path
+from typing import Callable
+
+from ..errors import ConfigError, HamstrideError
+from ..pipeline import AnalysisOptions, analyse_trial
+from ..settings import jsonable as _jsonable
+from .cache import write_entry
+from .discovery import TrialJob
+
+__all__ = ["run_pool", "run_on_cluster", "tune_allocator", "CLUSTER_CONNECT_TIMEOUT_S"]
+
+
+def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
+    """Worker: analyse one trial; never raises (errors become a failure record)."""
+    try:
+        result = analyse_trial(job.path, options, athlete=job.info, static_path=job.static_path, markers=job.markers)
+        return {"status": "ok", "tables": {name: dict(result.tables[name]) for name in ("strides", "curves")},
+                "info": _jsonable(dict(result.info))}
+    except HamstrideError as exc:
+        return {"status": "failed", "code": exc.code, "reason": exc.message}
+    except Exception as exc:  # an unexpected bug must not stop the squad; record it plainly
+        return {"status": "failed", "code": "internal_error",
+                "reason": f"trial {Path(job.path).name}: unexpected {type(exc).__name__}: {exc}"}
+
+
+def _load_stages() -> None:
+    """Import every pipeline stage (and scipy's parts they use) in this process."""
+    import importlib
+
+    for stage in ("angles", "checks", "dynamics", "events", "io", "landmarks", "muscles", "segments", "signal",
+                  "strides"):
+        importlib.import_module(f"..{stage}", __package__)
+
+
+def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path, key: str) -> dict:
+    """Local-pool worker: analyse one trial and write its cache entry itself, so the curves never cross the pipe
+    and the writes run in parallel; returns the record without the tables, marked as already cached."""
+    result = _analyse_job(job, options)
+    write_entry(cache, key, result)
+    return {k: v for k, v in result.items() if k != "tables"} | {"cached_by_worker": True}
+
+
+def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
+              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None) -> None:
+    """Run jobs in a process pool (or on a Dask cluster); a worker that dies (native crash) becomes a failed-trial record.
+    Local workers write their trial's entry under ``cache`` themselves; cluster results are written by ``on_done``."""
+    if not todo:
+        return
+    if cluster is not None:
+        run_on_cluster(todo, options, cluster, on_done)
+        return
+    # Even with one job the trials run in a worker process: a native crash must never take the squad run down.
+    _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
+    pending = list(todo)
+    while pending:
+        crashed: list[tuple[TrialJob, str]] = []
+        with cf.ProcessPoolExecutor(max_workers=min(jobs, len(pending)), initializer=tune_allocator) as pool:
+            futures = {pool.submit(_analyse_job_into_cache, job, options, cache, key): (job, key)
+                       for job, key in pending}
+            for future in cf.as_completed(futures):
+                job, key = futures.pop(future)  # drop the finished result: memory stays flat
+                try:
+                    on_done(job, key, future.result())
+                except cf.process.BrokenProcessPool:
+                    crashed.append((job, key))
+        if not crashed:
+            break
+        # Retry the trials caught in a crashed pool one at a time, so only the real culprit fails.
+        pending = []
+        for job, key in crashed:
+            with cf.ProcessPoolExecutor(max_workers=1, initializer=tune_allocator) as single:
+                try:
+                    on_done(job, key, single.submit(_analyse_job, job, options).result())
+                except cf.process.BrokenProcessPool:
+                    on_done(job, key, {"status": "failed", "code": "reader_crash",
+                                       "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
+                                                 "it is probably corrupt; re-export it from the capture software"})
+
+
+# --------------------------------------------------------------------------------------------- Dask cluster
+
+CLUSTER_CONNECT_TIMEOUT_S = 30.0
+
+
+def _worker_software() -> str:
+    """Runs on a cluster worker: the hamstride version it would analyse with."""
+    from .. import __version__ as worker_version
+    return worker_version
+
+
+_MALLOC_TUNED: bool | None = None  # tune_allocator: not tried yet (None), applied (True) or not available
+
+
+def tune_allocator() -> bool:
+    """Let this process reuse freed memory instead of mapping fresh pages for every large numpy temporary.
+
+    glibc serves blocks above its mmap threshold (128 KiB at start) with fresh pages and returns freed memory above
+    its trim threshold to the system, so each analysis page-faults its working set afresh: about 450 faults and
+    1-1.5 ms of system time on a 2 s trial, about 10 % of its CPU time (measured with ``resource.getrusage``).
+    Dask nannies make it worse (they set MALLOC_TRIM_THRESHOLD_, which freezes the mmap threshold at 128 KiB:
+    1.8x the CPU time per trial). Raising the mmap threshold to 32 MiB and the trim threshold to 64 MiB (mallopt
+    M_MMAP_THRESHOLD = -3, M_TRIM_THRESHOLD = -1) removes the faults; free memory beyond 64 MiB still goes back to
+    the system and peak memory is unchanged. The hamstride command and its workers call this once per process; a
+    long notebook session may call it too. Only where glibc is present (returns False elsewhere, changing nothing).
+    """
+    global _MALLOC_TUNED
+    if _MALLOC_TUNED is None:
+        try:
+            import ctypes
+
+            libc = ctypes.CDLL("libc.so.6")
+            _MALLOC_TUNED = bool(libc.mallopt(-3, 32 << 20)) and bool(libc.mallopt(-1, 64 << 20))
+        except (OSError, AttributeError):
+            _MALLOC_TUNED = False
+    return _MALLOC_TUNED
+
+
+def _analyse_job_on_worker(job: TrialJob, options: AnalysisOptions) -> dict:
+    """Cluster task: like the local worker, plus a clear record when the worker host cannot see the file."""
+    tune_allocator()
+    for label, path in (("trial", job.path), ("static trial", job.static_path), ("marker map", job.markers)):
+        if path is not None and not os.path.exists(path):
+            import socket
+            return {"status": "failed", "code": "not_on_worker",
+                    "reason": f"trial {Path(job.path).name}: the {label} {path} is not visible on cluster worker "
+                              f"{socket.gethostname()}; the workers must see the squad folder at the same path "
+                              "(shared disk)"}
+    return _analyse_job(job, options)
+
+
+def _connect_cluster(cluster):
+    """A dask.distributed Client for ``cluster``: a scheduler address (tcp://HOST:PORT), a scheduler file or a Client."""
+    try:
+        from distributed import Client
+    except ImportError:
+        raise ConfigError("--cluster needs the optional Dask extra; install it with "
+                          "pip install 'hamstride[cluster]' (or run without --cluster on this computer's cores)") from None
+    if isinstance(cluster, Client):
+        return cluster, False
+    target = str(getattr(cluster, "scheduler_address", cluster))
+    try:
+        if "://" not in target and Path(target).is_file():
+            client = Client(scheduler_file=target, timeout=CLUSTER_CONNECT_TIMEOUT_S)
+        elif "://" not in target and target.lower().endswith(".json"):
+            raise ConfigError(f"scheduler file {target} not found; start the scheduler with "
+                              f"`dask scheduler --scheduler-file {target}` first")
+        else:
+            client = Client(target, timeout=CLUSTER_CONNECT_TIMEOUT_S)
+    except ValueError as exc:
+        raise ConfigError(f"--cluster expects a scheduler address such as tcp://10.0.0.5:8786 or a scheduler file; "
+                          f"{target!r} is neither ({exc})") from None
+    except (OSError, TimeoutError) as exc:
+        raise ConfigError(f"could not reach the Dask scheduler at {target} within {CLUSTER_CONNECT_TIMEOUT_S:g} s "
+                          f"({type(exc).__name__}); check that `dask scheduler` is running and the address/port is "
+                          "right, or run without --cluster") from None
+    return client, True
+
+
+def run_on_cluster(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, cluster,
+                   on_done: Callable[[TrialJob, str, dict], None]) -> None:
+    """Send trials to an existing Dask distributed cluster; results go through ``on_done`` exactly as in the pool.
+
+    ``cluster`` is a scheduler address (``tcp://HOST:PORT``), a scheduler file written by
+    ``dask scheduler --scheduler-file FILE``, a ``distributed.Client`` or anything with ``scheduler_address``
+    (e.g. a ``LocalCluster``). Workers read the C3D files themselves, so they need the squad folder at the same
+    path (shared disk) and the same hamstride version. The analysis code and the tables are those of the
+    local pool (the tables travel as binary columns), so the exports are byte-identical; caching and the manifest
+    stay on this computer.
+    """
+    if not todo:
+        return
+    client, owned = _connect_cluster(cluster)
+    try:
+        from distributed import KilledWorker, as_completed
+        from .. import __version__ as local_version
+
+        try:
+            client.wait_for_workers(1, timeout=CLUSTER_CONNECT_TIMEOUT_S)
+        except TimeoutError:
+            raise ConfigError(f"the Dask scheduler at {client.scheduler.address} has no workers; start some with "
+                              f"`dask worker {client.scheduler.address}`") from None
+        try:
+            versions = client.run(_worker_software)
+        except Exception as exc:
+            raise ConfigError(f"the Dask workers could not load hamstride ({type(exc).__name__}: {exc}); install "
+                              "hamstride (same version) in every worker's Python environment") from None
+        wrong = sorted({str(v) for v in versions.values()} - {local_version})
+        if wrong:
+            raise ConfigError(f"cluster workers run hamstride {', '.join(wrong)} but this computer runs "
+                              f"{local_version}; install the same version on every worker")
+        remote = [replace(job, path=os.path.abspath(job.path),
+                          static_path=os.path.abspath(job.static_path) if job.static_path else None,
+                          markers=os.path.abspath(job.markers) if job.markers else None) for job, _ in todo]
+        keys = [f"hamstride-trial-{i}-{key}" for i, (_, key) in enumerate(todo)]
+        futures = client.map(_analyse_job_on_worker, remote, options=options, key=keys, pure=False)
+        by_key = {f.key: item for f, item in zip(futures, todo)}
+        for future in as_completed(futures):
+            job, key = by_key[future.key]
+            try:
+                result = future.result()
+            except KilledWorker:  # workers died on this trial repeatedly: a native crash, as in the local pool
+                result = {"status": "failed", "code": "reader_crash",
+                          "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
+                                    "it is probably corrupt; re-export it from the capture software"}
+            except Exception as exc:  # the cluster went away: do not cache a failure, the trial is not at fault
+                raise HamstrideError(f"lost the Dask cluster ({type(exc).__name__}: {exc}); trials finished so far "
+                                     "are cached, run the same command again to continue", code="cluster_lost") from None
+            on_done(job, key, result)
+            future.release()
+    finally:
+        if owned:
+            client.close()
