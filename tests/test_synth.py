@@ -281,6 +281,16 @@ def _swing_moments_per_kg(truth, side):
     return moments.hip_flexion_nm / truth.body.mass_kg, moments.knee_flexion_nm / truth.body.mass_kg
 
 
+def _whole_swings(truth, side):
+    """(toe-off, next foot strike) of each swing of ``side`` that the trial holds whole (20 ms from either end)."""
+    t_end = truth.time_s[-1]
+    fs = truth.foot_strikes_s[side]
+    for to in truth.toe_offs_s[side]:
+        nxt = fs[fs > to]
+        if to >= 0.02 and nxt.size and nxt[0] <= t_end - 0.02:
+            yield to, nxt[0]
+
+
 def test_terminal_swing_joint_moments_are_of_published_sprint_size_without_a_landing_spike():
     # Net joint moments that the truth kinematics ask for in swing (inverse dynamics, no ground force), at 9 m/s.
     # Published sprint values, from memory (e.g. Schache et al. 2011, 2012, Med Sci Sports Exerc): peak terminal-swing
@@ -293,13 +303,9 @@ def test_terminal_swing_joint_moments_are_of_published_sprint_size_without_a_lan
     n_swings = 0
     for side in SIDES:
         hip, knee = _swing_moments_per_kg(truth, side)
-        fs = truth.foot_strikes_s[side]
-        for to in truth.toe_offs_s[side]:
-            nxt = fs[fs > to]
-            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
-                continue  # swing cut by the trial ends
-            late = (t >= to + 0.5 * (nxt[0] - to)) & (t <= nxt[0])
-            last = (t > nxt[0] - 0.010) & (t <= nxt[0])
+        for to, next_fs in _whole_swings(truth, side):
+            late = (t >= to + 0.5 * (next_fs - to)) & (t <= next_fs)
+            last = (t > next_fs - 0.010) & (t <= next_fs)
             assert np.isfinite(hip[late]).all() and last.sum() >= 2
             assert 2.5 <= -hip[late].min() <= 5.0  # peak hip extension moment (negative flexion moment)
             assert 1.0 <= knee[late].max() <= 2.2  # peak knee flexion moment
@@ -339,12 +345,8 @@ def test_mid_swing_hip_moment_has_no_spike():
     n_swings = 0
     for side in SIDES:
         hip, _ = _swing_moments_per_kg(truth, side)
-        fs = truth.foot_strikes_s[side]
-        for to in truth.toe_offs_s[side]:
-            nxt = fs[fs > to]
-            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
-                continue
-            pct = (t - to) / (nxt[0] - to)
+        for to, next_fs in _whole_swings(truth, side):
+            pct = (t - to) / (next_fs - to)
             mid = (pct >= 0.45) & (pct <= 0.75)
             assert np.isfinite(hip[mid]).all() and hip[mid].max() <= 3.0, side
             n_swings += 1
@@ -369,12 +371,8 @@ def test_swing_joint_work_is_of_published_sprint_size():
         hip, knee = _swing_moments_per_kg(truth, side)
         hip_power = hip * np.gradient(truth.angles[side]["hip_flexion"], dt_s)
         knee_power = knee * np.gradient(truth.angles[side]["knee_flexion"], dt_s)
-        fs = truth.foot_strikes_s[side]
-        for to in truth.toe_offs_s[side]:
-            nxt = fs[fs > to]
-            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
-                continue
-            swing = (t >= to) & (t <= nxt[0])
+        for to, next_fs in _whole_swings(truth, side):
+            swing = (t >= to) & (t <= next_fs)
             hip_positive = np.trapezoid(np.clip(np.nan_to_num(hip_power[swing]), 0.0, None), dx=dt_s)
             knee_negative = -np.trapezoid(np.clip(np.nan_to_num(knee_power[swing]), None, 0.0), dx=dt_s)
             assert 2.0 <= hip_positive <= 1.25 * 4.3, side
@@ -678,10 +676,6 @@ def test_an_asymmetric_leg_asks_for_published_terminal_swing_moments(hip_deficit
     t = truth.time_s
     for side in SIDES:
         hip, knee = _swing_moments_per_kg(truth, side)
-        fs = truth.foot_strikes_s[side]
-        for to in truth.toe_offs_s[side]:
-            nxt = fs[fs > to]
-            if to < 0.02 or not nxt.size or nxt[0] > t[-1] - 0.02:
-                continue
-            late = (t >= to + 0.5 * (nxt[0] - to)) & (t <= nxt[0])
+        for to, next_fs in _whole_swings(truth, side):
+            late = (t >= to + 0.5 * (next_fs - to)) & (t <= next_fs)
             assert -np.nanmin(hip[late]) <= 5.0 and np.nanmax(knee[late]) <= 2.2, side
