@@ -23,11 +23,11 @@ and the floor level cancel). Derivatives use a symmetric Savitzky-Golay kernel (
 Timing needs marker data filtered at about 15 Hz or above: heavier smoothing spreads the landing and
 delays the strike (about +7 ms at 10 Hz on generated sprints). Detecting the events on less filtered landmarks
 than the joint kinematics' does not pay (benchmarks/events_running.py --event-cutoffs, 8 seeds): at a fixed
-30-60 Hz the 9 m/s foot strikes gain only 1-2 ms (+6.1 -> +4.4 ms at 60 Hz; the rest of the lag is the rule's, not
-the filter's) while the jerk of the toe-off drowns in noise (3.5 m/s toe-off p95 9 -> 57-77 ms with 0.5 mm noise, and with
-3 mm noise foot strikes at 3.5 m/s reach p95 59-76 ms); Winter's residual analysis of the foot markers' heights
-alone picks 19-24 Hz (kinematics: 17-22 Hz; 10-14 Hz with 3 mm noise) and changes the errors by < 1 ms. So one
-cutoff serves both.
+30-60 Hz the 9 m/s foot strikes gain only 1-2 ms (+6.1 -> +4.4 ms at 60 Hz; the rest of the lag is the rule's,
+not the filter's) while the jerk of the toe-off drowns in noise (3.5 m/s toe-off p95 9 -> 57-77 ms with 0.5 mm
+noise, and with 3 mm noise foot strikes at 3.5 m/s reach p95 59-76 ms); Winter's residual analysis of the foot
+markers' heights alone picks 19-24 Hz (kinematics: 17-22 Hz; 10-14 Hz with 3 mm noise) and changes the errors by
+< 1 ms. So one cutoff serves both.
 Measured limits (benchmarks/events_running.py, running-feet generator whose feet land and lift like runners' feet,
 no toe marker, 8 seeds): foot strikes |error| median 4.3 / p95 7.7 ms at 3.5 m/s (heel landings) and 6.1 / 6.8 ms
 at 9 m/s (forefoot landings, +6 ms late: the metatarsal marker is still ~9 mm above its stance floor level at
