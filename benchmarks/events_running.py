@@ -1,6 +1,6 @@
 """Print the marker rule's foot-strike and toe-off errors on the running-feet generator (issue 13 acceptance table).
 
-Usage: python benchmarks/events_running.py [seeds]
+Usage: python benchmarks/events_running.py [seeds] [--event-cutoffs]
 Each trial goes through the C3D writer and reader, the lab frame, landmark resolution and the default filtering (no
 force plates, no toe marker, heel cluster), as the pipeline does. Errors are marker rule minus the contact model's
 touchdown / toe-off (ms), for the contacts seen whole (truth event >= 30 ms inside the recording): |error| median,
@@ -9,6 +9,10 @@ touchdown / toe-off (ms), for the contacts seen whole (truth event >= 30 ms insi
 The last lines time foot strikes on the noise-free marker paths with rules whose constant is chosen with hindsight
 (a height threshold on the foot's lowest landmark; Handsaker et al. 2016's acceleration peak, unfiltered), which
 bounds what any rule of those kinds can reach on this generator.
+--event-cutoffs instead prints the same errors at 3.5 and 9 m/s with the events detected on landmarks low-passed at
+other cutoffs than the joint kinematics' (Winter's residual analysis over all markers): fixed 20-60 Hz, and the
+residual analysis of the foot markers' vertical coordinates alone ("foot"). It tests whether the kinematic filter
+smears the landing and lift-off that the rules time (issue 13); the answer is in events.py's docstring.
 """
 from __future__ import annotations
 
@@ -23,7 +27,7 @@ from hamstride.events import _derivative, detect_events
 from hamstride.io import read_c3d
 from hamstride.labframe import to_lab_frame
 from hamstride.landmarks import load_marker_map, resolve_landmarks
-from hamstride.signal import smooth_landmarks
+from hamstride.signal import fill_gaps, residual_cutoff, smooth_landmarks
 from hamstride.synth import RunSpec, simulate_run, write_run_trial
 
 SIDES = ("left", "right")
@@ -31,13 +35,26 @@ SPEEDS = (2.5, 3.5, 5.0, 7.0, 9.0, 10.0)
 CASES = {"default": {}, "3 mm noise": {"noise_mm": 3.0}, "6 mm wobble": {"soft_tissue_mm": 6.0}}
 
 
-def _errors(spec: RunSpec) -> tuple[np.ndarray, np.ndarray]:
+EVENT_CUTOFFS = (None, 20.0, 30.0, 40.0, 60.0, "foot")  # None: the kinematics' cutoff (residual, all markers)
+FOOT_Z = ("heel", "first_metatarsal", "fifth_metatarsal")
+
+
+def _event_cutoff(lm, choice) -> float | None:
+    """The cutoff the events are detected at: None (the kinematics'), a fixed value, or 'foot': Winter's residual
+    analysis of the foot markers' vertical coordinates only (the signals that carry the landing)."""
+    if choice != "foot":
+        return choice
+    z = np.stack([np.asarray(p, float)[:, 2] for name, p in lm.points.items() if name.endswith(FOOT_Z)], axis=1)
+    return residual_cutoff(fill_gaps(z)[0], lm.rate_hz)
+
+
+def _errors(spec: RunSpec, cutoff=None) -> tuple[np.ndarray, np.ndarray]:
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "run.c3d"
         truth = write_run_trial(path, spec)
         trial = read_c3d(path)
         _, lm = to_lab_frame(trial, resolve_landmarks(trial, load_marker_map(None)))
-        lm, _ = smooth_landmarks(lm, keep_clusters=False)
+        lm, _ = smooth_landmarks(lm, cutoff_hz=_event_cutoff(lm, cutoff), keep_clusters=False)
         events = detect_events(lm)
     end = (lm.n_frames - 1) / lm.rate_hz
     out = []
@@ -92,8 +109,25 @@ def _hindsight_bounds(speed: float, seeds: int) -> str:
             f"{np.percentile(np.abs(peak), 95):.1f} ms (bias {np.median(peak):+.1f})")
 
 
+def _cutoff_study(seeds: int) -> None:
+    print(f"{'case':12s} {'m/s':>4s} {'events at':>9s} | {'foot strike: med   p95    max   bias    n':40s} | "
+          f"{'toe-off: med   p95    max   bias    n'}")
+    for case, change in CASES.items():
+        for speed in (3.5, 9.0):
+            for cutoff in EVENT_CUTOFFS:
+                fs, to = zip(*(_errors(replace(RunSpec(speed_m_s=speed, seed=seed), **change), cutoff)
+                               for seed in range(seeds)))
+                label = "kinematic" if cutoff is None else (cutoff if cutoff == "foot" else f"{cutoff:g} Hz")
+                print(f"{case:12s} {speed:4.1f} {label:>9s} | {_fmt(np.concatenate(fs)):>40s} | "
+                      f"{_fmt(np.concatenate(to)):>37s}", flush=True)
+
+
 def main() -> None:
-    seeds = int(sys.argv[1]) if len(sys.argv) > 1 else 8
+    args = [a for a in sys.argv[1:] if not a.startswith("--")]
+    seeds = int(args[0]) if args else 8
+    if "--event-cutoffs" in sys.argv:
+        _cutoff_study(seeds)
+        return
     print(f"{'case':12s} {'m/s':>4s} | {'foot strike: med   p95    max   bias    n':40s} | "
           f"{'toe-off: med   p95    max   bias    n'}")
     for case, change in CASES.items():

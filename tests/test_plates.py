@@ -286,15 +286,25 @@ ACCEPTANCE_SEEDS = range(8)  # the seeds of benchmarks/events_running.py (4 seed
 
 
 @pytest.mark.parametrize("speed", [3.5, 9.0])
-@pytest.mark.xfail(strict=True, reason="3 mm marker noise: Winter's residual analysis then picks about 9-12 Hz "
-                   "instead of 17-21 Hz, below the ~15 Hz the event timing needs (events.py), and the toe-off's "
-                   "step in the metatarsal marker's acceleration is smoothed away in some contacts; 8 seeds, "
-                   "|error| median / p95: 3.5 m/s FS 5.1 / 12.1 ms, TO 6.6 / 37.2 ms; 9 m/s FS 9.7 / 12.7 ms, "
-                   "TO 3.9 / 55.7 ms")
+@pytest.mark.xfail(strict=True, reason="3 mm marker noise: Winter's residual analysis then picks about 9-13 Hz "
+                   "instead of 17-25 Hz and smooths the landing, so foot strikes come late at 9 m/s; detecting the "
+                   "events at a fixed higher cutoff instead trades this for noise outliers (events.py); some "
+                   "jogging toe-offs are still missed or taken early. 8 seeds, |error| median / p95: 3.5 m/s FS "
+                   "5.1 / 12.1 ms, TO 6.6 / 37.2 ms; 9 m/s FS 9.7 / 12.7 ms, TO 3.0 / 9.2 ms")
 def test_marker_rule_with_3_mm_marker_noise_meets_issue_13_acceptance(speed):
     # robustness of the acceptance (below) to 3 mm of marker noise, the largest the issue asks about
     fs, to, _ = _marker_rule_errors(speed, seeds=ACCEPTANCE_SEEDS, noise_mm=3.0)
     assert np.median(np.abs(fs)) <= 5.0 and np.percentile(np.abs(fs), 95) <= 12.0
+    assert np.median(np.abs(to)) <= 10.0 and np.percentile(np.abs(to), 95) <= 20.0
+
+
+def test_sprint_toe_offs_with_3_mm_marker_noise_are_taken_where_the_foot_leaves_the_floor():
+    # 3 mm noise on every marker, 9 m/s, no toe marker: the third derivative of the filtered first-metatarsal height
+    # has peaks as large as the toe-off's in mid-stance, where the foot is flat; the rule takes the jerk peak only
+    # where the foot is leaving the floor (toe rising, heel lifted). Before: p95 55.7 ms, ~8 % of toe-offs 45-64 ms
+    # early; the issue 13 toe-off limits (median <= 10 ms, p95 <= 20 ms) hold with noise.
+    _, to, _ = _marker_rule_errors(9.0, seeds=ACCEPTANCE_SEEDS, noise_mm=3.0)
+    assert to.size >= 100  # every contact seen whole (105 over the 8 seeds)
     assert np.median(np.abs(to)) <= 10.0 and np.percentile(np.abs(to), 95) <= 20.0
 
 
@@ -305,7 +315,9 @@ def test_marker_rule_with_3_mm_marker_noise_meets_issue_13_acceptance(speed):
         "median: the forefoot lands first and the first-metatarsal marker is still ~9 mm above its stance floor "
         "level at touchdown (pad compression plus the foot's toe-down pitch), so it comes within the rule's 5 mm "
         "floor tolerance ~1.5 frames after touchdown, and Handsaker's acceleration peak lags touchdown by the "
-        "impact's rise (~5 ms here; +3.1 ms on Handsaker et al.'s plates). Toe-offs meet the limits (2.5 / 3.4 ms)"))),
+        "impact's rise (~5 ms here; +3.1 ms on Handsaker et al.'s plates). Not the filter's doing: detecting the "
+        "events on landmarks low-passed at 30-60 Hz instead of the kinematics' 17-22 Hz leaves them +5.1 to +4.4 ms "
+        "late (benchmarks/events_running.py --event-cutoffs). Toe-offs meet the limits (2.5 / 3.4 ms)"))),
 ])
 def test_marker_rule_alone_meets_issue_13_acceptance(speed):
     # issue 13 acceptance: marker rule alone (plates removed, no toe marker, heel cluster), generated running at
