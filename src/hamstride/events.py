@@ -41,13 +41,12 @@ from typing import TYPE_CHECKING, Iterable, Mapping
 import numpy as np
 
 from .errors import EventError, LandmarkError
-from .io import finite_points
-from .signal import percentiles, savgol_derivative
+from .numerics import SIDES, finite_points, runs
+from .signal import savgol_derivative
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from .landmarks import Landmarks
 
-SIDES = ("left", "right")
 STRIKE_MARKERS = ("heel", "first_metatarsal")  # Handsaker et al. 2016: heel or first metatarsal
 FOOT_MARKERS = ("heel", "first_metatarsal", "fifth_metatarsal", "toe_tip")
 PELVIS_MARKERS = ("left_asis", "right_asis", "left_psis", "right_psis")
@@ -117,9 +116,8 @@ def _derivative(x: np.ndarray, order: int, rate_hz: float) -> np.ndarray:
 
 def _runs(mask: np.ndarray) -> np.ndarray:
     """Start (inclusive) and end (exclusive) frame of every run of True, shape [n, 2]."""
-    padded = np.concatenate(([False], mask, [False])).astype(np.int8)
-    edges = np.flatnonzero(np.diff(padded))
-    return edges.reshape(-1, 2)
+    _, start, stop = runs(np.asarray(mask, bool)[:, None])
+    return np.stack([start, stop], axis=1)
 
 
 def _parabolic_peak(y: np.ndarray, i: int) -> float:
@@ -193,7 +191,7 @@ def _toe_name(heights: Mapping[str, np.ndarray]) -> str:
 def _heights_above_floor(heights: Mapping[str, np.ndarray]) -> np.ndarray:
     """[landmark, F] height of each foot landmark above its own floor level (marker heights above the sole cancel)."""
     z = np.stack(list(heights.values()))
-    return z - percentiles(z.T, [FLOOR_PERCENTILE]).T
+    return z - np.percentile(z, FLOOR_PERCENTILE, axis=-1, keepdims=True)
 
 
 def _low_foot_mask(lowest: np.ndarray, rate_hz: float) -> np.ndarray:

@@ -18,13 +18,13 @@ from typing import TYPE_CHECKING, Mapping, Sequence
 import numpy as np
 
 from .errors import FileFormatError
+from .numerics import SIDES
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from .events import GaitEvents
-    from .io import MarkerTrial
+    from .c3d import MarkerTrial
     from .landmarks import Landmarks
 
-SIDES = ("left", "right")
 CONTACT_THRESHOLD_N = 20.0  # vertical force of a foot contact (common practice)
 MIN_PLATE_CONTACT_S = 0.03  # shorter runs above the threshold are knocks, not foot contacts (common practice)
 MERGE_PLATE_GAP_S = 0.005  # dips below the threshold shorter than this do not end a contact (design choice)
@@ -81,7 +81,7 @@ def read_force_plates(path: str | Path, file_to_lab: np.ndarray, units: str = "m
     which points down); analog channels are scaled by ezc3d (ANALOG:SCALE, GEN_SCALE, OFFSET)."""
     import ezc3d
 
-    from .io import UNIT_TO_METRES
+    from .c3d import UNIT_TO_METRES
 
     try:
         c = ezc3d.c3d(str(path), extract_forceplat_data=True)
@@ -256,7 +256,7 @@ def add_force_plates(c, plates: Sequence, n_frames: int, rate_hz: float, analog_
     CHANNEL). Each plate needs ``corners_lab_m`` [4, 3] in the file's axes (ordered +x+y, -x+y, -x-y, +x-y, so the
     plate's z axis points up) and ``vertical_force_n`` at ``analog_rate_hz`` (the upward force on the body; the Fz
     channel holds the force on the plate, which points down)."""
-    from .io import UNIT_TO_METRES
+    from .c3d import UNIT_TO_METRES
 
     ratio = int(round(analog_rate_hz / rate_hz))
     n_an = n_frames * ratio

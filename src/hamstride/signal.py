@@ -24,7 +24,7 @@ from scipy.signal import butter, filtfilt, savgol_coeffs, savgol_filter
 from .errors import ConfigError
 from .numerics import runs
 
-__all__ = ["DEFAULT_MAX_GAP_FRAMES", "EDGE_GAP_NOTE", "FILTER_ORDER", "savgol_derivative", "percentiles",
+__all__ = ["DEFAULT_MAX_GAP_FRAMES", "EDGE_GAP_NOTE", "FILTER_ORDER", "savgol_derivative",
            "dual_pass_correction", "design_cutoff_hz", "lowpass", "Gap", "GapReport", "find_gaps", "fill_gaps",
            "residuals", "residual_cutoff", "FilterInfo", "smooth_landmarks"]
 
@@ -74,13 +74,6 @@ def savgol_derivative(x: np.ndarray, window: int, poly: int, order: int, rate_hz
         y[..., :half] = x[..., :window] @ left.T
         y[..., -half:] = x[..., -window:] @ right.T
     return y * float(rate_hz) ** order
-
-
-# --------------------------------------------------------------------------- percentiles
-def percentiles(samples: np.ndarray, q) -> np.ndarray:
-    """``np.percentile(samples, q, axis=0)`` (linear method, Hyndman & Fan type 7); kept as a name only because
-    ``events`` imports it (call numpy directly elsewhere)."""
-    return np.percentile(samples, q, axis=0)
 
 
 # --------------------------------------------------------------------------- Butterworth

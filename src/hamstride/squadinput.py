@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Iterable, Mapping
 from .errors import ConfigError
 
 __all__ = ["ATHLETE_COLUMNS", "REQUIRED_ATHLETE_COLUMNS", "OPTIONAL_ATHLETE_COLUMNS", "BODY_MASS_RANGE_KG",
-           "HEIGHT_RANGE_M", "STRENGTH_FACTOR_RANGE", "SIDES", "SEXES", "DATE_PREFIX", "MARKER_MAP_SECTIONS",
+           "HEIGHT_RANGE_M", "STRENGTH_FACTOR_RANGE", "INVOLVED_SIDES", "SEXES", "DATE_PREFIX", "MARKER_MAP_SECTIONS",
            "MARKER_MAP_KEYS", "read_input_bytes", "read_input_text", "require_file", "did_you_mean",
            "read_athletes", "session_date", "SessionTrials", "SquadLayout", "scan_squad", "match_athlete",
            "check_marker_map"]
@@ -38,7 +38,7 @@ OPTIONAL_ATHLETE_COLUMNS = ("injury_date", "strength_factor")
 BODY_MASS_RANGE_KG = (30.0, 200.0)
 HEIGHT_RANGE_M = (1.20, 2.30)
 STRENGTH_FACTOR_RANGE = (0.3, 3.0)  # multiplies the model's muscle strength; 1 = the model's own estimate (assumption: beyond 0.3-3 a value is more likely a typo than an athlete)
-SIDES = ("left", "right", "none")
+INVOLVED_SIDES = ("left", "right", "none")  # the involved_side column
 SEXES = {"male": "male", "m": "male", "female": "female", "f": "female"}
 DATE_PREFIX = re.compile(r"^(\d{4}-\d{2}-\d{2})")
 MARKER_MAP_SECTIONS = ("landmarks", "clusters")
@@ -219,9 +219,9 @@ def _athlete_record(cells: Mapping[str, str], path: Path, line: int, seen: dict[
                               "segment inertia tables, de Leva 1996)")
     record["sex"] = SEXES[sex]
     side = cells["involved_side"].lower() or "none"
-    if side not in SIDES:
+    if side not in INVOLVED_SIDES:
         raise _athletes_error(path, line, f"involved_side = '{cells['involved_side']}': expected left, right or none"
-                              + did_you_mean(side, SIDES))
+                              + did_you_mean(side, INVOLVED_SIDES))
     record["involved_side"] = side
     injury = cells.get("injury_date", "")
     record["injury_date"] = _iso_date(injury, path, line, "injury_date") if injury else math.nan

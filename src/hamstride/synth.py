@@ -51,8 +51,8 @@ from scipy.interpolate import CubicSpline
 from scipy.optimize import brentq
 
 from .errors import ConfigError, HamstrideError
+from .numerics import SIDES
 
-SIDES = ("left", "right")
 GRAVITY = 9.81  # m/s^2
 _RIGHT_SIGN = {"right": 1.0, "left": -1.0}
 # A person's true hip centre is not where the Harrington et al. 2007 regression puts it: its leave-one-out error is
@@ -1082,7 +1082,7 @@ def _subject(body: AthleteBody, name: str) -> dict[str, object]:
 
 def write_sprint_trial(path: str | Path, spec: SprintSpec = SprintSpec()) -> SprintTruth:
     """Simulate a sprint and write it as a C3D file (hamstride.io.write_c3d); returns the truth."""
-    from .io import write_c3d
+    from .c3d import write_c3d
 
     labels, xyz, truth = simulate_sprint(spec)
     events = sprint_events(truth) if spec.include_events else ()
@@ -1169,7 +1169,7 @@ def write_static_trial(path: str | Path, body: AthleteBody = _DEFAULT_BODY, rate
                        units: str = "mm", noise_mm: float = 0.5, seed: int = 0, athlete: str = "SYN01"
                        ) -> SprintTruth:
     """Write a standing calibration trial (all landmarks and clusters) as C3D; returns its truth."""
-    from .io import write_c3d
+    from .c3d import write_c3d
 
     labels, xyz, truth = simulate_static(body, rate_hz, duration_s, vertical_axis=vertical_axis,
                                          travel_sign=travel_sign, units=units, noise_mm=noise_mm, seed=seed)
@@ -1708,7 +1708,7 @@ def write_run_trial(path: str | Path, spec: RunSpec = RunSpec()) -> RunTruth:
     """Simulate running feet and write them as a C3D file (z up, x forward, mm), with the force plates as a
     FORCE_PLATFORM group and analog channels (type 2: Fx, Fy, Fz, Mx, My, Mz per plate) when ``spec.plates``
     asks for them; returns the truth."""
-    from .io import write_c3d
+    from .c3d import write_c3d
 
     labels, xyz, truth = simulate_run(spec)
     write_c3d(path, labels, xyz * 1000.0, spec.rate_hz, units="mm", subject=_subject(spec.body, spec.athlete),
