@@ -345,3 +345,32 @@ def test_event_inside_a_long_marker_gap_is_not_used():
     spanning = [st for st in strides if st.side == "right" and st.foot_strike_s < target < st.next_foot_strike_s]
     # the 0.88 s stride is inside the jogging stride limits (0.3-1.0 s): its two toe-offs give the missed strike away
     assert len(spanning) == 1 and not spanning[0].valid and "2 toe-offs" in spanning[0].reason
+
+
+# ------------------------------------------------------------------------------- the two rules' consistency check
+def test_rule_check_ignores_a_steady_offset_and_catches_erratic_differences():
+    # Design rule (no published value): a steady offset between the primary and the position-based fallback rule is
+    # expected on a compliant foot; differences that stray > 25 ms from their median in over a quarter of the
+    # events point at the markers.
+    from hamstride.events import _rule_consistency, _SideEvents
+
+    none = _SideEvents(np.array([]), np.array([]), np.array([]), np.array([]), 0)
+    primary = np.arange(8) * 0.7
+    steady = _rule_consistency("left", none, primary, primary, primary - 0.06, primary + 0.05)
+    assert steady == []
+    jumps = np.array([0.0, 0.04, -0.04, 0.0, 0.05, -0.05, 0.0, 0.0])
+    erratic = _rule_consistency("left", none, primary, primary, primary - 0.06 + jumps, primary + 0.05)
+    assert len(erratic) == 1 and erratic[0].startswith("left foot strike: the two marker rules disagree erratically")
+
+
+def test_realistic_jogging_feet_raise_no_rule_warning(tmp_path):
+    # Shape: jogging at 3.5 m/s on the running-feet generator (compliant heel pad, heel cluster, no toe marker), whose
+    # markers are fine: the fallback rule sits a steady 50-80 ms from the primary rule there (pad compression and
+    # rebound), which is no reason to tell a physio to check the markers (or to fail the trial under --strict).
+    from hamstride.pipeline import AnalysisOptions, analyse_trial
+    from hamstride.synth import RunSpec, write_run_trial
+
+    path = tmp_path / "jog_3_5.c3d"
+    write_run_trial(path, RunSpec(speed_m_s=3.5, seed=5))
+    result = analyse_trial(path, AnalysisOptions(monte_carlo_samples=0, force_band_samples=0))
+    assert "event_rules" not in result.info["warning_codes"], result.info["warnings"]
