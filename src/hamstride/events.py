@@ -448,8 +448,14 @@ def _pelvis_centre(lm: "Landmarks") -> np.ndarray:
     if not available:
         raise LandmarkError("no pelvis landmark (ASIS/PSIS) found; speed needs the pelvis",
                             trial=getattr(lm, "trial", None))
-    with np.errstate(invalid="ignore"):
-        return np.nanmean(np.stack(available), axis=0) if len(available) > 1 else available[0]
+    if len(available) == 1:
+        return available[0]
+    stacked = np.stack(available)
+    seen = np.isfinite(stacked)
+    count = seen.sum(axis=0)
+    total = np.where(seen, stacked, 0.0).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):  # frames with no pelvis landmark stay NaN, silently
+        return np.where(count > 0, total / count, np.nan)
 
 
 def running_speed(lm: "Landmarks", events: GaitEvents, treadmill: bool) -> float:
