@@ -111,7 +111,7 @@ def parse_label(label: str) -> ParsedLabel:
         side, tokens = SIDE_WORDS[tokens[-1].lower()], tokens[:-1]
     elif tokens and len(tokens[0]) > 1 and tokens[0][0].lower() in "lr" and (
             tokens[0].isupper() or tokens[0].islower()):
-        # all-capitals (or all-lower-case) labels without a separator: the side is the first letter (RKNE, lfel)
+        # all-capitals (or all-lower-case) labels without a separator: the side is the first letter (RFEL, lfel)
         side, tokens = SIDE_WORDS[tokens[0][0].lower()], [tokens[0][1:]] + tokens[1:]
     return ParsedLabel(label, prefix, side, "".join(tokens).lower())
 
