@@ -18,7 +18,7 @@ from typing import Iterable, Mapping
 import numpy as np
 
 from .errors import EventError, FileFormatError, LandmarkError, PlausibilityError, TrialWarning
-from .io import UNIT_TO_METRES, MarkerTrial
+from .c3d import UNIT_TO_METRES, MarkerTrial
 from .numerics import finite_points
 from .landmarks import REQUIRED_LANDMARKS, Landmarks, MarkerMap, plain_name
 

@@ -70,7 +70,7 @@ def _every_command(
                                  help="Print the version and exit."),
 ) -> None:
     # Before any command: let this process reuse freed memory (batch.tune_allocator; no effect without glibc).
-    from .batch import tune_allocator
+    from .squad.executor import tune_allocator
 
     tune_allocator()
 
@@ -111,7 +111,9 @@ def landmarks_cmd(
 
     Exit code 0 when every required landmark resolves, 1 otherwise, 2 on usage errors.
     """
-    from .io import atomic_write_text, finite_points, read_c3d_isolated
+    from .atomic import atomic_write_text
+    from .c3d import read_c3d_isolated
+    from .numerics import finite_points
     from .landmarks import LandmarkError, load_marker_map, plain_name, resolve_landmarks, visible_window
     from .pipeline import landmarks_with_static
     from .segments import rebuilt_landmarks
@@ -293,8 +295,9 @@ def analyze_cmd(
 
     Exit code 0 when the trial was analysed, 1 when it failed, 2 on usage errors.
     """
-    from .batch import columns_csv
-    from .io import atomic_write_text, read_c3d_isolated
+    from .atomic import atomic_write_text
+    from .c3d import read_c3d_isolated
+    from .squad.export import columns_csv
     from .pipeline import AthleteInfo, analyse_trial
     from .settings import load_config, settings_of
     from .squadinput import BODY_MASS_RANGE_KG, SEXES, check_marker_map, read_athletes, require_file
@@ -359,7 +362,7 @@ def analyze_cmd(
 def _check_squad_inputs(root: Path, out: Path, markers: Optional[Path], config: Optional[Path],
                         allow_unlisted: bool, **overrides):
     """Configuration, marker map and squad folder, checked before anything runs; warnings printed once."""
-    from .batch import discover_squad
+    from .squad.discovery import discover_squad
     from .settings import load_config
     from .squadinput import check_marker_map
 
@@ -404,7 +407,7 @@ def squad_cmd(
     """
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
-    from .batch import run_squad
+    from .squad.run import run_squad
 
     try:
         cfg, _ = _check_squad_inputs(root, out, markers, config, allow_unlisted, strict=True if strict else None)
@@ -463,7 +466,8 @@ def timeline_cmd(
     Exit code 0 when the timeline was written, 1 when trials failed (listed), 2 on usage errors (e.g. an unknown
     athlete: the known codes are listed).
     """
-    from .batch import build_timeline, run_squad
+    from .squad.run import run_squad
+    from .squad.timeline import build_timeline
     from .report import render_timeline
     from .squadinput import match_athlete
 
@@ -509,7 +513,7 @@ def _log_unexpected(exc: BaseException) -> Path | None:
 
     folder = Path(os.environ.get("HAMSTRIDE_LOG_DIR") or Path(tempfile.gettempdir()) / "hamstride-logs")
     try:
-        from .io import atomic_write_text
+        from .atomic import atomic_write_text
 
         path = folder / f"hamstride-{dt.datetime.now():%Y%m%d-%H%M%S}-{os.getpid()}.log"
         details = (f"hamstride {__version__}, Python {platform.python_version()}, {platform.platform()}\n"

@@ -17,7 +17,7 @@ from typing import Mapping
 import numpy as np
 
 from .errors import ConfigError, LandmarkError
-from .io import MarkerTrial
+from .c3d import MarkerTrial
 from .numerics import SIDES, finite_points
 
 __all__ = ["REQUIRED_SITES", "OPTIONAL_SITES", "CLUSTER_SEGMENTS", "DEFAULT_LABELS", "DEFAULT_CLUSTERS",

@@ -145,7 +145,7 @@ _STATIC_CALIBRATIONS: dict[tuple, tuple] = {}
 
 
 def _static_calibration(static_path: str, marker_map):
-    from .io import read_c3d
+    from .c3d import read_c3d
     from .landmarks import resolve_landmarks
     from .segments import calibrate
     from .signal import smooth_landmarks
@@ -183,7 +183,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     from .checks import (check_body_size, check_landmark_gaps, check_marker_trial, check_sides, check_speed,
                          check_stride_count)
     from .events import detect_events, drop_events_near_edges, is_treadmill, running_speed
-    from .io import read_c3d
+    from .c3d import read_c3d
     from .labframe import to_lab_frame
     from .landmarks import crop_landmarks, crop_trial, load_marker_map, visible_window
     from .plates import apply_plate_contacts, attach_force_plates, crop_force_plates

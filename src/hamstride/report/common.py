@@ -17,7 +17,7 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from ..io import atomic_write_bytes
+from ..atomic import atomic_write_bytes
 from ..muscles import MUSCLE_NAMES as _MODEL_NAMES
 from ..style import MUSCLE_ORDER, MUSCLE_SHORT
 

@@ -18,7 +18,7 @@ from xml.sax.saxutils import escape
 
 from reportlab.platypus import Flowable
 
-from ..io import atomic_write_bytes
+from ..atomic import atomic_write_bytes
 from .common import CAUTION
 from .content import Page
 
