@@ -19,6 +19,7 @@ import pandas as pd
 
 from ..atomic import atomic_write_bytes
 from ..muscles import MUSCLE_NAMES as _MODEL_NAMES
+from ..squadinput import DATE_PREFIX  # session folders start YYYY-MM-DD: one pattern for discovery and reports
 from ..style import MUSCLE_ORDER, MUSCLE_SHORT
 
 __all__ = ["CAUTION", "GLOSSARY", "FLAG_EXPLANATIONS", "BODY_MASS_MISSING", "MUSCLE_NAMES", "safe_component",
@@ -66,7 +67,6 @@ FLAG_EXPLANATIONS = MappingProxyType({
 
 BODY_MASS_MISSING = "body mass missing: forces and work need it; add it to athletes.csv"
 
-DATE_PREFIX = re.compile(r"^(\d{4})-(\d{2})-(\d{2})")
 _SAFE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.-]{0,63}")
 _WINDOWS_RESERVED = {"con", "prn", "aux", "nul", *(f"com{i}" for i in range(1, 10)), *(f"lpt{i}" for i in range(1, 10))}
 
