@@ -19,7 +19,7 @@ import numpy as np
 
 from .errors import EventError, FileFormatError, LandmarkError, PlausibilityError, TrialWarning
 from .c3d import UNIT_TO_METRES, MarkerTrial
-from .numerics import finite_points
+from .numerics import finite_points, runs_1d
 from .landmarks import REQUIRED_LANDMARKS, Landmarks, MarkerMap, plain_name
 
 __all__ = ["MIN_RATE_HZ", "MIN_DURATION_S", "MAX_MISSING_FRACTION", "MAX_BAD_COORDINATE_FRACTION",
@@ -57,9 +57,7 @@ def _name(trial: MarkerTrial | Landmarks) -> str:
 
 def _ranges(mask: np.ndarray, rate_hz: float, limit: int = 3) -> str:
     """'0.00-0.12 s, 1.40-1.52 s' for the runs of True in ``mask`` (first ``limit`` runs)."""
-    padded = np.concatenate([[False], mask, [False]])
-    edges = np.flatnonzero(np.diff(padded.astype(np.int8)))
-    starts, stops = edges[0::2], edges[1::2]
+    starts, stops = runs_1d(mask).T
     parts = [f"{a / rate_hz:.2f}-{(b - 1) / rate_hz:.2f} s" for a, b in zip(starts[:limit], stops[:limit])]
     more = f" and {len(starts) - limit} more" if len(starts) > limit else ""
     return ", ".join(parts) + more
@@ -67,13 +65,12 @@ def _ranges(mask: np.ndarray, rate_hz: float, limit: int = 3) -> str:
 
 def _longest_run(mask: np.ndarray) -> tuple[int, int]:
     """(length, start index) of the longest run of True in ``mask``."""
-    padded = np.concatenate([[False], mask, [False]])
-    edges = np.flatnonzero(np.diff(padded.astype(np.int8)))
+    edges = runs_1d(mask)
     if edges.size == 0:
         return 0, 0
-    lengths = edges[1::2] - edges[0::2]
+    lengths = edges[:, 1] - edges[:, 0]
     k = int(np.argmax(lengths))
-    return int(lengths[k]), int(edges[0::2][k])
+    return int(lengths[k]), int(edges[k, 0])
 
 
 # ----------------------------------------------------------------------------------------------- the marker trial

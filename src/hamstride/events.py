@@ -41,7 +41,7 @@ from typing import TYPE_CHECKING, Iterable, Mapping
 import numpy as np
 
 from .errors import EventError, LandmarkError
-from .numerics import SIDES, finite_points, runs
+from .numerics import SIDES, finite_points, runs_1d
 from .signal import savgol_derivative
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
@@ -112,12 +112,6 @@ def _derivative(x: np.ndarray, order: int, rate_hz: float) -> np.ndarray:
     poly = 3 if order < 3 else 4
     poly = min(poly, window - 1)
     return savgol_derivative(x, window, poly, order, rate_hz)
-
-
-def _runs(mask: np.ndarray) -> np.ndarray:
-    """Start (inclusive) and end (exclusive) frame of every run of True, shape [n, 2]."""
-    _, start, stop = runs(np.asarray(mask, bool)[:, None])
-    return np.stack([start, stop], axis=1)
 
 
 def _parabolic_peak(y: np.ndarray, i: int) -> float:
@@ -198,12 +192,12 @@ def _low_foot_mask(lowest: np.ndarray, rate_hz: float) -> np.ndarray:
     """Frames where the foot's lowest landmark is within LOW_FOOT_THRESHOLD_M of its floor level (contact runs)."""
     mask = lowest < LOW_FOOT_THRESHOLD_M
     # close short gaps, then drop short runs
-    runs = _runs(~mask)
+    runs = runs_1d(~mask)
     short_gap = (runs[:, 1] - runs[:, 0]) < MERGE_GAP_S * rate_hz
     inner = (runs[:, 0] > 0) & (runs[:, 1] < mask.size)
     for s, e in runs[short_gap & inner]:
         mask[s:e] = True
-    runs = _runs(mask)
+    runs = runs_1d(mask)
     short = (runs[:, 1] - runs[:, 0]) < MIN_CONTACT_S * rate_hz
     cut_by_trial_end = (runs[:, 0] == 0) | (runs[:, 1] == mask.size)  # a contact cut short by the recording
     for s, e in runs[short & ~cut_by_trial_end]:
@@ -297,7 +291,7 @@ def _detect_side(
     # one filter call per derivative order, over all the signals that need it
     velocities = _derivative(np.stack([*heights.values(), lowest]), 1, rate_hz)
     vz, lowest_vz = velocities[:-1], velocities[-1]
-    contacts = _runs(mask)
+    contacts = runs_1d(mask)
     acc = dict(zip(STRIKE_MARKERS, _derivative(np.stack([heights[m] for m in STRIKE_MARKERS]), 2, rate_hz)))
     toe = _toe_name(heights)
     toe_z = heights[toe]

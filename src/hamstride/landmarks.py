@@ -18,7 +18,7 @@ import numpy as np
 
 from .errors import ConfigError, LandmarkError
 from .c3d import MarkerTrial
-from .numerics import SIDES, finite_points
+from .numerics import SIDES, finite_points, runs_1d
 
 __all__ = ["REQUIRED_SITES", "OPTIONAL_SITES", "CLUSTER_SEGMENTS", "DEFAULT_LABELS", "DEFAULT_CLUSTERS",
            "REQUIRED_LANDMARKS", "CLUSTER_SITES", "STATIC_RECOVERABLE", "MIN_VISIBLE_RUN_S", "plain_name",
@@ -200,9 +200,7 @@ def visible_window(lm: "Landmarks", max_gap_frames: int = 10, *,
     if not names or n == 0:
         return whole
     seen = np.all([finite_points(np.asarray(lm.points[name], float)) for name in names], axis=0)
-    padded = np.concatenate([[False], seen, [False]]).astype(np.int8)
-    edges = np.flatnonzero(np.diff(padded))
-    starts, stops = edges[0::2], edges[1::2]
+    starts, stops = runs_1d(seen).T
     if starts.size == 0:
         return whole
     # bridge short interior gaps, then keep stretches long enough to be the athlete inside the volume

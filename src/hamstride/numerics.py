@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["SIDES", "all_xyz", "any_xyz", "finite_points", "dot_rows", "norm_rows", "cross_rows", "runs"]
+__all__ = ["SIDES", "all_xyz", "any_xyz", "finite_points", "dot_rows", "norm_rows", "cross_rows", "runs", "runs_1d"]
 
 #: The two sides, in the order every per-side table uses (internal convention: the strings "left" and "right").
 SIDES = ("left", "right")
@@ -55,3 +55,10 @@ def runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     col_s, start = np.nonzero(edges == 1)
     _, stop = np.nonzero(edges == -1)
     return col_s, start, stop
+
+
+def runs_1d(mask: np.ndarray) -> np.ndarray:
+    """Runs of True in a 1-D mask: [n, 2] array of (start, stop) indices, stop exclusive, in order."""
+    padded = np.zeros(np.size(mask) + 2, dtype=np.int8)
+    padded[1:-1] = np.asarray(mask, bool)
+    return np.flatnonzero(np.diff(padded)).reshape(-1, 2)

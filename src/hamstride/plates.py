@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING, Mapping, Sequence
 import numpy as np
 
 from .errors import FileFormatError
-from .numerics import SIDES
+from .numerics import SIDES, runs_1d
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from .events import GaitEvents
@@ -122,8 +122,7 @@ def force_contacts(force_n: np.ndarray, rate_hz: float, threshold_n: float = CON
     above = f > threshold_n
     if not above.any():
         return np.empty((0, 2))
-    padded = np.concatenate(([False], above, [False])).astype(np.int8)
-    edges = np.flatnonzero(np.diff(padded)).reshape(-1, 2)  # sample of first above, sample after last above
+    edges = runs_1d(above)  # sample of first above, sample after last above
     # merge short dips, drop short runs
     merge = int(round(MERGE_PLATE_GAP_S * rate_hz))
     runs = [list(edges[0])]
