@@ -307,13 +307,53 @@ class _Leg(NamedTuple):
     moments: object  # dynamics.JointMoments, or None without body mass
 
 
+@dataclass(frozen=True)
+class LegSignals:
+    """One leg's per-frame signals by name: joint signals ``joint[name]`` [..., F] and per-muscle signals
+    ``muscle[name]`` [..., F, muscle] (muscles in ``muscles.MUSCLES`` order); the same names after
+    time-normalisation, with a leading stride axis.
+
+    A dataclass of named numpy arrays rather than an xarray Dataset: the two kinds of signal share only the frame
+    axis, and the squad workers then need no further import (xarray and its pandas indexes cost more to import
+    than a trial's analysis takes).
+    """
+
+    joint: Mapping[str, np.ndarray]
+    muscle: Mapping[str, np.ndarray]
+
+    JOINT = ("hip_flexion_deg", "hip_adduction_deg", "knee_flexion_deg", "hip_moment_nm_per_kg",
+             "knee_moment_nm_per_kg")
+    MUSCLE = ("length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w")
+
+    def stacked(self) -> np.ndarray:
+        """[..., F, joint signals + muscle signals x muscles]: every signal as a column, for one call of a
+        routine that works column-wise (time normalisation)."""
+        return np.concatenate([np.stack([self.joint[n] for n in self.JOINT], axis=-1)]
+                              + [self.muscle[n] for n in self.MUSCLE], axis=-1)
+
+    @classmethod
+    def from_stacked(cls, columns: np.ndarray, n_muscles: int) -> "LegSignals":
+        """The inverse of :meth:`stacked` (any leading axes)."""
+        n_joint = len(cls.JOINT)
+        joint = {n: columns[..., k] for k, n in enumerate(cls.JOINT)}
+        muscle = {n: columns[..., n_joint + k * n_muscles:n_joint + (k + 1) * n_muscles]
+                  for k, n in enumerate(cls.MUSCLE)}
+        return cls(joint, muscle)
+
+    @classmethod
+    def concatenate(cls, legs: "list[LegSignals]", axis: int = 0) -> "LegSignals":
+        """The legs' signals one after another along ``axis`` (frames, or strides after normalisation)."""
+        return cls({n: np.concatenate([leg.joint[n] for leg in legs], axis=axis) for n in cls.JOINT},
+                   {n: np.concatenate([leg.muscle[n] for leg in legs], axis=axis) for n in cls.MUSCLE})
+
+
 class _LegTable(NamedTuple):
     """What one leg gives the strides table (see ``_stride_columns``)."""
 
     side: str
     strides: list
     late_starts: np.ndarray  # first frame of late swing, per stride
-    signals: np.ndarray  # [F, 5 + 6 x muscles]: the curve signals, per frame
+    signals: LegSignals  # the curve signals, per frame
     bands: dict  # muscle -> (strain %, l/l_opt) 5th/95th percentiles, each [2, strides]; empty without a band
     unmet: np.ndarray  # [F, 2] swing frames whose hip-extension / knee-flexion demand the muscles could not meet
     velocities: np.ndarray  # [F, muscles] musculotendon lengthening velocity (m/s)
@@ -331,7 +371,7 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
     rate = trial.rate_hz
     n_frames = trial.n_frames
     table_legs = []  # per side: what the strides table needs, made into one table for both legs at the end
-    curve_blocks: list[np.ndarray] = []  # per stride: [101, 5 + 6 x muscles]
+    curve_blocks: list[LegSignals] = []  # per leg: [stride, 101, ...]
     curve_keys: list[tuple[str, int]] = []
     dims_body = body.dims
     unmet_total = 0
@@ -394,6 +434,9 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         force_bands = dict(zip(with_moments, force_work_band(
             band_legs, rate, body_mass_kg=body_mass, height_m=height, strength_factor=athlete.strength_factor,
             n_samples=max(2, int(options.force_band_samples)))))
+    def per_muscle(values):  # {muscle: [F]} -> [F, muscle]
+        return np.column_stack([values[m] for m in MUSCLES])
+
     for side, (side_strides, joint, states, late_starts, bands, swing, moments) in legs.items():
         a = angles[side]
         forces = {m: np.full(n_frames, np.nan) for m in MUSCLES}
@@ -417,16 +460,18 @@ def _muscle_tables(trial, body, angles, valid, options, athlete, body_mass, spee
         knee_deg = np.degrees(a["knee_flexion"])
         strain_pct = {m: 100.0 * states[m].strain for m in MUSCLES}
         power = {m: -forces[m] * states[m].velocity_m_per_s for m in MUSCLES}  # delivered; negative = absorbing
-        columns = [hip_deg, np.degrees(a["hip_adduction"]), knee_deg, hip_moment, knee_moment]
-        for m in MUSCLES:
-            st = states[m]
-            columns += [st.length_m, strain_pct[m], st.fibre_length_lopt, st.velocity_lopt_per_s, forces[m],
-                        power[m]]
-        signals = np.column_stack(columns)
+        signals = LegSignals(
+            {"hip_flexion_deg": hip_deg, "hip_adduction_deg": np.degrees(a["hip_adduction"]),
+             "knee_flexion_deg": knee_deg, "hip_moment_nm_per_kg": hip_moment, "knee_moment_nm_per_kg": knee_moment},
+            {"length_m": per_muscle({m: states[m].length_m for m in MUSCLES}), "strain_pct": per_muscle(strain_pct),
+             "fibre_length_lopt": per_muscle({m: states[m].fibre_length_lopt for m in MUSCLES}),
+             "velocity_lopt_per_s": per_muscle({m: states[m].velocity_lopt_per_s for m in MUSCLES}),
+             "force_n": per_muscle(forces), "power_w": per_muscle(power)})
         table_legs.append(_LegTable(side, side_strides, late_starts, signals, bands, unmet,
-                                    np.column_stack([states[m].velocity_m_per_s for m in MUSCLES]), shortfall,
+                                    per_muscle({m: states[m].velocity_m_per_s for m in MUSCLES}), shortfall,
                                     force_bands.get(side, {})))
-        curve_blocks.extend(normalise_strides(signals, side_strides, rate))
+        curve_blocks.append(LegSignals.from_stacked(normalise_strides(signals.stacked(), side_strides, rate),
+                                                    len(MUSCLES)))
         curve_keys.extend((side, s.index + 1) for s in side_strides)
     stride_columns = _stride_columns(table_legs, rate, bool(body_mass), speed, athlete, trial.name)
     curves = _curve_columns(curve_blocks, curve_keys, athlete, trial.name, MUSCLES)
@@ -476,7 +521,7 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
     n_mus = len(MUSCLES)
     strides = [s for leg in legs for s in leg.strides]
     n_str = len(strides)
-    n_frames = legs[0].signals.shape[0]
+    n_frames = legs[0].signals.joint["hip_flexion_deg"].shape[0]
     offset = np.repeat(np.arange(len(legs)) * n_frames, [len(leg.strides) for leg in legs])  # frame offset per stride
     start = np.array([s.start_frame for s in strides], dtype=int) + offset
     stop = np.array([s.end_frame for s in strides], dtype=int) + offset
@@ -485,13 +530,14 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
                                      start), stop)
     foot_strike = np.array([s.foot_strike_s for s in strides])
     stride_time = np.array([s.stride_time_s for s in strides])
-    signals = np.concatenate([leg.signals for leg in legs])  # [legs x F, 5 + 6 x muscles]
-    per_muscle = signals[:, 5:].reshape(len(signals), n_mus, 6)  # length, strain %, l/l_opt, velocity, force, power
+    signals = LegSignals.concatenate([leg.signals for leg in legs])  # legs' frames one after the other
+    joint, muscle = signals.joint, signals.muscle
     # peaks over late swing (strain, l/l_opt), over swing (velocity, knee flexion, force) and over the stride
-    late_peaks, late_at = window_peaks(np.concatenate([per_muscle[:, :, 1], per_muscle[:, :, 2]], axis=1), late, stop)
+    late_peaks, late_at = window_peaks(np.concatenate([muscle["strain_pct"], muscle["fibre_length_lopt"]], axis=1),
+                                       late, stop)
     peak_strain, peak_lopt, i_peak = late_peaks[:, :n_mus], late_peaks[:, n_mus:], late_at[:, :n_mus] - offset[:, None]
-    swing_peaks, _ = window_peaks(np.concatenate([per_muscle[:, :, 3], signals[:, 2:3], per_muscle[:, :, 4]], axis=1),
-                                  swing_lo, stop)
+    swing_peaks, _ = window_peaks(np.concatenate([muscle["velocity_lopt_per_s"], joint["knee_flexion_deg"][:, None],
+                                                  muscle["force_n"]], axis=1), swing_lo, stop)
     peak_vel, peak_knee, peak_force = swing_peaks[:, :n_mus], swing_peaks[:, n_mus], swing_peaks[:, n_mus + 1:]
     with np.errstate(invalid="ignore"):
         peak_time = np.where(i_peak >= 0, 100.0 * (i_peak / rate - foot_strike[:, None]) / stride_time[:, None],
@@ -525,7 +571,7 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
         "late_swing_start_pct": per_stride([s.late_swing_start_pct for s in strides]),
         "event_source": per_stride([s.event_source for s in strides]),
         "speed_m_s": per_stride([speed] * n_str),
-        "peak_hip_flexion_deg": per_stride(window_peaks(signals[:, 0], start, stop)[0]),
+        "peak_hip_flexion_deg": per_stride(window_peaks(joint["hip_flexion_deg"], start, stop)[0]),
         "peak_knee_flexion_deg": per_stride(peak_knee),
         "late_swing_moments_met_pct": per_stride(late_met),
         "late_swing_hip_extension_met_pct": per_stride(met_pct(unmet[:, 0])),
@@ -541,7 +587,7 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
         columns[name] = np.concatenate([np.column_stack([leg.bands[m][source][q] for m in MUSCLES]) if leg.bands
                                         else nan[:len(leg.strides)] for leg in legs]).ravel()
     if with_mass:
-        force = per_muscle[:, :, 4]
+        force = muscle["force_n"]
         velocity = np.concatenate([leg.velocities for leg in legs])
         absorbed, produced = window_work(np.nan_to_num(force), velocity, rate, swing_lo, stop)
         columns.update(peak_force_n=peak_force.ravel(), negative_work_j=absorbed.ravel(),
@@ -555,20 +601,15 @@ def _stride_columns(legs: list[_LegTable], rate, with_mass, speed, athlete, tria
     return columns
 
 
-def _curve_columns(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlete, trial: str,
+def _curve_columns(blocks: list[LegSignals], keys: list[tuple[str, int]], athlete, trial: str,
                    muscles) -> dict[str, np.ndarray]:
     """One long table for the trial, as columns: a row per stride, muscle and percent of the cycle."""
-    if not blocks:
+    if not keys:
         return {}
-    n_pct, n_mus = 101, len(muscles)
-    data = np.stack(blocks)  # [stride, 101, 5 + 6 x muscles]
-    n_str = data.shape[0]
-    shared = np.repeat(data[:, None, :, :5], n_mus, axis=1)  # [stride, muscle, 101, 5]
-    per_muscle = data[:, :, 5:].reshape(n_str, n_pct, n_mus, 6).transpose(0, 2, 1, 3)  # [stride, muscle, 101, 6]
+    curves = LegSignals.concatenate(blocks)  # joint [stride, 101], muscle [stride, 101, muscle]
+    n_str, n_pct = curves.joint["hip_flexion_deg"].shape
+    n_mus = len(muscles)
     rows = n_str * n_mus * n_pct
-    names_shared = ["hip_flexion_deg", "hip_adduction_deg", "knee_flexion_deg", "hip_moment_nm_per_kg",
-                    "knee_moment_nm_per_kg"]
-    names_muscle = ["length_m", "strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w"]
     columns = {
         "athlete": np.full(rows, athlete.athlete), "session": np.full(rows, athlete.session),
         "trial": np.full(rows, trial),
@@ -577,6 +618,8 @@ def _curve_columns(blocks: list[np.ndarray], keys: list[tuple[str, int]], athlet
         "muscle": np.tile(np.repeat(np.array(list(muscles)), n_pct), n_str),
         "pct": np.tile(np.linspace(0.0, 100.0, n_pct), n_str * n_mus),
     }
-    columns.update((name, shared[..., k].reshape(rows)) for k, name in enumerate(names_shared))
-    columns.update((name, per_muscle[..., k].reshape(rows)) for k, name in enumerate(names_muscle))
+    # rows: stride, then muscle, then percent of the cycle
+    columns.update((name, np.repeat(values[:, None, :], n_mus, axis=1).reshape(rows))
+                   for name, values in curves.joint.items())
+    columns.update((name, values.transpose(0, 2, 1).reshape(rows)) for name, values in curves.muscle.items())
     return {name: columns[name] for name in CURVE_COLUMNS}
