@@ -74,3 +74,27 @@ def test_events_angles_and_strides_match_truth(tmp_path, name):
     treadmill = is_treadmill(lm)
     assert treadmill == spec.treadmill
     assert running_speed(lm, events, treadmill) == pytest.approx(spec.speed_m_s, rel=0.05)
+
+
+def test_analyse_trial_takes_a_trial_in_memory(tmp_path):
+    # a notebook user reads a trial, edits it, and analyses the edited trial without writing a file
+    from dataclasses import replace
+
+    from hamstride.c3d import read_c3d
+    from hamstride.errors import HamstrideError
+    from hamstride.pipeline import AnalysisOptions, AthleteInfo, analyse_trial
+
+    path = tmp_path / "memory.c3d"
+    write_sprint_trial(path, SprintSpec(speed_m_s=8.5, seed=6))
+    options = AnalysisOptions(monte_carlo_samples=0, force_band_samples=0)
+    athlete = AthleteInfo(body_mass_kg=75.0)
+    from_file = analyse_trial(path, options, athlete=athlete)
+    trial = read_c3d(path)
+    in_memory = analyse_trial(trial, options, athlete=athlete)
+    assert from_file.strides.equals(in_memory.strides) and from_file.curves.equals(in_memory.curves)
+    # the edit is what gets analysed: a lateral knee marker renamed is a landmark the map no longer finds
+    knee = trial.labels.index("r.knee.lat")  # the generator's default labels
+    edited = replace(trial, labels=trial.labels[:knee] + ("renamed",) + trial.labels[knee + 1:])
+    with pytest.raises(HamstrideError) as error:
+        analyse_trial(edited, options, athlete=athlete)
+    assert error.value.code == "landmark_missing"

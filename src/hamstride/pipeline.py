@@ -145,7 +145,7 @@ _STATIC_CALIBRATIONS: dict[tuple, tuple] = {}
 
 
 def _static_calibration(static_path: str, marker_map):
-    from .c3d import read_c3d
+    from .c3d import MarkerTrial, read_c3d
     from .landmarks import resolve_landmarks
     from .segments import calibrate
     from .signal import smooth_landmarks
@@ -175,15 +175,18 @@ def landmarks_with_static(trial, marker_map, static_path: str | Path | None = No
     return reconstruct_missing(seen, calibration), seen, recoverable, calibration
 
 
-def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *,
+def trial_kinematics(path: "str | Path | MarkerTrial", options: AnalysisOptions = AnalysisOptions(), *,
                      athlete: AthleteInfo = AthleteInfo(), static_path: str | Path | None = None,
                      markers: str | Path | None = None) -> Kinematics:
-    """io -> landmarks -> signal -> segments -> angles -> events -> strides for one trial."""
+    """io -> landmarks -> signal -> segments -> angles -> events -> strides for one trial.
+
+    ``path``: a C3D file, or a trial already in memory (``c3d.MarkerTrial`` as ``c3d.read_c3d`` returns it, e.g.
+    edited in a notebook); its force plates are read from ``trial.path`` when that file exists and has them."""
     from .angles import joint_angles
     from .checks import (check_body_size, check_landmark_gaps, check_marker_trial, check_sides, check_speed,
                          check_stride_count)
     from .events import detect_events, drop_events_near_edges, is_treadmill, running_speed
-    from .c3d import read_c3d
+    from .c3d import MarkerTrial, read_c3d
     from .labframe import to_lab_frame
     from .landmarks import crop_landmarks, crop_trial, load_marker_map, visible_window
     from .plates import apply_plate_contacts, attach_force_plates, crop_force_plates
@@ -192,7 +195,7 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
     from .strides import cut_strides
 
     marker_map = load_marker_map(markers)
-    trial = read_c3d(Path(path))
+    trial = path if isinstance(path, MarkerTrial) else read_c3d(Path(path))
     warnings: list[TrialWarning] = list(check_marker_trial(trial, marker_map.landmarks.values()))
     lm, seen, recoverable, calibration = landmarks_with_static(trial, marker_map, static_path)
     # overground capture volume: analyse where every required landmark is seen (missing before the athlete enters
@@ -248,9 +251,10 @@ def trial_kinematics(path: str | Path, options: AnalysisOptions = AnalysisOption
                       window, rebuilt)
 
 
-def analyse_trial(path: str | Path, options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
+def analyse_trial(path: "str | Path | MarkerTrial", options: AnalysisOptions = AnalysisOptions(), *, athlete: AthleteInfo = AthleteInfo(),
                   static_path: str | Path | None = None, markers: str | Path | None = None) -> TrialResult:
-    """Run one trial through the whole pipeline and return its stride and curve tables."""
+    """Run one trial (a C3D file, or a ``c3d.MarkerTrial`` in memory) through the whole pipeline and return its
+    stride and curve tables."""
     kin = trial_kinematics(path, options, athlete=athlete, static_path=static_path, markers=markers)
     trial = kin.trial
     valid = kin.valid_strides

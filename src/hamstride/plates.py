@@ -104,6 +104,8 @@ def attach_force_plates(trial: "MarkerTrial") -> "MarkerTrial":
     otherwise (no second read of files without plates)."""
     if trial.lab is None or not trial.meta.get("force_platforms"):  # FORCE_PLATFORM:USED, read with the markers
         return trial
+    if not Path(trial.path).is_file():  # a trial made in memory: no file to read its plates from
+        return trial
     return replace(trial, force_plates=read_force_plates(trial.path, trial.lab.file_to_lab, trial.units_in_file))
 
 
