@@ -335,11 +335,11 @@ def test_pelvis_never_falls_faster_than_gravity(speed):
 
 def test_mid_swing_hip_moment_has_no_spike():
     # Between the early-swing flexion peak and terminal swing the hip brakes the thigh: the net hip flexion moment
-    # there stays well below the early-swing peak (7-8 N m/kg at 9 m/s). Our line 3 N m/kg: the stance design of
+    # there stays well below the early-swing peak (6.7-7.0 N m/kg at 9 m/s). Our line 3 N m/kg: the stance design of
     # the other leg (two quintics meeting at mid-stance) swung the hips' vertical acceleration to -54 then +87 m/s^2
     # just before its toe-off, which gave +5.8 N m/kg at 60 % of this swing; now one quintic per stance (-18 to +44
-    # m/s^2) and the knee's late-swing extension switching from speeding up to slowing down with the hip's peak,
-    # so their changes of acceleration cancel in the hip moment: 1.9 N m/kg.
+    # m/s^2) and hip and knee curves without steps of angular acceleration (synth._least_effort; a step of the
+    # knee's alone at the hip's peak gave 3.5 N m/kg): 2.1-2.3 N m/kg.
     _, _, truth = _sim_kw(speed_m_s=9.0, seed=4, noise_mm=0.0, n_gaps=0)
     t = truth.time_s
     n_swings = 0
@@ -353,32 +353,43 @@ def test_mid_swing_hip_moment_has_no_spike():
     assert n_swings >= 4
 
 
-@pytest.mark.xfail(strict=True, reason="issue 14, measured: the generator's swing asks for more work than sprinters "
-                   "do: at 9 m/s hip positive work 6.0-6.3 J/kg and knee negative work 4.1-4.2 J/kg per swing (8 m/s: "
-                   "5.1-5.4 and 3.6), against about 4.3 and 2.9 J/kg at 9.7-10 m/s (Nagahara et al. 2017); the "
-                   "early-swing hip flexion moment peaks at 7-8 N m/kg. Its terminal-swing extension moment is in "
-                   "range (test above); a smoother swing design is left open")
-def test_swing_joint_work_is_of_published_sprint_size():
-    # Outside reference: Nagahara et al. 2017, Biol Open 6:633 [V, abstract]: over the whole swing of male sprinters
-    # at 9.7-10 m/s, positive hip work about 4.3 J/kg and negative knee work about -2.9 J/kg. At 9 m/s the generator
-    # should ask for no more (our margin +25 %, common practice: group means, slower speed). Work = integral of the
-    # net moment x joint angular velocity (flexion positive for both), swing frames only.
-    _, _, truth = _sim_kw(speed_m_s=9.0, seed=4, noise_mm=0.0, n_gaps=0)
+def _swing_work_per_kg(truth, side):
+    """(positive hip work, negative knee work) in J/kg of each whole swing of ``side``: the integral of the net
+    moment x joint angular velocity (flexion positive for both), swing frames only."""
     t = truth.time_s
     dt_s = t[1] - t[0]
-    n_swings = 0
-    for side in SIDES:
-        hip, knee = _swing_moments_per_kg(truth, side)
-        hip_power = hip * np.gradient(truth.angles[side]["hip_flexion"], dt_s)
-        knee_power = knee * np.gradient(truth.angles[side]["knee_flexion"], dt_s)
-        for to, next_fs in _whole_swings(truth, side):
-            swing = (t >= to) & (t <= next_fs)
-            hip_positive = np.trapezoid(np.clip(np.nan_to_num(hip_power[swing]), 0.0, None), dx=dt_s)
-            knee_negative = -np.trapezoid(np.clip(np.nan_to_num(knee_power[swing]), None, 0.0), dx=dt_s)
-            assert 2.0 <= hip_positive <= 1.25 * 4.3, side
-            assert 1.5 <= knee_negative <= 1.25 * 2.9, side
-            n_swings += 1
-    assert n_swings >= 4
+    hip, knee = _swing_moments_per_kg(truth, side)
+    hip_power = hip * np.gradient(truth.angles[side]["hip_flexion"], dt_s)
+    knee_power = knee * np.gradient(truth.angles[side]["knee_flexion"], dt_s)
+    for to, next_fs in _whole_swings(truth, side):
+        swing = (t >= to) & (t <= next_fs)
+        yield (np.trapezoid(np.clip(np.nan_to_num(hip_power[swing]), 0.0, None), dx=dt_s),
+               -np.trapezoid(np.clip(np.nan_to_num(knee_power[swing]), None, 0.0), dx=dt_s))
+
+
+# Outside reference: Nagahara et al. 2017, Biol Open 6:633 [V, abstract]: over the whole swing of male sprinters at
+# 9.7-10 m/s, positive hip work about 4.3 J/kg and negative knee work about -2.9 J/kg. At 9 m/s the generator should
+# ask for no more (our margin +25 %, common practice: group means, slower speed) and not for almost nothing (lower
+# bounds 2.0 / 1.5 J/kg, our line).
+def test_swing_negative_knee_work_is_of_published_sprint_size():
+    # Measured at 9 m/s: 3.4-3.5 J/kg (the earlier constant-acceleration swing: 4.0-4.2).
+    _, _, truth = _sim_kw(speed_m_s=9.0, seed=4, noise_mm=0.0, n_gaps=0)
+    works = [knee for side in SIDES for _, knee in _swing_work_per_kg(truth, side)]
+    assert len(works) >= 4
+    assert all(1.5 <= w <= 1.25 * 2.9 for w in works), works
+
+
+@pytest.mark.xfail(strict=True, reason="issue 14, measured: positive hip work per swing 5.2-5.6 J/kg at 9 m/s (8 m/s: "
+                   "4.5-4.8), against about 4.3 J/kg at 9.7-10 m/s (Nagahara et al. 2017; bound 5.4 = +25 %): 2.9 "
+                   "J/kg raising the thigh to its peak (790 deg/s) and 2.5 J/kg extending it into the strike at a "
+                   "constant acceleration (476 deg/s at strike, the fastest of the swing); a late swing whose "
+                   "extension rate peaks before the strike needs another stance start (not verified against a "
+                   "published rate profile, left open)")
+def test_swing_positive_hip_work_is_of_published_sprint_size():
+    _, _, truth = _sim_kw(speed_m_s=9.0, seed=4, noise_mm=0.0, n_gaps=0)
+    works = [hip for side in SIDES for hip, _ in _swing_work_per_kg(truth, side)]
+    assert len(works) >= 4
+    assert all(2.0 <= w <= 1.25 * 4.3 for w in works), works
 
 
 def test_asymmetry_reduces_late_swing_hip_flexion_and_knee_extension_on_one_side():
