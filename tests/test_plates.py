@@ -317,7 +317,10 @@ def test_sprint_toe_offs_with_3_mm_marker_noise_are_taken_where_the_foot_leaves_
         "floor tolerance ~1.5 frames after touchdown, and Handsaker's acceleration peak lags touchdown by the "
         "impact's rise (~5 ms here; +3.1 ms on Handsaker et al.'s plates). Not the filter's doing: detecting the "
         "events on landmarks low-passed at 30-60 Hz instead of the kinematics' 17-22 Hz leaves them +5.1 to +4.4 ms "
-        "late (benchmarks/events_running.py --event-cutoffs). Toe-offs meet the limits (2.5 / 3.4 ms)"))),
+        "late (benchmarks/events_running.py --event-cutoffs). Nor is the peak the trouble: timed by the onset of the "
+        "deceleration transient instead, the strikes come early, because the filter spreads the transient "
+        "symmetrically (baseline exit at 3 SD -11.9 ms, 50 % instant -6.3 ms, steepest rise -5.0 ms at 9 m/s; "
+        "-17.0 / -8.2 / -6.7 ms at 3.5 m/s; --onset-study). Toe-offs meet the limits (2.5 / 3.4 ms)"))),
 ])
 def test_marker_rule_alone_meets_issue_13_acceptance(speed):
     # issue 13 acceptance: marker rule alone (plates removed, no toe marker, heel cluster), generated running at
