@@ -17,13 +17,15 @@ smears the landing and lift-off that the rules time (issue 13); the answer is in
 peak (the force plate's analogue: a plate times contact by the force's onset, 20 N, not its peak), on the
 acceleration of the foot landmark lowest at the impact, after the default filtering:
   "peak"      Handsaker et al. 2016's acceleration peak (the impact the rule starts from);
-  "rule"      the marker rule as it stands (floor arrival or descent arrest near that peak);
+  "rule"      the marker rule without the changepoint (floor arrival or descent arrest near that peak);
   "3 SD"      the last instant before the peak that the acceleration rises through its swing baseline + 3 SD
               (baseline median and SD over 60-20 ms before the peak; Hodges & Bui 1996's threshold onset);
   "half-max"  the last instant before the peak that the acceleration rises through half-way from that baseline to
               the peak (the 50 % reference level instant of a transition, IEEE Std 181);
   "jerk"      the peak jerk on the rise (the steepest rise of the deceleration: the instant the floor's force
               steps in, as Handsaker et al. time toe-off by the jerk where it steps out);
+  "changepoint" the marker rule as the pipeline runs it: the rule's strike refined to the touchdown changepoint of
+              the unfiltered heights (events._touchdown_changepoint);
   "settled"   the rule's floor arrival (within 5 mm) measured from each landing's own settled height (the lowest
               landmark's height where it stops descending, Fellin et al. 2010's instant) instead of the trial's floor
               level: a floor level from each landing's own compression rather than the deepest stance's.
@@ -66,14 +68,15 @@ def _event_cutoff(lm, choice) -> float | None:
 
 
 def _trial(spec: RunSpec, cutoff=None):
-    """(truth, filtered landmarks in the lab frame) as the pipeline makes them (writer, reader, lab frame, filter)."""
+    """(truth, filtered landmarks, unfiltered landmarks; lab frame) as the pipeline makes them (writer, reader, lab
+    frame, filter)."""
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "run.c3d"
         truth = write_run_trial(path, spec)
         trial = read_c3d(path)
-        _, lm = to_lab_frame(trial, resolve_landmarks(trial, load_marker_map(None)))
-        lm, _ = smooth_landmarks(lm, keep_clusters=False, cutoff_hz=cutoff)
-    return truth, lm
+        _, raw = to_lab_frame(trial, resolve_landmarks(trial, load_marker_map(None)))
+        lm, _ = smooth_landmarks(raw, keep_clusters=False, cutoff_hz=cutoff)
+    return truth, lm, raw
 
 
 def _last_crossing_up(y: np.ndarray, level: float, lo: int, hi: int) -> float:
@@ -86,7 +89,7 @@ def _last_crossing_up(y: np.ndarray, level: float, lo: int, hi: int) -> float:
     return lo + k + (level - seg[k]) / (seg[k + 1] - seg[k])
 
 
-ONSETS = ("peak", "rule", "3 SD", "half-max", "jerk", "settled")
+ONSETS = ("peak", "rule", "3 SD", "half-max", "jerk", "settled", "changepoint")
 
 
 def _onsets(heights, rate: float) -> list[dict[str, float]]:
@@ -133,8 +136,9 @@ def _onset_study(seeds: int) -> None:
         for speed in (3.5, 9.0):
             errs = {name: [] for name in ONSETS}
             for seed in range(seeds):
-                truth, lm = _trial(replace(RunSpec(speed_m_s=speed, seed=seed), **change))
-                rule = detect_events(lm).foot_strikes_s
+                truth, lm, raw = _trial(replace(RunSpec(speed_m_s=speed, seed=seed), **change))
+                rule = detect_events(lm).foot_strikes_s  # the rule alone, without the touchdown changepoint
+                refined = detect_events(lm, unfiltered=raw).foot_strikes_s
                 end = (lm.n_frames - 1) / lm.rate_hz
                 for side in SIDES:
                     found = _onsets(_foot_heights(lm, side), lm.rate_hz)
@@ -144,7 +148,8 @@ def _onset_study(seeds: int) -> None:
                             continue
                         near = found[int(np.argmin(np.abs(peaks - t)))]
                         for name in ONSETS:
-                            x = rule[side] if name == "rule" else np.array([near[name] / lm.rate_hz])
+                            x = {"rule": rule, "changepoint": refined}.get(name, {}).get(side)
+                            x = np.array([near[name] / lm.rate_hz]) if x is None else x
                             errs[name].append(1000.0 * (x[np.argmin(np.abs(x - t))] - t))
             cells = []
             for name in ONSETS:
@@ -162,8 +167,8 @@ def _errors(spec: RunSpec, cutoff=None) -> tuple[np.ndarray, np.ndarray]:
             trial = read_c3d(path)
             _, raw = to_lab_frame(trial, resolve_landmarks(trial, load_marker_map(None)))
         cutoff = _event_cutoff(raw, cutoff)
-    truth, lm = _trial(spec, cutoff)
-    events = detect_events(lm)
+    truth, lm, raw = _trial(spec, cutoff)
+    events = detect_events(lm, unfiltered=raw)  # as the pipeline calls it
     end = (lm.n_frames - 1) / lm.rate_hz
     out = []
     for true, found in ((truth.foot_strikes_s, events.foot_strikes_s), (truth.toe_offs_s, events.toe_offs_s)):
