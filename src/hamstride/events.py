@@ -7,6 +7,17 @@ which starts before the foot is on the floor, so it runs a few ms early. The str
 refined, near the impact, to the first instant the foot's lowest landmark either reaches its floor level
 (within 5 mm) or has its descent arrested (vertical speed down to a quarter of its approach speed): the
 definition of touchdown itself, not an offset.
+Touchdown changepoint (when the pipeline hands over the unfiltered landmarks): the floor's force starts at
+touchdown, so there the foot markers' vertical acceleration (or, with a pad whose force rises from zero, its rate)
+changes abruptly while position and velocity stay continuous, at the same instant for every marker of the foot.
+Near the rule's strike the unfiltered heights of all foot markers are fitted with one cubic each whose 2nd and 3rd
+derivatives may jump at a common join point, found by least squares on a grid (segmented regression: Hudson 1966,
+Lerman 1980), the malleoli included (the impact stops foot and shank together); the join point replaces the strike
+when its 95 % likelihood-ratio interval is narrower than 8 ms and, after it, the floor holds the landing marker and
+(significantly) the malleoli above the paths they were falling on; a foot stopped in the air by turning about its
+ankle is not a touchdown. This removes the lag of floor arrival on a
+compressed pad (a forefoot marker still ~9 mm above its stance floor level at touchdown) without a tolerance to
+tune, and leaves the rule's strike where the markers are too noisy to place the join (3 mm noise).
 Toe-off (Handsaker et al. 2016): the peak vertical jerk of the toe marker (first metatarsal without one), taken
 among the instants when the foot is leaving the floor: the toe landmark rising and the heel already lifted (more
 than the 25 mm that counts as a low foot; heel-off precedes toe-off in the push-off). With marker noise the
@@ -29,9 +40,20 @@ noise, and with 3 mm noise foot strikes at 3.5 m/s reach p95 59-76 ms); Winter's
 markers' heights alone picks 19-24 Hz (kinematics: 17-22 Hz; 10-14 Hz with 3 mm noise) and changes the errors by
 < 1 ms. So one cutoff serves both.
 Measured limits (benchmarks/events_running.py, running-feet generator whose feet land and lift like runners' feet,
-no toe marker, 8 seeds): foot strikes |error| median 4.3 / p95 7.7 ms at 3.5 m/s (heel landings) and 6.1 / 6.8 ms
-at 9 m/s (forefoot landings, +6 ms late: the metatarsal marker is still ~9 mm above its stance floor level at
-touchdown); toe-offs without a toe marker 5.1 / 9.0 ms (-5 ms early) and 2.5 / 3.4 ms.
+no toe marker, 8 seeds): foot strikes |error| median 1.8 / p95 6.7 ms at 3.5 m/s (heel landings) and 0.9 / 2.1 ms
+at 9 m/s (forefoot landings); the rule alone, without the changepoint, 4.3 / 7.7 ms and 6.1 / 6.8 ms (+6 ms late:
+the metatarsal marker is still ~9 mm above its stance floor level at touchdown); toe-offs without a toe marker
+5.1 / 9.0 ms (-5 ms early) and 2.5 / 3.4 ms.
+Timing the strike by the ONSET of the landing's deceleration transient instead of its peak (a force plate's analogue:
+a plate times contact by the force's onset, not its peak) does not remove that lag (benchmarks/events_running.py
+--onset-study, 8 seeds, |error| median and bias at 3.5 / 9 m/s): the zero-lag filter and the derivative spread the
+transient symmetrically, so it starts to rise 12-17 ms before touchdown. Its exit from the swing baseline (3 SD,
+Hodges & Bui 1996) comes 17 / 12 ms early, its 50 % instant (IEEE Std 181) 8 / 6 ms early, its steepest rise
+(peak jerk) 7 / 5 ms early, each earlier still with 3 mm noise (lower cutoff); a symmetric blur keeps only the
+transient's centroid, which lies after touchdown by the time the pad takes to stop the foot. A floor level taken
+from each landing's own settled height (where the descent stops) instead of the trial's deepest stance helps the
+heel landings (3.5 m/s 1.6 / 4.9 ms) but not the forefoot ones (9 m/s +6.8 ms). Hence the changepoint on the
+unfiltered heights above, which needs no filter and no tolerance.
 """
 from __future__ import annotations
 
@@ -48,6 +70,7 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
     from .landmarks import Landmarks
 
 STRIKE_MARKERS = ("heel", "first_metatarsal")  # Handsaker et al. 2016: heel or first metatarsal
+SHANK_MARKERS = ("lateral_malleolus", "medial_malleolus")  # stopped with the foot at touchdown (_touchdown_changepoint)
 FOOT_MARKERS = ("heel", "first_metatarsal", "fifth_metatarsal", "toe_tip")
 PELVIS_MARKERS = ("left_asis", "right_asis", "left_psis", "right_psis")
 
@@ -70,6 +93,14 @@ C3D_DISAGREEMENT_FRAMES = 2     # issue 3: flag C3D vs marker events more than 2
 GAP_GUARD_S = 0.02              # events this close to missing foot-marker data are not trusted (design choice)
 MISSING_EVENT_S = 0.03          # a marker event this far from every C3D event means the file lacks one
 TREADMILL_MAX_PELVIS_SPEED = 1.0  # m/s net forward pelvis speed below which it is a treadmill trial (common practice)
+# touchdown changepoint on the unfiltered marker heights (_touchdown_changepoint; design choices unless stated)
+TOUCHDOWN_FIT_S = (0.04, 0.024)     # fitted span before and after the rule's strike: 40 ms of late-swing fall, 24 ms
+                                    # of landing (the pad stops the foot within 10-20 ms)
+TOUCHDOWN_SEARCH_S = (0.016, 0.008)  # changepoint searched from 16 ms before to 8 ms after the rule's strike (the
+                                     # floor-arrival rule runs late, not early, when the pad is compressed: module doc)
+TOUCHDOWN_STEP_FRAMES = 0.1         # grid step of the search (Lerman 1980's grid search), frames
+TOUCHDOWN_MAX_CI_S = 0.008          # use the changepoint only when its 95 % confidence interval is narrower than
+                                    # this: more precise than the rule it replaces (rule's p95 |error| 7.7 ms)
 
 
 @dataclass(frozen=True)
@@ -152,6 +183,19 @@ def _foot_heights(lm: "Landmarks", side: str) -> dict[str, np.ndarray]:
         )
     return {m: _fill_nan(np.asarray(points[f"{side}_{m}"], float)[:, 2])
             for m in FOOT_MARKERS if f"{side}_{m}" in points}
+
+
+def _unfiltered_heights(unfiltered: "Landmarks | None", side: str, heights: Mapping[str, np.ndarray],
+                        n_frames: int) -> np.ndarray | None:
+    """[landmark, F] vertical coordinate before low-pass filtering (gaps left missing) of the same foot landmarks
+    (in the order of ``heights``) followed by the SHANK_MARKERS, or None when they are not all given."""
+    if unfiltered is None:
+        return None
+    points = unfiltered.points
+    names = [f"{side}_{m}" for m in (*heights, *SHANK_MARKERS)]
+    if any(name not in points or len(points[name]) != n_frames for name in names):
+        return None
+    return np.stack([np.asarray(points[name], float)[:, 2] for name in names])
 
 
 def _missing_foot_frames(lm: "Landmarks", side: str) -> np.ndarray:
@@ -281,8 +325,79 @@ def _descent_arrest(vz: np.ndarray, rel: np.ndarray, impact: int, lo: int, hi: i
     return _first_crossing_up(v, level, max(lo, i_fast), hi)
 
 
+def _touchdown_changepoint(z: np.ndarray, guess: float, rate_hz: float, landing: int,
+                           shank: Iterable[int]) -> float | None:
+    """Touchdown as the join point of a segmented cubic fitted to the foot markers' unfiltered heights.
+
+    Where the floor's force starts, the foot's vertical acceleration (or its rate) steps while its position and
+    velocity stay continuous; every marker of the (rigid) foot and the shank's malleoli, which the impact stops with
+    the foot (Clark et al. 2017's two-mass model), see the step at the same instant. So the heights [marker, F] are
+    fitted, over TOUCHDOWN_FIT_S around ``guess`` (the rule's strike, frames), by least squares with one cubic per
+    marker whose second and third derivatives may jump at a common join point t0 (the truncated power basis
+    (t - t0)_+^2, (t - t0)_+^3); t0 is the grid point (TOUCHDOWN_STEP_FRAMES) of least residual sum of squares
+    within TOUCHDOWN_SEARCH_S (the maximum-likelihood join point under white marker noise). Its 95 % confidence
+    interval is the set of join points whose residual sum of squares lies within chi2(1, 0.95) residual variances
+    of the least (likelihood ratio; Lerman 1980). Unfiltered data, because a zero-lag low-pass spreads the step
+    symmetrically and only its centroid, after touchdown, survives (module doc).
+
+    Returns None (keep the rule's strike) when the fitted span leaves the trial or holds missing data, when the
+    least residual lies at the edge of the search, when the interval is wider than TOUCHDOWN_MAX_CI_S (noisy
+    markers: a biased but steady rule beats an unbiased but scattered changepoint), or when after the join the
+    ``landing`` marker (row of z) is not held above the path it was falling on (the floor pushes up, never down) or
+    the ``shank`` rows (malleoli) are not, on average, held above theirs by more than their one-sided 95 % margin (a
+    foot stopped in the air by turning about its ankle leaves the shank on its path: no floor).
+
+    References
+    ----------
+    Hudson DJ 1966, J Am Stat Assoc 61:1097 (segmented curves with estimated join points; from memory).
+    Lerman PM 1980, Appl Stat 29:77 (grid search and likelihood inference for the transition point; verified).
+    Clark KP, Ryan LJ, Weyand PG 2017, J Exp Biol 220:247 (two-mass model: foot and shank stopped in the impact).
+    """
+    from scipy.stats import chi2, norm
+
+    n = z.shape[1]
+    lo = int(np.floor(guess - TOUCHDOWN_FIT_S[0] * rate_hz))
+    hi = int(np.ceil(guess + TOUCHDOWN_FIT_S[1] * rate_hz)) + 1
+    if lo < 0 or hi > n:
+        return None
+    y = z[:, lo:hi].T  # [frames, markers]
+    if not np.isfinite(y).all():
+        return None
+    knots = np.arange(guess - TOUCHDOWN_SEARCH_S[0] * rate_hz, guess + TOUCHDOWN_SEARCH_S[1] * rate_hz + 1e-9,
+                      TOUCHDOWN_STEP_FRAMES)
+    d = (np.arange(lo, hi)[None, :] - knots[:, None]) / rate_hz  # [knot, frame], s
+    after = np.where(d > 0.0, d, 0.0)
+    x = np.stack([np.ones_like(d), d, d ** 2, d ** 3, after ** 2, after ** 3], axis=-1)  # [knot, frame, 6]
+    # least squares for every knot at once: thin QR of each design matrix, residual = y minus its projection
+    q, _ = np.linalg.qr(x)
+    fitted = q @ (np.swapaxes(q, 1, 2) @ y[None])
+    rss = ((y[None] - fitted) ** 2).sum(axis=(1, 2))
+    best = int(np.argmin(rss))
+    dof = y.size - x.shape[-1] * y.shape[1] - 1
+    if best in (0, knots.size - 1) or dof <= 0:
+        return None
+    variance = rss[best] / dof
+    inside = knots[rss <= rss[best] + chi2.ppf(0.95, 1) * variance]
+    if inside.max() - inside.min() > TOUCHDOWN_MAX_CI_S * rate_hz:
+        return None
+    # a landing: after the join the floor holds the foot's landing marker and the shank's markers above the paths
+    # they were falling on (the impact stops foot and shank together); the shank's rise, one-sided 95 %
+    coef = np.linalg.lstsq(x[best], y, rcond=None)[0]  # [6, markers]
+    span = d[best, -1]
+    lead = np.array([0.0, 0.0, 0.0, 0.0, span ** 2, span ** 3])
+    rise = lead @ coef  # per marker, m
+    shank = list(shank)
+    var_rise = lead @ np.linalg.solve(x[best].T @ x[best], lead) * variance
+    if rise[landing] <= 0.0 or not shank:
+        return None
+    if rise[shank].mean() <= norm.ppf(0.95) * np.sqrt(var_rise / len(shank)):
+        return None
+    return float(knots[best])
+
+
 def _detect_side(
-    heights: Mapping[str, np.ndarray], rate_hz: float, knee_flexion: np.ndarray | None
+    heights: Mapping[str, np.ndarray], rate_hz: float, knee_flexion: np.ndarray | None,
+    unfiltered: np.ndarray | None = None,
 ) -> tuple[_SideEvents, np.ndarray]:
     n = next(iter(heights.values())).size
     rel = _heights_above_floor(heights)
@@ -301,6 +416,8 @@ def _detect_side(
     leaving = (vz[list(heights).index(toe)] > 0) & (rel[list(heights).index("heel")] > LOW_FOOT_THRESHOLD_M)
     toe_rel = rel[list(heights).index(toe)]  # the toe's height above its floor level
 
+    # unfiltered heights of the same foot landmarks, then the malleoli (gaps left as NaN): touchdown changepoint
+    raw = unfiltered
     before_fs, after_fs = (int(round(s * rate_hz)) for s in STRIKE_SEARCH_S)
     before_to, after_to = (int(round(s * rate_hz)) for s in TOE_OFF_SEARCH_S)
     refine_before, refine_after = (int(round(s * rate_hz)) for s in STRIKE_REFINE_S)
@@ -332,6 +449,10 @@ def _detect_side(
                 fs = min(found) if found else None
                 if fs is None and end < n:  # never settles on the floor: keep the impact instant
                     fs, n_fallback = impact, n_fallback + 1
+            if fs is not None and raw is not None:
+                landing = int(np.argmin(rel[:, min(int(round(fs)), n - 1)]))  # the landmark lowest at the strike
+                refined = _touchdown_changepoint(raw, fs, rate_hz, landing, range(len(heights), raw.shape[0]))
+                fs = fs if refined is None else refined
             if fs is not None:
                 strikes.append(fs)
                 strikes_fb.append(np.nan if fb is None else fb)
@@ -622,6 +743,7 @@ def detect_events(
     treadmill: bool | None = None,
     knee_flexion: Mapping[str, np.ndarray] | None = None,
     min_strides: int = 1,
+    unfiltered: "Landmarks | None" = None,
 ) -> GaitEvents:
     """Foot strikes and toe-offs of both feet.
 
@@ -630,6 +752,9 @@ def detect_events(
     otherwise the marker rules (Handsaker et al. 2016 primary, Fellin et al. 2010 fallback/consistency).
     The vertical-only rules serve overground and treadmill trials alike, so `treadmill` (accepted for callers
     that know it) does not change the result.
+    ``unfiltered``: the same landmarks before low-pass filtering (same frames, lab frame). When given, each marker
+    foot strike is refined to the touchdown changepoint of the foot markers' unfiltered heights where that is
+    precise (``_touchdown_changepoint``); the pipeline passes them. Without them the rule's strike is kept.
     Raises EventError 'few_strides' when a leg has fewer than `min_strides` complete strides and
     'not_running' when there is no flight phase between steps (walking).
     """
@@ -646,7 +771,9 @@ def detect_events(
     n_frames = int(lm.n_frames) if hasattr(lm, "n_frames") else len(next(iter(lm.points.values())))
     try:
         for side in SIDES:
-            side_events, _ = _detect_side(_foot_heights(lm, side), rate, knee_flexion.get(side))
+            heights = _foot_heights(lm, side)
+            side_events, _ = _detect_side(heights, rate, knee_flexion.get(side),
+                                          _unfiltered_heights(unfiltered, side, heights, n_frames))
             side_events, dropped = _drop_events_in_gaps(side_events, _missing_foot_frames(lm, side), rate)
             if dropped:
                 warnings.append(

@@ -210,6 +210,7 @@ def trial_kinematics(path: "str | Path | MarkerTrial", options: AnalysisOptions 
     check_sides(lm, marker_map)
     check_body_size(lm, trial.units_in_file)
     # the clusters have done their work (rebuilding landmarks from the static trial): only the points are filtered
+    unfiltered = lm  # the foot strikes' touchdown changepoint is fitted to the unfiltered heights (events.py)
     lm, filter_info = smooth_landmarks(lm, cutoff_hz=options.cutoff_hz, max_gap_frames=options.max_gap_frames,
                                        keep_clusters=False)
     # at the edges of a capture volume's window, a marker not yet (or no longer) seen is outside it, not a gap
@@ -221,7 +222,7 @@ def trial_kinematics(path: "str | Path | MarkerTrial", options: AnalysisOptions 
     knee = {side: angles[side]["knee_flexion"] for side in SIDES}
     try:  # in a capture volume's window the strides are counted after the edge guard (check_stride_count)
         events = detect_events(lm, c3d_events=trial.events, knee_flexion=knee,
-                               min_strides=options.min_strides if window.whole else 0)
+                               min_strides=options.min_strides if window.whole else 0, unfiltered=unfiltered)
     except EventError as exc:
         if exc.code != "few_strides" or window.whole:
             raise
