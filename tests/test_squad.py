@@ -143,6 +143,8 @@ def test_table_csv_is_pandas_to_csv_on_awkward_cells():
     long_mixed = pd.DataFrame({"text": ["a"] * 5000 + [7] * 3, "x": np.linspace(0, 1, 5003)})  # blocks of both kinds
     assert table_csv(long_mixed) == long_mixed.to_csv(**_PANDAS_CSV)
     assert table_csv(table.iloc[:0]) == table.iloc[:0].to_csv(**_PANDAS_CSV)
+    for name in ("text", "number", "label"):  # a table of one column: an empty cell is a row of its own ("")
+        assert table_csv(table[[name]]) == table[[name]].to_csv(**_PANDAS_CSV), name
 
 
 @settings(max_examples=60, deadline=None)
@@ -278,3 +280,16 @@ def test_static_trial_is_calibrated_once_per_file_and_again_when_it_changes(tmp_
     again = static_calibration(static, mm)
     assert again is not first
     assert again[1].leg_length_m != pytest.approx(first[1].leg_length_m, abs=1e-3)
+
+
+def test_worker_modules_load_neither_pandas_nor_the_squad_run():
+    import subprocess
+    import sys
+
+    # The command starts the process its workers fork from first of all, and that process loads the stages while
+    # the command itself loads pandas and checks the inputs (issue 17): the stages must not need pandas, and the
+    # executor (which the command imports before anything else) must not load the squad run.
+    script = ("import sys; import hamstride.squad.executor as ex; assert 'pandas' not in sys.modules; "
+              "ex._load_stages(); print(sorted(m for m in ('pandas', 'hamstride.squad.run') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"

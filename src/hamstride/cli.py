@@ -405,6 +405,12 @@ def squad_cmd(
     Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors (checked
     before any trial is analysed).
     """
+    start_method = None
+    if cluster is None:  # first of all: the workers' process loads the stages while this one checks the inputs
+        from .squad.executor import start_worker_server
+
+        start_worker_server(__name__)  # workers run this module again as __mp_main__: load its imports there too
+        start_method = "forkserver"
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
     from .squad.run import run_squad
@@ -431,7 +437,7 @@ def squad_cmd(
         try:
             run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=not no_report,
                             progress=progress, cluster=cluster, allow_unlisted=allow_unlisted,
-                            report_progress=report_progress)
+                            report_progress=report_progress, start_method=start_method)
         except HamstrideError as exc:
             _fail(exc, EXIT_USAGE)
     counts = run.manifest["counts"]

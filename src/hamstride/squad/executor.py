@@ -16,7 +16,8 @@ from ..settings import jsonable as _jsonable
 from .cache import write_entry
 from .discovery import TrialJob
 
-__all__ = ["run_pool", "run_on_cluster", "tune_allocator", "CLUSTER_CONNECT_TIMEOUT_S"]
+__all__ = ["run_pool", "run_on_cluster", "tune_allocator", "start_worker_server", "STAGE_MODULES",
+           "CLUSTER_CONNECT_TIMEOUT_S"]
 
 
 def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
@@ -32,13 +33,46 @@ def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
                 "reason": f"trial {Path(job.path).name}: unexpected {type(exc).__name__}: {exc}"}
 
 
+#: The modules a worker runs (with the parts of scipy they import): loaded once, by the process the workers are
+#: forked from.
+STAGE_MODULES = tuple(f"hamstride.{stage}" for stage in (
+    "angles", "checks", "dynamics", "events", "c3d", "landmarks", "labframe", "muscles", "plates", "segments",
+    "signal", "strides", "metrics", "pipeline"))
+
+
 def _load_stages() -> None:
     """Import every pipeline stage (and scipy's parts they use) in this process."""
     import importlib
 
-    for stage in ("angles", "checks", "dynamics", "events", "io", "landmarks", "muscles", "segments", "signal",
-                  "strides"):
-        importlib.import_module(f"..{stage}", __package__)
+    for module in STAGE_MODULES:
+        importlib.import_module(module)
+
+
+def start_worker_server(*also: str) -> None:
+    """Start, in the background, the process the pool's workers will be forked from (the ``forkserver`` start
+    method), loading the stages there (:data:`STAGE_MODULES`, about 0.5 s, mostly scipy) while this process goes on
+    with its own imports, the squad's discovery and the inputs' hashes; pass ``start_method="forkserver"`` to
+    :func:`run_pool` (or ``run_squad``) to use it. The command line does this first thing; the stages load once
+    (the workers fork from the loaded process) and this process never loads scipy. Workers forked this way do not
+    inherit this process's later state (a notebook's changes to a module): the Python API keeps plain ``fork``.
+
+    ``also``: more modules to load there, e.g. the command's own module, which multiprocessing runs again in each
+    worker as ``__mp_main__`` (cheap once its imports are loaded)."""
+    import multiprocessing
+    from multiprocessing import forkserver
+
+    multiprocessing.get_context("forkserver").set_forkserver_preload(list(STAGE_MODULES + also))
+    forkserver.ensure_running()
+
+
+def _start_worker(ignore_warnings: bool = False) -> None:
+    """Pool worker initializer: reuse freed memory (:func:`tune_allocator`) and, for workers that did not inherit
+    the command's warning filter (forkserver), ignore library warnings as the command does."""
+    tune_allocator()
+    if ignore_warnings:
+        import warnings
+
+        warnings.simplefilter("ignore")
 
 
 def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path, key: str) -> dict:
@@ -50,20 +84,37 @@ def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path
 
 
 def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
-              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None) -> None:
+              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None,
+              start_method: str | None = None) -> None:
     """Run jobs in a process pool (or on a Dask cluster); a worker that dies (native crash) becomes a failed-trial record.
-    Local workers write their trial's entry under ``cache`` themselves; cluster results are written by ``on_done``."""
+    Local workers write their trial's entry under ``cache`` themselves; cluster results are written by ``on_done``.
+
+    ``start_method``: None forks the workers from this process after loading the stages here (they inherit them
+    and any change made to a module before the run); ``"forkserver"`` forks them from the process
+    :func:`start_worker_server` started (and loaded) in the background, so this process never loads the stages."""
     if not todo:
         return
     if cluster is not None:
         run_on_cluster(todo, options, cluster, on_done)
         return
     # Even with one job the trials run in a worker process: a native crash must never take the squad run down.
-    _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
+    if start_method == "forkserver":
+        import multiprocessing
+        import sys
+
+        context, initargs = multiprocessing.get_context("forkserver"), (not sys.warnoptions,)
+    else:
+        _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
+        context, initargs = None, ()
+
+    def new_pool(n_workers: int) -> cf.ProcessPoolExecutor:
+        return cf.ProcessPoolExecutor(max_workers=n_workers, mp_context=context, initializer=_start_worker,
+                                      initargs=initargs)
+
     pending = list(todo)
     while pending:
         crashed: list[tuple[TrialJob, str]] = []
-        with cf.ProcessPoolExecutor(max_workers=min(jobs, len(pending)), initializer=tune_allocator) as pool:
+        with new_pool(min(jobs, len(pending))) as pool:
             futures = {pool.submit(_analyse_job_into_cache, job, options, cache, key): (job, key)
                        for job, key in pending}
             for future in cf.as_completed(futures):
@@ -77,7 +128,7 @@ def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: i
         # Retry the trials caught in a crashed pool one at a time, so only the real culprit fails.
         pending = []
         for job, key in crashed:
-            with cf.ProcessPoolExecutor(max_workers=1, initializer=tune_allocator) as single:
+            with new_pool(1) as single:
                 try:
                     on_done(job, key, single.submit(_analyse_job, job, options).result())
                 except cf.process.BrokenProcessPool:
