@@ -110,7 +110,10 @@ def _csv_cells(values: np.ndarray) -> list[str] | None:
         return list(map(str, values.tolist()))
     if kind == "b":
         return ["True" if v else "False" for v in values.tolist()]
-    if kind in "OUT":  # object or string columns: text, with missing values empty
+    if kind in "UT":  # numpy text: every cell a str; quoted once per distinct text
+        distinct, where = np.unique(values, return_inverse=True)
+        return np.array(_quoted(distinct.tolist()), dtype=object)[where.ravel()].tolist()
+    if kind == "O":  # object columns: text, with missing values empty
         cells = []
         for v in values.tolist():
             if isinstance(v, str):
