@@ -286,10 +286,11 @@ def test_worker_modules_load_neither_pandas_nor_the_squad_run():
     import subprocess
     import sys
 
-    # The command starts the process its workers fork from first of all, and that process loads the stages while
-    # the command itself loads pandas and checks the inputs (issue 17): the stages must not need pandas, and the
-    # executor (which the command imports before anything else) must not load the squad run.
-    script = ("import sys; import hamstride.squad.executor as ex; assert 'pandas' not in sys.modules; "
+    # The command starts the process its workers fork from first of all (squad.workers: not even numpy), and that
+    # process loads the stages while the command itself loads pandas and checks the inputs (issue 17): the stages
+    # must not need pandas, and the executor must not load the squad run.
+    script = ("import sys; import hamstride.squad.workers; assert 'numpy' not in sys.modules; "
+              "import hamstride.squad.executor as ex; assert 'pandas' not in sys.modules; "
               "ex._load_stages(); print(sorted(m for m in ('pandas', 'hamstride.squad.run') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"

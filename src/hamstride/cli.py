@@ -70,7 +70,7 @@ def _every_command(
                                  help="Print the version and exit."),
 ) -> None:
     # Before any command: let this process reuse freed memory (batch.tune_allocator; no effect without glibc).
-    from .squad.executor import tune_allocator
+    from .squad.workers import tune_allocator
 
     tune_allocator()
 
@@ -407,7 +407,7 @@ def squad_cmd(
     """
     start_method = None
     if cluster is None:  # first of all: the workers' process loads the stages while this one checks the inputs
-        from .squad.executor import start_worker_server
+        from .squad.workers import start_worker_server
 
         start_worker_server(__name__)  # workers run this module again as __mp_main__: load its imports there too
         start_method = "forkserver"

@@ -15,6 +15,7 @@ from ..pipeline import AnalysisOptions, analyse_trial
 from ..settings import jsonable as _jsonable
 from .cache import write_entry
 from .discovery import TrialJob
+from .workers import STAGE_MODULES, _load_stages, _start_worker, start_worker_server, tune_allocator
 
 __all__ = ["run_pool", "run_on_cluster", "tune_allocator", "start_worker_server", "STAGE_MODULES",
            "CLUSTER_CONNECT_TIMEOUT_S"]
@@ -31,48 +32,6 @@ def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
     except Exception as exc:  # an unexpected bug must not stop the squad; record it plainly
         return {"status": "failed", "code": "internal_error",
                 "reason": f"trial {Path(job.path).name}: unexpected {type(exc).__name__}: {exc}"}
-
-
-#: The modules a worker runs (with the parts of scipy they import): loaded once, by the process the workers are
-#: forked from.
-STAGE_MODULES = tuple(f"hamstride.{stage}" for stage in (
-    "angles", "checks", "dynamics", "events", "c3d", "landmarks", "labframe", "muscles", "plates", "segments",
-    "signal", "strides", "metrics", "pipeline"))
-
-
-def _load_stages() -> None:
-    """Import every pipeline stage (and scipy's parts they use) in this process."""
-    import importlib
-
-    for module in STAGE_MODULES:
-        importlib.import_module(module)
-
-
-def start_worker_server(*also: str) -> None:
-    """Start, in the background, the process the pool's workers will be forked from (the ``forkserver`` start
-    method), loading the stages there (:data:`STAGE_MODULES`, about 0.5 s, mostly scipy) while this process goes on
-    with its own imports, the squad's discovery and the inputs' hashes; pass ``start_method="forkserver"`` to
-    :func:`run_pool` (or ``run_squad``) to use it. The command line does this first thing; the stages load once
-    (the workers fork from the loaded process) and this process never loads scipy. Workers forked this way do not
-    inherit this process's later state (a notebook's changes to a module): the Python API keeps plain ``fork``.
-
-    ``also``: more modules to load there, e.g. the command's own module, which multiprocessing runs again in each
-    worker as ``__mp_main__`` (cheap once its imports are loaded)."""
-    import multiprocessing
-    from multiprocessing import forkserver
-
-    multiprocessing.get_context("forkserver").set_forkserver_preload(list(STAGE_MODULES + also))
-    forkserver.ensure_running()
-
-
-def _start_worker(ignore_warnings: bool = False) -> None:
-    """Pool worker initializer: reuse freed memory (:func:`tune_allocator`) and, for workers that did not inherit
-    the command's warning filter (forkserver), ignore library warnings as the command does."""
-    tune_allocator()
-    if ignore_warnings:
-        import warnings
-
-        warnings.simplefilter("ignore")
 
 
 def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path, key: str) -> dict:
@@ -146,33 +105,6 @@ def _worker_software() -> str:
     """Runs on a cluster worker: the hamstride version it would analyse with."""
     from .. import __version__ as worker_version
     return worker_version
-
-
-_MALLOC_TUNED: bool | None = None  # tune_allocator: not tried yet (None), applied (True) or not available
-
-
-def tune_allocator() -> bool:
-    """Let this process reuse freed memory instead of mapping fresh pages for every large numpy temporary.
-
-    glibc serves blocks above its mmap threshold (128 KiB at start) with fresh pages and returns freed memory above
-    its trim threshold to the system, so each analysis page-faults its working set afresh: about 450 faults and
-    1-1.5 ms of system time on a 2 s trial, about 10 % of its CPU time (measured with ``resource.getrusage``).
-    Dask nannies make it worse (they set MALLOC_TRIM_THRESHOLD_, which freezes the mmap threshold at 128 KiB:
-    1.8x the CPU time per trial). Raising the mmap threshold to 32 MiB and the trim threshold to 64 MiB (mallopt
-    M_MMAP_THRESHOLD = -3, M_TRIM_THRESHOLD = -1) removes the faults; free memory beyond 64 MiB still goes back to
-    the system and peak memory is unchanged. The hamstride command and its workers call this once per process; a
-    long notebook session may call it too. Only where glibc is present (returns False elsewhere, changing nothing).
-    """
-    global _MALLOC_TUNED
-    if _MALLOC_TUNED is None:
-        try:
-            import ctypes
-
-            libc = ctypes.CDLL("libc.so.6")
-            _MALLOC_TUNED = bool(libc.mallopt(-3, 32 << 20)) and bool(libc.mallopt(-1, 64 << 20))
-        except (OSError, AttributeError):
-            _MALLOC_TUNED = False
-    return _MALLOC_TUNED
 
 
 def _analyse_job_on_worker(job: TrialJob, options: AnalysisOptions) -> dict:

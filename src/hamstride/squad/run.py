@@ -66,7 +66,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     :func:`hamstride.squad.executor.run_on_cluster`.
 
     ``start_method="forkserver"``: the local workers fork from the process
-    :func:`hamstride.squad.executor.start_worker_server` started (the command line's way: that process loads the
+    :func:`hamstride.squad.workers.start_worker_server` started (the command line's way: that process loads the
     stages while this one checks the inputs); by default they fork from this process after it loads the stages.
 
     Every input is checked before any trial is analysed or any file written (squadinput): a ConfigError means a
