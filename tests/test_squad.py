@@ -238,7 +238,7 @@ def test_exports_are_pandas_text_of_each_trials_own_tables(squad_run):
     header = curves_text[0].split("\n", 1)[0] + "\n"
     assert (out / "athletes" / f"{athlete}_curves.csv").read_text() == header + mine.removeprefix(header)
     cache = out / ".hamstride-cache"
-    assert not list(cache.glob("*.csv")) and list(cache.glob("*.curves.npy"))  # binary cache, no CSV text
+    assert not list(cache.glob("*.csv")) and list(cache.glob("*.tables.npy"))  # binary cache, no CSV text
 
 
 def test_exported_frame_is_what_read_csv_gives_back():
