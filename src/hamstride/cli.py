@@ -409,8 +409,11 @@ def squad_cmd(
     if cluster is None:  # first of all: the workers' process loads the stages while this one checks the inputs
         from .squad.workers import start_worker_server
 
-        start_worker_server(__name__)  # workers run this module again as __mp_main__: load its imports there too
-        start_method = "forkserver"
+        try:
+            start_worker_server("hamstride.cli")  # workers run the main module again: its imports loaded there
+            start_method = "forkserver"
+        except (OSError, ValueError):  # no forkserver here (e.g. Windows): workers fork from this process
+            pass
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
     from .squad.run import run_squad
