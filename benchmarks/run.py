@@ -61,6 +61,7 @@ STAGES = [
     ("muscles", "monte_carlo_peaks", "Monte Carlo band"),
     ("dynamics", "swing_inverse_dynamics_of_legs", "inverse dynamics"),
     ("dynamics", "share_swing_moments_of_legs", "force sharing"),
+    ("dynamics", "force_work_band", "force/work band"),
     ("strides", "normalise_strides", "normalise to cycle"),
 ]
 TABLES = ["athlete", "strides", "curves", "summary", "flags"]
