@@ -47,7 +47,7 @@ from hamstride.pipeline import AnalysisOptions, AthleteInfo, analyse_trial  # no
 
 #: (module, function, label) of each stage as analyse_trial calls it; nested calls count to the outer stage.
 STAGES = [
-    ("io", "read_c3d", "read C3D (io)"),
+    ("c3d", "read_c3d", "read C3D"),
     ("landmarks", "resolve_landmarks", "landmarks"),
     ("labframe", "to_lab_frame", "lab frame"),
     ("signal", "smooth_landmarks", "gap fill + filter (signal)"),
