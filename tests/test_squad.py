@@ -294,3 +294,31 @@ def test_worker_modules_load_neither_pandas_nor_the_squad_run():
               "ex._load_stages(); print(sorted(m for m in ('pandas', 'hamstride.squad.run') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"
+
+
+def test_session_chunks_keep_order_group_sessions_and_shrink_towards_the_end():
+    # Guided scheduling (common practice): consecutive trials of a session with a static trial share a task, at most
+    # remaining / (2 x workers) of them, so each session is calibrated once and the workers finish together.
+    from hamstride.pipeline import AthleteInfo
+    from hamstride.squad.discovery import TrialJob
+    from hamstride.squad.executor import session_chunks
+
+    def job(athlete, session, trial, static=True):
+        return TrialJob(f"/{athlete}/{session}/{trial}.c3d", athlete, session,
+                        f"/{athlete}/{session}/static.c3d" if static else None, AthleteInfo(athlete, session))
+
+    todo = [(job(f"A{a}", "s1", f"t{t}"), f"k{a}{t}") for a in range(8) for t in range(3)]  # 8 sessions x 3
+    chunks = session_chunks(todo, 2)
+    assert [item for chunk in chunks for item in chunk] == todo  # the same trials, in the same order
+    assert all(len({(j.athlete, j.session) for j, _ in chunk}) == 1 for chunk in chunks)  # one session per task
+    sizes = [len(c) for c in chunks]
+    assert sizes[:4] == [3, 3, 3, 3] and sizes[-3:] == [1, 1, 1]  # whole sessions first, single trials at the end
+    for k, chunk in enumerate(chunks):  # never more than the remaining trials / (2 x workers), rounded up
+        remaining = len(todo) - sum(sizes[:k])
+        assert len(chunk) <= max(1, -(-remaining // 4))
+    assert session_chunks(todo, 1) == [[item] for item in todo]  # one worker calibrates each session once anyway
+    no_static = [(job("B", "s", f"t{t}", static=False), f"b{t}") for t in range(6)]
+    assert session_chunks(no_static, 2) == [[item] for item in no_static]  # nothing to share: single trials
+    big = [(job("C", "s", f"t{t}"), f"c{t}") for t in range(40)]  # one big session: split, still in order
+    assert [item for chunk in session_chunks(big, 2) for item in chunk] == big
+    assert max(len(c) for c in session_chunks(big, 2)) == 10

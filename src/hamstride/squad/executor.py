@@ -13,11 +13,11 @@ from typing import Callable
 from ..errors import ConfigError, HamstrideError
 from ..pipeline import AnalysisOptions, analyse_trial
 from ..settings import jsonable as _jsonable
-from .cache import write_entry
+from .cache import has_entry, read_record, write_entry
 from .discovery import TrialJob
 from .workers import STAGE_MODULES, _load_stages, _start_worker, start_worker_server, tune_allocator
 
-__all__ = ["run_pool", "run_on_cluster", "tune_allocator", "start_worker_server", "STAGE_MODULES",
+__all__ = ["run_pool", "session_chunks", "run_on_cluster", "tune_allocator", "start_worker_server", "STAGE_MODULES",
            "CLUSTER_CONNECT_TIMEOUT_S"]
 
 
@@ -40,6 +40,34 @@ def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path
     result = _analyse_job(job, options)
     write_entry(cache, key, result)
     return {k: v for k, v in result.items() if k != "tables"} | {"cached_by_worker": True}
+
+
+def _analyse_jobs_into_cache(items: list[tuple[TrialJob, str]], options: AnalysisOptions, cache: Path) -> list[dict]:
+    """Local-pool worker: :func:`_analyse_job_into_cache` for each trial of a chunk, in order."""
+    return [_analyse_job_into_cache(job, options, cache, key) for job, key in items]
+
+
+def session_chunks(todo: list[tuple[TrialJob, str]], workers: int) -> list[list[tuple[TrialJob, str]]]:
+    """The pool's tasks: consecutive trials of one session with a static trial go together (the worker that takes
+    them calibrates that session once: ``pipeline.static_calibration`` keeps it per process, and with single
+    trials two workers each calibrated most sessions), in chunks no larger than the remaining trials / (2 x
+    workers), so the chunks shrink towards the end and the workers finish together (guided scheduling, common
+    practice). One worker, or trials without a static trial: one trial per task. The chunks keep ``todo``'s order."""
+    if workers <= 1:
+        return [[item] for item in todo]
+    chunks: list[list[tuple[TrialJob, str]]] = []
+    i, n = 0, len(todo)
+    while i < n:
+        limit = max(1, -(-(n - i) // (2 * workers)))
+        first = todo[i][0]
+        j = i + 1
+        while (first.static_path is not None and j < n and j - i < limit
+               and (todo[j][0].athlete, todo[j][0].session, todo[j][0].static_path)
+               == (first.athlete, first.session, first.static_path)):
+            j += 1
+        chunks.append(todo[i:j])
+        i = j
+    return chunks
 
 
 def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
@@ -70,30 +98,33 @@ def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: i
         return cf.ProcessPoolExecutor(max_workers=n_workers, mp_context=context, initializer=_start_worker,
                                       initargs=initargs)
 
-    pending = list(todo)
-    while pending:
-        crashed: list[tuple[TrialJob, str]] = []
-        with new_pool(min(jobs, len(pending))) as pool:
-            futures = {pool.submit(_analyse_job_into_cache, job, options, cache, key): (job, key)
-                       for job, key in pending}
-            for future in cf.as_completed(futures):
-                job, key = futures.pop(future)  # drop the finished result: memory stays flat
-                try:
-                    on_done(job, key, future.result())
-                except cf.process.BrokenProcessPool:
-                    crashed.append((job, key))
-        if not crashed:
-            break
-        # Retry the trials caught in a crashed pool one at a time, so only the real culprit fails.
-        pending = []
-        for job, key in crashed:
-            with new_pool(1) as single:
-                try:
-                    on_done(job, key, single.submit(_analyse_job, job, options).result())
-                except cf.process.BrokenProcessPool:
-                    on_done(job, key, {"status": "failed", "code": "reader_crash",
-                                       "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
-                                                 "it is probably corrupt; re-export it from the capture software"})
+    workers = min(jobs, len(todo))
+    crashed: list[tuple[TrialJob, str]] = []
+    with new_pool(workers) as pool:
+        futures = {pool.submit(_analyse_jobs_into_cache, chunk, options, cache): chunk
+                   for chunk in session_chunks(todo, workers)}
+        for future in cf.as_completed(futures):
+            chunk = futures.pop(future)  # drop the finished results: memory stays flat
+            try:
+                results = future.result()
+            except cf.process.BrokenProcessPool:
+                crashed.extend(chunk)
+                continue
+            for (job, key), result in zip(chunk, results):
+                on_done(job, key, result)
+    # Retry the trials caught in a crashed pool one at a time, so only the real culprit fails; those of a chunk that
+    # finished before the crash are in the cache already.
+    for job, key in crashed:
+        if has_entry(cache, key):
+            on_done(job, key, read_record(cache, key) | {"cached_by_worker": True})
+            continue
+        with new_pool(1) as single:
+            try:
+                on_done(job, key, single.submit(_analyse_job, job, options).result())
+            except cf.process.BrokenProcessPool:
+                on_done(job, key, {"status": "failed", "code": "reader_crash",
+                                   "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
+                                             "it is probably corrupt; re-export it from the capture software"})
 
 
 # --------------------------------------------------------------------------------------------- Dask cluster
