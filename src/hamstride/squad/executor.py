@@ -89,6 +89,7 @@ def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: i
         import multiprocessing
         import sys
 
+        start_worker_server()  # started (with the stages) by the caller already, normally: then nothing to do
         context, initargs = multiprocessing.get_context("forkserver"), (not sys.warnoptions,)
     else:
         _load_stages()  # forked workers inherit the loaded modules instead of each importing them again

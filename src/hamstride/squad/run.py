@@ -68,6 +68,8 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
     ``start_method="forkserver"``: the local workers fork from the process
     :func:`hamstride.squad.workers.start_worker_server` started (the command line's way: that process loads the
     stages while this one checks the inputs); by default they fork from this process after it loads the stages.
+    As with any forkserver, a script that asks for it needs the ``if __name__ == "__main__":`` guard (each worker
+    runs the main module again).
 
     Every input is checked before any trial is analysed or any file written (squadinput): a ConfigError means a
     usage error (the command line's exit code 2). Athlete folders not in athletes.csv are skipped (listed in the
