@@ -405,15 +405,10 @@ def squad_cmd(
     Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors (checked
     before any trial is analysed).
     """
-    start_method = None
-    if cluster is None:  # first of all: the workers' process loads the stages while this one checks the inputs
-        from .squad.workers import start_worker_server
-
-        try:
-            start_worker_server("hamstride.cli")  # workers run the main module again: its imports loaded there
-            start_method = "forkserver"
-        except (OSError, ValueError):  # no forkserver here (e.g. Windows): workers fork from this process
-            pass
+    # Workers fork from this process once it has loaded the stages (run_squad's default). A worker server started
+    # first of all (start_method="forkserver", squad.workers.start_worker_server) was measured on two quiet cores
+    # (issue 17; server vs fork): one-trial squad 1.09 vs 1.16 s, 24 trials with --jobs 2 1.94 vs 1.87 s, but 0.15-0.2 s
+    # more CPU per run (a second interpreter); on a busy machine it was slower, so the command does not use it.
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
     from .squad.run import run_squad
@@ -440,7 +435,7 @@ def squad_cmd(
         try:
             run = run_squad(root, out, jobs=jobs, markers=markers, config=cfg, report=not no_report,
                             progress=progress, cluster=cluster, allow_unlisted=allow_unlisted,
-                            report_progress=report_progress, start_method=start_method)
+                            report_progress=report_progress)
         except HamstrideError as exc:
             _fail(exc, EXIT_USAGE)
     counts = run.manifest["counts"]

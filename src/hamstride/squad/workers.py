@@ -1,7 +1,7 @@
 """The worker processes of a squad run: the modules they load (:data:`STAGE_MODULES`), the forkserver they can be
 forked from (:func:`start_worker_server`), their initializer and the memory allocator setting every hamstride
-process uses (:func:`tune_allocator`). Light on purpose (no numpy, no stages): the command imports it first, so
-the server starts loading the stages before this process loads anything heavy.
+process uses (:func:`tune_allocator`). Light on purpose (no numpy, no stages): it can be imported first, so a
+server starts loading the stages before the calling process loads anything heavy.
 """
 from __future__ import annotations
 
@@ -26,8 +26,10 @@ def start_worker_server(*also: str) -> None:
     """Start, in the background, the process the pool's workers will be forked from (the ``forkserver`` start
     method), loading the stages there (:data:`STAGE_MODULES`, about 0.5 s, mostly scipy) while this process goes on
     with its own imports, the squad's discovery and the inputs' hashes; pass ``start_method="forkserver"`` to
-    :func:`hamstride.squad.executor.run_pool` (or ``run_squad``) to use it. The command line does this first thing; the stages load once
-    (the workers fork from the loaded process) and this process never loads scipy. Workers forked this way do not
+    :func:`hamstride.squad.executor.run_pool` (or ``run_squad``) to use it. The stages load once (the workers fork
+    from the loaded process) and this process never loads scipy. Measured for the command (issue 17, two quiet
+    cores): about as fast as forking from the loaded command (one trial 1.09 vs 1.16 s, 24 trials 1.94 vs 1.87 s)
+    for 0.15-0.2 s more CPU (a second interpreter), so the command forks; kept for hosts with cores to spare. Workers forked this way do not
     inherit this process's later state (a notebook's changes to a module): the Python API keeps plain ``fork``.
 
     ``also``: more modules to load there, e.g. the command's own module, which multiprocessing runs again in each
