@@ -143,6 +143,8 @@ def test_table_csv_is_pandas_to_csv_on_awkward_cells():
     long_mixed = pd.DataFrame({"text": ["a"] * 5000 + [7] * 3, "x": np.linspace(0, 1, 5003)})  # blocks of both kinds
     assert table_csv(long_mixed) == long_mixed.to_csv(**_PANDAS_CSV)
     assert table_csv(table.iloc[:0]) == table.iloc[:0].to_csv(**_PANDAS_CSV)
+    for name in ("text", "number", "label"):  # a table of one column: an empty cell is a row of its own ("")
+        assert table_csv(table[[name]]) == table[[name]].to_csv(**_PANDAS_CSV), name
 
 
 @settings(max_examples=60, deadline=None)
@@ -236,7 +238,7 @@ def test_exports_are_pandas_text_of_each_trials_own_tables(squad_run):
     header = curves_text[0].split("\n", 1)[0] + "\n"
     assert (out / "athletes" / f"{athlete}_curves.csv").read_text() == header + mine.removeprefix(header)
     cache = out / ".hamstride-cache"
-    assert not list(cache.glob("*.csv")) and list(cache.glob("*.curves.npy"))  # binary cache, no CSV text
+    assert not list(cache.glob("*.csv")) and list(cache.glob("*.tables.npy"))  # binary cache, no CSV text
 
 
 def test_exported_frame_is_what_read_csv_gives_back():
@@ -278,3 +280,59 @@ def test_static_trial_is_calibrated_once_per_file_and_again_when_it_changes(tmp_
     again = static_calibration(static, mm)
     assert again is not first
     assert again[1].leg_length_m != pytest.approx(first[1].leg_length_m, abs=1e-3)
+
+
+def test_worker_modules_load_neither_pandas_nor_the_squad_run():
+    import subprocess
+    import sys
+
+    # The command starts the process its workers fork from first of all (squad.workers: not even numpy), and that
+    # process loads the stages while the command itself loads pandas and checks the inputs (issue 17): the stages
+    # must not need pandas, and the executor must not load the squad run.
+    script = ("import sys; import hamstride.squad.workers; assert 'numpy' not in sys.modules; "
+              "import hamstride.squad.executor as ex; assert 'pandas' not in sys.modules; "
+              "ex._load_stages(); print(sorted(m for m in ('pandas', 'hamstride.squad.run') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
+
+
+def test_session_chunks_keep_order_group_sessions_and_shrink_towards_the_end():
+    # Guided scheduling (common practice): consecutive trials of a session with a static trial share a task, at most
+    # remaining / (2 x workers) of them, so each session is calibrated once and the workers finish together.
+    from hamstride.pipeline import AthleteInfo
+    from hamstride.squad.discovery import TrialJob
+    from hamstride.squad.executor import session_chunks
+
+    def job(athlete, session, trial, static=True):
+        return TrialJob(f"/{athlete}/{session}/{trial}.c3d", athlete, session,
+                        f"/{athlete}/{session}/static.c3d" if static else None, AthleteInfo(athlete, session))
+
+    todo = [(job(f"A{a}", "s1", f"t{t}"), f"k{a}{t}") for a in range(8) for t in range(3)]  # 8 sessions x 3
+    chunks = session_chunks(todo, 2)
+    assert [item for chunk in chunks for item in chunk] == todo  # the same trials, in the same order
+    assert all(len({(j.athlete, j.session) for j, _ in chunk}) == 1 for chunk in chunks)  # one session per task
+    sizes = [len(c) for c in chunks]
+    assert sizes[:4] == [3, 3, 3, 3] and sizes[-3:] == [1, 1, 1]  # whole sessions first, single trials at the end
+    for k, chunk in enumerate(chunks):  # never more than the remaining trials / (2 x workers), rounded up
+        remaining = len(todo) - sum(sizes[:k])
+        assert len(chunk) <= max(1, -(-remaining // 4))
+    assert session_chunks(todo, 1) == [[item] for item in todo]  # one worker calibrates each session once anyway
+    no_static = [(job("B", "s", f"t{t}", static=False), f"b{t}") for t in range(6)]
+    assert session_chunks(no_static, 2) == [[item] for item in no_static]  # nothing to share: single trials
+    big = [(job("C", "s", f"t{t}"), f"c{t}") for t in range(40)]  # one big session: split, still in order
+    assert [item for chunk in session_chunks(big, 2) for item in chunk] == big
+    assert max(len(c) for c in session_chunks(big, 2)) == 10
+
+
+def test_forkserver_workers_give_the_tables_of_forked_workers(tmp_path):
+    # run_squad(start_method="forkserver"): workers fork from a server that loaded the stages (squad.workers), not
+    # from this process; the tables must be byte-identical to the default (fork) run's.
+    from hamstride.squad import run_squad
+
+    root = tmp_path / "squad"
+    shutil.copytree(DEMO / "RB12", root / "RB12")
+    shutil.copy(DEMO / "athletes.csv", root / "athletes.csv")
+    runs = {m: run_squad(root, tmp_path / str(m), jobs=2, report=False, start_method=m) for m in (None, "forkserver")}
+    assert not runs["forkserver"].failed and runs["forkserver"].manifest["counts"]["ok"] >= 2
+    for name in ("strides.csv", "curves.csv", "summary.csv", "flags.csv"):
+        assert (tmp_path / "forkserver" / name).read_bytes() == (tmp_path / "None" / name).read_bytes(), name

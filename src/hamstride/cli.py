@@ -70,7 +70,7 @@ def _every_command(
                                  help="Print the version and exit."),
 ) -> None:
     # Before any command: let this process reuse freed memory (batch.tune_allocator; no effect without glibc).
-    from .squad.executor import tune_allocator
+    from .squad.workers import tune_allocator
 
     tune_allocator()
 
@@ -405,6 +405,10 @@ def squad_cmd(
     Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors (checked
     before any trial is analysed).
     """
+    # Workers fork from this process once it has loaded the stages (run_squad's default). A worker server started
+    # first of all (start_method="forkserver", squad.workers.start_worker_server) was measured on two quiet cores
+    # (issue 17; server vs fork): one-trial squad 1.09 vs 1.16 s, 24 trials with --jobs 2 1.94 vs 1.87 s, but 0.15-0.2 s
+    # more CPU per run (a second interpreter); on a busy machine it was slower, so the command does not use it.
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
     from .squad.run import run_squad

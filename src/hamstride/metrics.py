@@ -9,10 +9,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, fields
-from typing import Mapping
+from typing import TYPE_CHECKING, Mapping
 
 import numpy as np
-import pandas as pd
+
+if TYPE_CHECKING:  # pandas is imported where a table is built: the pool workers use window_peaks only
+    import pandas as pd
 
 SUMMARY_METRICS = ("peak_strain_pct", "peak_fibre_length_lopt", "peak_lengthening_velocity_lopt_per_s",
                    "negative_work_j", "peak_force_n")
@@ -124,6 +126,8 @@ def _rows_by_muscle(rows: list[dict]) -> dict[tuple, dict[str, int]]:
 
 def summarise(strides: pd.DataFrame, athletes: pd.DataFrame | None = None) -> pd.DataFrame:
     """One row per athlete/session/side/muscle: n, speed, mean/SD/CV of each metric, SI and LSI."""
+    import pandas as pd
+
     keys = ["athlete", "session", "side", "muscle"]
     if strides.empty:
         return pd.DataFrame(columns=keys + ["n_strides", "speed_m_s"])
@@ -205,6 +209,8 @@ def _capacity_note(metric: str, right, left) -> str:
 def compute_flags(summary: pd.DataFrame, athletes: pd.DataFrame | None, config: FlagConfig = FlagConfig()
                   ) -> pd.DataFrame:
     """Flags with value, threshold and a plain-language message (one row each)."""
+    import pandas as pd
+
     rows: list[dict] = []
     if summary.empty:
         return pd.DataFrame(columns=FLAG_COLUMNS)

@@ -31,12 +31,14 @@ from __future__ import annotations
 import functools
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence
+from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
-import pandas as pd
 
 from .errors import HamstrideError, PlausibilityError
+
+if TYPE_CHECKING:  # pandas only for the practitioner's table (muscle_table); pool workers never load it
+    import pandas as pd
 
 MUSCLES = ("biceps_femoris_long", "semitendinosus", "semimembranosus", "biceps_femoris_short")
 BIARTICULAR = ("biceps_femoris_long", "semitendinosus", "semimembranosus")
@@ -884,6 +886,8 @@ def muscle_table(hip_flexion_deg: float, knee_flexion_deg: float, dims: MuscleDi
     """One row per muscle at one posture: length, strain vs upright, l/l_opt (tendon at its F0 stretch, with the
     slack length it rests on) and at rest (no force, tendon at its slack length)
     and the four moment arms in mm (r = -dL/dtheta; negative at the hip = extensor, positive at the knee = flexor)."""
+    import pandas as pd
+
     posture = [np.deg2rad(v) for v in (hip_flexion_deg, hip_adduction_deg, hip_rotation_deg, knee_flexion_deg)]
     rows = []
     for muscle in MUSCLES:

@@ -9,15 +9,17 @@ import functools
 import os
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Mapping, NamedTuple
+from typing import TYPE_CHECKING, Mapping, NamedTuple
 
 import numpy as np
-import pandas as pd
 
 from . import __version__
 from .checks import strict_failure
 from .errors import EventError, HamstrideError, PlausibilityError, TrialWarning
 from .numerics import SIDES
+
+if TYPE_CHECKING:  # the tables are numpy columns; pandas is loaded when a DataFrame view is asked for
+    import pandas as pd
 
 __all__ = ["STRIDE_COLUMNS", "FORCE_STATUS_MOSTLY_MET_PCT", "SHORT_FIBRE_LOPT", "SHORT_FIBRE_FORCE_FRACTION",
            "CURVE_COLUMNS", "AnalysisOptions", "AthleteInfo", "TrialResult", "Kinematics", "static_calibration",
@@ -97,6 +99,8 @@ class TrialResult:
 
 
 def _table_frame(columns: Mapping[str, np.ndarray], names: list[str]) -> pd.DataFrame:
+    import pandas as pd
+
     if not columns:
         return pd.DataFrame(columns=names)
     return pd.DataFrame({name: columns[name] for name in names}, index=pd.RangeIndex(len(columns[names[0]])))

@@ -6,6 +6,14 @@ which ties them together). Input checking and configuration live in :mod:`hamstr
 """
 from __future__ import annotations
 
-from .run import SquadRun, run_squad
-
 __all__ = ["run_squad", "SquadRun"]
+
+
+def __getattr__(name: str):
+    # Loaded on first use (PEP 562), so importing a light part (the executor, discovery) does not load pandas and the
+    # whole squad run: the command starts its worker processes before that import.
+    if name in __all__:
+        from . import run
+
+        return getattr(run, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

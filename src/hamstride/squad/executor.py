@@ -13,10 +13,12 @@ from typing import Callable
 from ..errors import ConfigError, HamstrideError
 from ..pipeline import AnalysisOptions, analyse_trial
 from ..settings import jsonable as _jsonable
-from .cache import write_entry
+from .cache import has_entry, read_record, write_entry
 from .discovery import TrialJob
+from .workers import STAGE_MODULES, _load_stages, _start_worker, start_worker_server, tune_allocator
 
-__all__ = ["run_pool", "run_on_cluster", "tune_allocator", "CLUSTER_CONNECT_TIMEOUT_S"]
+__all__ = ["run_pool", "session_chunks", "run_on_cluster", "tune_allocator", "start_worker_server", "STAGE_MODULES",
+           "CLUSTER_CONNECT_TIMEOUT_S"]
 
 
 def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
@@ -32,15 +34,6 @@ def _analyse_job(job: TrialJob, options: AnalysisOptions) -> dict:
                 "reason": f"trial {Path(job.path).name}: unexpected {type(exc).__name__}: {exc}"}
 
 
-def _load_stages() -> None:
-    """Import every pipeline stage (and scipy's parts they use) in this process."""
-    import importlib
-
-    for stage in ("angles", "checks", "dynamics", "events", "io", "landmarks", "muscles", "segments", "signal",
-                  "strides"):
-        importlib.import_module(f"..{stage}", __package__)
-
-
 def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path, key: str) -> dict:
     """Local-pool worker: analyse one trial and write its cache entry itself, so the curves never cross the pipe
     and the writes run in parallel; returns the record without the tables, marked as already cached."""
@@ -49,41 +42,90 @@ def _analyse_job_into_cache(job: TrialJob, options: AnalysisOptions, cache: Path
     return {k: v for k, v in result.items() if k != "tables"} | {"cached_by_worker": True}
 
 
+def _analyse_jobs_into_cache(items: list[tuple[TrialJob, str]], options: AnalysisOptions, cache: Path) -> list[dict]:
+    """Local-pool worker: :func:`_analyse_job_into_cache` for each trial of a chunk, in order."""
+    return [_analyse_job_into_cache(job, options, cache, key) for job, key in items]
+
+
+def session_chunks(todo: list[tuple[TrialJob, str]], workers: int) -> list[list[tuple[TrialJob, str]]]:
+    """The pool's tasks: consecutive trials of one session with a static trial go together (the worker that takes
+    them calibrates that session once: ``pipeline.static_calibration`` keeps it per process, and with single
+    trials two workers each calibrated most sessions), in chunks no larger than the remaining trials / (2 x
+    workers), so the chunks shrink towards the end and the workers finish together (guided scheduling, common
+    practice). One worker, or trials without a static trial: one trial per task. The chunks keep ``todo``'s order."""
+    if workers <= 1:
+        return [[item] for item in todo]
+    chunks: list[list[tuple[TrialJob, str]]] = []
+    i, n = 0, len(todo)
+    while i < n:
+        limit = max(1, -(-(n - i) // (2 * workers)))
+        first = todo[i][0]
+        j = i + 1
+        while (first.static_path is not None and j < n and j - i < limit
+               and (todo[j][0].athlete, todo[j][0].session, todo[j][0].static_path)
+               == (first.athlete, first.session, first.static_path)):
+            j += 1
+        chunks.append(todo[i:j])
+        i = j
+    return chunks
+
+
 def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
-              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None) -> None:
+              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None,
+              start_method: str | None = None) -> None:
     """Run jobs in a process pool (or on a Dask cluster); a worker that dies (native crash) becomes a failed-trial record.
-    Local workers write their trial's entry under ``cache`` themselves; cluster results are written by ``on_done``."""
+    Local workers write their trial's entry under ``cache`` themselves; cluster results are written by ``on_done``.
+
+    ``start_method``: None forks the workers from this process after loading the stages here (they inherit them
+    and any change made to a module before the run); ``"forkserver"`` forks them from the process
+    :func:`start_worker_server` started (and loaded) in the background, so this process never loads the stages."""
     if not todo:
         return
     if cluster is not None:
         run_on_cluster(todo, options, cluster, on_done)
         return
     # Even with one job the trials run in a worker process: a native crash must never take the squad run down.
-    _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
-    pending = list(todo)
-    while pending:
-        crashed: list[tuple[TrialJob, str]] = []
-        with cf.ProcessPoolExecutor(max_workers=min(jobs, len(pending)), initializer=tune_allocator) as pool:
-            futures = {pool.submit(_analyse_job_into_cache, job, options, cache, key): (job, key)
-                       for job, key in pending}
-            for future in cf.as_completed(futures):
-                job, key = futures.pop(future)  # drop the finished result: memory stays flat
-                try:
-                    on_done(job, key, future.result())
-                except cf.process.BrokenProcessPool:
-                    crashed.append((job, key))
-        if not crashed:
-            break
-        # Retry the trials caught in a crashed pool one at a time, so only the real culprit fails.
-        pending = []
-        for job, key in crashed:
-            with cf.ProcessPoolExecutor(max_workers=1, initializer=tune_allocator) as single:
-                try:
-                    on_done(job, key, single.submit(_analyse_job, job, options).result())
-                except cf.process.BrokenProcessPool:
-                    on_done(job, key, {"status": "failed", "code": "reader_crash",
-                                       "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
-                                                 "it is probably corrupt; re-export it from the capture software"})
+    if start_method == "forkserver":
+        import multiprocessing
+        import sys
+
+        start_worker_server()  # started (with the stages) by the caller already, normally: then nothing to do
+        context, initargs = multiprocessing.get_context("forkserver"), (not sys.warnoptions,)
+    else:
+        _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
+        context, initargs = None, ()
+
+    def new_pool(n_workers: int) -> cf.ProcessPoolExecutor:
+        return cf.ProcessPoolExecutor(max_workers=n_workers, mp_context=context, initializer=_start_worker,
+                                      initargs=initargs)
+
+    workers = min(jobs, len(todo))
+    crashed: list[tuple[TrialJob, str]] = []
+    with new_pool(workers) as pool:
+        futures = {pool.submit(_analyse_jobs_into_cache, chunk, options, cache): chunk
+                   for chunk in session_chunks(todo, workers)}
+        for future in cf.as_completed(futures):
+            chunk = futures.pop(future)  # drop the finished results: memory stays flat
+            try:
+                results = future.result()
+            except cf.process.BrokenProcessPool:
+                crashed.extend(chunk)
+                continue
+            for (job, key), result in zip(chunk, results):
+                on_done(job, key, result)
+    # Retry the trials caught in a crashed pool one at a time, so only the real culprit fails; those of a chunk that
+    # finished before the crash are in the cache already.
+    for job, key in crashed:
+        if has_entry(cache, key):
+            on_done(job, key, read_record(cache, key) | {"cached_by_worker": True})
+            continue
+        with new_pool(1) as single:
+            try:
+                on_done(job, key, single.submit(_analyse_job, job, options).result())
+            except cf.process.BrokenProcessPool:
+                on_done(job, key, {"status": "failed", "code": "reader_crash",
+                                   "reason": f"trial {Path(job.path).name}: the C3D reader crashed on this file; "
+                                             "it is probably corrupt; re-export it from the capture software"})
 
 
 # --------------------------------------------------------------------------------------------- Dask cluster
@@ -95,33 +137,6 @@ def _worker_software() -> str:
     """Runs on a cluster worker: the hamstride version it would analyse with."""
     from .. import __version__ as worker_version
     return worker_version
-
-
-_MALLOC_TUNED: bool | None = None  # tune_allocator: not tried yet (None), applied (True) or not available
-
-
-def tune_allocator() -> bool:
-    """Let this process reuse freed memory instead of mapping fresh pages for every large numpy temporary.
-
-    glibc serves blocks above its mmap threshold (128 KiB at start) with fresh pages and returns freed memory above
-    its trim threshold to the system, so each analysis page-faults its working set afresh: about 450 faults and
-    1-1.5 ms of system time on a 2 s trial, about 10 % of its CPU time (measured with ``resource.getrusage``).
-    Dask nannies make it worse (they set MALLOC_TRIM_THRESHOLD_, which freezes the mmap threshold at 128 KiB:
-    1.8x the CPU time per trial). Raising the mmap threshold to 32 MiB and the trim threshold to 64 MiB (mallopt
-    M_MMAP_THRESHOLD = -3, M_TRIM_THRESHOLD = -1) removes the faults; free memory beyond 64 MiB still goes back to
-    the system and peak memory is unchanged. The hamstride command and its workers call this once per process; a
-    long notebook session may call it too. Only where glibc is present (returns False elsewhere, changing nothing).
-    """
-    global _MALLOC_TUNED
-    if _MALLOC_TUNED is None:
-        try:
-            import ctypes
-
-            libc = ctypes.CDLL("libc.so.6")
-            _MALLOC_TUNED = bool(libc.mallopt(-3, 32 << 20)) and bool(libc.mallopt(-1, 64 << 20))
-        except (OSError, AttributeError):
-            _MALLOC_TUNED = False
-    return _MALLOC_TUNED
 
 
 def _analyse_job_on_worker(job: TrialJob, options: AnalysisOptions) -> dict:

@@ -78,20 +78,42 @@ def _write_blocks(names: list, n_rows: int, handle, cells_of: Callable, table_of
         cells = cells_of(lo, hi)
         if any(c is None for c in cells):
             handle.write(table_of(lo, hi).to_csv(header=False, **_PANDAS_CSV))
-        else:
-            writer.writerows(zip(*cells))
+        elif len(cells) == 1:  # a row of one field: the csv writer quotes an empty one
+            handle.write("".join([(cell or '""') + "\n" for cell in cells[0]]))
+        elif cells and cells[0]:
+            # every cell is already final text (numbers never need quoting, text is quoted by _quoted as the csv
+            # writer would): joining the rows is the csv writer's output, at about half its cost
+            handle.write("\n".join(map(",".join, zip(*cells))) + "\n")
+
+
+def _quoted(cells: list[str]) -> list[str]:
+    """Text cells as the csv writer (minimal quoting, comma, ``\\n``) writes them inside a row of two or more
+    fields; each distinct text is passed through the csv module once."""
+    forms = {}
+    for text in set(cells):
+        line = _io.StringIO()
+        csv.writer(line, lineterminator="\n").writerow([text, ""])
+        forms[text] = line.getvalue()[:-2]  # without the second (empty) field's "," and the line end
+    return [forms[text] for text in cells]
 
 
 def _csv_cells(values: np.ndarray) -> list[str] | None:
-    """One column's cells as pandas' to_csv writes them, or None when the column is of a kind not handled here."""
+    """One column's cells as pandas' to_csv writes them (text quoted as the csv writer does), or None when the
+    column is of a kind not handled here."""
     kind = values.dtype.kind
     if kind == "f":
-        return [CSV_FLOAT_FORMAT % v if v == v else "" for v in values.tolist()]
+        cells = list(map(CSV_FLOAT_FORMAT.__mod__, values.tolist()))
+        for i in np.flatnonzero(np.isnan(values)).tolist():  # missing values empty
+            cells[i] = ""
+        return cells
     if kind in "iu":
-        return [str(v) for v in values.tolist()]
+        return list(map(str, values.tolist()))
     if kind == "b":
         return ["True" if v else "False" for v in values.tolist()]
-    if kind in "OUT":  # object or string columns: text, with missing values empty
+    if kind in "UT":  # numpy text: every cell a str; quoted once per distinct text
+        distinct, where = np.unique(values, return_inverse=True)
+        return np.array(_quoted(distinct.tolist()), dtype=object)[where.ravel()].tolist()
+    if kind == "O":  # object columns: text, with missing values empty
         cells = []
         for v in values.tolist():
             if isinstance(v, str):
@@ -100,7 +122,7 @@ def _csv_cells(values: np.ndarray) -> list[str] | None:
                 cells.append("")
             else:
                 return None  # numbers or other objects inside a text column: let pandas decide
-        return cells
+        return _quoted(cells)
     return None
 
 
