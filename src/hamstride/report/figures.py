@@ -73,14 +73,72 @@ def _header(fig, title: str, handles: list, ncol: int | None = None) -> None:
                ncol=ncol or len(handles), fontsize=7.5, frameon=False, borderaxespad=0.0, handlelength=2.6)
 
 
-def _cycle_axes(ax) -> None:
-    from matplotlib.ticker import FixedLocator, MaxNLocator
+_TICK_PT, _TICK_PAD_PT, _LABEL_PAD_PT, _TICK_FONT = 3.5, 3.5, 4.0, 7.5  # matplotlib's default tick geometry
 
-    ax.set_xlim(0, 100)
-    ax.xaxis.set_major_locator(FixedLocator(_CYCLE_TICKS))
-    ax.yaxis.set_major_locator(MaxNLocator(nbins=5))
-    ax.tick_params(labelsize=7.5)
-    ax.grid(True, color=GRID, lw=0.5)
+
+def _tick_labels(values: Sequence[float], limits: tuple[float, float]) -> list[str]:
+    """Tick labels as matplotlib's default formatter writes them (same decimals for all, a true minus sign)."""
+    from matplotlib.ticker import ScalarFormatter
+
+    formatter = ScalarFormatter(useOffset=False)
+    formatter.create_dummy_axis()
+    formatter.axis.set_view_interval(*limits)
+    return [mpl_text(s) for s in formatter.format_ticks(list(values))]
+
+
+def _text_width_pt(texts: Sequence[str], size: float) -> float:
+    from matplotlib.font_manager import FontProperties
+    from matplotlib.textpath import text_to_path
+
+    font = FontProperties(size=size)
+    return max((text_to_path.get_text_width_height_descent(t, font, ismath=False)[0] for t in texts), default=0.0)
+
+
+def _plain_ticks(ax, x_values: Sequence[float], y_values: Sequence[float], *, x_labels: bool, y_labels: bool,
+                 grid: bool = True) -> None:
+    """Grid lines, tick marks and tick labels drawn as one line collection per direction, one marker line per
+    labelled axis and one text per label, where matplotlib's tick objects would be (five artists per tick, which
+    dominate drawing time). The geometry is matplotlib's default (3.5 pt outward marks, labels 3.5 pt beyond, axis
+    label 4 pt beyond those); call after the axis limits are final."""
+    from matplotlib.markers import TICKDOWN, TICKLEFT
+    from matplotlib.ticker import NullLocator
+    from matplotlib.transforms import offset_copy
+
+    fig = ax.figure
+    ax.xaxis.set_major_locator(NullLocator())
+    ax.yaxis.set_major_locator(NullLocator())
+    x_values, y_values = list(x_values), list(y_values)
+    if grid and x_values:
+        ax.vlines(x_values, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
+    if grid and y_values:
+        ax.hlines(y_values, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
+    offset = _TICK_PT + _TICK_PAD_PT
+    if x_labels and x_values:
+        where = ax.get_xaxis_transform()
+        ax.plot(x_values, [0.0] * len(x_values), transform=where, marker=TICKDOWN, markersize=_TICK_PT,
+                markeredgewidth=0.8, color="black", ls="none", clip_on=False)
+        below = offset_copy(where, fig, y=-offset, units="points")
+        for v, text in zip(x_values, _tick_labels(x_values, ax.get_xlim())):
+            ax.text(v, 0.0, text, transform=below, ha="center", va="top", fontsize=_TICK_FONT, clip_on=False)
+        ax.xaxis.set_label_coords(0.5, 0.0, transform=offset_copy(
+            ax.transAxes, fig, y=-(offset + 1.2 * _TICK_FONT + _LABEL_PAD_PT), units="points"))
+    if y_labels and y_values:
+        where = ax.get_yaxis_transform()
+        ax.plot([0.0] * len(y_values), y_values, transform=where, marker=TICKLEFT, markersize=_TICK_PT,
+                markeredgewidth=0.8, color="black", ls="none", clip_on=False)
+        left = offset_copy(where, fig, x=-offset, units="points")
+        texts = _tick_labels(y_values, ax.get_ylim())
+        for v, text in zip(y_values, texts):
+            ax.text(0.0, v, text, transform=left, ha="right", va="center_baseline", fontsize=_TICK_FONT,
+                    clip_on=False)
+        ax.yaxis.set_label_coords(0.0, 0.5, transform=offset_copy(
+            ax.transAxes, fig, x=-(offset + _text_width_pt(texts, _TICK_FONT) + _LABEL_PAD_PT), units="points"))
+
+
+def _y_ticks(lo: float, hi: float, nbins: int = 5) -> list[float]:
+    from matplotlib.ticker import MaxNLocator
+
+    return [float(v) for v in MaxNLocator(nbins=nbins).tick_values(lo, hi) if lo <= v <= hi]
 
 
 def side_handles(*, band: bool = True, peak: bool = True, window: bool = True) -> list:
@@ -253,30 +311,18 @@ def _muscle_grid(fig, rows: Sequence[tuple[str, str]], muscles: Sequence[str], c
 
 def _share_rows(axes: np.ndarray) -> None:
     """One y range per row (room at the top for the late-swing ribbon) and 0-100 % for all, as shared axes would
-    give; tick labels only on the left column and the bottom row. Inner panels get plain grid lines instead of
-    ticks: tick objects dominate drawing time, and inner tick labels would be hidden anyway."""
-    from matplotlib.ticker import NullLocator
-
+    give; tick labels only on the left column and the bottom row, grid lines in every panel."""
     n_rows, n_cols = axes.shape
     for i in range(n_rows):
         limits = np.array([axes[i, j].get_ylim() for j in range(n_cols)])
         lo, hi = float(limits[:, 0].min()), float(limits[:, 1].max())
         hi += 0.14 * (hi - lo)
+        y_grid = _y_ticks(lo, hi)
         for j in range(n_cols):
             ax = axes[i, j]
             ax.set_ylim(lo, hi)
-            _cycle_axes(ax)
-            if j:
-                ax.yaxis.set_major_locator(NullLocator())
-            if i < n_rows - 1:
-                ax.xaxis.set_major_locator(NullLocator())
-        y_grid = [v for v in axes[i, 0].yaxis.get_major_locator().tick_values(lo, hi) if lo <= v <= hi]
-        for j in range(n_cols):  # one line collection per panel and direction, where ax.grid would draw
-            ax = axes[i, j]
-            if j and y_grid:
-                ax.hlines(y_grid, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
-            if i < n_rows - 1:
-                ax.vlines(_CYCLE_TICKS, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
+            ax.set_xlim(0, 100)
+            _plain_ticks(ax, _CYCLE_TICKS, y_grid, x_labels=i == n_rows - 1, y_labels=j == 0)
 
 
 def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
@@ -339,10 +385,12 @@ def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
             ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
         ax.axhline(0.0, color=REFERENCE, lw=0.6)
         lo, hi = ax.get_ylim()
-        ax.set_ylim(lo, hi + 0.14 * (hi - lo))
+        hi += 0.14 * (hi - lo)
+        ax.set_ylim(lo, hi)
+        ax.set_xlim(0, 100)
         ax.set_ylabel(labels[col], fontsize=8.5)
         ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-        _cycle_axes(ax)
+        _plain_ticks(ax, _CYCLE_TICKS, _y_ticks(lo, hi), x_labels=True, y_labels=True)
         _mark_window(ax, starts, toe_offs, label=(k == 0))
     _header(fig, title, side_handles(peak=False), ncol=5)
     _margins(fig, top_in=0.75, left_in=0.75, bottom_in=0.5, wspace=0.25)
