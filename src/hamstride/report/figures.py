@@ -42,14 +42,86 @@ def new_figure(width_in: float, height_in: float):
     return Figure(figsize=(width_in, height_in), dpi=100)
 
 
+@dataclass(eq=False)
+class _Layout:
+    """The fixed part of a kind of picture (axes, column and time-axis titles, time axis, legend), built once per
+    process and kept. Each picture of that kind removes the previous picture's own artists and adds its own;
+    :func:`raster` draws the fixed part once, keeps the pixels, and then draws only each picture's own artists
+    over a copy of them (matplotlib's blitting, as its animation guide describes)."""
+
+    fig: object
+    axes: np.ndarray
+    fixed: frozenset
+    background: object = None
+    background_dpi: float | None = None
+
+    def own_artists(self, spines: bool = False) -> list:
+        """The current picture's artists, in matplotlib's drawing order (axes in order, each by zorder; then the
+        figure's own); ``spines``: with each axes' frame again at its zorder (drawn over the picture's lower
+        artists, as in a full drawing)."""
+        out = []
+        for ax in self.fig.axes:
+            mine = [a for a in (*ax.collections, *ax.patches, *ax.lines, *ax.texts) if id(a) not in self.fixed]
+            if spines:
+                mine += ax.spines.values()
+            out += sorted(mine, key=lambda a: a.get_zorder())
+        mine = [a for a in (*self.fig.lines, *self.fig.patches, *self.fig.texts) if id(a) not in self.fixed]
+        return out + sorted(mine, key=lambda a: a.get_zorder())
+
+    def clear(self) -> None:
+        for artist in self.own_artists():
+            artist.remove()
+        for ax in self.axes.flat:
+            ax.relim()  # forget the previous picture's data limits
+            ax.set_autoscaley_on(True)
+
+
+_LAYOUTS: dict[tuple, _Layout] = {}
+_LAYOUT_OF_FIGURE: dict[int, _Layout] = {}
+
+
+def _layout(key: tuple, build) -> _Layout:
+    """The kept layout for ``key`` (built by ``build() -> (fig, axes)`` the first time), cleared for a new picture.
+    The figure is the same object for every picture of the layout: raster a picture before drawing the next."""
+    layout = _LAYOUTS.get(key)
+    if layout is None:
+        fig, axes = build()
+        fixed = [*fig.lines, *fig.patches, *fig.texts, *fig.legends]
+        for ax in fig.axes:
+            fixed += ax.get_children()
+        layout = _LAYOUTS[key] = _Layout(fig, axes, frozenset(map(id, fixed)))
+        _LAYOUT_OF_FIGURE[id(fig)] = layout
+    else:
+        layout.clear()
+    return layout
+
+
 def raster(fig, dpi: int = RASTER_DPI) -> Raster:
-    """Draw ``fig`` once with Agg and keep the PNG (reused by the page and the PDF)."""
+    """Draw ``fig`` once with Agg and keep the PNG (reused by the page and the PDF). A kept layout's fixed part is
+    drawn only for its first picture; later pictures draw their own artists over a copy of its pixels."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from PIL import Image
 
-    canvas = FigureCanvasAgg(fig)
+    canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
     fig.set_dpi(dpi)
-    canvas.draw()
+    layout = _LAYOUT_OF_FIGURE.get(id(fig))
+    if layout is None:
+        canvas.draw()
+    else:
+        own = layout.own_artists()
+        if layout.background is None or layout.background_dpi != dpi:
+            for artist in own:
+                artist.set_visible(False)
+            canvas.draw()
+            layout.background, layout.background_dpi = canvas.copy_from_bbox(fig.bbox), dpi
+            for artist in own:
+                artist.set_visible(True)
+        for ax in fig.axes:
+            ax.get_xlim(), ax.get_ylim()  # settle any pending autoscaling before drawing into the axes
+        canvas.restore_region(layout.background)
+        renderer = canvas.get_renderer()
+        for artist in layout.own_artists(spines=True):
+            artist.draw(renderer)
     rgb = np.asarray(canvas.buffer_rgba())[..., :3]
     buffer = io.BytesIO()
     Image.fromarray(rgb).save(buffer, format="PNG", compress_level=1)
@@ -65,12 +137,17 @@ def _margins(fig, *, top_in: float, left_in: float, bottom_in: float, right_in: 
                         top=1 - top_in / height, wspace=wspace, hspace=hspace)
 
 
-def _header(fig, title: str, handles: list, ncol: int | None = None) -> None:
-    """Title on the first line, legend below it, both above the plots (never overlapping them)."""
+def _title(fig, title: str) -> None:
+    """The picture's title on the first line, above the legend (never overlapping the plots)."""
     width, height = fig.get_size_inches()
     fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(title), fontsize=10.5, va="top", ha="left")
-    fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
-               ncol=ncol or len(handles), fontsize=7.5, frameon=False, borderaxespad=0.0, handlelength=2.6)
+
+
+def _legend_place(fig, ncol: int) -> dict:
+    """Legend keywords: below the title, above the plots."""
+    width, height = fig.get_size_inches()
+    return {"loc": "upper left", "bbox_to_anchor": (0.1 / width, 1 - 0.33 / height), "ncol": ncol, "fontsize": 7.5,
+            "frameon": False, "borderaxespad": 0.0, "handlelength": 2.6}
 
 
 _TICK_PT, _TICK_PAD_PT, _LABEL_PAD_PT, _TICK_FONT = 3.5, 3.5, 4.0, 7.5  # matplotlib's default tick geometry
@@ -94,45 +171,59 @@ def _text_width_pt(texts: Sequence[str], size: float) -> float:
     return max((text_to_path.get_text_width_height_descent(t, font, ismath=False)[0] for t in texts), default=0.0)
 
 
-def _plain_ticks(ax, x_values: Sequence[float], y_values: Sequence[float], *, x_labels: bool, y_labels: bool,
-                 grid: bool = True) -> None:
-    """Grid lines, tick marks and tick labels drawn as one line collection per direction, one marker line per
-    labelled axis and one text per label, where matplotlib's tick objects would be (five artists per tick, which
-    dominate drawing time). The geometry is matplotlib's default (3.5 pt outward marks, labels 3.5 pt beyond, axis
-    label 4 pt beyond those); call after the axis limits are final."""
-    from matplotlib.markers import TICKDOWN, TICKLEFT
+def _time_axis(ax, *, labels: bool) -> None:
+    """Gait-cycle axis 0-100 %: grid lines, and on the bottom row tick marks, tick labels and the axis title.
+
+    Drawn as one line collection, one marker line and one text per label where matplotlib's tick objects would be
+    (five artists per tick, which dominate drawing time), with matplotlib's default geometry: 3.5 pt outward marks,
+    labels 3.5 pt beyond them, the axis title 4 pt beyond the labels."""
+    from matplotlib.markers import TICKDOWN
     from matplotlib.ticker import NullLocator
     from matplotlib.transforms import offset_copy
 
-    fig = ax.figure
+    ax.set_xlim(0, 100)
     ax.xaxis.set_major_locator(NullLocator())
     ax.yaxis.set_major_locator(NullLocator())
-    x_values, y_values = list(x_values), list(y_values)
-    if grid and x_values:
-        ax.vlines(x_values, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
-    if grid and y_values:
-        ax.hlines(y_values, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
-    offset = _TICK_PT + _TICK_PAD_PT
-    if x_labels and x_values:
-        where = ax.get_xaxis_transform()
-        ax.plot(x_values, [0.0] * len(x_values), transform=where, marker=TICKDOWN, markersize=_TICK_PT,
+    where = ax.get_xaxis_transform()
+    ax.vlines(_CYCLE_TICKS, 0, 1, transform=where, color=GRID, lw=0.5, zorder=1.5)
+    if labels:
+        offset = _TICK_PT + _TICK_PAD_PT
+        ax.plot(_CYCLE_TICKS, [0.0] * len(_CYCLE_TICKS), transform=where, marker=TICKDOWN, markersize=_TICK_PT,
                 markeredgewidth=0.8, color="black", ls="none", clip_on=False)
-        below = offset_copy(where, fig, y=-offset, units="points")
-        for v, text in zip(x_values, _tick_labels(x_values, ax.get_xlim())):
+        below = offset_copy(where, ax.figure, y=-offset, units="points")
+        for v, text in zip(_CYCLE_TICKS, _tick_labels(_CYCLE_TICKS, (0, 100))):
             ax.text(v, 0.0, text, transform=below, ha="center", va="top", fontsize=_TICK_FONT, clip_on=False)
+        ax.set_xlabel("gait cycle (%)", fontsize=8.5)
         ax.xaxis.set_label_coords(0.5, 0.0, transform=offset_copy(
-            ax.transAxes, fig, y=-(offset + 1.2 * _TICK_FONT + _LABEL_PAD_PT), units="points"))
-    if y_labels and y_values:
-        where = ax.get_yaxis_transform()
-        ax.plot([0.0] * len(y_values), y_values, transform=where, marker=TICKLEFT, markersize=_TICK_PT,
+            ax.transAxes, ax.figure, y=-(offset + 1.2 * _TICK_FONT + _LABEL_PAD_PT), units="points"))
+
+
+def _value_axis(ax, values: Sequence[float], *, labels: bool, title: str | None = None) -> None:
+    """A picture's value axis (call once its limits are final): grid lines, and where ``labels`` tick marks, tick
+    labels and the rotated axis title, drawn as :func:`_time_axis` draws the time axis."""
+    from matplotlib.markers import TICKLEFT
+    from matplotlib.transforms import offset_copy
+
+    values = list(values)
+    where = ax.get_yaxis_transform()
+    if values:
+        ax.hlines(values, 0, 1, transform=where, color=GRID, lw=0.5, zorder=1.5)
+    if not labels:
+        return
+    offset = _TICK_PT + _TICK_PAD_PT
+    texts = _tick_labels(values, ax.get_ylim()) if values else []
+    if values:
+        ax.plot([0.0] * len(values), values, transform=where, marker=TICKLEFT, markersize=_TICK_PT,
                 markeredgewidth=0.8, color="black", ls="none", clip_on=False)
-        left = offset_copy(where, fig, x=-offset, units="points")
-        texts = _tick_labels(y_values, ax.get_ylim())
-        for v, text in zip(y_values, texts):
+        left = offset_copy(where, ax.figure, x=-offset, units="points")
+        for v, text in zip(values, texts):
             ax.text(0.0, v, text, transform=left, ha="right", va="center_baseline", fontsize=_TICK_FONT,
                     clip_on=False)
-        ax.yaxis.set_label_coords(0.0, 0.5, transform=offset_copy(
-            ax.transAxes, fig, x=-(offset + _text_width_pt(texts, _TICK_FONT) + _LABEL_PAD_PT), units="points"))
+    if title:
+        beside = offset_copy(ax.transAxes, ax.figure, x=-(offset + _text_width_pt(texts, _TICK_FONT) + _LABEL_PAD_PT),
+                             units="points")
+        ax.text(0.0, 0.5, title, transform=beside, rotation=90, rotation_mode="anchor", ha="center", va="bottom",
+                fontsize=8.5, clip_on=False)
 
 
 def _y_ticks(lo: float, hi: float, nbins: int = 5) -> list[float]:
@@ -283,35 +374,48 @@ _STRETCH_ROWS = (
 _FORCE_ROWS = (("force_n", "muscle force (N)"), ("power_w", "muscle power (W)"))
 
 
-def _muscle_grid(fig, rows: Sequence[tuple[str, str]], muscles: Sequence[str], curves: pd.DataFrame,
+def _grid_layout(kind: str, rows: Sequence[tuple[str, str]], muscles: Sequence[str], height_in: float,
+                 handles, ncol: int) -> _Layout:
+    """The kept layout of a muscle grid: one column per muscle, one row per curve column, legend above."""
+    def build():
+        fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, height_in)
+        axes = fig.subplots(len(rows), max(1, len(muscles)), squeeze=False)
+        for j, muscle in enumerate(muscles):
+            _muscle_title(axes[0, j], muscle)
+        for i in range(axes.shape[0]):
+            for j in range(axes.shape[1]):
+                _time_axis(axes[i, j], labels=i == axes.shape[0] - 1)
+        fig.legend(handles=handles(), **_legend_place(fig, ncol))
+        _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
+        return fig, axes
+
+    return _layout((kind, tuple(rows), tuple(muscles), height_in, ncol, tuple(h.get_label() for h in handles())),
+                   build)
+
+
+def _muscle_grid(layout: _Layout, rows: Sequence[tuple[str, str]], muscles: Sequence[str], curves: pd.DataFrame,
                  strides: pd.DataFrame, decorate) -> np.ndarray:
-    """One column per muscle and one row per curve column, left and right overlaid, late swing marked."""
+    """Left and right overlaid in each panel of a grid layout, one y range per row, late swing marked."""
     stats = curve_stats(curves, [r[0] for r in rows])
     starts, toe_offs = window_of(strides)
-    axes = fig.subplots(len(rows), max(1, len(muscles)), squeeze=False)
+    axes = layout.axes
     for j, muscle in enumerate(muscles):
-        for i, (col, ylabel) in enumerate(rows):
+        for i, (col, _) in enumerate(rows):
             ax = axes[i, j]
             drawn = _plot_side_curves(ax, stats, muscle, col, starts)
             decorate(ax, col, muscle, drawn)
             if not drawn:
                 ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
-            if i == 0:
-                _muscle_title(ax, muscle)
-            if j == 0:
-                ax.set_ylabel(ylabel, fontsize=8.5)
-            if i == len(rows) - 1:
-                ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-    _share_rows(axes)
+    _share_rows(axes, [r[1] for r in rows])
     for i in range(axes.shape[0]):
         for j in range(axes.shape[1]):
             _mark_window(axes[i, j], starts, toe_offs, label=(i == 0 and j == 0))
     return axes
 
 
-def _share_rows(axes: np.ndarray) -> None:
-    """One y range per row (room at the top for the late-swing ribbon) and 0-100 % for all, as shared axes would
-    give; tick labels only on the left column and the bottom row, grid lines in every panel."""
+def _share_rows(axes: np.ndarray, titles: Sequence[str]) -> None:
+    """One y range per row (room at the top for the late-swing ribbon), as shared axes would give; tick labels and
+    the row's title on the left column only, grid lines in every panel."""
     n_rows, n_cols = axes.shape
     for i in range(n_rows):
         limits = np.array([axes[i, j].get_ylim() for j in range(n_cols)])
@@ -319,10 +423,8 @@ def _share_rows(axes: np.ndarray) -> None:
         hi += 0.14 * (hi - lo)
         y_grid = _y_ticks(lo, hi)
         for j in range(n_cols):
-            ax = axes[i, j]
-            ax.set_ylim(lo, hi)
-            ax.set_xlim(0, 100)
-            _plain_ticks(ax, _CYCLE_TICKS, y_grid, x_labels=i == n_rows - 1, y_labels=j == 0)
+            axes[i, j].set_ylim(lo, hi)
+            _value_axis(axes[i, j], y_grid, labels=j == 0, title=titles[i] if j == 0 else None)
 
 
 def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
@@ -341,11 +443,11 @@ def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequenc
         if drawn:
             _mark_peaks(ax, drawn, groups, muscle, *peaks[col])
 
-    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 3.4 if compact else 7.0)
-    _muscle_grid(fig, [r[:2] for r in rows], muscles, curves, strides, decorate)
-    _header(fig, title, side_handles(), ncol=3)
-    _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
-    return fig
+    grid_rows = [r[:2] for r in rows]
+    layout = _grid_layout("stretch", grid_rows, muscles, 3.4 if compact else 7.0, side_handles, 3)
+    _muscle_grid(layout, grid_rows, muscles, curves, strides, decorate)
+    _title(layout.fig, title)
+    return layout.fig
 
 
 def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
@@ -359,14 +461,17 @@ def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[
         if col == "power_w":
             ax.axhline(0.0, color=REFERENCE, ls="-", lw=0.6, zorder=1)
 
-    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 5.0)
-    _muscle_grid(fig, _FORCE_ROWS, muscles, curves, strides, decorate)
     has_band = {"peak_force_n_p5", "peak_force_n_p95"} <= set(strides.columns)
-    star = Line2D([], [], color="black", marker="*", ls="none", markersize=9,
-                  label="mean of stride peak forces" + (", bar = model range 5–95 %" if has_band else ""))
-    _header(fig, title, side_handles(peak=False) + [star], ncol=3)
-    _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
-    return fig
+
+    def handles():
+        return side_handles(peak=False) + [Line2D(
+            [], [], color="black", marker="*", ls="none", markersize=9,
+            label="mean of stride peak forces" + (", bar = model range 5–95 %" if has_band else ""))]
+
+    layout = _grid_layout("force", _FORCE_ROWS, muscles, 5.0, handles, 3)
+    _muscle_grid(layout, _FORCE_ROWS, muscles, curves, strides, decorate)
+    _title(layout.fig, title)
+    return layout.fig
 
 
 def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
@@ -376,10 +481,18 @@ def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
     one = curves[curves["muscle"].astype(str).isin(first)]
     stats = curve_stats(one, [c for c in cols if c in curves.columns])
     starts, toe_offs = window_of(strides)
-    fig = new_figure(9.0, 2.9)
-    axes = fig.subplots(1, 2, squeeze=False)[0]
+    def build():
+        fig = new_figure(9.0, 2.9)
+        axes = fig.subplots(1, 2, squeeze=False)
+        for ax in axes.flat:
+            _time_axis(ax, labels=True)
+        fig.legend(handles=side_handles(peak=False), **_legend_place(fig, 5))
+        _margins(fig, top_in=0.75, left_in=0.75, bottom_in=0.5, wspace=0.25)
+        return fig, axes
+
+    layout = _layout(("joints",), build)
     labels = {"hip_flexion_deg": "hip flexion (deg)", "knee_flexion_deg": "knee flexion (deg)"}
-    for k, (ax, col) in enumerate(zip(axes, cols)):
+    for k, (ax, col) in enumerate(zip(layout.axes[0], cols)):
         drawn = _plot_side_curves(ax, stats, first[0] if first else "", col, starts)
         if not drawn:
             ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
@@ -387,14 +500,10 @@ def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
         lo, hi = ax.get_ylim()
         hi += 0.14 * (hi - lo)
         ax.set_ylim(lo, hi)
-        ax.set_xlim(0, 100)
-        ax.set_ylabel(labels[col], fontsize=8.5)
-        ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-        _plain_ticks(ax, _CYCLE_TICKS, _y_ticks(lo, hi), x_labels=True, y_labels=True)
+        _value_axis(ax, _y_ticks(lo, hi), labels=True, title=labels[col])
         _mark_window(ax, starts, toe_offs, label=(k == 0))
-    _header(fig, title, side_handles(peak=False), ncol=5)
-    _margins(fig, top_in=0.75, left_in=0.75, bottom_in=0.5, wspace=0.25)
-    return fig
+    _title(layout.fig, title)
+    return layout.fig
 
 
 # ----------------------------------------------------------------------------------------------------------------
