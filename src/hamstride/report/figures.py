@@ -185,11 +185,11 @@ def _time_axis(ax, *, labels: bool) -> None:
     ax.xaxis.set_major_locator(NullLocator())
     ax.yaxis.set_major_locator(NullLocator())
     where = ax.get_xaxis_transform()
-    ax.vlines(_CYCLE_TICKS, 0, 1, transform=where, color=GRID, lw=0.5, zorder=1.5)
+    _rules(ax, _CYCLE_TICKS, vertical=True, color=GRID, lw=0.5, zorder=1.5)
     if labels:
         offset = _TICK_PT + _TICK_PAD_PT
-        ax.plot(_CYCLE_TICKS, [0.0] * len(_CYCLE_TICKS), transform=where, marker=TICKDOWN, markersize=_TICK_PT,
-                markeredgewidth=0.8, color="black", ls="none", clip_on=False)
+        _line(ax, _CYCLE_TICKS, [0.0] * len(_CYCLE_TICKS), transform=where, marker=TICKDOWN, markersize=_TICK_PT,
+              markeredgewidth=0.8, color="black", ls="none", clip_on=False)
         below = offset_copy(where, ax.figure, y=-offset, units="points")
         for v, text in zip(_CYCLE_TICKS, _tick_labels(_CYCLE_TICKS, (0, 100))):
             ax.text(v, 0.0, text, transform=below, ha="center", va="top", fontsize=_TICK_FONT, clip_on=False)
@@ -207,14 +207,14 @@ def _value_axis(ax, values: Sequence[float], *, labels: bool, title: str | None 
     values = list(values)
     where = ax.get_yaxis_transform()
     if values:
-        ax.hlines(values, 0, 1, transform=where, color=GRID, lw=0.5, zorder=1.5)
+        _rules(ax, values, vertical=False, color=GRID, lw=0.5, zorder=1.5)
     if not labels:
         return
     offset = _TICK_PT + _TICK_PAD_PT
     texts = _tick_labels(values, ax.get_ylim()) if values else []
     if values:
-        ax.plot([0.0] * len(values), values, transform=where, marker=TICKLEFT, markersize=_TICK_PT,
-                markeredgewidth=0.8, color="black", ls="none", clip_on=False)
+        _line(ax, [0.0] * len(values), values, transform=where, marker=TICKLEFT, markersize=_TICK_PT,
+              markeredgewidth=0.8, color="black", ls="none", clip_on=False)
         left = offset_copy(where, ax.figure, x=-offset, units="points")
         for v, text in zip(values, texts):
             ax.text(0.0, v, text, transform=left, ha="right", va="center_baseline", fontsize=_TICK_FONT,
@@ -269,11 +269,46 @@ def curve_stats(curves: pd.DataFrame, columns: Sequence[str]) -> dict[tuple[str,
     return out
 
 
-def _stride_groups(strides: pd.DataFrame) -> dict[tuple[str, str], pd.DataFrame]:
-    if len(strides) == 0 or not {"side", "muscle"} <= set(strides.columns):
+def _stride_means(strides: pd.DataFrame, columns: Sequence[str | None]) -> dict[tuple[str, str], dict[str, float]]:
+    """Mean over strides of each column per (side, muscle) (NaN where a column has no value)."""
+    cols = sorted({c for c in columns if c} & set(strides.columns))
+    if len(strides) == 0 or not {"side", "muscle"} <= set(strides.columns) or not cols:
         return {}
-    return {(str(k[0]), str(k[1])): g for k, g in strides.groupby([strides["side"].astype(str),
-                                                                   strides["muscle"].astype(str)], sort=False)}
+    values = strides[cols].apply(pd.to_numeric, errors="coerce")
+    means = values.groupby([strides["side"].astype(str), strides["muscle"].astype(str)], sort=False).mean()
+    return {(str(k[0]), str(k[1])): row for k, row in zip(means.index, means.to_dict("records"))}
+
+
+def _line(ax, x, y, **style):
+    """A Line2D added to ``ax`` (what ``ax.plot`` makes, without its argument parsing)."""
+    from matplotlib.lines import Line2D
+
+    return ax.add_line(Line2D(x, y, **style))
+
+
+def _rules(ax, values: Sequence[float], *, vertical: bool, **style) -> None:
+    """Full-height (``vertical``) or full-width lines at ``values``, as one line broken by NaN gaps."""
+    values = list(values)
+    if not values:
+        return
+    along = np.tile([0.0, 1.0, np.nan], len(values))
+    at = np.repeat(np.asarray(values, dtype=float), 3)
+    if vertical:
+        _line(ax, at, along, transform=ax.get_xaxis_transform(), solid_capstyle="butt", **style)
+    else:
+        _line(ax, along, at, transform=ax.get_yaxis_transform(), solid_capstyle="butt", **style)
+
+
+def _band(ax, x: np.ndarray, low: np.ndarray, high: np.ndarray, **style) -> None:
+    """The area between two curves, as ``fill_between`` draws it (one polygon where both are finite throughout)."""
+    if not (np.isfinite(low).all() and np.isfinite(high).all()):
+        ax.fill_between(x, low, high, **style)
+        return
+    from matplotlib.patches import Polygon
+
+    outline = np.concatenate([np.column_stack([x, low]), np.column_stack([x[::-1], high[::-1]])])
+    ax.add_artist(Polygon(outline, closed=True, **style))  # add_patch would walk the outline point by point
+    ax.update_datalim(outline)
 
 
 def _nanmean_of(df: pd.DataFrame | None, name: str | None) -> float:
@@ -295,12 +330,14 @@ def window_of(strides: pd.DataFrame) -> tuple[dict[str, float], dict[str, float]
 
 def _mark_window(ax, starts: Mapping[str, float], toe_offs: Mapping[str, float], label: bool) -> None:
     """Late swing: a hatched ribbon along the top of the panel; toe-off: a caret on the time axis (per side)."""
+    from matplotlib.patches import Rectangle
+
     trans = ax.get_xaxis_transform()  # x in data, y in axes coordinates (cached by the axes)
     finite = [v for v in starts.values() if math.isfinite(v)]
     if finite:
         start = float(np.mean(finite))
-        ax.axvspan(start, 100.0, ymin=_RIBBON[0], ymax=_RIBBON[1], facecolor="white", edgecolor=_HATCH_COLOUR,
-                   hatch="////", lw=0.6, zorder=1)
+        ax.add_artist(Rectangle((start, _RIBBON[0]), 100.0 - start, _RIBBON[1] - _RIBBON[0], transform=trans,
+                                facecolor="white", edgecolor=_HATCH_COLOUR, hatch="////", lw=0.6, zorder=1))
         if label:
             ax.text(0.5 * (start + 100.0), 0.5 * (_RIBBON[0] + _RIBBON[1]), "late swing", transform=trans,
                     ha="center", va="center", fontsize=6.5, color="#222222", zorder=7,
@@ -308,8 +345,8 @@ def _mark_window(ax, starts: Mapping[str, float], toe_offs: Mapping[str, float],
     for side in SIDES:
         value = toe_offs.get(side, math.nan)
         if math.isfinite(value):
-            ax.plot([value], [0.0], transform=trans, marker=10, markersize=7, color=SIDE_COLOUR[side],
-                    markeredgecolor="black", markeredgewidth=0.4, ls="none", clip_on=False, zorder=6)
+            _line(ax, [value], [0.0], transform=trans, marker=10, markersize=7, color=SIDE_COLOUR[side],
+                  markeredgecolor="black", markeredgewidth=0.4, ls="none", clip_on=False, zorder=6)
     if label:
         toes = [v for v in toe_offs.values() if math.isfinite(v)]
         if toes:
@@ -328,33 +365,34 @@ def _plot_side_curves(ax, stats: Mapping, muscle: str, col: str, starts: Mapping
             continue
         colour = SIDE_COLOUR[side]
         sv = np.nan_to_num(sv)
-        ax.fill_between(pct, mv - sv, mv + sv, color=colour, alpha=BAND_ALPHA, lw=0, zorder=2)
-        ax.plot(pct, mv, color=colour, ls=SIDE_LINESTYLE[side], lw=1.1, marker=SIDE_MARKER[side], markersize=3.2,
-                markevery=max(1, len(pct) // 10), zorder=3)
+        _band(ax, pct, mv - sv, mv + sv, color=colour, alpha=BAND_ALPHA, lw=0, zorder=2)
+        _line(ax, pct, mv, color=colour, ls=SIDE_LINESTYLE[side], lw=1.1, marker=SIDE_MARKER[side], markersize=3.2,
+              markevery=max(1, len(pct) // 10), zorder=3)
         start = starts.get(side, math.nan)
         if math.isfinite(start):
             late = pct >= start
-            ax.plot(pct[late], mv[late], color=colour, ls=SIDE_LINESTYLE[side], lw=2.6, zorder=3.5)
+            _line(ax, pct[late], mv[late], color=colour, ls=SIDE_LINESTYLE[side], lw=2.6, zorder=3.5)
         drawn[side] = (pct, mv)
     return drawn
 
 
-def _mark_peaks(ax, drawn: Mapping[str, tuple], groups: Mapping, muscle: str, value_col: str | None,
+def _mark_peaks(ax, drawn: Mapping[str, tuple], means: Mapping, muscle: str, value_col: str | None,
                 low_col: str | None, high_col: str | None, time_col: str | None) -> None:
     """Star at the mean of the stride peaks (at their mean time), with the model range as a vertical bar."""
     for side, (pct, mv) in drawn.items():
-        sel = groups.get((side, muscle))
-        peak_time = _nanmean_of(sel, time_col)
+        mean = means.get((side, muscle), {})
+        peak_time = mean.get(time_col, math.nan)
         if not math.isfinite(peak_time):
             peak_time = float(pct[int(np.nanargmax(mv))])
-        peak_value = _nanmean_of(sel, value_col)
+        peak_value = mean.get(value_col, math.nan)
         if not math.isfinite(peak_value):
             peak_value = float(np.nanmax(mv))
-        lo, hi = _nanmean_of(sel, low_col), _nanmean_of(sel, high_col)
+        lo, hi = mean.get(low_col, math.nan), mean.get(high_col, math.nan)
         if math.isfinite(lo) and math.isfinite(hi):
-            ax.vlines(peak_time, lo, hi, color=SIDE_COLOUR[side], lw=2.2, zorder=4)
-        ax.plot([peak_time], [peak_value], marker="*", markersize=10, color=SIDE_COLOUR[side],
-                markeredgecolor="black", markeredgewidth=0.6, ls="none", zorder=5)
+            _line(ax, [peak_time, peak_time], [lo, hi], color=SIDE_COLOUR[side], lw=2.2, solid_capstyle="butt",
+                  zorder=4)
+        _line(ax, [peak_time], [peak_value], marker="*", markersize=10, color=SIDE_COLOUR[side],
+              markeredgecolor="black", markeredgewidth=0.6, ls="none", zorder=5)
 
 
 def _muscle_title(ax, muscle: str) -> None:
@@ -418,6 +456,8 @@ def _share_rows(axes: np.ndarray, titles: Sequence[str]) -> None:
     the row's title on the left column only, grid lines in every panel."""
     n_rows, n_cols = axes.shape
     for i in range(n_rows):
+        for j in range(n_cols):
+            axes[i, j].autoscale_view(scalex=False)  # the artists were added directly, without ax.plot's request
         limits = np.array([axes[i, j].get_ylim() for j in range(n_cols)])
         lo, hi = float(limits[:, 0].min()), float(limits[:, 1].max())
         hi += 0.14 * (hi - lo)
@@ -430,9 +470,9 @@ def _share_rows(axes: np.ndarray, titles: Sequence[str]) -> None:
 def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
                    compact: bool = False):
     """Stretch, fibre length and lengthening velocity per muscle (``compact``: the stretch row only)."""
-    groups = _stride_groups(strides)
     rows = _STRETCH_ROWS[:1] if compact else _STRETCH_ROWS
     peaks = {r[0]: r[2:] for r in rows}
+    groups = _stride_means(strides, [c for r in rows for c in r[2:]])
 
     def decorate(ax, col, muscle, drawn):
         if col == "fibre_length_lopt":
@@ -453,7 +493,7 @@ def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequenc
 def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
     from matplotlib.lines import Line2D
 
-    groups = _stride_groups(strides)
+    groups = _stride_means(strides, ["peak_force_n", "peak_force_n_p5", "peak_force_n_p95"])
 
     def decorate(ax, col, muscle, drawn):
         if col == "force_n" and drawn:
@@ -497,6 +537,7 @@ def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
         if not drawn:
             ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
         ax.axhline(0.0, color=REFERENCE, lw=0.6)
+        ax.autoscale_view(scalex=False)
         lo, hi = ax.get_ylim()
         hi += 0.14 * (hi - lo)
         ax.set_ylim(lo, hi)
