@@ -19,7 +19,7 @@ from ..style import (BAND_ALPHA, FLAG, GRID, MUSCLE_COLOUR, MUSCLE_GLYPH, REFERE
                      TARGET_ZONE, muscle_style)
 from .common import MUSCLE_NAMES, column, muscle_label, muscles_in_order, mpl_text
 
-__all__ = ["RASTER_DPI", "Raster", "new_figure", "raster", "side_handles", "curve_stats", "window_of",
+__all__ = ["RASTER_DPI", "FIGURE_COLUMNS", "Raster", "new_figure", "raster", "side_handles", "curve_stats", "window_of",
            "stretch_figure", "force_figure", "joint_figure", "LSI_STYLES", "timeline_figure", "mini_geometry"]
 
 RASTER_DPI = 110  # one raster serves the HTML page (shown at 100 px per inch) and the PDF (about 120 ppi on A4)
@@ -410,6 +410,9 @@ _STRETCH_ROWS = (
     ("velocity_lopt_per_s", "lengthening velocity (l_opt/s)", None, None, None, None),
 )
 _FORCE_ROWS = (("force_n", "muscle force (N)"), ("power_w", "muscle power (W)"))
+_JOINT_COLUMNS = ("hip_flexion_deg", "knee_flexion_deg")
+#: the curve columns the athlete's gait-cycle pictures show (one :func:`curve_stats` call serves them all)
+FIGURE_COLUMNS = tuple(r[0] for r in _STRETCH_ROWS) + tuple(r[0] for r in _FORCE_ROWS) + _JOINT_COLUMNS
 
 
 def _grid_layout(kind: str, rows: Sequence[tuple[str, str]], muscles: Sequence[str], height_in: float,
@@ -432,9 +435,10 @@ def _grid_layout(kind: str, rows: Sequence[tuple[str, str]], muscles: Sequence[s
 
 
 def _muscle_grid(layout: _Layout, rows: Sequence[tuple[str, str]], muscles: Sequence[str], curves: pd.DataFrame,
-                 strides: pd.DataFrame, decorate) -> np.ndarray:
+                 strides: pd.DataFrame, decorate, stats: Mapping | None) -> np.ndarray:
     """Left and right overlaid in each panel of a grid layout, one y range per row, late swing marked."""
-    stats = curve_stats(curves, [r[0] for r in rows])
+    if stats is None:
+        stats = curve_stats(curves, [r[0] for r in rows])
     starts, toe_offs = window_of(strides)
     axes = layout.axes
     for j, muscle in enumerate(muscles):
@@ -468,8 +472,11 @@ def _share_rows(axes: np.ndarray, titles: Sequence[str]) -> None:
 
 
 def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
-                   compact: bool = False):
-    """Stretch, fibre length and lengthening velocity per muscle (``compact``: the stretch row only)."""
+                   compact: bool = False, stats: Mapping | None = None):
+    """Stretch, fibre length and lengthening velocity per muscle (``compact``: the stretch row only).
+
+    ``stats``: :func:`curve_stats` of ``curves`` already taken (over :data:`FIGURE_COLUMNS`, shared by the
+    athlete's pictures); by default they are taken here."""
     rows = _STRETCH_ROWS[:1] if compact else _STRETCH_ROWS
     peaks = {r[0]: r[2:] for r in rows}
     groups = _stride_means(strides, [c for r in rows for c in r[2:]])
@@ -485,12 +492,13 @@ def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequenc
 
     grid_rows = [r[:2] for r in rows]
     layout = _grid_layout("stretch", grid_rows, muscles, 3.4 if compact else 7.0, side_handles, 3)
-    _muscle_grid(layout, grid_rows, muscles, curves, strides, decorate)
+    _muscle_grid(layout, grid_rows, muscles, curves, strides, decorate, stats)
     _title(layout.fig, title)
     return layout.fig
 
 
-def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
+def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
+                 stats: Mapping | None = None):
     from matplotlib.lines import Line2D
 
     groups = _stride_means(strides, ["peak_force_n", "peak_force_n_p5", "peak_force_n_p95"])
@@ -509,17 +517,18 @@ def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[
             label="mean of stride peak forces" + (", bar = model range 5–95 %" if has_band else ""))]
 
     layout = _grid_layout("force", _FORCE_ROWS, muscles, 5.0, handles, 3)
-    _muscle_grid(layout, _FORCE_ROWS, muscles, curves, strides, decorate)
+    _muscle_grid(layout, _FORCE_ROWS, muscles, curves, strides, decorate, stats)
     _title(layout.fig, title)
     return layout.fig
 
 
-def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
+def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str, *, stats: Mapping | None = None):
     """Hip and knee flexion (one muscle's rows suffice: the joint angles are shared by all muscles)."""
-    cols = ("hip_flexion_deg", "knee_flexion_deg")
-    first = muscles_in_order(curves["muscle"])[:1]
-    one = curves[curves["muscle"].astype(str).isin(first)]
-    stats = curve_stats(one, [c for c in cols if c in curves.columns])
+    cols = _JOINT_COLUMNS
+    first = muscles_in_order(curves["muscle"].unique())[:1]
+    if stats is None:
+        one = curves[curves["muscle"].astype(str).isin(first)]
+        stats = curve_stats(one, [c for c in cols if c in curves.columns])
     starts, toe_offs = window_of(strides)
     def build():
         fig = new_figure(9.0, 2.9)
