@@ -215,7 +215,7 @@ def _time_axis(ax, *, labels: bool) -> None:
     if labels:
         offset = _TICK_PT + _TICK_PAD_PT
         _line(ax, _CYCLE_TICKS, [0.0] * len(_CYCLE_TICKS), transform=where, marker=TICKDOWN, markersize=_TICK_PT,
-              markeredgewidth=0.8, color="black", ls="none", clip_on=False)
+              markeredgewidth=0.8, color="black", ls="none", clip_on=False, limits=False)
         below = offset_copy(where, ax.figure, y=-offset, units="points")
         for v, text in zip(_CYCLE_TICKS, _tick_labels(_CYCLE_TICKS, (0, 100))):
             ax.text(v, 0.0, text, transform=below, ha="center", va="top", fontsize=_TICK_FONT, clip_on=False)
@@ -228,8 +228,10 @@ def _value_axis(ax, values: Sequence[float], *, labels: bool, title: str | None 
     """A picture's value axis (call once its limits are final): grid lines, and where ``labels`` tick marks, tick
     labels and the rotated axis title, drawn as :func:`_time_axis` draws the time axis."""
     from matplotlib.markers import TICKLEFT
+    from matplotlib.ticker import NullLocator
     from matplotlib.transforms import offset_copy
 
+    ax.yaxis.set_major_locator(NullLocator())
     values = list(values)
     where = ax.get_yaxis_transform()
     if values:
@@ -240,7 +242,7 @@ def _value_axis(ax, values: Sequence[float], *, labels: bool, title: str | None 
     texts = _tick_labels(values, ax.get_ylim()) if values else []
     if values:
         _line(ax, [0.0] * len(values), values, transform=where, marker=TICKLEFT, markersize=_TICK_PT,
-              markeredgewidth=0.8, color="black", ls="none", clip_on=False)
+              markeredgewidth=0.8, color="black", ls="none", clip_on=False, limits=False)
         left = offset_copy(where, ax.figure, x=-offset, units="points")
         for v, text in zip(values, texts):
             ax.text(0.0, v, text, transform=left, ha="right", va="center_baseline", fontsize=_TICK_FONT,
@@ -305,11 +307,13 @@ def _stride_means(strides: pd.DataFrame, columns: Sequence[str | None]) -> dict[
     return {(str(k[0]), str(k[1])): row for k, row in zip(means.index, means.to_dict("records"))}
 
 
-def _line(ax, x, y, **style):
-    """A Line2D added to ``ax`` (what ``ax.plot`` makes, without its argument parsing)."""
+def _line(ax, x, y, *, limits: bool = True, **style):
+    """A Line2D added to ``ax`` (what ``ax.plot`` makes, without its argument parsing); ``limits=False``: one that
+    must not widen the data limits (grid lines, tick marks: the axis limits are set before them)."""
     from matplotlib.lines import Line2D
 
-    return ax.add_line(Line2D(x, y, **style))
+    line = Line2D(x, y, **style)
+    return ax.add_line(line) if limits else ax.add_artist(line)
 
 
 def _rules(ax, values: Sequence[float], *, vertical: bool, **style) -> None:
@@ -320,9 +324,9 @@ def _rules(ax, values: Sequence[float], *, vertical: bool, **style) -> None:
     along = np.tile([0.0, 1.0, np.nan], len(values))
     at = np.repeat(np.asarray(values, dtype=float), 3)
     if vertical:
-        _line(ax, at, along, transform=ax.get_xaxis_transform(), solid_capstyle="butt", **style)
+        _line(ax, at, along, transform=ax.get_xaxis_transform(), solid_capstyle="butt", limits=False, **style)
     else:
-        _line(ax, along, at, transform=ax.get_yaxis_transform(), solid_capstyle="butt", **style)
+        _line(ax, along, at, transform=ax.get_yaxis_transform(), solid_capstyle="butt", limits=False, **style)
 
 
 def _band(ax, x: np.ndarray, low: np.ndarray, high: np.ndarray, **style) -> None:
@@ -611,14 +615,32 @@ def _min_span(ax, values: np.ndarray, span: float) -> None:
         ax.set_ylim(lo - pad, hi + pad)
 
 
+def _session_axis(ax, x: np.ndarray, labels: Sequence[str] | None, *, fontsize: float = _TICK_FONT,
+                  rotation: float = 0.0, ha: str = "center") -> None:
+    """Sessions along x: grid lines, and where ``labels`` are given tick marks and labels (drawn as
+    :func:`_time_axis` draws the gait-cycle axis; rotated labels are aligned as matplotlib aligns them)."""
+    from matplotlib.markers import TICKDOWN
+    from matplotlib.ticker import NullLocator
+    from matplotlib.transforms import offset_copy
+
+    ax.xaxis.set_major_locator(NullLocator())
+    _rules(ax, x, vertical=True, color=GRID, lw=0.5, zorder=1.5 if labels is not None else 0.5)
+    if labels is None:
+        return
+    where = ax.get_xaxis_transform()
+    _line(ax, x, np.zeros(len(x)), transform=where, marker=TICKDOWN, markersize=_TICK_PT, markeredgewidth=0.8,
+          color="black", ls="none", clip_on=False, limits=False)
+    below = offset_copy(where, ax.figure, y=-(_TICK_PT + _TICK_PAD_PT), units="points")
+    for v, text in zip(x, labels):
+        ax.text(v, 0.0, text, transform=below, ha=ha, va="top", rotation=rotation, fontsize=fontsize, clip_on=False)
+
+
 def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xlabels: Sequence[str],
                     muscles: Sequence[str], lsi_cols: Sequence[str], x_title: str, lsi_line: float = 90.0):
     """Speed on top, then per muscle (columns) peak stretch, peak l/l_opt, negative work and LSI per session."""
     from matplotlib.gridspec import GridSpec
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
-    from matplotlib.ticker import MaxNLocator, NullLocator
-
     n = max(1, len(muscles))
     nrows = 1 + len(_TIMELINE_ROWS) + 1
     width, height = 2.8 * n + 0.9, 1.6 * nrows + 1.6
@@ -629,25 +651,30 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
     xlim = (-0.4, max(len(sessions) - 0.6, 0.4))
     data = tl.assign(session=tl["session"].astype(str), side=tl["side"].astype(str), muscle=tl["muscle"].astype(str))
 
-    def values(side: str | None, muscle: str | None, name: str) -> np.ndarray:
-        sel = data
-        if side is not None:
-            sel = sel[sel["side"] == side]
-        if muscle is not None:
-            sel = sel[sel["muscle"] == muscle]
-        means = column(sel, name).groupby(sel["session"]).mean()
-        return means.reindex(list(sessions)).to_numpy(dtype=float)
+    names = [c for c in ("speed_m_s", *(r[0] for r in _TIMELINE_ROWS), *lsi_cols) if c in data.columns]
+    numbers = data[names].apply(pd.to_numeric, errors="coerce")
+    means = {}  # (side or None, muscle or None) -> {name: {session: mean}}, one groupby per grouping
+    for keys in (("session",), ("muscle", "session"), ("side", "muscle", "session")):
+        grouped = numbers.groupby([data[k] for k in keys], sort=False).mean()
+        for key, row in zip(grouped.index, grouped.to_dict("records")):
+            key = key if isinstance(key, tuple) else (key,)
+            where = (key[0] if len(keys) == 3 else None, key[-2] if len(keys) >= 2 else None)
+            for name, value in row.items():
+                means.setdefault(where, {}).setdefault(name, {})[key[-1]] = value
 
-    ax = fig.add_subplot(grid[0, :])
+    def values(side: str | None, muscle: str | None, name: str) -> np.ndarray:
+        """Session means of ``name`` over the rows of ``side`` and ``muscle`` (None: all), in session order."""
+        found = means.get((side, muscle), {}).get(name, {})
+        return np.array([found.get(s, np.nan) for s in sessions], dtype=float)
+
+    labels = [mpl_text(v) for v in xlabels]
+    ax = top = fig.add_subplot(grid[0, :])
     speed = values(None, None, "speed_m_s")
     ax.plot(x, speed, color="#333333", marker="s")
     _min_span(ax, speed, _MIN_SPAN["speed_m_s"])
-    ax.set_ylabel("speed (m/s)", fontsize=8.5)
     ax.set_title("running speed (mean of the session's strides)", fontsize=9, loc="left")
-    ax.set_xticks(x, [mpl_text(v) for v in xlabels], fontsize=7.5)
     ax.set_xlim(*xlim)
-    ax.tick_params(axis="y", labelsize=7.5)
-    ax.grid(True, color=GRID, lw=0.5)
+    _session_axis(ax, x, labels, fontsize=7.5)
     rows_axes: dict[int, list] = {}
     row_values: dict[int, list] = {}
     lsi_values: list[np.ndarray] = []
@@ -667,12 +694,8 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
                 ax.axhline(1.0, color=REFERENCE, ls=":", lw=1.0)
             if i == 1:
                 _muscle_title(ax, muscle)
-            if j == 0:
-                ax.set_ylabel(label, fontsize=8.5)
-            ax.xaxis.set_major_locator(NullLocator())  # grid lines below instead of tick objects (drawing time)
-            ax.vlines(x, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
             ax.set_xlim(*xlim)
-            ax.tick_params(labelsize=7.5)
+            _session_axis(ax, x, None)
         ax = fig.add_subplot(grid[nrows - 1, j])
         rows_axes.setdefault(nrows - 1, []).append(ax)
         ax.axhline(lsi_line, color=FLAG, ls="-.", lw=1.3, zorder=1)
@@ -686,12 +709,8 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
         if not drew:
             ax.text(0.5, 0.5, "LSI needs the injured side\nin athletes.csv", transform=ax.transAxes,
                     ha="center", va="center", fontsize=7.5, color="#777777")
-        if j == 0:
-            ax.set_ylabel("LSI (%)", fontsize=8.5)
-        ax.set_xticks(x, [mpl_text(v) for v in xlabels], fontsize=6.5, rotation=30, ha="right")
         ax.set_xlim(*xlim)
-        ax.tick_params(axis="y", labelsize=7.5)
-        ax.xaxis.grid(True, color=GRID, lw=0.5)
+        _session_axis(ax, x, labels, fontsize=6.5, rotation=30.0, ha="right")
     for i, axes in rows_axes.items():  # a minimum span per row, so noise is not blown up into a trend
         if i <= len(_TIMELINE_ROWS):
             _min_span(axes[0], np.concatenate(row_values.get(i, [np.array([np.nan])])),
@@ -704,16 +723,18 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
             for ax in axes:
                 ax.axhspan(lsi_line, hi, color=TARGET_ZONE, lw=0, zorder=0)
             axes[0].set_ylim(lo, hi)
-        # one y range per row, as shared axes would give; tick labels on the left column only, grid lines elsewhere
+        # one y range per row, as shared axes would give; tick labels on the left column only, grid lines in all
         limits = axes[0].get_ylim()
-        axes[0].yaxis.set_major_locator(MaxNLocator(nbins=4))
-        ticks = [v for v in axes[0].yaxis.get_major_locator().tick_values(*limits) if limits[0] <= v <= limits[1]]
-        axes[0].yaxis.grid(True, color=GRID, lw=0.5)
-        for ax in axes[1:]:
+        ticks = _y_ticks(*limits, nbins=4)
+        title = _TIMELINE_ROWS[i - 1][1] if i <= len(_TIMELINE_ROWS) else "LSI (%)"
+        for k, ax in enumerate(axes):
             ax.set_ylim(*limits)
-            ax.yaxis.set_major_locator(NullLocator())
-            if ticks:
-                ax.hlines(ticks, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
+            _value_axis(ax, ticks, labels=k == 0, title=title if k == 0 else None)
+    # the speed axis keeps matplotlib's automatic tick count for its height and label size (AutoLocator)
+    top.yaxis.set_tick_params(labelsize=_TICK_FONT)
+    lo, hi = top.get_ylim()
+    _value_axis(top, [v for v in top.yaxis.get_major_locator().tick_values(lo, hi) if lo <= v <= hi], labels=True,
+                title="speed (m/s)")
     fig.text(0.5, 0.12 / height, mpl_text(x_title), ha="center", va="bottom", fontsize=8.5)
     fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(f"{athlete} · sessions in date order"), fontsize=10.5,
              va="top")
