@@ -399,6 +399,16 @@ def test_kept_figure_layouts_draw_each_picture_as_a_full_drawing_of_it_alone(mon
              "compact": lambda c, s, a: figures.stretch_figure(c, s, MUSCLES, a, compact=True),
              "force": lambda c, s, a: figures.force_figure(c, s, MUSCLES, a),
              "joints": lambda c, s, a: figures.joint_figure(c, s, a)}
+    timelines = {"ZZ01": _timeline_table("ZZ01"), "ZZ02": _timeline_table("ZZ02").iloc[8:]}  # two sessions, not three
+    timelines["ZZ02"] = timelines["ZZ02"].assign(speed_m_s=timelines["ZZ02"]["speed_m_s"] + 1.3,
+                                                 negative_work_j_mean=timelines["ZZ02"]["negative_work_j_mean"] * 3)
+
+    def timeline(c, s, athlete):
+        tl = timelines[athlete]
+        sessions = sorted(tl["session"].unique())
+        return figures.timeline_figure(tl, athlete, sessions, sessions, MUSCLES, ["lsi_pct"], "session date")
+
+    kinds["timeline"] = timeline
     for name, make in kinds.items():
         monkeypatch.setattr(figures, "_LAYOUTS", {})
         monkeypatch.setattr(figures, "_LAYOUT_OF_FIGURE", {})

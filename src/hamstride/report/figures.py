@@ -70,7 +70,7 @@ class _Layout:
     def clear(self) -> None:
         for artist in self.own_artists():
             artist.remove()
-        for ax in self.axes.flat:
+        for ax in {id(a): a for a in self.axes.flat}.values():  # a spanning panel appears more than once
             ax.relim()  # forget the previous picture's data limits
             ax.set_autoscaley_on(True)
 
@@ -641,12 +641,33 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
     from matplotlib.gridspec import GridSpec
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
+
     n = max(1, len(muscles))
     nrows = 1 + len(_TIMELINE_ROWS) + 1
     width, height = 2.8 * n + 0.9, 1.6 * nrows + 1.6
-    fig = new_figure(width, height)
-    grid = GridSpec(nrows, n, figure=fig, left=0.85 / width, right=1 - 0.15 / width, top=1 - 0.9 / height,
-                    bottom=0.95 / height, hspace=0.5, wspace=0.12)
+
+    def build():
+        fig = new_figure(width, height)
+        grid = GridSpec(nrows, n, figure=fig, left=0.85 / width, right=1 - 0.15 / width, top=1 - 0.9 / height,
+                        bottom=0.95 / height, hspace=0.5, wspace=0.12)
+        axes = np.empty((nrows, n), dtype=object)
+        axes[0, :] = [fig.add_subplot(grid[0, :])] * n  # the speed panel spans the columns
+        axes[0, 0].set_title("running speed (mean of the session's strides)", fontsize=9, loc="left")
+        for j, muscle in enumerate(muscles):
+            for i in range(1, nrows):
+                axes[i, j] = fig.add_subplot(grid[i, j])
+            _muscle_title(axes[1, j], muscle)
+        handles = side_handles(band=False, peak=False, window=False)
+        handles += [Line2D([], [], color=c, ls=ls, marker=mk, label=lab)
+                    for (ls, mk, c, lab), _ in zip(LSI_STYLES, lsi_cols)]
+        handles.append(Line2D([], [], color=FLAG, ls="-.", label=f"LSI {lsi_line:g} %"))
+        handles.append(Patch(facecolor=TARGET_ZONE, label=f"target zone: LSI ≥ {lsi_line:g} %"))
+        fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
+                   ncol=min(len(handles), 4 if n < 3 else 6), fontsize=7.5, frameon=False, borderaxespad=0.0)
+        return fig, axes
+
+    layout = _layout(("timeline", tuple(muscles), tuple(lsi_cols), lsi_line), build)
+    fig, grid_axes = layout.fig, layout.axes
     x = np.arange(len(sessions))
     xlim = (-0.4, max(len(sessions) - 0.6, 0.4))
     data = tl.assign(session=tl["session"].astype(str), side=tl["side"].astype(str), muscle=tl["muscle"].astype(str))
@@ -668,11 +689,10 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
         return np.array([found.get(s, np.nan) for s in sessions], dtype=float)
 
     labels = [mpl_text(v) for v in xlabels]
-    ax = top = fig.add_subplot(grid[0, :])
+    ax = top = grid_axes[0, 0]
     speed = values(None, None, "speed_m_s")
     ax.plot(x, speed, color="#333333", marker="s")
     _min_span(ax, speed, _MIN_SPAN["speed_m_s"])
-    ax.set_title("running speed (mean of the session's strides)", fontsize=9, loc="left")
     ax.set_xlim(*xlim)
     _session_axis(ax, x, labels, fontsize=7.5)
     rows_axes: dict[int, list] = {}
@@ -680,7 +700,7 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
     lsi_values: list[np.ndarray] = []
     for j, muscle in enumerate(muscles):
         for i, (col, label) in enumerate(_TIMELINE_ROWS, start=1):
-            ax = fig.add_subplot(grid[i, j])
+            ax = grid_axes[i, j]
             rows_axes.setdefault(i, []).append(ax)
             vals = {side: values(side, muscle, col) for side in SIDES}
             row_values.setdefault(i, []).extend(vals.values())
@@ -692,11 +712,9 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
                         transform=ax.transAxes, ha="center", va="center", fontsize=7.5, color="#777777")
             if col == "peak_fibre_length_lopt_mean":
                 ax.axhline(1.0, color=REFERENCE, ls=":", lw=1.0)
-            if i == 1:
-                _muscle_title(ax, muscle)
             ax.set_xlim(*xlim)
             _session_axis(ax, x, None)
-        ax = fig.add_subplot(grid[nrows - 1, j])
+        ax = grid_axes[nrows - 1, j]
         rows_axes.setdefault(nrows - 1, []).append(ax)
         ax.axhline(lsi_line, color=FLAG, ls="-.", lw=1.3, zorder=1)
         drew = False
@@ -731,20 +749,16 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
             ax.set_ylim(*limits)
             _value_axis(ax, ticks, labels=k == 0, title=title if k == 0 else None)
     # the speed axis keeps matplotlib's automatic tick count for its height and label size (AutoLocator)
+    from matplotlib.ticker import AutoLocator
+
     top.yaxis.set_tick_params(labelsize=_TICK_FONT)
+    automatic = AutoLocator()
+    automatic.set_axis(top.yaxis)
     lo, hi = top.get_ylim()
-    _value_axis(top, [v for v in top.yaxis.get_major_locator().tick_values(lo, hi) if lo <= v <= hi], labels=True,
-                title="speed (m/s)")
+    _value_axis(top, [v for v in automatic.tick_values(lo, hi) if lo <= v <= hi], labels=True, title="speed (m/s)")
     fig.text(0.5, 0.12 / height, mpl_text(x_title), ha="center", va="bottom", fontsize=8.5)
     fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(f"{athlete} · sessions in date order"), fontsize=10.5,
              va="top")
-    handles = side_handles(band=False, peak=False, window=False)
-    handles += [Line2D([], [], color=c, ls=ls, marker=mk, label=lab)
-                for (ls, mk, c, lab), _ in zip(LSI_STYLES, lsi_cols)]
-    handles.append(Line2D([], [], color=FLAG, ls="-.", label=f"LSI {lsi_line:g} %"))
-    handles.append(Patch(facecolor=TARGET_ZONE, label=f"target zone: LSI ≥ {lsi_line:g} %"))
-    fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
-               ncol=min(len(handles), 4 if n < 3 else 6), fontsize=7.5, frameon=False, borderaxespad=0.0)
     return fig
 
 
