@@ -373,3 +373,57 @@ def test_progress_is_reported_once_per_athlete(tmp_path):
     tables = _tables(athletes=("ZZ95", "ZZ94"), sessions=("2026-03-02_week0",), n_strides=2)
     render_squad(tmp_path, *tables, dict(RUN_INFO), progress=lambda done, total: steps.append((done, total)))
     assert steps == [(0, 2), (1, 2), (2, 2)]
+
+
+def test_kept_figure_layouts_draw_each_picture_as_a_full_drawing_of_it_alone(monkeypatch):
+    """Figures keep their fixed part (axes, titles, time axis, legend) between pictures and draw only each picture's
+    own artists over a copy of its pixels. A picture drawn after another athlete's must match matplotlib's full
+    drawing of that picture on a new figure: nothing left over from the first athlete, its own value ranges."""
+    import io
+
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from PIL import Image
+
+    from hamstride.report import figures
+
+    strides, curves, *_ = _tables(athletes=("ZZ01", "ZZ02"), sessions=("2026-01-15_pre",))
+    second = curves["athlete"] == "ZZ02"
+    for col in ("strain_pct", "fibre_length_lopt", "velocity_lopt_per_s", "force_n", "power_w", "knee_flexion_deg"):
+        curves.loc[second, col] = curves.loc[second, col] * 1.7 + 3.0  # other value ranges than the first athlete
+    strides.loc[strides["athlete"] == "ZZ02", "late_swing_start_pct"] = 61.0
+
+    def one(athlete):
+        return curves[curves["athlete"] == athlete], strides[strides["athlete"] == athlete]
+
+    kinds = {"stretch": lambda c, s, a: figures.stretch_figure(c, s, MUSCLES, a),
+             "compact": lambda c, s, a: figures.stretch_figure(c, s, MUSCLES, a, compact=True),
+             "force": lambda c, s, a: figures.force_figure(c, s, MUSCLES, a),
+             "joints": lambda c, s, a: figures.joint_figure(c, s, a)}
+    timelines = {"ZZ01": _timeline_table("ZZ01"), "ZZ02": _timeline_table("ZZ02").iloc[8:]}  # two sessions, not three
+    timelines["ZZ02"] = timelines["ZZ02"].assign(speed_m_s=timelines["ZZ02"]["speed_m_s"] + 1.3,
+                                                 negative_work_j_mean=timelines["ZZ02"]["negative_work_j_mean"] * 3)
+
+    def timeline(c, s, athlete):
+        tl = timelines[athlete]
+        sessions = sorted(tl["session"].unique())
+        return figures.timeline_figure(tl, athlete, sessions, sessions, MUSCLES, ["lsi_pct"], "session date")
+
+    kinds["timeline"] = timeline
+    for name, make in kinds.items():
+        monkeypatch.setattr(figures, "_LAYOUTS", {})
+        monkeypatch.setattr(figures, "_LAYOUT_OF_FIGURE", {})
+        fig = make(*one("ZZ02"), "ZZ02")
+        canvas = FigureCanvasAgg(fig)
+        fig.set_dpi(figures.RASTER_DPI)
+        canvas.draw()  # matplotlib's full drawing of the second athlete's picture alone
+        alone = np.asarray(canvas.buffer_rgba())[..., :3].astype(int)
+        monkeypatch.setattr(figures, "_LAYOUTS", {})
+        monkeypatch.setattr(figures, "_LAYOUT_OF_FIGURE", {})
+        figures.raster(make(*one("ZZ01"), "ZZ01"))
+        kept = make(*one("ZZ02"), "ZZ02")
+        assert len(figures._LAYOUTS) == 1  # the second picture reused the first one's layout
+        drawn = np.asarray(Image.open(io.BytesIO(figures.raster(kept).png)).convert("RGB")).astype(int)
+        assert drawn.shape == alone.shape
+        differ = np.abs(drawn - alone).max(axis=2) > 40
+        # only antialiased frame corners may differ (the frame is drawn again over the picture's lower artists)
+        assert differ.mean() < 5e-4, (name, int(differ.sum()))

@@ -6,7 +6,6 @@ the one palette of :mod:`hamstride.style` (column titles and markers), which sha
 """
 from __future__ import annotations
 
-import io
 import math
 from dataclasses import dataclass
 from typing import Mapping, Sequence
@@ -19,7 +18,7 @@ from ..style import (BAND_ALPHA, FLAG, GRID, MUSCLE_COLOUR, MUSCLE_GLYPH, REFERE
                      TARGET_ZONE, muscle_style)
 from .common import MUSCLE_NAMES, column, muscle_label, muscles_in_order, mpl_text
 
-__all__ = ["RASTER_DPI", "Raster", "new_figure", "raster", "side_handles", "curve_stats", "window_of",
+__all__ = ["RASTER_DPI", "FIGURE_COLUMNS", "Raster", "new_figure", "raster", "png_bytes", "side_handles", "curve_stats", "window_of",
            "stretch_figure", "force_figure", "joint_figure", "LSI_STYLES", "timeline_figure", "mini_geometry"]
 
 RASTER_DPI = 110  # one raster serves the HTML page (shown at 100 px per inch) and the PDF (about 120 ppi on A4)
@@ -42,19 +41,118 @@ def new_figure(width_in: float, height_in: float):
     return Figure(figsize=(width_in, height_in), dpi=100)
 
 
-def raster(fig, dpi: int = RASTER_DPI) -> Raster:
-    """Draw ``fig`` once with Agg and keep the PNG (reused by the page and the PDF)."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from PIL import Image
+@dataclass(eq=False)
+class _Layout:
+    """The fixed part of a kind of picture (axes, column and time-axis titles, time axis, legend), built once per
+    process and kept. Each picture of that kind removes the previous picture's own artists and adds its own;
+    :func:`raster` draws the fixed part once, keeps the pixels, and then draws only each picture's own artists
+    over a copy of them (matplotlib's blitting, as its animation guide describes)."""
 
-    canvas = FigureCanvasAgg(fig)
+    fig: object
+    axes: np.ndarray
+    fixed: frozenset
+    background: object = None
+    background_dpi: float | None = None
+
+    def own_artists(self, spines: bool = False) -> list:
+        """The current picture's artists, in matplotlib's drawing order (axes in order, each by zorder; then the
+        figure's own); ``spines``: with each axes' frame again at its zorder (drawn over the picture's lower
+        artists, as in a full drawing)."""
+        out = []
+        for ax in self.fig.axes:
+            mine = [a for a in (*ax.collections, *ax.patches, *ax.lines, *ax.texts) if id(a) not in self.fixed]
+            if spines:
+                mine += ax.spines.values()
+            out += sorted(mine, key=lambda a: a.get_zorder())
+        mine = [a for a in (*self.fig.lines, *self.fig.patches, *self.fig.texts) if id(a) not in self.fixed]
+        return out + sorted(mine, key=lambda a: a.get_zorder())
+
+    def clear(self) -> None:
+        for artist in self.own_artists():
+            artist.remove()
+        for ax in {id(a): a for a in self.axes.flat}.values():  # a spanning panel appears more than once
+            ax.relim()  # forget the previous picture's data limits
+            ax.set_autoscaley_on(True)
+
+
+_LAYOUTS: dict[tuple, _Layout] = {}
+_LAYOUT_OF_FIGURE: dict[int, _Layout] = {}
+
+
+def _layout(key: tuple, build) -> _Layout:
+    """The kept layout for ``key`` (built by ``build() -> (fig, axes)`` the first time), cleared for a new picture.
+    The figure is the same object for every picture of the layout: raster a picture before drawing the next."""
+    layout = _LAYOUTS.get(key)
+    if layout is None:
+        fig, axes = build()
+        fixed = [*fig.lines, *fig.patches, *fig.texts, *fig.legends]
+        for ax in fig.axes:
+            fixed += ax.get_children()
+        layout = _LAYOUTS[key] = _Layout(fig, axes, frozenset(map(id, fixed)))
+        _LAYOUT_OF_FIGURE[id(fig)] = layout
+    else:
+        layout.clear()
+    return layout
+
+
+def raster(fig, dpi: int = RASTER_DPI) -> Raster:
+    """Draw ``fig`` once with Agg and keep the PNG (reused by the page and the PDF). A kept layout's fixed part is
+    drawn only for its first picture; later pictures draw their own artists over a copy of its pixels."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
     fig.set_dpi(dpi)
-    canvas.draw()
-    rgb = np.asarray(canvas.buffer_rgba())[..., :3]
-    buffer = io.BytesIO()
-    Image.fromarray(rgb).save(buffer, format="PNG", compress_level=1)
+    layout = _LAYOUT_OF_FIGURE.get(id(fig))
+    if layout is None:
+        canvas.draw()
+    else:
+        own = layout.own_artists()
+        if layout.background is None or layout.background_dpi != dpi:
+            for artist in own:
+                artist.set_visible(False)
+            canvas.draw()
+            layout.background, layout.background_dpi = canvas.copy_from_bbox(fig.bbox), dpi
+            for artist in own:
+                artist.set_visible(True)
+        for ax in fig.axes:
+            ax.get_xlim(), ax.get_ylim()  # settle any pending autoscaling before drawing into the axes
+        canvas.restore_region(layout.background)
+        renderer = canvas.get_renderer()
+        for artist in layout.own_artists(spines=True):
+            artist.draw(renderer)
     width, height = fig.get_size_inches()
-    return Raster(buffer.getvalue(), (float(width), float(height)))
+    return Raster(png_bytes(np.asarray(canvas.buffer_rgba())[..., :3]), (float(width), float(height)))
+
+
+def png_bytes(rgb: np.ndarray, level: int = 3) -> bytes:
+    """An 8-bit RGB PNG of ``rgb`` (height x width x 3, uint8): every row with the "Up" filter, one IDAT chunk.
+
+    A chart is mostly rows equal to the row above, which the Up filter turns into zeros; this writes the picture in
+    about a third of the time Pillow's per-row adaptive filter choice takes, at the same size. Pillow, an
+    independent decoder, reads it back pixel for pixel (tests/test_report_pdf.py).
+
+    References
+    ----------
+    W3C, Portable Network Graphics (PNG) Specification, 2nd edition (2003): 5.2 signature, 5.3 chunk layout and
+    CRC, 9.2 filter type 2 (Up: Raw(x) - Prior(x) modulo 256), 11.2.2 IHDR, 11.2.4 IDAT (zlib stream), 11.2.5 IEND.
+    """
+    import struct
+    import zlib
+
+    rgb = np.asarray(rgb, dtype=np.uint8)
+    height, width, _ = rgb.shape
+    rows = np.empty((height, 1 + 3 * width), dtype=np.uint8)
+    rows[:, 0] = 2  # filter type Up
+    filtered = rows[:, 1:].reshape(height, width, 3)
+    filtered[0] = rgb[0]  # the row above the first is zero
+    np.subtract(rgb[1:], rgb[:-1], out=filtered[1:])  # uint8 arithmetic wraps modulo 256, as the filter asks
+
+    def chunk(kind: bytes, data: bytes) -> bytes:
+        return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data))
+
+    header = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)  # 8 bits, RGB, deflate, adaptive, no interlace
+    return (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", header) + chunk(b"IDAT", zlib.compress(rows.tobytes(), level))
+            + chunk(b"IEND", b""))
 
 
 def _margins(fig, *, top_in: float, left_in: float, bottom_in: float, right_in: float = 0.15,
@@ -65,22 +163,101 @@ def _margins(fig, *, top_in: float, left_in: float, bottom_in: float, right_in: 
                         top=1 - top_in / height, wspace=wspace, hspace=hspace)
 
 
-def _header(fig, title: str, handles: list, ncol: int | None = None) -> None:
-    """Title on the first line, legend below it, both above the plots (never overlapping them)."""
+def _title(fig, title: str) -> None:
+    """The picture's title on the first line, above the legend (never overlapping the plots)."""
     width, height = fig.get_size_inches()
     fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(title), fontsize=10.5, va="top", ha="left")
-    fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
-               ncol=ncol or len(handles), fontsize=7.5, frameon=False, borderaxespad=0.0, handlelength=2.6)
 
 
-def _cycle_axes(ax) -> None:
-    from matplotlib.ticker import FixedLocator, MaxNLocator
+def _legend_place(fig, ncol: int) -> dict:
+    """Legend keywords: below the title, above the plots."""
+    width, height = fig.get_size_inches()
+    return {"loc": "upper left", "bbox_to_anchor": (0.1 / width, 1 - 0.33 / height), "ncol": ncol, "fontsize": 7.5,
+            "frameon": False, "borderaxespad": 0.0, "handlelength": 2.6}
+
+
+_TICK_PT, _TICK_PAD_PT, _LABEL_PAD_PT, _TICK_FONT = 3.5, 3.5, 4.0, 7.5  # matplotlib's default tick geometry
+
+
+def _tick_labels(values: Sequence[float], limits: tuple[float, float]) -> list[str]:
+    """Tick labels as matplotlib's default formatter writes them (same decimals for all, a true minus sign)."""
+    from matplotlib.ticker import ScalarFormatter
+
+    formatter = ScalarFormatter(useOffset=False)
+    formatter.create_dummy_axis()
+    formatter.axis.set_view_interval(*limits)
+    return [mpl_text(s) for s in formatter.format_ticks(list(values))]
+
+
+def _text_width_pt(texts: Sequence[str], size: float) -> float:
+    from matplotlib.font_manager import FontProperties
+    from matplotlib.textpath import text_to_path
+
+    font = FontProperties(size=size)
+    return max((text_to_path.get_text_width_height_descent(t, font, ismath=False)[0] for t in texts), default=0.0)
+
+
+def _time_axis(ax, *, labels: bool) -> None:
+    """Gait-cycle axis 0-100 %: grid lines, and on the bottom row tick marks, tick labels and the axis title.
+
+    Drawn as one line collection, one marker line and one text per label where matplotlib's tick objects would be
+    (five artists per tick, which dominate drawing time), with matplotlib's default geometry: 3.5 pt outward marks,
+    labels 3.5 pt beyond them, the axis title 4 pt beyond the labels."""
+    from matplotlib.markers import TICKDOWN
+    from matplotlib.ticker import NullLocator
+    from matplotlib.transforms import offset_copy
 
     ax.set_xlim(0, 100)
-    ax.xaxis.set_major_locator(FixedLocator(_CYCLE_TICKS))
-    ax.yaxis.set_major_locator(MaxNLocator(nbins=5))
-    ax.tick_params(labelsize=7.5)
-    ax.grid(True, color=GRID, lw=0.5)
+    ax.xaxis.set_major_locator(NullLocator())
+    ax.yaxis.set_major_locator(NullLocator())
+    where = ax.get_xaxis_transform()
+    _rules(ax, _CYCLE_TICKS, vertical=True, color=GRID, lw=0.5, zorder=1.5)
+    if labels:
+        offset = _TICK_PT + _TICK_PAD_PT
+        _line(ax, _CYCLE_TICKS, [0.0] * len(_CYCLE_TICKS), transform=where, marker=TICKDOWN, markersize=_TICK_PT,
+              markeredgewidth=0.8, color="black", ls="none", clip_on=False, limits=False)
+        below = offset_copy(where, ax.figure, y=-offset, units="points")
+        for v, text in zip(_CYCLE_TICKS, _tick_labels(_CYCLE_TICKS, (0, 100))):
+            ax.text(v, 0.0, text, transform=below, ha="center", va="top", fontsize=_TICK_FONT, clip_on=False)
+        ax.set_xlabel("gait cycle (%)", fontsize=8.5)
+        ax.xaxis.set_label_coords(0.5, 0.0, transform=offset_copy(
+            ax.transAxes, ax.figure, y=-(offset + 1.2 * _TICK_FONT + _LABEL_PAD_PT), units="points"))
+
+
+def _value_axis(ax, values: Sequence[float], *, labels: bool, title: str | None = None) -> None:
+    """A picture's value axis (call once its limits are final): grid lines, and where ``labels`` tick marks, tick
+    labels and the rotated axis title, drawn as :func:`_time_axis` draws the time axis."""
+    from matplotlib.markers import TICKLEFT
+    from matplotlib.ticker import NullLocator
+    from matplotlib.transforms import offset_copy
+
+    ax.yaxis.set_major_locator(NullLocator())
+    values = list(values)
+    where = ax.get_yaxis_transform()
+    if values:
+        _rules(ax, values, vertical=False, color=GRID, lw=0.5, zorder=1.5)
+    if not labels:
+        return
+    offset = _TICK_PT + _TICK_PAD_PT
+    texts = _tick_labels(values, ax.get_ylim()) if values else []
+    if values:
+        _line(ax, [0.0] * len(values), values, transform=where, marker=TICKLEFT, markersize=_TICK_PT,
+              markeredgewidth=0.8, color="black", ls="none", clip_on=False, limits=False)
+        left = offset_copy(where, ax.figure, x=-offset, units="points")
+        for v, text in zip(values, texts):
+            ax.text(0.0, v, text, transform=left, ha="right", va="center_baseline", fontsize=_TICK_FONT,
+                    clip_on=False)
+    if title:
+        beside = offset_copy(ax.transAxes, ax.figure, x=-(offset + _text_width_pt(texts, _TICK_FONT) + _LABEL_PAD_PT),
+                             units="points")
+        ax.text(0.0, 0.5, title, transform=beside, rotation=90, rotation_mode="anchor", ha="center", va="bottom",
+                fontsize=8.5, clip_on=False)
+
+
+def _y_ticks(lo: float, hi: float, nbins: int = 5) -> list[float]:
+    from matplotlib.ticker import MaxNLocator
+
+    return [float(v) for v in MaxNLocator(nbins=nbins).tick_values(lo, hi) if lo <= v <= hi]
 
 
 def side_handles(*, band: bool = True, peak: bool = True, window: bool = True) -> list:
@@ -120,11 +297,48 @@ def curve_stats(curves: pd.DataFrame, columns: Sequence[str]) -> dict[tuple[str,
     return out
 
 
-def _stride_groups(strides: pd.DataFrame) -> dict[tuple[str, str], pd.DataFrame]:
-    if len(strides) == 0 or not {"side", "muscle"} <= set(strides.columns):
+def _stride_means(strides: pd.DataFrame, columns: Sequence[str | None]) -> dict[tuple[str, str], dict[str, float]]:
+    """Mean over strides of each column per (side, muscle) (NaN where a column has no value)."""
+    cols = sorted({c for c in columns if c} & set(strides.columns))
+    if len(strides) == 0 or not {"side", "muscle"} <= set(strides.columns) or not cols:
         return {}
-    return {(str(k[0]), str(k[1])): g for k, g in strides.groupby([strides["side"].astype(str),
-                                                                   strides["muscle"].astype(str)], sort=False)}
+    values = strides[cols].apply(pd.to_numeric, errors="coerce")
+    means = values.groupby([strides["side"].astype(str), strides["muscle"].astype(str)], sort=False).mean()
+    return {(str(k[0]), str(k[1])): row for k, row in zip(means.index, means.to_dict("records"))}
+
+
+def _line(ax, x, y, *, limits: bool = True, **style):
+    """A Line2D added to ``ax`` (what ``ax.plot`` makes, without its argument parsing); ``limits=False``: one that
+    must not widen the data limits (grid lines, tick marks: the axis limits are set before them)."""
+    from matplotlib.lines import Line2D
+
+    line = Line2D(x, y, **style)
+    return ax.add_line(line) if limits else ax.add_artist(line)
+
+
+def _rules(ax, values: Sequence[float], *, vertical: bool, **style) -> None:
+    """Full-height (``vertical``) or full-width lines at ``values``, as one line broken by NaN gaps."""
+    values = list(values)
+    if not values:
+        return
+    along = np.tile([0.0, 1.0, np.nan], len(values))
+    at = np.repeat(np.asarray(values, dtype=float), 3)
+    if vertical:
+        _line(ax, at, along, transform=ax.get_xaxis_transform(), solid_capstyle="butt", limits=False, **style)
+    else:
+        _line(ax, along, at, transform=ax.get_yaxis_transform(), solid_capstyle="butt", limits=False, **style)
+
+
+def _band(ax, x: np.ndarray, low: np.ndarray, high: np.ndarray, **style) -> None:
+    """The area between two curves, as ``fill_between`` draws it (one polygon where both are finite throughout)."""
+    if not (np.isfinite(low).all() and np.isfinite(high).all()):
+        ax.fill_between(x, low, high, **style)
+        return
+    from matplotlib.patches import Polygon
+
+    outline = np.concatenate([np.column_stack([x, low]), np.column_stack([x[::-1], high[::-1]])])
+    ax.add_artist(Polygon(outline, closed=True, **style))  # add_patch would walk the outline point by point
+    ax.update_datalim(outline)
 
 
 def _nanmean_of(df: pd.DataFrame | None, name: str | None) -> float:
@@ -146,12 +360,14 @@ def window_of(strides: pd.DataFrame) -> tuple[dict[str, float], dict[str, float]
 
 def _mark_window(ax, starts: Mapping[str, float], toe_offs: Mapping[str, float], label: bool) -> None:
     """Late swing: a hatched ribbon along the top of the panel; toe-off: a caret on the time axis (per side)."""
+    from matplotlib.patches import Rectangle
+
     trans = ax.get_xaxis_transform()  # x in data, y in axes coordinates (cached by the axes)
     finite = [v for v in starts.values() if math.isfinite(v)]
     if finite:
         start = float(np.mean(finite))
-        ax.axvspan(start, 100.0, ymin=_RIBBON[0], ymax=_RIBBON[1], facecolor="white", edgecolor=_HATCH_COLOUR,
-                   hatch="////", lw=0.6, zorder=1)
+        ax.add_artist(Rectangle((start, _RIBBON[0]), 100.0 - start, _RIBBON[1] - _RIBBON[0], transform=trans,
+                                facecolor="white", edgecolor=_HATCH_COLOUR, hatch="////", lw=0.6, zorder=1))
         if label:
             ax.text(0.5 * (start + 100.0), 0.5 * (_RIBBON[0] + _RIBBON[1]), "late swing", transform=trans,
                     ha="center", va="center", fontsize=6.5, color="#222222", zorder=7,
@@ -159,8 +375,8 @@ def _mark_window(ax, starts: Mapping[str, float], toe_offs: Mapping[str, float],
     for side in SIDES:
         value = toe_offs.get(side, math.nan)
         if math.isfinite(value):
-            ax.plot([value], [0.0], transform=trans, marker=10, markersize=7, color=SIDE_COLOUR[side],
-                    markeredgecolor="black", markeredgewidth=0.4, ls="none", clip_on=False, zorder=6)
+            _line(ax, [value], [0.0], transform=trans, marker=10, markersize=7, color=SIDE_COLOUR[side],
+                  markeredgecolor="black", markeredgewidth=0.4, ls="none", clip_on=False, zorder=6)
     if label:
         toes = [v for v in toe_offs.values() if math.isfinite(v)]
         if toes:
@@ -179,33 +395,34 @@ def _plot_side_curves(ax, stats: Mapping, muscle: str, col: str, starts: Mapping
             continue
         colour = SIDE_COLOUR[side]
         sv = np.nan_to_num(sv)
-        ax.fill_between(pct, mv - sv, mv + sv, color=colour, alpha=BAND_ALPHA, lw=0, zorder=2)
-        ax.plot(pct, mv, color=colour, ls=SIDE_LINESTYLE[side], lw=1.1, marker=SIDE_MARKER[side], markersize=3.2,
-                markevery=max(1, len(pct) // 10), zorder=3)
+        _band(ax, pct, mv - sv, mv + sv, color=colour, alpha=BAND_ALPHA, lw=0, zorder=2)
+        _line(ax, pct, mv, color=colour, ls=SIDE_LINESTYLE[side], lw=1.1, marker=SIDE_MARKER[side], markersize=3.2,
+              markevery=max(1, len(pct) // 10), zorder=3)
         start = starts.get(side, math.nan)
         if math.isfinite(start):
             late = pct >= start
-            ax.plot(pct[late], mv[late], color=colour, ls=SIDE_LINESTYLE[side], lw=2.6, zorder=3.5)
+            _line(ax, pct[late], mv[late], color=colour, ls=SIDE_LINESTYLE[side], lw=2.6, zorder=3.5)
         drawn[side] = (pct, mv)
     return drawn
 
 
-def _mark_peaks(ax, drawn: Mapping[str, tuple], groups: Mapping, muscle: str, value_col: str | None,
+def _mark_peaks(ax, drawn: Mapping[str, tuple], means: Mapping, muscle: str, value_col: str | None,
                 low_col: str | None, high_col: str | None, time_col: str | None) -> None:
     """Star at the mean of the stride peaks (at their mean time), with the model range as a vertical bar."""
     for side, (pct, mv) in drawn.items():
-        sel = groups.get((side, muscle))
-        peak_time = _nanmean_of(sel, time_col)
+        mean = means.get((side, muscle), {})
+        peak_time = mean.get(time_col, math.nan)
         if not math.isfinite(peak_time):
             peak_time = float(pct[int(np.nanargmax(mv))])
-        peak_value = _nanmean_of(sel, value_col)
+        peak_value = mean.get(value_col, math.nan)
         if not math.isfinite(peak_value):
             peak_value = float(np.nanmax(mv))
-        lo, hi = _nanmean_of(sel, low_col), _nanmean_of(sel, high_col)
+        lo, hi = mean.get(low_col, math.nan), mean.get(high_col, math.nan)
         if math.isfinite(lo) and math.isfinite(hi):
-            ax.vlines(peak_time, lo, hi, color=SIDE_COLOUR[side], lw=2.2, zorder=4)
-        ax.plot([peak_time], [peak_value], marker="*", markersize=10, color=SIDE_COLOUR[side],
-                markeredgecolor="black", markeredgewidth=0.6, ls="none", zorder=5)
+            _line(ax, [peak_time, peak_time], [lo, hi], color=SIDE_COLOUR[side], lw=2.2, solid_capstyle="butt",
+                  zorder=4)
+        _line(ax, [peak_time], [peak_value], marker="*", markersize=10, color=SIDE_COLOUR[side],
+              markeredgecolor="black", markeredgewidth=0.6, ls="none", zorder=5)
 
 
 def _muscle_title(ax, muscle: str) -> None:
@@ -223,68 +440,76 @@ _STRETCH_ROWS = (
     ("velocity_lopt_per_s", "lengthening velocity (l_opt/s)", None, None, None, None),
 )
 _FORCE_ROWS = (("force_n", "muscle force (N)"), ("power_w", "muscle power (W)"))
+_JOINT_COLUMNS = ("hip_flexion_deg", "knee_flexion_deg")
+#: the curve columns the athlete's gait-cycle pictures show (one :func:`curve_stats` call serves them all)
+FIGURE_COLUMNS = tuple(r[0] for r in _STRETCH_ROWS) + tuple(r[0] for r in _FORCE_ROWS) + _JOINT_COLUMNS
 
 
-def _muscle_grid(fig, rows: Sequence[tuple[str, str]], muscles: Sequence[str], curves: pd.DataFrame,
-                 strides: pd.DataFrame, decorate) -> np.ndarray:
-    """One column per muscle and one row per curve column, left and right overlaid, late swing marked."""
-    stats = curve_stats(curves, [r[0] for r in rows])
+def _grid_layout(kind: str, rows: Sequence[tuple[str, str]], muscles: Sequence[str], height_in: float,
+                 handles, ncol: int) -> _Layout:
+    """The kept layout of a muscle grid: one column per muscle, one row per curve column, legend above."""
+    def build():
+        fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, height_in)
+        axes = fig.subplots(len(rows), max(1, len(muscles)), squeeze=False)
+        for j, muscle in enumerate(muscles):
+            _muscle_title(axes[0, j], muscle)
+        for i in range(axes.shape[0]):
+            for j in range(axes.shape[1]):
+                _time_axis(axes[i, j], labels=i == axes.shape[0] - 1)
+        fig.legend(handles=handles(), **_legend_place(fig, ncol))
+        _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
+        return fig, axes
+
+    return _layout((kind, tuple(rows), tuple(muscles), height_in, ncol, tuple(h.get_label() for h in handles())),
+                   build)
+
+
+def _muscle_grid(layout: _Layout, rows: Sequence[tuple[str, str]], muscles: Sequence[str], curves: pd.DataFrame,
+                 strides: pd.DataFrame, decorate, stats: Mapping | None) -> np.ndarray:
+    """Left and right overlaid in each panel of a grid layout, one y range per row, late swing marked."""
+    if stats is None:
+        stats = curve_stats(curves, [r[0] for r in rows])
     starts, toe_offs = window_of(strides)
-    axes = fig.subplots(len(rows), max(1, len(muscles)), squeeze=False)
+    axes = layout.axes
     for j, muscle in enumerate(muscles):
-        for i, (col, ylabel) in enumerate(rows):
+        for i, (col, _) in enumerate(rows):
             ax = axes[i, j]
             drawn = _plot_side_curves(ax, stats, muscle, col, starts)
             decorate(ax, col, muscle, drawn)
             if not drawn:
                 ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
-            if i == 0:
-                _muscle_title(ax, muscle)
-            if j == 0:
-                ax.set_ylabel(ylabel, fontsize=8.5)
-            if i == len(rows) - 1:
-                ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-    _share_rows(axes)
+    _share_rows(axes, [r[1] for r in rows])
     for i in range(axes.shape[0]):
         for j in range(axes.shape[1]):
             _mark_window(axes[i, j], starts, toe_offs, label=(i == 0 and j == 0))
     return axes
 
 
-def _share_rows(axes: np.ndarray) -> None:
-    """One y range per row (room at the top for the late-swing ribbon) and 0-100 % for all, as shared axes would
-    give; tick labels only on the left column and the bottom row. Inner panels get plain grid lines instead of
-    ticks: tick objects dominate drawing time, and inner tick labels would be hidden anyway."""
-    from matplotlib.ticker import NullLocator
-
+def _share_rows(axes: np.ndarray, titles: Sequence[str]) -> None:
+    """One y range per row (room at the top for the late-swing ribbon), as shared axes would give; tick labels and
+    the row's title on the left column only, grid lines in every panel."""
     n_rows, n_cols = axes.shape
     for i in range(n_rows):
+        for j in range(n_cols):
+            axes[i, j].autoscale_view(scalex=False)  # the artists were added directly, without ax.plot's request
         limits = np.array([axes[i, j].get_ylim() for j in range(n_cols)])
         lo, hi = float(limits[:, 0].min()), float(limits[:, 1].max())
         hi += 0.14 * (hi - lo)
+        y_grid = _y_ticks(lo, hi)
         for j in range(n_cols):
-            ax = axes[i, j]
-            ax.set_ylim(lo, hi)
-            _cycle_axes(ax)
-            if j:
-                ax.yaxis.set_major_locator(NullLocator())
-            if i < n_rows - 1:
-                ax.xaxis.set_major_locator(NullLocator())
-        y_grid = [v for v in axes[i, 0].yaxis.get_major_locator().tick_values(lo, hi) if lo <= v <= hi]
-        for j in range(n_cols):  # one line collection per panel and direction, where ax.grid would draw
-            ax = axes[i, j]
-            if j and y_grid:
-                ax.hlines(y_grid, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
-            if i < n_rows - 1:
-                ax.vlines(_CYCLE_TICKS, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=1.5)
+            axes[i, j].set_ylim(lo, hi)
+            _value_axis(axes[i, j], y_grid, labels=j == 0, title=titles[i] if j == 0 else None)
 
 
 def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
-                   compact: bool = False):
-    """Stretch, fibre length and lengthening velocity per muscle (``compact``: the stretch row only)."""
-    groups = _stride_groups(strides)
+                   compact: bool = False, stats: Mapping | None = None):
+    """Stretch, fibre length and lengthening velocity per muscle (``compact``: the stretch row only).
+
+    ``stats``: :func:`curve_stats` of ``curves`` already taken (over :data:`FIGURE_COLUMNS`, shared by the
+    athlete's pictures); by default they are taken here."""
     rows = _STRETCH_ROWS[:1] if compact else _STRETCH_ROWS
     peaks = {r[0]: r[2:] for r in rows}
+    groups = _stride_means(strides, [c for r in rows for c in r[2:]])
 
     def decorate(ax, col, muscle, drawn):
         if col == "fibre_length_lopt":
@@ -295,17 +520,18 @@ def stretch_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequenc
         if drawn:
             _mark_peaks(ax, drawn, groups, muscle, *peaks[col])
 
-    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 3.4 if compact else 7.0)
-    _muscle_grid(fig, [r[:2] for r in rows], muscles, curves, strides, decorate)
-    _header(fig, title, side_handles(), ncol=3)
-    _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
-    return fig
+    grid_rows = [r[:2] for r in rows]
+    layout = _grid_layout("stretch", grid_rows, muscles, 3.4 if compact else 7.0, side_handles, 3)
+    _muscle_grid(layout, grid_rows, muscles, curves, strides, decorate, stats)
+    _title(layout.fig, title)
+    return layout.fig
 
 
-def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str):
+def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[str], title: str, *,
+                 stats: Mapping | None = None):
     from matplotlib.lines import Line2D
 
-    groups = _stride_groups(strides)
+    groups = _stride_means(strides, ["peak_force_n", "peak_force_n_p5", "peak_force_n_p95"])
 
     def decorate(ax, col, muscle, drawn):
         if col == "force_n" and drawn:
@@ -313,40 +539,51 @@ def force_figure(curves: pd.DataFrame, strides: pd.DataFrame, muscles: Sequence[
         if col == "power_w":
             ax.axhline(0.0, color=REFERENCE, ls="-", lw=0.6, zorder=1)
 
-    fig = new_figure(2.7 * max(1, len(muscles)) + 0.6, 5.0)
-    _muscle_grid(fig, _FORCE_ROWS, muscles, curves, strides, decorate)
     has_band = {"peak_force_n_p5", "peak_force_n_p95"} <= set(strides.columns)
-    star = Line2D([], [], color="black", marker="*", ls="none", markersize=9,
-                  label="mean of stride peak forces" + (", bar = model range 5–95 %" if has_band else ""))
-    _header(fig, title, side_handles(peak=False) + [star], ncol=3)
-    _margins(fig, top_in=1.0, left_in=0.75, bottom_in=0.5, hspace=0.1)
-    return fig
+
+    def handles():
+        return side_handles(peak=False) + [Line2D(
+            [], [], color="black", marker="*", ls="none", markersize=9,
+            label="mean of stride peak forces" + (", bar = model range 5–95 %" if has_band else ""))]
+
+    layout = _grid_layout("force", _FORCE_ROWS, muscles, 5.0, handles, 3)
+    _muscle_grid(layout, _FORCE_ROWS, muscles, curves, strides, decorate, stats)
+    _title(layout.fig, title)
+    return layout.fig
 
 
-def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str):
+def joint_figure(curves: pd.DataFrame, strides: pd.DataFrame, title: str, *, stats: Mapping | None = None):
     """Hip and knee flexion (one muscle's rows suffice: the joint angles are shared by all muscles)."""
-    cols = ("hip_flexion_deg", "knee_flexion_deg")
-    first = muscles_in_order(curves["muscle"])[:1]
-    one = curves[curves["muscle"].astype(str).isin(first)]
-    stats = curve_stats(one, [c for c in cols if c in curves.columns])
+    cols = _JOINT_COLUMNS
+    first = muscles_in_order(curves["muscle"].unique())[:1]
+    if stats is None:
+        one = curves[curves["muscle"].astype(str).isin(first)]
+        stats = curve_stats(one, [c for c in cols if c in curves.columns])
     starts, toe_offs = window_of(strides)
-    fig = new_figure(9.0, 2.9)
-    axes = fig.subplots(1, 2, squeeze=False)[0]
+    def build():
+        fig = new_figure(9.0, 2.9)
+        axes = fig.subplots(1, 2, squeeze=False)
+        for ax in axes.flat:
+            _time_axis(ax, labels=True)
+        fig.legend(handles=side_handles(peak=False), **_legend_place(fig, 5))
+        _margins(fig, top_in=0.75, left_in=0.75, bottom_in=0.5, wspace=0.25)
+        return fig, axes
+
+    layout = _layout(("joints",), build)
     labels = {"hip_flexion_deg": "hip flexion (deg)", "knee_flexion_deg": "knee flexion (deg)"}
-    for k, (ax, col) in enumerate(zip(axes, cols)):
+    for k, (ax, col) in enumerate(zip(layout.axes[0], cols)):
         drawn = _plot_side_curves(ax, stats, first[0] if first else "", col, starts)
         if not drawn:
             ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center", color="#777777")
         ax.axhline(0.0, color=REFERENCE, lw=0.6)
+        ax.autoscale_view(scalex=False)
         lo, hi = ax.get_ylim()
-        ax.set_ylim(lo, hi + 0.14 * (hi - lo))
-        ax.set_ylabel(labels[col], fontsize=8.5)
-        ax.set_xlabel("gait cycle (%)", fontsize=8.5)
-        _cycle_axes(ax)
+        hi += 0.14 * (hi - lo)
+        ax.set_ylim(lo, hi)
+        _value_axis(ax, _y_ticks(lo, hi), labels=True, title=labels[col])
         _mark_window(ax, starts, toe_offs, label=(k == 0))
-    _header(fig, title, side_handles(peak=False), ncol=5)
-    _margins(fig, top_in=0.75, left_in=0.75, bottom_in=0.5, wspace=0.25)
-    return fig
+    _title(layout.fig, title)
+    return layout.fig
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -378,49 +615,92 @@ def _min_span(ax, values: np.ndarray, span: float) -> None:
         ax.set_ylim(lo - pad, hi + pad)
 
 
+def _session_axis(ax, x: np.ndarray, labels: Sequence[str] | None, *, fontsize: float = _TICK_FONT,
+                  rotation: float = 0.0, ha: str = "center") -> None:
+    """Sessions along x: grid lines, and where ``labels`` are given tick marks and labels (drawn as
+    :func:`_time_axis` draws the gait-cycle axis; rotated labels are aligned as matplotlib aligns them)."""
+    from matplotlib.markers import TICKDOWN
+    from matplotlib.ticker import NullLocator
+    from matplotlib.transforms import offset_copy
+
+    ax.xaxis.set_major_locator(NullLocator())
+    _rules(ax, x, vertical=True, color=GRID, lw=0.5, zorder=1.5 if labels is not None else 0.5)
+    if labels is None:
+        return
+    where = ax.get_xaxis_transform()
+    _line(ax, x, np.zeros(len(x)), transform=where, marker=TICKDOWN, markersize=_TICK_PT, markeredgewidth=0.8,
+          color="black", ls="none", clip_on=False, limits=False)
+    below = offset_copy(where, ax.figure, y=-(_TICK_PT + _TICK_PAD_PT), units="points")
+    for v, text in zip(x, labels):
+        ax.text(v, 0.0, text, transform=below, ha=ha, va="top", rotation=rotation, fontsize=fontsize, clip_on=False)
+
+
 def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xlabels: Sequence[str],
                     muscles: Sequence[str], lsi_cols: Sequence[str], x_title: str, lsi_line: float = 90.0):
     """Speed on top, then per muscle (columns) peak stretch, peak l/l_opt, negative work and LSI per session."""
     from matplotlib.gridspec import GridSpec
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
-    from matplotlib.ticker import MaxNLocator, NullLocator
 
     n = max(1, len(muscles))
     nrows = 1 + len(_TIMELINE_ROWS) + 1
     width, height = 2.8 * n + 0.9, 1.6 * nrows + 1.6
-    fig = new_figure(width, height)
-    grid = GridSpec(nrows, n, figure=fig, left=0.85 / width, right=1 - 0.15 / width, top=1 - 0.9 / height,
-                    bottom=0.95 / height, hspace=0.5, wspace=0.12)
+
+    def build():
+        fig = new_figure(width, height)
+        grid = GridSpec(nrows, n, figure=fig, left=0.85 / width, right=1 - 0.15 / width, top=1 - 0.9 / height,
+                        bottom=0.95 / height, hspace=0.5, wspace=0.12)
+        axes = np.empty((nrows, n), dtype=object)
+        axes[0, :] = [fig.add_subplot(grid[0, :])] * n  # the speed panel spans the columns
+        axes[0, 0].set_title("running speed (mean of the session's strides)", fontsize=9, loc="left")
+        for j, muscle in enumerate(muscles):
+            for i in range(1, nrows):
+                axes[i, j] = fig.add_subplot(grid[i, j])
+            _muscle_title(axes[1, j], muscle)
+        handles = side_handles(band=False, peak=False, window=False)
+        handles += [Line2D([], [], color=c, ls=ls, marker=mk, label=lab)
+                    for (ls, mk, c, lab), _ in zip(LSI_STYLES, lsi_cols)]
+        handles.append(Line2D([], [], color=FLAG, ls="-.", label=f"LSI {lsi_line:g} %"))
+        handles.append(Patch(facecolor=TARGET_ZONE, label=f"target zone: LSI ≥ {lsi_line:g} %"))
+        fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
+                   ncol=min(len(handles), 4 if n < 3 else 6), fontsize=7.5, frameon=False, borderaxespad=0.0)
+        return fig, axes
+
+    layout = _layout(("timeline", tuple(muscles), tuple(lsi_cols), lsi_line), build)
+    fig, grid_axes = layout.fig, layout.axes
     x = np.arange(len(sessions))
     xlim = (-0.4, max(len(sessions) - 0.6, 0.4))
     data = tl.assign(session=tl["session"].astype(str), side=tl["side"].astype(str), muscle=tl["muscle"].astype(str))
 
-    def values(side: str | None, muscle: str | None, name: str) -> np.ndarray:
-        sel = data
-        if side is not None:
-            sel = sel[sel["side"] == side]
-        if muscle is not None:
-            sel = sel[sel["muscle"] == muscle]
-        means = column(sel, name).groupby(sel["session"]).mean()
-        return means.reindex(list(sessions)).to_numpy(dtype=float)
+    names = [c for c in ("speed_m_s", *(r[0] for r in _TIMELINE_ROWS), *lsi_cols) if c in data.columns]
+    numbers = data[names].apply(pd.to_numeric, errors="coerce")
+    means = {}  # (side or None, muscle or None) -> {name: {session: mean}}, one groupby per grouping
+    for keys in (("session",), ("muscle", "session"), ("side", "muscle", "session")):
+        grouped = numbers.groupby([data[k] for k in keys], sort=False).mean()
+        for key, row in zip(grouped.index, grouped.to_dict("records")):
+            key = key if isinstance(key, tuple) else (key,)
+            where = (key[0] if len(keys) == 3 else None, key[-2] if len(keys) >= 2 else None)
+            for name, value in row.items():
+                means.setdefault(where, {}).setdefault(name, {})[key[-1]] = value
 
-    ax = fig.add_subplot(grid[0, :])
+    def values(side: str | None, muscle: str | None, name: str) -> np.ndarray:
+        """Session means of ``name`` over the rows of ``side`` and ``muscle`` (None: all), in session order."""
+        found = means.get((side, muscle), {}).get(name, {})
+        return np.array([found.get(s, np.nan) for s in sessions], dtype=float)
+
+    labels = [mpl_text(v) for v in xlabels]
+    ax = top = grid_axes[0, 0]
     speed = values(None, None, "speed_m_s")
     ax.plot(x, speed, color="#333333", marker="s")
     _min_span(ax, speed, _MIN_SPAN["speed_m_s"])
-    ax.set_ylabel("speed (m/s)", fontsize=8.5)
-    ax.set_title("running speed (mean of the session's strides)", fontsize=9, loc="left")
-    ax.set_xticks(x, [mpl_text(v) for v in xlabels], fontsize=7.5)
     ax.set_xlim(*xlim)
-    ax.tick_params(axis="y", labelsize=7.5)
-    ax.grid(True, color=GRID, lw=0.5)
+    _session_axis(ax, x, labels, fontsize=7.5)
     rows_axes: dict[int, list] = {}
     row_values: dict[int, list] = {}
     lsi_values: list[np.ndarray] = []
     for j, muscle in enumerate(muscles):
         for i, (col, label) in enumerate(_TIMELINE_ROWS, start=1):
-            ax = fig.add_subplot(grid[i, j])
+            ax = grid_axes[i, j]
             rows_axes.setdefault(i, []).append(ax)
             vals = {side: values(side, muscle, col) for side in SIDES}
             row_values.setdefault(i, []).extend(vals.values())
@@ -432,15 +712,9 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
                         transform=ax.transAxes, ha="center", va="center", fontsize=7.5, color="#777777")
             if col == "peak_fibre_length_lopt_mean":
                 ax.axhline(1.0, color=REFERENCE, ls=":", lw=1.0)
-            if i == 1:
-                _muscle_title(ax, muscle)
-            if j == 0:
-                ax.set_ylabel(label, fontsize=8.5)
-            ax.xaxis.set_major_locator(NullLocator())  # grid lines below instead of tick objects (drawing time)
-            ax.vlines(x, 0, 1, transform=ax.get_xaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
             ax.set_xlim(*xlim)
-            ax.tick_params(labelsize=7.5)
-        ax = fig.add_subplot(grid[nrows - 1, j])
+            _session_axis(ax, x, None)
+        ax = grid_axes[nrows - 1, j]
         rows_axes.setdefault(nrows - 1, []).append(ax)
         ax.axhline(lsi_line, color=FLAG, ls="-.", lw=1.3, zorder=1)
         drew = False
@@ -453,12 +727,8 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
         if not drew:
             ax.text(0.5, 0.5, "LSI needs the injured side\nin athletes.csv", transform=ax.transAxes,
                     ha="center", va="center", fontsize=7.5, color="#777777")
-        if j == 0:
-            ax.set_ylabel("LSI (%)", fontsize=8.5)
-        ax.set_xticks(x, [mpl_text(v) for v in xlabels], fontsize=6.5, rotation=30, ha="right")
         ax.set_xlim(*xlim)
-        ax.tick_params(axis="y", labelsize=7.5)
-        ax.xaxis.grid(True, color=GRID, lw=0.5)
+        _session_axis(ax, x, labels, fontsize=6.5, rotation=30.0, ha="right")
     for i, axes in rows_axes.items():  # a minimum span per row, so noise is not blown up into a trend
         if i <= len(_TIMELINE_ROWS):
             _min_span(axes[0], np.concatenate(row_values.get(i, [np.array([np.nan])])),
@@ -471,26 +741,24 @@ def timeline_figure(tl: pd.DataFrame, athlete: str, sessions: Sequence[str], xla
             for ax in axes:
                 ax.axhspan(lsi_line, hi, color=TARGET_ZONE, lw=0, zorder=0)
             axes[0].set_ylim(lo, hi)
-        # one y range per row, as shared axes would give; tick labels on the left column only, grid lines elsewhere
+        # one y range per row, as shared axes would give; tick labels on the left column only, grid lines in all
         limits = axes[0].get_ylim()
-        axes[0].yaxis.set_major_locator(MaxNLocator(nbins=4))
-        ticks = [v for v in axes[0].yaxis.get_major_locator().tick_values(*limits) if limits[0] <= v <= limits[1]]
-        axes[0].yaxis.grid(True, color=GRID, lw=0.5)
-        for ax in axes[1:]:
+        ticks = _y_ticks(*limits, nbins=4)
+        title = _TIMELINE_ROWS[i - 1][1] if i <= len(_TIMELINE_ROWS) else "LSI (%)"
+        for k, ax in enumerate(axes):
             ax.set_ylim(*limits)
-            ax.yaxis.set_major_locator(NullLocator())
-            if ticks:
-                ax.hlines(ticks, 0, 1, transform=ax.get_yaxis_transform(), color=GRID, lw=0.5, zorder=0.5)
+            _value_axis(ax, ticks, labels=k == 0, title=title if k == 0 else None)
+    # the speed axis keeps matplotlib's automatic tick count for its height and label size (AutoLocator)
+    from matplotlib.ticker import AutoLocator
+
+    top.yaxis.set_tick_params(labelsize=_TICK_FONT)
+    automatic = AutoLocator()
+    automatic.set_axis(top.yaxis)
+    lo, hi = top.get_ylim()
+    _value_axis(top, [v for v in automatic.tick_values(lo, hi) if lo <= v <= hi], labels=True, title="speed (m/s)")
     fig.text(0.5, 0.12 / height, mpl_text(x_title), ha="center", va="bottom", fontsize=8.5)
     fig.text(0.1 / width, 1 - 0.08 / height, mpl_text(f"{athlete} · sessions in date order"), fontsize=10.5,
              va="top")
-    handles = side_handles(band=False, peak=False, window=False)
-    handles += [Line2D([], [], color=c, ls=ls, marker=mk, label=lab)
-                for (ls, mk, c, lab), _ in zip(LSI_STYLES, lsi_cols)]
-    handles.append(Line2D([], [], color=FLAG, ls="-.", label=f"LSI {lsi_line:g} %"))
-    handles.append(Patch(facecolor=TARGET_ZONE, label=f"target zone: LSI ≥ {lsi_line:g} %"))
-    fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.1 / width, 1 - 0.33 / height),
-               ncol=min(len(handles), 4 if n < 3 else 6), fontsize=7.5, frameon=False, borderaxespad=0.0)
     return fig
 
 

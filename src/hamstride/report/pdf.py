@@ -4,14 +4,23 @@ Paragraphs wrap to the frame, tables get column widths that fit the page, wrap t
 with the header row repeated, pictures are scaled to fit, and the caution is the footer of every page. The fonts
 are the DejaVu faces that ship with matplotlib, so nothing needs installing beyond pip packages.
 
+Pictures go in as the PNG's own compressed data (no decoding and compressing again): a PDF image stream with the
+Flate filter and the PNG predictor reads a PNG's IDAT data as it is. Table cells whose text fits on one line are
+plain strings, which platypus measures and draws without the paragraph machinery.
+
 References
 ----------
 reportlab user guide, chapter "Platypus" (flowables, ``Table(repeatRows=1)``, ``SimpleDocTemplate``).
+ISO 32000-1:2008 (PDF 1.7), 7.4.4.4 "LZW and Flate predictor functions" (Table 8: Predictor 10-15 = PNG
+predictors; DecodeParms Colors, BitsPerComponent, Columns) and 8.9.5 "Image dictionaries".
+W3C PNG specification (2nd edition, 2003), 5.3 chunk layout, 11.2.2 IHDR, 11.2.4 IDAT.
 """
 from __future__ import annotations
 
 import functools
+import hashlib
 import io
+import struct
 from pathlib import Path
 from urllib.parse import unquote
 from xml.sax.saxutils import escape
@@ -87,9 +96,27 @@ def _paragraph(text: str, style: str, strong: str = ""):
     return Paragraph(lead + para_text(text), _styles()[style])
 
 
+_CELL_PAD = 2.5  # points of padding left and right in every table cell
+
+
+def _right_aligned(cells: list[tuple[int, int]], n_rows: int, n_cols: int) -> list[tuple]:
+    """ALIGN commands for the plain numeric cells: one per column where the whole column is such cells."""
+    by_column: dict[int, list[int]] = {}
+    for i, j in cells:
+        by_column.setdefault(j, []).append(i)
+    commands = []
+    for j, rows in by_column.items():
+        if len(rows) == n_rows:
+            commands.append(("ALIGN", (j, 1), (j, -1), "RIGHT"))
+        else:
+            commands += [("ALIGN", (j, i), (j, i), "RIGHT") for i in rows]
+    return commands
+
+
 def _table(block, width: float) -> list:
     """A wrapping table that fits ``width`` and repeats its header row on every page it spans."""
     from reportlab.lib import colors
+    from reportlab.pdfbase.pdfmetrics import stringWidth
     from reportlab.platypus import Paragraph, Table, TableStyle
 
     styles = _styles()
@@ -98,16 +125,30 @@ def _table(block, width: float) -> list:
     total = sum(weights)
     widths = [width * w / total for w in weights]
     data = [[Paragraph(para_text(h), styles["head"]) for h in block.headers]]
-    for row in block.rows:
-        data.append([Paragraph(para_text(c.text), styles["cellnum" if c.numeric else "cell"]) for c in row.cells])
+    cell, size = styles["cell"], styles["cell"].fontSize
+    room = [w - 2 * _CELL_PAD for w in widths]
+    right: list[tuple[int, int]] = []  # plain numeric cells, right-aligned as the "cellnum" paragraphs are
+    for i, row in enumerate(block.rows, start=1):
+        cells = []
+        for j, c in enumerate(row.cells):
+            text = str(c.text)
+            if "\n" not in text and stringWidth(text, cell.fontName, size) <= room[j]:
+                cells.append(text)  # fits on one line: no paragraph needed
+                if c.numeric:
+                    right.append((i, j))
+            else:
+                cells.append(Paragraph(para_text(text), styles["cellnum" if c.numeric else "cell"]))
+        data.append(cells)
     if len(data) == 1:
         data.append([Paragraph("none", styles["cell"])] + [""] * (n - 1))
     table = Table(data, colWidths=widths, repeatRows=1, hAlign="LEFT")
     commands = [("GRID", (0, 0), (-1, -1), 0.4, colors.HexColor("#c8c8c8")),
                 ("BACKGROUND", (0, 0), (-1, 0), colors.HexColor("#eef0f3")),
                 ("VALIGN", (0, 0), (-1, -1), "TOP"),
-                ("LEFTPADDING", (0, 0), (-1, -1), 2.5), ("RIGHTPADDING", (0, 0), (-1, -1), 2.5),
+                ("FONT", (0, 1), (-1, -1), cell.fontName, size, cell.leading),
+                ("LEFTPADDING", (0, 0), (-1, -1), _CELL_PAD), ("RIGHTPADDING", (0, 0), (-1, -1), _CELL_PAD),
                 ("TOPPADDING", (0, 0), (-1, -1), 1.5), ("BOTTOMPADDING", (0, 0), (-1, -1), 1.5)]
+    commands += _right_aligned(right, len(data) - 1, n)
     for i, row in enumerate(block.rows, start=1):
         if row.flagged:
             commands.append(("LINEBEFORE", (0, i), (0, i), 3.0, colors.HexColor("#a8322d")))
@@ -143,14 +184,82 @@ class _FigureFlowable(Flowable):
         return avail_w, title_h + self.h_pt * self.scale + caption_h
 
     def draw(self):
-        from reportlab.lib.utils import ImageReader
-
         title_h, caption_h = self.parts
         image_h = self.h_pt * self.scale
         self.caption.drawOn(self.canv, 0, 0)
-        self.canv.drawImage(ImageReader(io.BytesIO(self.png)), 0, caption_h, width=self.w_pt * self.scale,
-                            height=image_h)
+        draw_png(self.canv, self.png, 0, caption_h, self.w_pt * self.scale, image_h)
         self.title.drawOn(self.canv, 0, caption_h + image_h + 4.0)
+
+
+def _png_parts(png: bytes) -> tuple[int, int, bytes] | None:
+    """Width, height and image data (the IDAT chunks joined) of an 8-bit RGB, non-interlaced PNG; else None."""
+    if png[:8] != b"\x89PNG\r\n\x1a\n":
+        return None
+    pos, header, data = 8, None, []
+    while pos + 8 <= len(png):
+        length, kind = struct.unpack(">I4s", png[pos:pos + 8])
+        chunk = png[pos + 8:pos + 8 + length]
+        if kind == b"IHDR":
+            header = struct.unpack(">IIBBBBB", chunk)
+        elif kind == b"IDAT":
+            data.append(chunk)
+        elif kind == b"IEND":
+            break
+        pos += 12 + length
+    if header is None or header[2:5] != (8, 2, 0) or header[6] != 0 or not data:
+        return None
+    return header[0], header[1], b"".join(data)
+
+
+def _png_image_class():
+    from reportlab.pdfbase.pdfdoc import PDFDictionary, PDFImageXObject, PDFName, PDFStream
+
+    class PngImage(PDFImageXObject):
+        """An image XObject holding a PNG's compressed data as it is (Flate filter, PNG predictor)."""
+
+        def __init__(self, name: str, width: int, height: int, data: bytes):
+            self.name, self.width, self.height, self.streamContent = name, width, height, data
+            self.bitsPerComponent, self.colorSpace, self.mask = 8, "DeviceRGB", None
+            self._filters = ("FlateDecode",)
+
+        def format(self, document):
+            stream = PDFStream(content=self.streamContent)
+            d = stream.dictionary
+            d["Type"], d["Subtype"] = PDFName("XObject"), PDFName("Image")
+            d["Width"], d["Height"], d["BitsPerComponent"] = self.width, self.height, 8
+            d["ColorSpace"] = PDFName("DeviceRGB")
+            d["Filter"] = PDFName("FlateDecode")  # a single filter: name and parameter dictionary, not arrays
+            d["DecodeParms"] = PDFDictionary({"Predictor": 15, "Colors": 3, "BitsPerComponent": 8,
+                                              "Columns": self.width})
+            d["Length"] = len(self.streamContent)
+            return stream.format(document)
+
+    return PngImage
+
+
+_PngImage = functools.lru_cache(maxsize=1)(_png_image_class)
+
+
+def draw_png(canvas, png: bytes, x: float, y: float, width: float, height: float) -> None:
+    """Draw PNG bytes into the box (points) without decoding them; other PNG kinds go through reportlab's reader."""
+    parts = _png_parts(png)
+    if parts is None:
+        from reportlab.lib.utils import ImageReader
+
+        canvas.drawImage(ImageReader(io.BytesIO(png)), x, y, width=width, height=height)
+        return
+    name = "png-" + hashlib.md5(png, usedforsecurity=False).hexdigest()
+    doc = canvas._doc  # reportlab's document: registering an image XObject once, as Canvas.drawImage does
+    registered = doc.getXObjectName(name)
+    if registered not in doc.idToObject:
+        image = _PngImage()(name, *parts)
+        doc.Reference(image, registered)
+        doc.addForm(name, image)
+    canvas.saveState()
+    canvas.translate(x, y)
+    canvas.scale(width, height)
+    canvas.doForm(name)
+    canvas.restoreState()
 
 
 def _figure(block, width: float, height: float) -> list:

@@ -23,7 +23,8 @@ from .common import (DATE_PREFIX, asymmetry_band, athlete_files, athlete_info, b
                      muscle_label, muscles_in_order, num, plural, run_info_get, sessions_in_order, session_sort_key,
                      summary_value, thresholds_of, write_atomic)
 from .content import Cell, Figure, Row, number, words
-from .figures import force_figure, joint_figure, mini_geometry, raster, stretch_figure, timeline_figure
+from .figures import (FIGURE_COLUMNS, curve_stats, force_figure, joint_figure, mini_geometry, raster,
+                      stretch_figure, timeline_figure)
 from .pages import athlete_page, earlier_flags_line, failed_rows, flag_rows, squad_page, timeline_page
 from .pdf import write_pdf
 from .web import render_html
@@ -155,25 +156,32 @@ def _render_athlete(job: tuple) -> float:
     return time.process_time() - start
 
 
+def _distinct(df: pd.DataFrame, name: str) -> list:
+    """The distinct values of a column (empty when the table lacks it)."""
+    return df[name].unique().tolist() if name in df.columns else []
+
+
 def _athlete_outputs(athlete: str, strides: pd.DataFrame, curves: pd.DataFrame, flags: pd.DataFrame,
                      summary: pd.DataFrame, info: Mapping, run_info: Mapping | None, out_dir: Path, stem: str,
                      tl: pd.DataFrame | None) -> None:
-    sessions = sessions_in_order(list(strides.get("session", [])) + list(summary.get("session", []))
-                                 + list(curves.get("session", [])))
+    sessions = sessions_in_order([*_distinct(strides, "session"), *_distinct(summary, "session"),
+                                  *_distinct(curves, "session")])
     latest = sessions[-1] if sessions else ""
-    muscles = muscles_in_order(list(curves.get("muscle", [])) + list(strides.get("muscle", []))
-                               + list(summary.get("muscle", [])))
+    muscles = muscles_in_order([*_distinct(curves, "muscle"), *_distinct(strides, "muscle"),
+                                *_distinct(summary, "muscle")])
     cur_latest = curves[curves["session"].astype(str) == latest] if len(curves) else curves
     str_latest = strides[strides["session"].astype(str) == latest] if len(strides) else strides
     mass_missing = not (has_values(strides, ("peak_force_n", "negative_work_j")) or has_values(cur_latest,
                                                                                               ("force_n",)))
     figures = []
+    stats = curve_stats(cur_latest, FIGURE_COLUMNS) if len(cur_latest) else {}  # shared by the three pictures
     if len(cur_latest):
         figures.append(Figure(
             "fig-stretch", "Late-swing stretch, fibre length and lengthening velocity",
             _STRETCH_CAPTION,
             raster(stretch_figure(cur_latest, str_latest, muscles,
-                                  f"{athlete} · {latest} · muscle stretch over the gait cycle (left vs right)")),
+                                  f"{athlete} · {latest} · muscle stretch over the gait cycle (left vs right)",
+                                  stats=stats)),
             "Stretch, fibre length and lengthening velocity over the gait cycle"))
         if not mass_missing:
             figures.append(Figure(
@@ -183,13 +191,14 @@ def _athlete_outputs(athlete: str, strides: pd.DataFrame, curves: pd.DataFrame, 
                 "peak force of the strides" + (", bars its model range (5–95 %)." if "peak_force_n_p5" in
                                                strides.columns else "."),
                 raster(force_figure(cur_latest, str_latest, muscles,
-                                    f"{athlete} · {latest} · estimated muscle force and power")),
+                                    f"{athlete} · {latest} · estimated muscle force and power", stats=stats)),
                 "Muscle force and power over the gait cycle"))
         figures.append(Figure(
             "fig-joints", "Hip and knee angles",
             "Hip flexion (thigh forward of the pelvis) and knee flexion in degrees, 0 = standing upright; the "
             "hamstrings are longest when the hip is flexed and the knee straight, at the end of swing.",
-            raster(joint_figure(cur_latest, str_latest, f"{athlete} · {latest} · hip and knee flexion")),
+            raster(joint_figure(cur_latest, str_latest, f"{athlete} · {latest} · hip and knee flexion",
+                                stats=stats)),
             "Hip and knee flexion over the gait cycle"))
     if len(sessions) > 1 and figures:  # the picker shows an earlier session's curves too (HTML only)
         figures = [replace(f, session=latest) for f in figures]
