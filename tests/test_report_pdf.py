@@ -126,34 +126,3 @@ def test_pdf_image_dictionary_is_one_a_strict_reader_accepts(tmp_path):
     top = page.shape[0] - 10 - 40
     assert np.abs(page[top + 3:top + 17, 15:35] - (240, 200, 40)).max() <= 3
     assert np.abs(page[top + 3:top + 17, 45:65] - (30, 90, 200)).max() <= 3
-
-
-def test_our_png_writer_reads_back_pixel_for_pixel_in_pillow():
-    """png_bytes (Up filter, one IDAT) against Pillow's independent decoder, on a picture with flat areas, steps in
-    both directions (differences that wrap modulo 256) and noise, and on a real report figure's canvas."""
-    from hamstride.report.figures import png_bytes
-    from hamstride.report.pdf import _png_parts
-
-    rgb = _test_picture()
-    rgb[5, :, 0] = 255  # a row jump of up to +255 and back down: the Up filter's modulo-256 differences
-    rgb[6, :, 0] = 0
-    decoded = Image.open(io.BytesIO(png_bytes(rgb)))
-    assert decoded.format == "PNG" and decoded.mode == "RGB" and decoded.size == (53, 37)
-    assert np.array_equal(np.asarray(decoded), rgb)
-    assert _png_parts(png_bytes(rgb))[:2] == (53, 37)  # the layout the PDF embeds as it is
-    single = np.full((1, 1, 3), 200, dtype=np.uint8)
-    assert np.array_equal(np.asarray(Image.open(io.BytesIO(png_bytes(single)))), single)
-
-
-def test_png_of_a_drawn_canvas_matches_the_canvas():
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    from hamstride.report.figures import png_bytes
-
-    fig = Figure(figsize=(3, 2), dpi=80)
-    fig.subplots().plot(np.sin(np.linspace(0, 6, 50)), color="#cc6677")
-    canvas = FigureCanvasAgg(fig)
-    canvas.draw()
-    rgb = np.asarray(canvas.buffer_rgba())[..., :3]
-    assert np.array_equal(np.asarray(Image.open(io.BytesIO(png_bytes(rgb))).convert("RGB")), rgb)

@@ -6,6 +6,7 @@ the one palette of :mod:`hamstride.style` (column titles and markers), which sha
 """
 from __future__ import annotations
 
+import io
 import math
 from dataclasses import dataclass
 from typing import Mapping, Sequence
@@ -18,7 +19,7 @@ from ..style import (BAND_ALPHA, FLAG, GRID, MUSCLE_COLOUR, MUSCLE_GLYPH, REFERE
                      TARGET_ZONE, muscle_style)
 from .common import MUSCLE_NAMES, column, muscle_label, muscles_in_order, mpl_text
 
-__all__ = ["RASTER_DPI", "FIGURE_COLUMNS", "Raster", "new_figure", "raster", "png_bytes", "side_handles", "curve_stats", "window_of",
+__all__ = ["RASTER_DPI", "FIGURE_COLUMNS", "Raster", "new_figure", "raster", "side_handles", "curve_stats", "window_of",
            "stretch_figure", "force_figure", "joint_figure", "LSI_STYLES", "timeline_figure", "mini_geometry"]
 
 RASTER_DPI = 110  # one raster serves the HTML page (shown at 100 px per inch) and the PDF (about 120 ppi on A4)
@@ -99,6 +100,7 @@ def raster(fig, dpi: int = RASTER_DPI) -> Raster:
     """Draw ``fig`` once with Agg and keep the PNG (reused by the page and the PDF). A kept layout's fixed part is
     drawn only for its first picture; later pictures draw their own artists over a copy of its pixels."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from PIL import Image
 
     canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
     fig.set_dpi(dpi)
@@ -120,39 +122,11 @@ def raster(fig, dpi: int = RASTER_DPI) -> Raster:
         renderer = canvas.get_renderer()
         for artist in layout.own_artists(spines=True):
             artist.draw(renderer)
+    rgb = np.asarray(canvas.buffer_rgba())[..., :3]
+    buffer = io.BytesIO()
+    Image.fromarray(rgb).save(buffer, format="PNG", compress_level=1)
     width, height = fig.get_size_inches()
-    return Raster(png_bytes(np.asarray(canvas.buffer_rgba())[..., :3]), (float(width), float(height)))
-
-
-def png_bytes(rgb: np.ndarray, level: int = 3) -> bytes:
-    """An 8-bit RGB PNG of ``rgb`` (height x width x 3, uint8): every row with the "Up" filter, one IDAT chunk.
-
-    A chart is mostly rows equal to the row above, which the Up filter turns into zeros; this writes the picture in
-    about a third of the time Pillow's per-row adaptive filter choice takes, at the same size. Pillow, an
-    independent decoder, reads it back pixel for pixel (tests/test_report_pdf.py).
-
-    References
-    ----------
-    W3C, Portable Network Graphics (PNG) Specification, 2nd edition (2003): 5.2 signature, 5.3 chunk layout and
-    CRC, 9.2 filter type 2 (Up: Raw(x) - Prior(x) modulo 256), 11.2.2 IHDR, 11.2.4 IDAT (zlib stream), 11.2.5 IEND.
-    """
-    import struct
-    import zlib
-
-    rgb = np.asarray(rgb, dtype=np.uint8)
-    height, width, _ = rgb.shape
-    rows = np.empty((height, 1 + 3 * width), dtype=np.uint8)
-    rows[:, 0] = 2  # filter type Up
-    filtered = rows[:, 1:].reshape(height, width, 3)
-    filtered[0] = rgb[0]  # the row above the first is zero
-    np.subtract(rgb[1:], rgb[:-1], out=filtered[1:])  # uint8 arithmetic wraps modulo 256, as the filter asks
-
-    def chunk(kind: bytes, data: bytes) -> bytes:
-        return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data))
-
-    header = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)  # 8 bits, RGB, deflate, adaptive, no interlace
-    return (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", header) + chunk(b"IDAT", zlib.compress(rows.tobytes(), level))
-            + chunk(b"IEND", b""))
+    return Raster(buffer.getvalue(), (float(width), float(height)))
 
 
 def _margins(fig, *, top_in: float, left_in: float, bottom_in: float, right_in: float = 0.15,
