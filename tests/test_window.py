@@ -195,7 +195,10 @@ def test_cluster_only_trial_with_subject_prefixed_labels_rebuilds_from_the_stati
 def test_cluster_only_angles_within_2_deg_rms_of_truth(shapes):
     path, truth = shapes["clusters"]
     rms = _rms_deg(trial_kinematics(path, FAST, static_path=shapes["static"]), truth)
-    assert max(rms.values()) < 2.0, rms  # issue 13 acceptance
+    # issue 13 acceptance. Measured (worst angle): this trial 2.00 deg, just inside; other seeds of the same shape
+    # 1.2-2.6 deg with 3 mm skin movement (seeds 1-4), 1.2-2.1 with 2 mm (seeds 1-7), 1.2 without: the clusters'
+    # skin glide, levered out to the rebuilt epicondyles and malleoli, is what is left (issue 13 stays open on it)
+    assert max(rms.values()) < 2.0, rms
     assert max(rms.values()) > 0.1, rms  # not circular
 
 
