@@ -128,6 +128,7 @@ def test_long_tables_break_across_pages_with_their_header_repeated(demo):
                 head = [" ".join((c or "").split()) for c in table[0]]
                 if "peak knee flexion (deg)" in head:  # a header cell of the per-stride table, on each page
                     pages.append(page.page_number)
+                    assert "stride" in head, head  # whole: the column is as wide as its header word
                     n_rows += len(table) - 1
     strides = run.strides[run.strides["athlete"] == "RB12"]
     assert n_rows == len(strides.drop_duplicates(["session", "trial", "side", "stride"]))  # every stride, once

@@ -126,3 +126,21 @@ def test_pdf_image_dictionary_is_one_a_strict_reader_accepts(tmp_path):
     top = page.shape[0] - 10 - 40
     assert np.abs(page[top + 3:top + 17, 15:35] - (240, 200, 40)).max() <= 3
     assert np.abs(page[top + 3:top + 17, 45:65] - (30, 90, 200)).max() <= 3
+
+
+def test_pdf_table_columns_are_wide_enough_for_every_header_word():
+    # the strides table's "stride" header was broken as "strid / e": a column narrower than a header word
+    from hamstride.report.pdf import column_widths
+
+    headers = ["side", "stride", "peak strain (%)", "lengthening velocity (l_opt/s)", "x"]
+    weights = [1.0, 0.4, 1.0, 3.0, 1.0]
+
+    def word_width(word):  # 4 points per character, a stand-in for a font's metrics
+        return 4.0 * len(word)
+
+    widths = column_widths(headers, weights, 300.0, word_width)
+    assert abs(sum(widths) - 300.0) < 1e-9
+    for header, w in zip(headers, widths):
+        assert w >= max(word_width(x) for x in header.split()) + 2 * 2.5 - 1e-9, header
+    # columns with room to spare keep their proportions to each other
+    assert abs(widths[0] / widths[2] - 1.0) < 1e-9 and abs(widths[3] / widths[0] - 3.0) < 1e-9

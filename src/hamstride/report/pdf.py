@@ -113,6 +113,23 @@ def _right_aligned(cells: list[tuple[int, int]], n_rows: int, n_cols: int) -> li
     return commands
 
 
+def column_widths(headers, weights, width: float, word_width) -> list[float]:
+    """Column widths in proportion to ``weights`` that add up to ``width``, each at least as wide as its header's
+    longest word plus padding (``word_width(word)`` in points), so no header word is broken across lines; the
+    columns that need no more than their share give up the difference in proportion to their weights."""
+    floor = [max((word_width(w) for w in str(h).split()), default=0.0) + 2 * _CELL_PAD for h in headers]
+    fixed: set[int] = set()
+    while True:
+        free = [j for j in range(len(headers)) if j not in fixed]
+        room = width - sum(floor[j] for j in fixed)
+        total = sum(weights[j] for j in free)
+        widths = [floor[j] if j in fixed else room * weights[j] / total for j in range(len(headers))]
+        short = {j for j in free if widths[j] < floor[j]}
+        if not short or len(short) == len(free):
+            return widths
+        fixed |= short
+
+
 def _table(block, width: float) -> list:
     """A wrapping table that fits ``width`` and repeats its header row on every page it spans."""
     from reportlab.lib import colors
@@ -122,9 +139,10 @@ def _table(block, width: float) -> list:
     styles = _styles()
     n = len(block.headers)
     weights = list(block.widths) if len(block.widths) == n else [1.0] * n
-    total = sum(weights)
-    widths = [width * w / total for w in weights]
-    data = [[Paragraph(para_text(h), styles["head"]) for h in block.headers]]
+    head = styles["head"]
+    widths = column_widths(block.headers, weights, width,
+                           lambda word: stringWidth(word, head.fontName, head.fontSize))
+    data = [[Paragraph(para_text(h), head) for h in block.headers]]
     cell, size = styles["cell"], styles["cell"].fontSize
     room = [w - 2 * _CELL_PAD for w in widths]
     right: list[tuple[int, int]] = []  # plain numeric cells, right-aligned as the "cellnum" paragraphs are
