@@ -297,3 +297,12 @@ def test_figure_titles_use_the_muscle_palette(demo):
     side_colours = {to_hex(line.get_color()).upper() for ax in fig.axes for line in ax.get_lines()
                     if line.get_linestyle() in ("-", "--") and len(line.get_xdata()) > 50}
     assert side_colours == {c.upper() for c in style.SIDE_COLOUR.values()}
+
+
+def test_sorting_hint_is_on_screen_only(demo):
+    # "Click a column heading to sort" is an instruction for the HTML page; printed on paper it cannot be followed
+    out, _, _ = demo
+    assert "Click a column heading to sort." in (out / "athletes" / "RB12.html").read_text(encoding="utf-8")
+    with pdfplumber.open(out / "athletes" / "RB12.pdf") as pdf:
+        text = " ".join(" ".join((page.extract_text() or "").split()) for page in pdf.pages)
+    assert "to sort" not in text and "Stretch per session" in text

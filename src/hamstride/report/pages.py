@@ -170,7 +170,7 @@ def summary_tables(summary: pd.DataFrame, sessions: Sequence[str], muscles: Sequ
     blocks: list = [Table("summary", headers, tuple(stretch),
                           "Stretch per session (latest first) and muscle, left (L) and right (R): mean ± SD over "
                           "strides. SI is left empty where it is undefined (the short head shortens below its "
-                          "upright length). Click a column heading to sort.", titles,
+                          "upright length).", titles,
                           widths=(1.9, 0.7, 0.6, 0.6, 0.7, 1.1, 1.1, 0.7, 0.7, 0.7, 0.7, 1.0, 1.0, 1.2, 1.2))]
     if with_work:
         work_headers = ["session", "muscle", "negative work L (J)", "negative work R (J)"]
@@ -255,8 +255,7 @@ def stride_table(strides: pd.DataFrame, muscles: Sequence[str], has_work: bool) 
         for col in values:
             cells += [number(v, 1) for v in muscle_values[col][i]]
         rows.append(Row(tuple(cells), str(idx[0])))
-    return Table("strides", tuple(headers), tuple(rows), "Every stride used, latest session first. Click a column "
-                 "heading to sort.", widths=(1.9, 0.9, 0.6, 0.5) + (0.8,) * (len(headers) - 4))
+    return Table("strides", tuple(headers), tuple(rows), "Every stride used, latest session first.", widths=(1.9, 0.9, 0.6, 0.5) + (0.8,) * (len(headers) - 4))
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -357,7 +356,7 @@ def squad_page(rows: Sequence[Row], latest_flags: Sequence[Row], earlier: Sequen
               f"right: symmetry index per muscle, the shaded zone is ±{band:g} %; a bold outline = beyond the zone",
               "(R − L) ÷ average × 100", "", "", "")
     athletes = Table("athletes", headers, tuple(rows),
-                     "Latest session of each athlete. " + muscles_note + " Click a heading to sort.", titles)
+                     "Latest session of each athlete. " + muscles_note, titles)
     blocks: list = [Text(f"{plural(n_athletes, 'athlete')} · generated {generated} · hamstride {version}")]
     if files:
         blocks.append(Links(tuple(files), "tables", "Tables:"))
@@ -426,8 +425,7 @@ def timeline_page(athlete: str, info: Mapping, ordered: pd.DataFrame, sessions: 
     if work_missing:
         blocks.append(Text(BODY_MASS_MISSING + ".", "note", "body-mass-missing"))
     blocks += [figure, Heading("Table"),
-               Table("timeline", headers, tuple(rows), "One row per session, muscle and side (means over strides). "
-                                                        "Click a heading to sort."),
+               Table("timeline", headers, tuple(rows), "One row per session, muscle and side (means over strides)."),
                Heading("Notes on the model", "notes-heading"), notes_block(run_info),
                Heading("Terms used", "terms"), glossary_block()]
     return Page(f"hamstride · timeline {athlete}", f"Timeline: athlete {athlete}", tuple(blocks), home=home)
