@@ -203,9 +203,9 @@ def section(title: str) -> None:
 
 # --------------------------------------------------------------------------------------------- where the user waits
 def _adopt_orphans() -> bool:
-    """Make this process the reaper of its orphaned descendants (Linux ``PR_SET_CHILD_SUBREAPER``): the command's
-    worker server (and the workers it forked) outlives the command by a moment and is then reparented here, so
-    :func:`_reap_orphans` can wait for it and its CPU time counts in this process's children's usage."""
+    """Make this process the reaper of its orphaned descendants (Linux ``PR_SET_CHILD_SUBREAPER``): a process the
+    command started (e.g. multiprocessing's resource tracker) may outlive it by a moment and is then reparented
+    here, so :func:`_reap_orphans` can wait for it and its CPU time counts in this process's children's usage."""
     try:
         import ctypes
 

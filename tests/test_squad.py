@@ -322,17 +322,3 @@ def test_session_chunks_keep_order_group_sessions_and_shrink_towards_the_end():
     big = [(job("C", "s", f"t{t}"), f"c{t}") for t in range(40)]  # one big session: split, still in order
     assert [item for chunk in session_chunks(big, 2) for item in chunk] == big
     assert max(len(c) for c in session_chunks(big, 2)) == 10
-
-
-def test_forkserver_workers_give_the_tables_of_forked_workers(tmp_path):
-    # run_squad(start_method="forkserver"): workers fork from a server that loaded the stages (squad.workers), not
-    # from this process; the tables must be byte-identical to the default (fork) run's.
-    from hamstride.squad import run_squad
-
-    root = tmp_path / "squad"
-    shutil.copytree(DEMO / "RB12", root / "RB12")
-    shutil.copy(DEMO / "athletes.csv", root / "athletes.csv")
-    runs = {m: run_squad(root, tmp_path / str(m), jobs=2, report=False, start_method=m) for m in (None, "forkserver")}
-    assert not runs["forkserver"].failed and runs["forkserver"].manifest["counts"]["ok"] >= 2
-    for name in ("strides.csv", "curves.csv", "summary.csv", "flags.csv"):
-        assert (tmp_path / "forkserver" / name).read_bytes() == (tmp_path / "None" / name).read_bytes(), name

@@ -405,10 +405,8 @@ def squad_cmd(
     Exit code 0 when every trial succeeded, 1 when some failed (listed at the end), 2 on usage errors (checked
     before any trial is analysed).
     """
-    # Workers fork from this process once it has loaded the stages (run_squad's default). A worker server started
-    # first of all (start_method="forkserver", squad.workers.start_worker_server) was measured on two quiet cores
-    # (issue 17; server vs fork): one-trial squad 1.09 vs 1.16 s, 24 trials with --jobs 2 1.94 vs 1.87 s, but 0.15-0.2 s
-    # more CPU per run (a second interpreter); on a busy machine it was slower, so the command does not use it.
+    # Workers fork from this process once it has loaded the stages (a forkserver was measured and not kept:
+    # DEVELOPERS.md, "Start-up").
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
     from .squad.run import run_squad

@@ -416,8 +416,6 @@ def _detect_side(
     leaving = (vz[list(heights).index(toe)] > 0) & (rel[list(heights).index("heel")] > LOW_FOOT_THRESHOLD_M)
     toe_rel = rel[list(heights).index(toe)]  # the toe's height above its floor level
 
-    # unfiltered heights of the same foot landmarks, then the malleoli (gaps left as NaN): touchdown changepoint
-    raw = unfiltered
     before_fs, after_fs = (int(round(s * rate_hz)) for s in STRIKE_SEARCH_S)
     before_to, after_to = (int(round(s * rate_hz)) for s in TOE_OFF_SEARCH_S)
     refine_before, refine_after = (int(round(s * rate_hz)) for s in STRIKE_REFINE_S)
@@ -449,9 +447,11 @@ def _detect_side(
                 fs = min(found) if found else None
                 if fs is None and end < n:  # never settles on the floor: keep the impact instant
                     fs, n_fallback = impact, n_fallback + 1
-            if fs is not None and raw is not None:
+            if fs is not None and unfiltered is not None:
+                # unfiltered heights of the same foot landmarks, then the malleoli: the touchdown changepoint
                 landing = int(np.argmin(rel[:, min(int(round(fs)), n - 1)]))  # the landmark lowest at the strike
-                refined = _touchdown_changepoint(raw, fs, rate_hz, landing, range(len(heights), raw.shape[0]))
+                refined = _touchdown_changepoint(unfiltered, fs, rate_hz, landing,
+                                                 range(len(heights), unfiltered.shape[0]))
                 fs = fs if refined is None else refined
             if fs is not None:
                 strikes.append(fs)

@@ -15,9 +15,9 @@ from ..pipeline import AnalysisOptions, analyse_trial
 from ..settings import jsonable as _jsonable
 from .cache import has_entry, read_record, write_entry
 from .discovery import TrialJob
-from .workers import STAGE_MODULES, _load_stages, _start_worker, start_worker_server, tune_allocator
+from .workers import STAGE_MODULES, _load_stages, tune_allocator
 
-__all__ = ["run_pool", "session_chunks", "run_on_cluster", "tune_allocator", "start_worker_server", "STAGE_MODULES",
+__all__ = ["run_pool", "session_chunks", "run_on_cluster", "tune_allocator", "STAGE_MODULES",
            "CLUSTER_CONNECT_TIMEOUT_S"]
 
 
@@ -71,33 +71,21 @@ def session_chunks(todo: list[tuple[TrialJob, str]], workers: int) -> list[list[
 
 
 def run_pool(todo: list[tuple[TrialJob, str]], options: AnalysisOptions, jobs: int,
-              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None,
-              start_method: str | None = None) -> None:
+              on_done: Callable[[TrialJob, str, dict], None], cache: Path, cluster=None) -> None:
     """Run jobs in a process pool (or on a Dask cluster); a worker that dies (native crash) becomes a failed-trial record.
     Local workers write their trial's entry under ``cache`` themselves; cluster results are written by ``on_done``.
-
-    ``start_method``: None forks the workers from this process after loading the stages here (they inherit them
-    and any change made to a module before the run); ``"forkserver"`` forks them from the process
-    :func:`start_worker_server` started (and loaded) in the background, so this process never loads the stages."""
+    The workers fork from this process after it loads the stages (they inherit them, and any change made to a
+    module before the run)."""
     if not todo:
         return
     if cluster is not None:
         run_on_cluster(todo, options, cluster, on_done)
         return
     # Even with one job the trials run in a worker process: a native crash must never take the squad run down.
-    if start_method == "forkserver":
-        import multiprocessing
-        import sys
-
-        start_worker_server()  # started (with the stages) by the caller already, normally: then nothing to do
-        context, initargs = multiprocessing.get_context("forkserver"), (not sys.warnoptions,)
-    else:
-        _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
-        context, initargs = None, ()
+    _load_stages()  # forked workers inherit the loaded modules instead of each importing them again
 
     def new_pool(n_workers: int) -> cf.ProcessPoolExecutor:
-        return cf.ProcessPoolExecutor(max_workers=n_workers, mp_context=context, initializer=_start_worker,
-                                      initargs=initargs)
+        return cf.ProcessPoolExecutor(max_workers=n_workers, initializer=tune_allocator)
 
     workers = min(jobs, len(todo))
     crashed: list[tuple[TrialJob, str]] = []

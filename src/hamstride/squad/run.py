@@ -53,8 +53,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
               config: RunConfig = RunConfig(), report: bool = True, athlete_filter: str | None = None,
               progress: Callable[[int, int, int], None] | None = None, cluster=None,
               write_outputs: bool = True, allow_unlisted: bool = False,
-              report_progress: Callable[[int, int], None] | None = None,
-              start_method: str | None = None) -> SquadRun:
+              report_progress: Callable[[int, int], None] | None = None) -> SquadRun:
     """Analyse a whole squad folder and write the tables, manifest and (optionally) reports under ``out``.
 
     ``write_outputs=False`` analyses (through the cache under ``out``) and returns the tables without writing the
@@ -64,12 +63,6 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
 
     ``cluster`` (optional): send the trials to an existing Dask cluster instead of local processes; see
     :func:`hamstride.squad.executor.run_on_cluster`.
-
-    ``start_method="forkserver"``: the local workers fork from the process
-    :func:`hamstride.squad.workers.start_worker_server` started (the command line's way: that process loads the
-    stages while this one checks the inputs); by default they fork from this process after it loads the stages.
-    As with any forkserver, a script that asks for it needs the ``if __name__ == "__main__":`` guard (each worker
-    runs the main module again).
 
     Every input is checked before any trial is analysed or any file written (squadinput): a ConfigError means a
     usage error (the command line's exit code 2). Athlete folders not in athletes.csv are skipped (listed in the
@@ -153,7 +146,7 @@ def run_squad(root: str | Path, out: str | Path, *, jobs: int | None = None, mar
 
     with exports:
         export_ready()
-        run_pool(todo, config.analysis, jobs, on_done, cache, cluster=cluster, start_method=start_method)
+        run_pool(todo, config.analysis, jobs, on_done, cache, cluster=cluster)
         export_ready()
 
     failed = []

@@ -1,11 +1,10 @@
-"""The worker processes of a squad run: the modules they load (:data:`STAGE_MODULES`), the forkserver they can be
-forked from (:func:`start_worker_server`), their initializer and the memory allocator setting every hamstride
-process uses (:func:`tune_allocator`). Light on purpose (no numpy, no stages): it can be imported first, so a
-server starts loading the stages before the calling process loads anything heavy.
+"""The worker processes of a squad run: the modules they load (:data:`STAGE_MODULES`, loaded once by the process
+they fork from) and the memory allocator setting every hamstride process uses (:func:`tune_allocator`, also the
+pool's initializer). Light on purpose (no numpy, no stages): the command imports it before anything heavy.
 """
 from __future__ import annotations
 
-__all__ = ["STAGE_MODULES", "start_worker_server", "tune_allocator"]
+__all__ = ["STAGE_MODULES", "tune_allocator"]
 
 #: The modules a worker runs (with the parts of scipy they import): loaded once, by the process the workers are
 #: forked from.
@@ -20,35 +19,6 @@ def _load_stages() -> None:
 
     for module in STAGE_MODULES:
         importlib.import_module(module)
-
-
-def start_worker_server(*also: str) -> None:
-    """Start, in the background, the process the pool's workers will be forked from (the ``forkserver`` start
-    method), loading the stages there (:data:`STAGE_MODULES`, about 0.5 s, mostly scipy) while this process goes on
-    with its own imports, the squad's discovery and the inputs' hashes; pass ``start_method="forkserver"`` to
-    :func:`hamstride.squad.executor.run_pool` (or ``run_squad``) to use it. The stages load once (the workers fork
-    from the loaded process) and this process never loads scipy. Measured for the command (issue 17, two quiet
-    cores): about as fast as forking from the loaded command (one trial 1.09 vs 1.16 s, 24 trials 1.94 vs 1.87 s)
-    for 0.15-0.2 s more CPU (a second interpreter), so the command forks; kept for hosts with cores to spare. Workers forked this way do not
-    inherit this process's later state (a notebook's changes to a module): the Python API keeps plain ``fork``.
-
-    ``also``: more modules to load there, e.g. the command's own module, which multiprocessing runs again in each
-    worker as ``__mp_main__`` (cheap once its imports are loaded)."""
-    import multiprocessing
-    from multiprocessing import forkserver
-
-    multiprocessing.get_context("forkserver").set_forkserver_preload(list(STAGE_MODULES + also))
-    forkserver.ensure_running()
-
-
-def _start_worker(ignore_warnings: bool = False) -> None:
-    """Pool worker initializer: reuse freed memory (:func:`tune_allocator`) and, for workers that did not inherit
-    the command's warning filter (forkserver), ignore library warnings as the command does."""
-    tune_allocator()
-    if ignore_warnings:
-        import warnings
-
-        warnings.simplefilter("ignore")
 
 
 _MALLOC_TUNED: bool | None = None  # tune_allocator: not tried yet (None), applied (True) or not available
